@@ -1,0 +1,100 @@
+"""Regressor bases sigma(x): named terms built from the rig's state names.
+
+Term vocabulary (state names come from the rig):
+
+- ``bias``            the constant 1
+- ``<state>``         the state itself, e.g. ``el``
+- ``sin:<state>``, ``cos:<state>``, ``abs:<state>``
+- ``tanh:<state>``    tanh(x / basis.tanh_width), a smooth sign for friction
+- ``<a>*<b>``         product of two states, e.g. ``az_rate*el_rate``
+
+What lives here: parsing term lists into a `Basis` that evaluates over any
+leading batch shape. What does not: radial-basis networks (`runtime.rbf`),
+the law that uses the regressor (`runtime.law`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from runtime.config import Config, ConfigError
+
+Term = Callable[[NDArray[np.float64]], NDArray[np.float64]]
+
+_UNARY: dict[str, Callable[[NDArray[np.float64]], NDArray[np.float64]]] = {
+    "sin": np.sin,
+    "cos": np.cos,
+    "abs": np.abs,
+}
+
+
+@dataclass(frozen=True)
+class Basis:
+    """A named regressor: `evaluate(x)` maps (..., n) states to (..., N) features."""
+
+    names: tuple[str, ...]
+    terms: tuple[Term, ...]
+
+    @property
+    def size(self) -> int:
+        """Number of regressor terms N."""
+        return len(self.names)
+
+    def evaluate(self, x: NDArray[np.float64], out: NDArray[np.float64] | None = None,
+                 ) -> NDArray[np.float64]:
+        """sigma(x) for x of shape (..., n); writes into `out` when given."""
+        x = np.asarray(x, dtype=float)
+        if out is None:
+            out = np.empty(x.shape[:-1] + (self.size,))
+        for i, term in enumerate(self.terms):
+            out[..., i] = term(x)
+        return out
+
+
+def _parse_term(
+    term: str, states: Sequence[str], tanh_width: float, key: str
+) -> Term:
+    index = {name: i for i, name in enumerate(states)}
+
+    def state(name: str) -> int:
+        if name not in index:
+            raise ConfigError(
+                key, f"unknown basis term {term!r}: no state called {name!r}.",
+                f"use one of the states {', '.join(states)}, or 'bias', 'sin:STATE', "
+                "'cos:STATE', 'abs:STATE', 'tanh:STATE', 'STATE*STATE'.",
+            )
+        return index[name]
+
+    if term == "bias":
+        return lambda x: np.ones(x.shape[:-1])
+    if ":" in term:
+        fn, _, arg = term.partition(":")
+        i = state(arg)
+        if fn == "tanh":
+            w = tanh_width
+            return lambda x: np.tanh(x[..., i] / w)
+        if fn in _UNARY:
+            f = _UNARY[fn]
+            return lambda x: f(x[..., i])
+        raise ConfigError(key, f"unknown basis term {term!r}: no function {fn!r}.",
+                          "use sin, cos, abs or tanh, e.g. 'sin:el'.")
+    if "*" in term:
+        a, _, b = term.partition("*")
+        i, j = state(a), state(b)
+        return lambda x: x[..., i] * x[..., j]
+    i = state(term)
+    return lambda x: x[..., i]
+
+
+def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
+    """Build the basis named in `[basis] terms` for a rig with these state names."""
+    names = cfg.strings("basis.terms")
+    if not names:
+        raise ConfigError("basis.terms", "is empty.", 'list at least one term, e.g. ["bias"].')
+    width = cfg.number("basis.tanh_width", 0.05, positive=True, unit="state units")
+    terms = tuple(_parse_term(n, states, width, "basis.terms") for n in names)
+    return Basis(names=tuple(names), terms=terms)

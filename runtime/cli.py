@@ -1,0 +1,90 @@
+"""The `corral` command line.
+
+Each subcommand lives in its own module exposing ``add_arguments(parser)``
+and ``main(args) -> int``; this file only lists them, parses, and turns
+expected errors (bad config, missing file, refused design) into one clear
+line on stderr with exit status 2, never a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Sequence
+
+# name -> (module, one-line help). Modules are imported lazily so a slow or
+# missing optional part never breaks the others.
+COMMANDS: dict[str, tuple[str, str]] = {
+    "design": ("runtime.cmd_design", "compute gains, P, eps and the sampled-data verdict"),
+    "dry-run": ("runtime.cmd_dryrun", "run the closed loop against the simulated rig, fast"),
+    "run": ("runtime.cmd_run", "run the loop in real time against a rig (guarded)"),
+    "trips": ("runtime.cmd_trips", "list, show, plot and export watchdog trips"),
+    "rig": ("runtime.cmd_rig", "serve the simulated rig as a device (serial or MQTT)"),
+    "watch": ("runtime.cmd_watch", "open the live dashboard on a running rig"),
+    "sweep": ("runtime.cmd_sweep", "run many uncertain plants, report the bound statistics"),
+    "preflight": ("runtime.cmd_preflight", "go / no-go checks before arming hardware"),
+    "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
+}
+
+
+def common_config_args(parser: argparse.ArgumentParser) -> None:
+    """CONFIG plus repeatable --set KEY=VALUE overrides."""
+    parser.add_argument("config", help="TOML config, e.g. configs/pedestal-sim.toml")
+    parser.add_argument("--set", dest="overrides", action="append", default=[],
+                        metavar="KEY=VALUE",
+                        help="override a config key, e.g. --set adaptation.gamma=8 (repeatable)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The full parser, with every available subcommand."""
+    parser = argparse.ArgumentParser(
+        prog="corral",
+        description="Barrier-bounded adaptive control for bench rigs: design, dry-run, run, "
+                    "guard, watch and review.",
+    )
+    from runtime import __version__
+
+    parser.add_argument("--version", action="version", version=f"corral {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (module, help_text) in COMMANDS.items():
+        try:
+            mod = importlib.import_module(module)
+        except ModuleNotFoundError as exc:
+            if exc.name != module:
+                raise
+            continue
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        mod.add_arguments(p)
+        p.set_defaults(_module=mod)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the `corral` console script."""
+    from runtime.config import ConfigError
+
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "_module", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args._module.main(args) or 0)
+    except ConfigError as exc:
+        print(f"corral: {exc}", file=sys.stderr)
+        return 2
+    except UserError as exc:
+        print(f"corral: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("corral: interrupted", file=sys.stderr)
+        return 130
+
+
+class UserError(Exception):
+    """An expected, user-fixable problem that is not a config field (a missing log, say)."""
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,27 @@
+"""`corral design CONFIG`: the design report (human-readable or --json)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+from runtime.cli import common_config_args
+from runtime.config import load_config
+from runtime.design import design_from_config, format_design
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Arguments of `corral design`."""
+    common_config_args(parser)
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+
+
+def main(args: argparse.Namespace) -> int:
+    """Print the design; exit 1 when the verdict is a refusal."""
+    cfg = load_config(args.config, args.overrides)
+    d = design_from_config(cfg)
+    if args.json:
+        print(json.dumps(d.to_json(), indent=2))
+    else:
+        print(format_design(d))
+    return 0 if d.feasible else 1

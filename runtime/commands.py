@@ -1,0 +1,145 @@
+"""Command profiles per tracked axis: steps, smooth slews, sinusoids and holds.
+
+Config form (`[commands]`): one list of segments per tracked output, named by
+the output's state name; each segment is ``{at = seconds, kind = ...}``:
+
+- ``step``: jump to ``to``;
+- ``slew``: move to ``to`` over ``duration`` seconds along a smooth
+  (raised-cosine) path, so the velocity is continuous;
+- ``sine``: add ``amplitude * sin(2 pi frequency_hz (t - at))`` for
+  ``duration`` seconds around the value held at ``at``;
+- ``hold``: keep the value (a readable placeholder).
+
+Between segments the command holds. What lives here: parsing and evaluation
+(vectorised over time). What does not: the reference model (`runtime.law`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from runtime.config import Config, ConfigError
+
+KINDS = ("step", "slew", "sine", "hold")
+
+
+@dataclass(frozen=True)
+class Segment:
+    """One command segment on one axis."""
+
+    at: float
+    kind: str
+    to: float = 0.0
+    duration: float = 0.0
+    amplitude: float = 0.0
+    frequency_hz: float = 0.0
+
+
+@dataclass(frozen=True)
+class AxisProfile:
+    """The command on one axis: an initial value and its segments in time order."""
+
+    name: str
+    initial: float
+    segments: tuple[Segment, ...]
+
+    def evaluate(self, t: ArrayLike) -> NDArray[np.float64]:
+        """Command value at times t (any shape)."""
+        t = np.asarray(t, dtype=float)
+        value = np.full(t.shape, self.initial)
+        base = self.initial
+        for seg in self.segments:
+            after = t >= seg.at
+            if seg.kind == "step":
+                value = np.where(after, seg.to, value)
+                base = seg.to
+            elif seg.kind == "slew":
+                tau = np.clip((t - seg.at) / seg.duration, 0.0, 1.0)
+                path = base + (seg.to - base) * 0.5 * (1.0 - np.cos(np.pi * tau))
+                value = np.where(after, path, value)
+                base = seg.to
+            elif seg.kind == "sine":
+                inside = after & (t < seg.at + seg.duration)
+                wave = base + seg.amplitude * np.sin(2 * np.pi * seg.frequency_hz * (t - seg.at))
+                value = np.where(inside, wave, np.where(after, base, value))
+        return value
+
+
+@dataclass(frozen=True)
+class CommandSchedule:
+    """Commands for all tracked outputs, over `duration` seconds."""
+
+    axes: tuple[AxisProfile, ...]
+    duration: float
+
+    def evaluate(self, t: ArrayLike) -> NDArray[np.float64]:
+        """Commands at times t: shape t.shape + (p,)."""
+        return np.stack([a.evaluate(t) for a in self.axes], axis=-1)
+
+
+def _seg_number(item: dict, key: str, where: str, *, positive: bool = False) -> float:
+    if key not in item:
+        raise ConfigError(f"{where}.{key}", "is missing.", f"add {key} = <number> to the segment.")
+    v = item[key]
+    if isinstance(v, bool) or not isinstance(v, int | float) or not np.isfinite(v):
+        raise ConfigError(f"{where}.{key}", f"must be a number, got {v!r}.", "give a number.")
+    if positive and v <= 0:
+        raise ConfigError(f"{where}.{key}", f"must be positive, got {v}.",
+                          "give a value greater than zero.")
+    return float(v)
+
+
+def schedule_from_config(cfg: Config, tracked: Sequence[str]) -> CommandSchedule:
+    """Parse `[commands]` for the tracked outputs (names of the states C selects)."""
+    duration = cfg.number("commands.duration", 30.0, positive=True, unit="s")
+    known = set(tracked) | {"duration", "initial"}
+    for key in cfg.get("commands", {}):
+        if key not in known:
+            raise ConfigError(f"commands.{key}", "is not a tracked output.",
+                              f"name segments after a tracked output: {', '.join(tracked)}.")
+    axes = []
+    for j, name in enumerate(tracked):
+        items = cfg.get(f"commands.{name}", [])
+        if not isinstance(items, list):
+            raise ConfigError(f"commands.{name}", "must be a list of segments.",
+                              f'write {name} = [{{ at = 1.0, kind = "step", to = 0.1 }}]')
+        segs = []
+        for k, item in enumerate(items):
+            where = f"commands.{name}[{k}]"
+            if not isinstance(item, dict):
+                raise ConfigError(where, "must be a table {at = ..., kind = ...}.",
+                                  'write { at = 1.0, kind = "step", to = 0.1 }')
+            kind = item.get("kind")
+            if kind not in KINDS:
+                raise ConfigError(f"{where}.kind", f"unknown kind {kind!r}.",
+                                  f"use one of {', '.join(KINDS)}.")
+            at = _seg_number(item, "at", where)
+            if kind == "step":
+                segs.append(Segment(at, kind, to=_seg_number(item, "to", where)))
+            elif kind == "slew":
+                segs.append(Segment(at, kind, to=_seg_number(item, "to", where),
+                                    duration=_seg_number(item, "duration", where, positive=True)))
+            elif kind == "sine":
+                segs.append(Segment(
+                    at, kind, amplitude=_seg_number(item, "amplitude", where),
+                    frequency_hz=_seg_number(item, "frequency_hz", where, positive=True),
+                    duration=_seg_number(item, "duration", where, positive=True)))
+            else:
+                segs.append(Segment(at, kind))
+        segs.sort(key=lambda s: s.at)
+        initial = cfg.get("commands.initial", [0.0] * len(tracked))
+        axes.append(AxisProfile(name, float(initial[j]), tuple(segs)))
+    return CommandSchedule(tuple(axes), duration)
+
+
+def tracked_names(C: NDArray[np.float64], states: Sequence[str]) -> list[str]:
+    """Names of the tracked outputs: the state each row of C selects (or y0, y1...)."""
+    names = []
+    for i, row in enumerate(C):
+        nz = np.flatnonzero(row)
+        names.append(states[nz[0]] if nz.size == 1 and row[nz[0]] == 1 else f"y{i}")
+    return names

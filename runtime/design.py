@@ -1,0 +1,438 @@
+"""The design calculator: baseline gains, reference model, P, eps and the sampled-data checks.
+
+Plain functions on numpy arrays (`lqr`, `tracking_gain`, `lyapunov`,
+`eps_from_limits`, `zoh`) and `design_from_config`, which ties them together
+for a rig and returns a frozen `Design`. Dimension and feasibility problems
+raise `ConfigError` naming the config field and the fix.
+
+What does not live here: the update law that uses the design (`runtime.law`)
+and anything that does I/O.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.linalg as sla
+from numpy.typing import NDArray
+
+from runtime.basis import Basis, basis_from_config
+from runtime.config import Config, ConfigError
+
+Array = NDArray[np.float64]
+
+
+# ---------------------------------------------------------------- plain functions
+def lqr(A: Array, B: Array, Q: Array, R: Array) -> tuple[Array, Array, Array]:
+    """Continuous-time LQR: gain K (m x n), Riccati solution X, closed-loop poles.
+
+    Minimises the integral of x'Qx + u'Ru for x' = Ax + Bu with u = -Kx.
+
+    Example:
+        >>> K, X, poles = lqr(np.array([[0., 1.], [0., 0.]]), np.array([[0.], [1.]]),
+        ...                   np.eye(2), np.eye(1))
+        >>> np.round(K, 4).tolist()
+        [[1.0, 1.7321]]
+    """
+    A, B, Q, R = (np.atleast_2d(np.asarray(M, dtype=float)) for M in (A, B, Q, R))
+    n, m = B.shape
+    _check_shape("A", A, (n, n))
+    _check_shape("Q", Q, (n, n))
+    _check_shape("R", R, (m, m))
+    X = sla.solve_continuous_are(A, B, Q, R)
+    K = np.linalg.solve(R, B.T @ X)
+    poles = np.linalg.eigvals(A - B @ K)
+    return K, X, poles
+
+
+def controllability_rank(A: Array, B: Array) -> int:
+    """Rank of the controllability matrix [B, AB, ..., A^(n-1) B]."""
+    n = A.shape[0]
+    blocks = [B]
+    for _ in range(n - 1):
+        blocks.append(A @ blocks[-1])
+    return int(np.linalg.matrix_rank(np.hstack(blocks)))
+
+
+def tracking_gain(A_r: Array, B: Array, C: Array) -> Array:
+    """K2 = -(C A_r^-1 B)^-1: unit DC gain from command c to tracked outputs C x."""
+    dc = C @ np.linalg.solve(A_r, B)
+    return -np.linalg.inv(dc)
+
+
+def lyapunov(A_r: Array, R: Array) -> Array:
+    """P solving A_r' P + P A_r + R = 0 (symmetric, positive definite for Hurwitz A_r)."""
+    P = sla.solve_continuous_lyapunov(A_r.T, -R)
+    return 0.5 * (P + P.T)
+
+
+def eps_from_limits(P: Array, limits: Array) -> tuple[float, int, Array]:
+    """Largest eps whose ellipsoid e'Pe <= eps^2 fits the box |e_i| <= limits_i.
+
+    The support function of the ellipsoid along axis i is eps sqrt((P^-1)_ii),
+    so eps = min_i limits_i / sqrt((P^-1)_ii). Returns eps, the binding state
+    index and the guaranteed per-state envelope eps sqrt((P^-1)_ii).
+    """
+    spread = np.sqrt(np.diag(np.linalg.inv(P)))
+    ratios = np.asarray(limits, dtype=float) / spread
+    i = int(np.argmin(ratios))
+    eps = float(ratios[i])
+    return eps, i, eps * spread
+
+
+def zoh(A: Array, B: Array, T: float) -> tuple[Array, Array]:
+    """Exact zero-order-hold discretisation via the block matrix exponential.
+
+    expm([[A, B], [0, 0]] T) = [[A_d, B_d], [0, I]].
+    """
+    n, m = B.shape
+    M = np.zeros((n + m, n + m))
+    M[:n, :n] = A
+    M[:n, n:] = B
+    E = sla.expm(M * T)
+    return E[:n, :n], E[:n, n:]
+
+
+def _check_shape(name: str, M: Array, shape: tuple[int, int]) -> None:
+    if M.shape != shape:
+        raise ValueError(f"{name} has shape {M.shape}, expected {shape}")
+
+
+# ---------------------------------------------------------------- the rig model
+@dataclass(frozen=True)
+class RigModel:
+    """Nominal model and naming of the rig a config describes."""
+
+    name: str
+    sim: str | None
+    A: Array
+    B: Array
+    C: Array
+    states: tuple[str, ...]
+    state_units: tuple[str, ...]
+    inputs: tuple[str, ...]
+    input_units: tuple[str, ...]
+    input_limits: Array
+
+    @property
+    def n(self) -> int:
+        """Number of states."""
+        return self.A.shape[0]
+
+    @property
+    def m(self) -> int:
+        """Number of inputs."""
+        return self.B.shape[1]
+
+
+def rig_model(cfg: Config) -> RigModel:
+    """The nominal model from `[rig]`: a named simulated rig or explicit A, B, C."""
+    sim = cfg.get("rig.sim", None)
+    name = str(cfg.get("rig.name", sim or "rig"))
+    if sim is not None:
+        from sim_rigs import RIGS
+
+        if sim not in RIGS:
+            raise ConfigError("rig.sim", f"no simulated rig called {sim!r}.",
+                              f"use one of: {', '.join(sorted(RIGS))}.")
+        spec = RIGS[sim]
+        A, B, C = spec.nominal_model()
+        return RigModel(name, sim, A, B, C, spec.states, spec.state_units, spec.inputs,
+                        spec.input_units, np.array(spec.input_limits, dtype=float))
+    A = cfg.matrix("rig.A", (None, None))
+    n = A.shape[0]
+    if A.shape != (n, n):
+        raise ConfigError("rig.A", f"must be square, got shape {A.shape}.",
+                          "give an n x n matrix (n = number of states).")
+    B = cfg.matrix("rig.B", (n, None))
+    m = B.shape[1]
+    C = cfg.matrix("rig.C", (m, n))
+    states = tuple(cfg.strings("rig.states", n, [f"x{i}" for i in range(n)]))
+    units = tuple(cfg.strings("rig.state_units", n, ["1"] * n))
+    inputs = tuple(cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)]))
+    in_units = tuple(cfg.strings("rig.input_units", m, ["1"] * m))
+    limits = cfg.vector("rig.input_limits", m, positive=True)
+    return RigModel(name, None, A, B, C, states, units, inputs, in_units, limits)
+
+
+# ---------------------------------------------------------------- the design
+@dataclass(frozen=True)
+class Design:
+    """Everything the runtime needs from the design step, plus the checks."""
+
+    rig: RigModel
+    basis: Basis
+    Q: Array
+    R_u: Array
+    R: Array
+    K1: Array
+    K2: Array
+    A_r: Array
+    B_r: Array
+    P: Array
+    PB: Array
+    limits: Array
+    eps: float
+    eps_from_limits: float
+    binding_state: str
+    envelope: Array
+    poles: Array
+    c_bar: float
+    Ts: float
+    A_d: Array
+    B_d: Array
+    law: str
+    barrier: str
+    gamma: Array
+    clamp_margin: float
+    augment: bool
+    state_range: Array
+    regressor_bound: float
+    lam_max_BPB: float
+    step_gain: float
+    step_gain_at_trip: float
+    step_gain_cap: float
+    feasible: bool
+    reasons: tuple[str, ...]
+    warnings: tuple[str, ...]
+    extras: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def n_regressors(self) -> int:
+        """Regressor length N_bar (basis terms plus the augmentation)."""
+        return self.basis.size + (self.rig.m if self.augment else 0)
+
+    def to_json(self) -> dict[str, Any]:
+        """A JSON-ready dict with the documented keys (units in `units`)."""
+
+        def mat(M: Array) -> Any:
+            return np.asarray(M).tolist()
+
+        poles = [[float(p.real), float(p.imag)] for p in self.poles]
+        out = {
+            "rig": self.rig.name,
+            "states": list(self.rig.states),
+            "state_units": list(self.rig.state_units),
+            "inputs": list(self.rig.inputs),
+            "A": mat(self.A), "B": mat(self.rig.B), "C": mat(self.rig.C),
+            "K1": mat(self.K1), "K2": mat(self.K2), "A_r": mat(self.A_r), "B_r": mat(self.B_r),
+            "P": mat(self.P), "R": mat(self.R), "Q": mat(self.Q), "R_u": mat(self.R_u),
+            "limits": mat(self.limits),
+            "eps": self.eps, "eps_from_limits": self.eps_from_limits,
+            "binding_state": self.binding_state,
+            "envelope": mat(self.envelope),
+            "poles": poles,
+            "c_bar": self.c_bar,
+            "sample_period": self.Ts,
+            "A_d": mat(self.A_d), "B_d": mat(self.B_d),
+            "law": self.law, "barrier": self.barrier,
+            "gamma": mat(self.gamma),
+            "regressors": list(self.regressor_names),
+            "step_gain": self.step_gain,
+            "step_gain_at_trip": self.step_gain_at_trip,
+            "step_gain_cap": self.step_gain_cap,
+            "feasible": self.feasible,
+            "reasons": list(self.reasons),
+            "warnings": list(self.warnings),
+        }
+        out.update(self.extras)
+        return out
+
+    @property
+    def A(self) -> Array:
+        """Nominal A."""
+        return self.rig.A
+
+    @property
+    def regressor_names(self) -> tuple[str, ...]:
+        """Names of sigma_bar's entries."""
+        aug = tuple(f"u_n:{u}" for u in self.rig.inputs) if self.augment else ()
+        return self.basis.names + aug
+
+
+def _sample_box(state_range: Array, count: int, rng: np.random.Generator) -> Array:
+    """Points of the operating box: corners (up to 2^n), centre and uniform samples."""
+    n = state_range.size
+    pts = [np.zeros(n)]
+    if n <= 10:
+        corners = np.array(np.meshgrid(*[[-1.0, 1.0]] * n, indexing="ij")).reshape(n, -1).T
+        pts.extend(corners * state_range)
+    pts.extend(rng.uniform(-1, 1, size=(count, n)) * state_range)
+    return np.array(pts)
+
+
+def design_from_config(cfg: Config) -> Design:
+    """Run the whole design for a config. Raises ConfigError with a fix on any problem."""
+    rig = rig_model(cfg)
+    n, m = rig.n, rig.m
+    A, B, C = rig.A, rig.B, rig.C
+    if controllability_rank(A, B) < n:
+        raise ConfigError(
+            "rig.B", f"the pair (A, B) is not controllable (rank "
+            f"{controllability_rank(A, B)} of {n}); no state feedback can place all poles.",
+            "check that every state is reachable from some input (B and A's coupling).",
+        )
+    Q = cfg.weight_matrix("design.Q", n)
+    R_u = cfg.weight_matrix("design.R_u", m, 1.0)
+    R = cfg.weight_matrix("design.R", n, 1.0)
+    K1, _X, poles = lqr(A, B, Q, R_u)
+    A_r = A - B @ K1
+    if np.max(np.linalg.eigvals(A_r).real) >= 0:
+        raise ConfigError("design.Q", "the closed loop A - B K1 is not Hurwitz.",
+                          "use positive definite Q and R_u on a stabilisable model.")
+    if C.shape[0] != m:
+        raise ConfigError("rig.C", f"selects {C.shape[0]} tracked outputs but the rig has "
+                          f"{m} inputs; unit DC gain needs as many outputs as inputs.",
+                          f"give C with {m} rows.")
+    try:
+        K2 = tracking_gain(A_r, B, C)
+    except np.linalg.LinAlgError:
+        raise ConfigError("rig.C", "C A_r^-1 B is singular: the tracked outputs cannot all "
+                          "be held at a command.", "track outputs the inputs can move.") from None
+    B_r = B @ K2
+    P = lyapunov(A_r, R)
+    limits = cfg.vector("design.limits", n, positive=True)
+    eps_lim, bind, _env = eps_from_limits(P, limits)
+    eps_cfg = cfg.get("adaptation.eps", "from_limits")
+    if eps_cfg == "from_limits":
+        eps = eps_lim
+    else:
+        eps = cfg.number("adaptation.eps", positive=True)
+    envelope = eps * np.sqrt(np.diag(np.linalg.inv(P)))
+    c_bar = float(np.min(np.linalg.eigvalsh(R)) / np.max(np.linalg.eigvalsh(P)))
+
+    Ts = cfg.number("loop.period", positive=True, maximum=1.0, unit="s")
+    A_d, B_d = zoh(A_r, B_r, Ts)
+
+    basis = basis_from_config(cfg, rig.states)
+    law = cfg.choice("adaptation.law", ("barrier", "standard"), "barrier")
+    from runtime.barrier import BARRIERS
+
+    barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS), "rational")
+    augment = cfg.flag("adaptation.unknown_effectiveness", False)
+    n_reg = basis.size + (m if augment else 0)
+    gamma = cfg.vector("adaptation.gamma", n_reg, positive=True)
+    clamp_margin = cfg.number("adaptation.clamp_margin", 0.02, minimum=1e-6, maximum=0.5)
+    cap = cfg.number("adaptation.step_gain_cap", 1.0, positive=True)
+
+    state_range = cfg.vector("design.state_range", n, positive=True)
+    pts = _sample_box(state_range, 2000, np.random.default_rng(1))
+    sig = basis.evaluate(pts)
+    sq = np.sum(sig * sig, axis=-1)
+    if augment:
+        sq = sq + m  # u_n enters normalised by the input limits: |u_n_i / u_max_i| <= 1
+    regressor_bound = float(np.sqrt(np.max(sq)))
+    lam_bpb = float(np.max(np.linalg.eigvalsh(B.T @ P @ B)))
+    phi_d0 = 1.0 / eps if law == "barrier" else 1.0
+    from runtime.barrier import get_barrier
+
+    bar = get_barrier(barrier)
+    trip_level = cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0)
+    phi_d_trip = float(bar.phi_d(trip_level * eps, eps)) if law == "barrier" else 1.0
+    g0 = Ts * float(np.max(gamma)) * phi_d0 * regressor_bound**2 * lam_bpb
+    g_trip = g0 * phi_d_trip / phi_d0
+
+    reasons: list[str] = []
+    warnings: list[str] = []
+    if g0 >= cap:
+        scale = 0.5 * cap / g0
+        reasons.append(
+            f"the nominal per-step adaptation gain is {g0:.3g}, at or above the cap {cap:.3g}: "
+            f"the sampled law overshoots and cannot hold the bound. Lower adaptation.gamma "
+            f"to about {float(np.max(gamma)) * scale:.3g} or loop.period to about "
+            f"{Ts * scale:.3g} s."
+        )
+    if g_trip >= cap and law == "barrier":
+        warnings.append(
+            f"near the trip level ({trip_level:.2f} eps) the per-step gain would reach "
+            f"{g_trip:.3g}; the live cap {cap:.3g} limits it there, so learning stiffens "
+            "less than the continuous law would."
+        )
+    if eps_cfg != "from_limits" and eps > eps_lim * (1 + 1e-9):
+        warnings.append(
+            f"adaptation.eps = {eps:.4g} is larger than the {eps_lim:.4g} that fits the "
+            f"limits; the guaranteed envelope exceeds design.limits on "
+            f"{rig.states[bind]}."
+        )
+    fastest = float(np.max(np.abs(poles)))
+    if fastest * Ts > 0.2:
+        warnings.append(
+            f"the fastest closed-loop pole ({fastest:.3g} rad/s) is within a factor 5 of the "
+            f"sample rate ({1 / Ts:.3g} Hz); sampled behaviour will differ from the design."
+        )
+
+    return Design(
+        rig=rig, basis=basis, Q=Q, R_u=R_u, R=R, K1=K1, K2=K2, A_r=A_r, B_r=B_r, P=P,
+        PB=P @ B, limits=limits, eps=float(eps), eps_from_limits=eps_lim,
+        binding_state=rig.states[bind], envelope=envelope, poles=np.linalg.eigvals(A_r),
+        c_bar=c_bar, Ts=Ts, A_d=A_d, B_d=B_d, law=law, barrier=barrier, gamma=gamma,
+        clamp_margin=clamp_margin, augment=augment, state_range=state_range,
+        regressor_bound=regressor_bound, lam_max_BPB=lam_bpb, step_gain=g0,
+        step_gain_at_trip=g_trip, step_gain_cap=cap, feasible=not reasons,
+        reasons=tuple(reasons), warnings=tuple(warnings),
+    )
+
+
+def format_design(d: Design) -> str:
+    """A human-readable design report with units."""
+    rig = d.rig
+    np.set_printoptions(precision=4, suppress=True, linewidth=100)
+    lines = [
+        f"corral design: rig {rig.name!r}" + (f" (simulated {rig.sim})" if rig.sim else ""),
+        "  states  " + _named(rig.states, rig.state_units),
+        "  inputs  " + _named(rig.inputs, rig.input_units),
+        "",
+        "Baseline (LQR) gain K1 [input units per state unit]:",
+        _indent(str(d.K1)),
+        "Tracking gain K2 (unit DC gain on the tracked outputs):",
+        _indent(str(d.K2)),
+        "Closed-loop poles of A_r = A - B K1 [rad/s]:",
+        _indent(", ".join(_fmt_pole(p) for p in sorted(d.poles, key=lambda z: z.real))),
+        "Lyapunov matrix P (A_r' P + P A_r + R = 0):",
+        _indent(str(d.P)),
+        "",
+        "Error bound:",
+        f"  eps = {d.eps:.5g} (in ||e||_P)"
+        + ("" if abs(d.eps - d.eps_from_limits) < 1e-12
+           else f"; the limits alone allow {d.eps_from_limits:.5g}"),
+        f"  binding state: {d.binding_state} (its limit is reached first)",
+        "  per-state limit and guaranteed envelope:",
+    ]
+    for s, u, lim, env in zip(rig.states, rig.state_units, d.limits, d.envelope, strict=True):
+        mark = "  <- binds" if s == d.binding_state else ""
+        lines.append(f"    {s:>10}: limit {lim:9.4g} {u:6}  envelope +-{env:9.4g} {u}{mark}")
+    lines += [
+        f"  c_bar = lambda_min(R)/lambda_max(P) = {d.c_bar:.4g} 1/s",
+        "",
+        "Sampled-data checks:",
+        f"  sample period {d.Ts * 1e3:.4g} ms ({1 / d.Ts:.4g} Hz), reference model by exact ZOH",
+        f"  law {d.law}" + (f" (barrier {d.barrier})" if d.law == "barrier" else "")
+        + f", gamma max {float(np.max(d.gamma)):.4g}, regressors: {', '.join(d.regressor_names)}",
+        f"  regressor bound ||sigma_bar|| <= {d.regressor_bound:.4g} over the operating range",
+        f"  nominal per-step adaptation gain g = {d.step_gain:.4g} (cap {d.step_gain_cap:.3g});"
+        f" at the trip level {d.step_gain_at_trip:.4g}",
+        "",
+        "Verdict: " + ("FEASIBLE" if d.feasible else "REFUSED"),
+    ]
+    lines += [f"  reason: {r}" for r in d.reasons]
+    lines += [f"  warning: {w}" for w in d.warnings]
+    lines.append("")
+    lines.append("The bound is a continuous-time guarantee, not a hardware guarantee: watch the "
+                 "measured margin.")
+    return "\n".join(lines)
+
+
+def _named(names: tuple[str, ...], units: tuple[str, ...]) -> str:
+    return ", ".join(f"{s} [{u}]" for s, u in zip(names, units, strict=True))
+
+
+def _fmt_pole(p: complex) -> str:
+    if abs(p.imag) < 1e-9:
+        return f"{p.real:.4g}"
+    return f"{p.real:.4g}{p.imag:+.4g}j"
+
+
+def _indent(text: str) -> str:
+    return "\n".join("  " + line for line in text.splitlines())

@@ -1,0 +1,250 @@
+"""The dry run: the closed loop against the simulated rig in simulated time.
+
+`dry_run(cfg)` builds the design, the law and the simulated plant from a
+config, runs every tick as fast as the machine allows, keeps every tick in
+preallocated arrays, and returns a `DryRunResult`. `write_run_file` stores
+the ticks as a msgpack run file (one schema header, then positional
+records); `plot_report` draws the PNG report.
+
+What does not live here: the real-time loop and the watchdog (`runtime.loop`,
+`runtime.watchdog`), which reuse the same law.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+from numpy.typing import NDArray
+
+from runtime.commands import schedule_from_config, tracked_names
+from runtime.config import Config, ConfigError
+from runtime.design import Design, design_from_config
+from runtime.law import AdaptiveLaw
+
+RUN_FORMAT = "corral-run"
+RUN_VERSION = 1
+
+
+@dataclass
+class DryRunResult:
+    """Every tick of a dry run, plus the summary figures."""
+
+    design: Design
+    t: NDArray[np.float64]
+    columns: dict[str, NDArray[np.float64]]
+    units: dict[str, str]
+    summary: dict[str, Any] = field(default_factory=dict)
+
+
+def plant_from_config(cfg: Config, design: Design, batch: int = 1,
+                      truth: dict[str, Any] | None = None) -> Any:
+    """The simulated plant a config describes (its `[plant]` truth and sensors)."""
+    from sim_rigs import RIGS
+    from sim_rigs.pedestal import Pedestal, SensorModel
+
+    sim = design.rig.sim
+    if sim is None:
+        raise ConfigError("rig.sim", "a dry run needs a simulated rig.",
+                          'set rig.sim = "pedestal" (the only simulated rig so far).')
+    spec = RIGS[sim]
+    truth = dict(cfg.get("plant.truth", {})) if truth is None else truth
+    for key in truth:
+        if key not in spec.truth_defaults:
+            raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
+                              f"use one of: {', '.join(spec.truth_defaults)}.")
+    sensors = SensorModel(
+        angle_resolution=cfg.number("plant.sensors.angle_resolution", 2 * np.pi / 2**16,
+                                    minimum=0.0, unit="rad"),
+        angle_noise=cfg.number("plant.sensors.angle_noise", 2e-5, minimum=0.0, unit="rad"),
+        rate_noise=cfg.number("plant.sensors.rate_noise", 2e-3, minimum=0.0, unit="rad/s"),
+        delay_ticks=int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0)),
+    )
+    x0 = cfg.vector("plant.x0", design.rig.n, [0.0] * design.rig.n)
+    seed = int(cfg.number("plant.seed", 0, minimum=0))
+    substeps = int(cfg.number("plant.substeps", 4, minimum=1, maximum=100))
+    return Pedestal.create(truth, batch=batch, x0=x0, sensors=sensors, substeps=substeps,
+                           rng=np.random.default_rng(seed))
+
+
+def dry_run(cfg: Config, progress: Any = None) -> DryRunResult:
+    """Run the closed loop for `commands.duration` seconds of simulated time."""
+    design = design_from_config(cfg)
+    law = AdaptiveLaw(design)
+    plant = plant_from_config(cfg, design)
+    rig = design.rig
+    tracked = tracked_names(rig.C, rig.states)
+    schedule = schedule_from_config(cfg, tracked)
+    Ts = design.Ts
+    ticks = int(round(schedule.duration / Ts))
+    t = np.arange(ticks) * Ts
+    cmd = schedule.evaluate(t)
+    n, m, p = rig.n, rig.m, len(tracked)
+
+    cols: dict[str, NDArray[np.float64]] = {
+        "c": np.empty((ticks, p)), "x": np.empty((ticks, n)), "y": np.empty((ticks, n)),
+        "xr": np.empty((ticks, n)), "e": np.empty((ticks, n)), "s": np.empty(ticks),
+        "ratio": np.empty(ticks), "phi_d": np.empty(ticks), "eff_rate": np.empty(ticks),
+        "step_gain": np.empty(ticks), "u": np.empty((ticks, m)), "u_raw": np.empty((ticks, m)),
+        "w_norm": np.empty(ticks), "clamped": np.empty(ticks),
+    }
+    su = tuple(rig.state_units)
+    units = {"t": "s", "c": ",".join(su[i] for i in np.argmax(rig.C != 0, axis=1)),
+             "x": ",".join(su), "y": ",".join(su), "xr": ",".join(su), "e": ",".join(su),
+             "s": "1", "ratio": "1", "phi_d": "1", "eff_rate": "1", "step_gain": "1",
+             "u": ",".join(rig.input_units), "u_raw": ",".join(rig.input_units),
+             "w_norm": "1", "clamped": "1"}
+
+    y0 = plant.measure()[0]
+    state = law.init_state(y0)
+    wall0 = time.perf_counter()
+    report_every = max(1, ticks // 100)
+    y = y0
+    for k in range(ticks):
+        out = law.step(state, y, cmd[k])
+        cols["x"][k] = plant.x[0]
+        cols["y"][k] = y
+        cols["e"][k] = out.e
+        cols["s"][k] = out.s
+        cols["ratio"][k] = out.ratio
+        cols["phi_d"][k] = out.phi_d
+        cols["eff_rate"][k] = out.eff_rate
+        cols["step_gain"][k] = out.step_gain
+        cols["u"][k] = out.u
+        cols["u_raw"][k] = out.u_raw
+        cols["w_norm"][k] = np.sqrt(np.sum(state.W * state.W))
+        cols["clamped"][k] = float(out.clamped)
+        plant.step(out.u, Ts)
+        y = plant.measure()[0]
+        if progress is not None and k % report_every == 0:
+            progress(k, ticks)
+    wall = time.perf_counter() - wall0
+    cols["c"][:] = cmd
+    cols["xr"][:] = cols["y"] - cols["e"]  # the reference state the tick compared against
+
+    ratio = cols["ratio"]
+    breach = np.flatnonzero(~(ratio < 1.0))
+    last5 = t >= t[-1] - 5.0
+    out_idx = np.argmax(rig.C != 0, axis=1)
+    pointing = cols["x"][:, out_idx] - cmd
+    summary = {
+        "law": design.law,
+        "rig": rig.name,
+        "eps": design.eps,
+        "max_margin_ratio": float(np.max(ratio)),
+        "breach_time": float(t[breach[0]]) if breach.size else None,
+        "rms_error_final": float(np.sqrt(np.mean(np.sum(pointing[last5] ** 2, axis=1)))),
+        "weight_norm": float(cols["w_norm"][-1]),
+        "ticks": ticks,
+        "sim_seconds": float(ticks * Ts),
+        "wall_seconds": wall,
+        "realtime_factor": float(ticks * Ts / wall) if wall > 0 else float("inf"),
+        "max_eff_rate": float(np.max(cols["eff_rate"])),
+        "max_step_gain": float(np.max(cols["step_gain"])),
+        "clamp_ticks": int(np.sum(cols["clamped"])),
+        "saturation_fraction": float(np.mean(np.any(np.abs(cols["u_raw"])
+                                                    > rig.input_limits, axis=1))),
+    }
+    return DryRunResult(design=design, t=t, columns=cols, units=units, summary=summary)
+
+
+def write_run_file(result: DryRunResult, path: Path, cfg: Config) -> Path:
+    """Store every tick: a schema header, then one positional record per tick."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    names = ["t", *result.columns]
+    widths = [1] + [1 if v.ndim == 1 else v.shape[1] for v in result.columns.values()]
+    header = {
+        "format": RUN_FORMAT, "version": RUN_VERSION, "kind": "dry-run",
+        "fields": names, "widths": widths, "units": [result.units.get(n, "") for n in names],
+        "states": list(result.design.rig.states), "inputs": list(result.design.rig.inputs),
+        "config": cfg.raw, "config_hash": cfg.hash(), "summary": result.summary,
+        "eps": result.design.eps,
+    }
+    flat = np.column_stack([result.t] + [v.reshape(len(result.t), -1)
+                                         for v in result.columns.values()])
+    packer = msgpack.Packer()
+    with open(path, "wb") as fh:
+        fh.write(packer.pack(header))
+        for row in flat.tolist():
+            fh.write(packer.pack(row))
+    return path
+
+
+def read_run_file(path: Path) -> tuple[dict[str, Any], dict[str, NDArray[np.float64]]]:
+    """Read a run file back: the header and one array per field (a torn tail is skipped)."""
+    with open(path, "rb") as fh:
+        unpacker = msgpack.Unpacker(fh, raw=False, strict_map_key=False)
+        header = next(unpacker)
+        rows = [r for r in unpacker if isinstance(r, list)]
+    flat = np.array(rows, dtype=float).reshape(len(rows), -1)
+    out: dict[str, NDArray[np.float64]] = {}
+    col = 0
+    for name, w in zip(header["fields"], header["widths"], strict=True):
+        out[name] = flat[:, col] if w == 1 else flat[:, col:col + w]
+        col += w
+    return header, out
+
+
+def plot_report(result: DryRunResult, path: Path, title: str = "") -> Path:
+    """The dry-run report: tracking, margin, learning rate, inputs, weights."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    d = result.design
+    rig = d.rig
+    t = result.t
+    c = result.columns
+    p = c["c"].shape[1]
+    idx = np.argmax(rig.C != 0, axis=1)
+    fig, axes = plt.subplots(3 + p, 1, figsize=(10, 2.3 * (3 + p)), sharex=True,
+                             constrained_layout=True)
+    for j in range(p):
+        ax = axes[j]
+        name, unit = rig.states[idx[j]], rig.state_units[idx[j]]
+        ax.plot(t, c["c"][:, j], color="0.6", lw=1, label="command")
+        ax.plot(t, c["xr"][:, idx[j]], color="tab:blue", lw=1.2, label="reference model")
+        ax.plot(t, c["x"][:, idx[j]], color="tab:orange", lw=1, ls="--", label="measured")
+        ax.set_ylabel(f"{name} [{unit}]")
+        ax.legend(loc="upper right", fontsize=8, ncol=3)
+        ax.grid(alpha=0.3)
+    ax = axes[p]
+    ax.plot(t, c["ratio"], color="tab:purple", lw=1, label="||e||_P / eps")
+    ax.axhline(1.0, color="tab:red", lw=1.5, label="bound")
+    ax.axhline(0.9, color="tab:red", lw=0.8, ls=":", label="trip level 0.9")
+    ax.axhline(0.8, color="tab:olive", lw=0.8, ls=":", label="warning 0.8")
+    ax.set_ylabel("margin ratio [1]")
+    ax.set_ylim(0, max(1.1, float(np.nanmax(c["ratio"])) * 1.05))
+    ax.legend(loc="upper right", fontsize=8, ncol=4)
+    ax.grid(alpha=0.3)
+    ax = axes[p + 1]
+    ax.semilogy(t, np.maximum(c["eff_rate"], 1e-12), color="tab:green", lw=1)
+    ax.set_ylabel("gamma * phi_d [1]")
+    ax.grid(alpha=0.3, which="both")
+    ax = axes[p + 2]
+    for j in range(rig.m):
+        ax.plot(t, c["u"][:, j], lw=1, label=f"{rig.inputs[j]}")
+    lim = float(np.max(rig.input_limits))
+    ax.axhline(lim, color="k", lw=0.8, ls="--")
+    ax.axhline(-lim, color="k", lw=0.8, ls="--", label="limit")
+    ax.set_ylabel(f"input [{rig.input_units[0]}]")
+    ax2 = ax.twinx()
+    ax2.plot(t, c["w_norm"], color="tab:brown", lw=1, label="||W_hat||")
+    ax2.set_ylabel("weight norm [1]", color="tab:brown")
+    ax.legend(loc="upper left", fontsize=8, ncol=3)
+    ax.set_xlabel("time [s]")
+    ax.grid(alpha=0.3)
+    s = result.summary
+    verdict = ("inside the bound" if s["breach_time"] is None
+               else f"BOUND BROKEN at t = {s['breach_time']:.3f} s")
+    fig.suptitle(title or f"corral dry run: {rig.name}, {d.law} law, eps = {d.eps:.4g}, "
+                 f"max margin ratio {s['max_margin_ratio']:.3f} ({verdict})", fontsize=10)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
