@@ -1,0 +1,541 @@
+"""The serial link: the corral wire protocol over a serial port, and its device side.
+
+What lives here: `SerialLink`, the host side (pyserial opened off the event loop
+through pyserial-asyncio-fast, hello handshake, rig-clocked `receive`, `send`,
+latency statistics, `reconnect` after an unplug); `parse_serial_url`;
+`DeviceEndpoint`, a small synchronous device side over a file descriptor (a
+pseudo-terminal master) that simulated devices and tests build on; `open_pty`.
+What does not: the codec (`drivers.wire`), any control or rig model.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import contextlib
+import errno
+import os
+import select
+import time
+import tty
+from collections.abc import Callable
+
+import serial
+import serial_asyncio_fast
+
+from drivers.base import Command, Hello, Link, LinkClosed, LinkStats, Sample
+from drivers.wire import (
+    PROTOCOL_VERSION,
+    CommandGuard,
+    Fault,
+    FrameDecoder,
+    Heartbeat,
+    Message,
+    SeqTracker,
+    Stop,
+    encode_message,
+)
+
+DEFAULT_BAUD = 115200
+HOST_HELLO_RIG_ID = "host"
+_LAT_KEEP = 200_000
+_RING = 256
+
+
+class HandshakeError(LinkClosed):
+    """The device did not complete the hello handshake (silent, or wrong protocol)."""
+
+
+def parse_serial_url(url: str) -> tuple[str, int]:
+    """Split ``serial:/dev/ttyUSB0@115200`` into ``("/dev/ttyUSB0", 115200)``.
+
+    The ``@baud`` part is optional (default 115200); ``serial://`` is accepted too.
+
+    >>> parse_serial_url("serial:/dev/pts/5@230400")
+    ('/dev/pts/5', 230400)
+    """
+    if not url.startswith("serial:"):
+        raise ValueError(f"not a serial URL (want serial:/path[@baud]): {url!r}")
+    rest = url[len("serial:") :]
+    if rest.startswith("//"):
+        rest = rest[2:]
+    path, sep, baud_s = rest.rpartition("@")
+    if not sep:
+        path, baud_s = rest, ""
+    if not path:
+        raise ValueError(f"serial URL has no device path: {url!r}")
+    if not baud_s:
+        return path, DEFAULT_BAUD
+    try:
+        baud = int(baud_s)
+    except ValueError:
+        raise ValueError(f"baud rate in {url!r} is not an integer: {baud_s!r}") from None
+    if baud <= 0:
+        raise ValueError(f"baud rate must be positive in {url!r}")
+    return path, baud
+
+
+def host_hello() -> Hello:
+    """The hello a host sends to ask a device to announce itself."""
+    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0)
+
+
+class _Protocol(asyncio.Protocol):
+    __slots__ = ("link", "lost")
+
+    def __init__(self, link: SerialLink) -> None:
+        self.link = link
+        self.lost: asyncio.Future[None] = asyncio.get_running_loop().create_future()
+
+    def data_received(self, data: bytes) -> None:
+        self.link._on_data(data)
+
+    def connection_lost(self, exc: Exception | None) -> None:
+        if not self.lost.done():
+            self.lost.set_result(None)
+        self.link._on_lost(self, exc)
+
+
+class SerialLink(Link):
+    """Host side of the corral wire protocol over a serial port.
+
+    ``async with SerialLink("/dev/ttyACM0") as link:`` opens the port (in a worker
+    thread, never on the event loop), asks for and waits for the device hello,
+    then `receive()` yields samples as the rig clocks them out and `send()`
+    writes commands. `receive()` raises `LinkClosed` when the port goes away;
+    `reconnect()` opens it again (same path, e.g. a /dev/serial/by-id link)
+    without restarting the process.
+
+    Statistics: `stats` (a `LinkStats`); `stats.latencies_us` gets the host time
+    from receipt of a sample to the send of the command that echoes its seq.
+    Extra read-only state: `device_status` (last heartbeat or sample status),
+    `faults` (recent `Fault` reports), `device_stopped`, `send_drops`.
+    """
+
+    def __init__(
+        self,
+        path: str,
+        baud: int = DEFAULT_BAUD,
+        *,
+        hello_timeout_s: float = 2.0,
+        queue_size: int = 64,
+        max_write_buffer: int = 4096,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
+        self.path = path
+        self.baud = baud
+        self.hello_timeout_s = hello_timeout_s
+        self.max_write_buffer = max_write_buffer
+        self.stats = LinkStats()
+        self.hello = None
+        self.device_status = 0
+        self.device_stopped = False
+        self.faults: collections.deque[Fault] = collections.deque(maxlen=32)
+        self.send_drops = 0
+        self._clock = clock
+        self._decoder = FrameDecoder(self.stats, synced=False)
+        self._tracker = SeqTracker(self.stats)
+        self._samples: collections.deque[Sample] = collections.deque()
+        self._queue_size = queue_size
+        self._waiter: asyncio.Future[None] | None = None
+        self._hello_waiter: asyncio.Future[Hello] | None = None
+        self._transport: asyncio.Transport | None = None
+        self._protocol: _Protocol | None = None
+        self._lost_reason: str | None = "not open"
+        self._host_seq = 0
+        # seq -> (t_device, t_host) of recent samples, for latency and the command's t echo.
+        self._ring_seq = [-1] * _RING
+        self._ring_t = [(0.0, 0.0)] * _RING
+
+    @classmethod
+    def from_url(cls, url: str, **kwargs: object) -> SerialLink:
+        """Build from ``serial:/path@baud`` (keyword arguments pass through)."""
+        path, baud = parse_serial_url(url)
+        return cls(path, baud, **kwargs)  # type: ignore[arg-type]
+
+    @property
+    def url(self) -> str:
+        """This link as a ``serial:`` URL."""
+        return f"serial:{self.path}@{self.baud}"
+
+    # ------------------------------------------------------------ callbacks (event loop)
+
+    def _on_data(self, data: bytes) -> None:
+        now = self._clock()
+        for msg in self._decoder.feed(data):
+            if type(msg) is Sample:
+                if not self._tracker.accept(msg.seq):
+                    continue
+                msg.t_host = now
+                self.stats.last_sample_host_s = now
+                self.device_status = msg.status
+                i = msg.seq % _RING
+                self._ring_seq[i] = msg.seq
+                self._ring_t[i] = (msg.t_device, now)
+                if len(self._samples) >= self._queue_size:
+                    self._samples.popleft()
+                    self.stats.late_frames += 1
+                self._samples.append(msg)
+                self._wake()
+            elif type(msg) is Hello:
+                self._on_hello(msg)
+            elif type(msg) is Heartbeat:
+                self.device_status = msg.status
+            elif type(msg) is Fault:
+                self.faults.append(msg)
+            elif type(msg) is Stop:
+                self.device_stopped = True
+            # Commands from the device side are meaningless here and ignored.
+
+    def _on_hello(self, hello: Hello) -> None:
+        if hello.rig_id == HOST_HELLO_RIG_ID and not hello.channels:
+            return  # our own hello echoed by a loopback; not a device
+        self.hello = hello
+        self._tracker.reset()
+        self.device_stopped = False
+        if self._hello_waiter is not None and not self._hello_waiter.done():
+            self._hello_waiter.set_result(hello)
+
+    def _on_lost(self, protocol: _Protocol, exc: Exception | None) -> None:
+        if protocol is not self._protocol:
+            return
+        self._lost_reason = f"serial port {self.path} lost: {exc}" if exc else "link closed"
+        self.stats.connected = False
+        self._transport = None
+        self._wake()
+        if self._hello_waiter is not None and not self._hello_waiter.done():
+            self._hello_waiter.set_exception(LinkClosed(self._lost_reason))
+
+    def _wake(self) -> None:
+        w = self._waiter
+        if w is not None and not w.done():
+            w.set_result(None)
+
+    # ------------------------------------------------------------ Link API
+
+    async def open(self) -> None:
+        """Open the port and complete the hello handshake.
+
+        Raises `LinkClosed` if the port cannot be opened and `HandshakeError`
+        if no compatible hello arrives within `hello_timeout_s`.
+        """
+        if self._transport is not None:
+            return
+        loop = asyncio.get_running_loop()
+        self._decoder.reset(synced=False)
+        self._tracker.reset()
+        self._samples.clear()
+        self.hello = None
+        try:
+            transport, protocol = await serial_asyncio_fast.create_serial_connection(
+                loop, lambda: _Protocol(self), self.path, baudrate=self.baud
+            )
+        except (serial.SerialException, OSError, ValueError) as exc:
+            raise LinkClosed(f"cannot open serial port {self.path}: {exc}") from exc
+        self._transport = transport  # type: ignore[assignment]
+        self._protocol = protocol  # type: ignore[assignment]
+        self._lost_reason = None
+        self.stats.connected = True
+        transport.write(b"\x00")  # a leading delimiter: the device starts on a clean frame
+        try:
+            await self._handshake()
+        except BaseException:
+            await self._disconnect()
+            raise
+
+    async def _handshake(self) -> None:
+        loop = asyncio.get_running_loop()
+        self._hello_waiter = loop.create_future()
+        deadline = loop.time() + self.hello_timeout_s
+        try:
+            while True:
+                self._write(encode_message(host_hello(), seq=self._next_seq(), t=0.0))
+                left = deadline - loop.time()
+                if left <= 0:
+                    raise HandshakeError(
+                        f"no hello from {self.url} within {self.hello_timeout_s:g} s: is the "
+                        f"device powered, on this port, and speaking corral wire protocol "
+                        f"v{PROTOCOL_VERSION}?"
+                    )
+                done, _ = await asyncio.wait({self._hello_waiter}, timeout=min(0.25, left))
+                if done:
+                    hello = self._hello_waiter.result()
+                    break
+        finally:
+            self._hello_waiter = None
+        self._samples.clear()  # anything before the hello belongs to an earlier session
+        if hello.protocol != PROTOCOL_VERSION:
+            raise HandshakeError(
+                f"device {hello.rig_id!r} on {self.url} speaks wire protocol v{hello.protocol}, "
+                f"this host speaks v{PROTOCOL_VERSION}"
+            )
+
+    async def receive(self) -> Sample:
+        """Next sample (oldest first; at most `queue_size` are kept, older ones dropped)."""
+        samples = self._samples
+        while True:
+            if samples:
+                return samples.popleft()
+            if self._lost_reason is not None:
+                raise LinkClosed(self._lost_reason)
+            self._waiter = asyncio.get_running_loop().create_future()
+            try:
+                await self._waiter
+            finally:
+                self._waiter = None
+
+    async def receive_latest(self) -> Sample:
+        """Newest sample; older queued ones are dropped (counted in `stats.late_frames`)."""
+        sample = await self.receive()
+        while self._samples:
+            self.stats.late_frames += 1
+            sample = self._samples.popleft()
+        return sample
+
+    async def send(self, command: Command) -> None:
+        """Write one command; records latency when it answers a recent sample."""
+        if self._transport is None:
+            raise LinkClosed(self._lost_reason or "link closed")
+        i = command.seq % _RING
+        if self._ring_seq[i] == command.seq:
+            t_device, t_rx = self._ring_t[i]
+        else:
+            t_device, t_rx = 0.0, 0.0
+        frame = encode_message(command, t=t_device)
+        if self._transport.get_write_buffer_size() > self.max_write_buffer:
+            self.send_drops += 1  # the device is not reading; do not pile up stale commands
+            return
+        self._transport.write(frame)
+        self.stats.frames_out += 1
+        if t_rx:
+            lat = self.stats.latencies_us
+            lat.append((self._clock() - t_rx) * 1e6)
+            if len(lat) > _LAT_KEEP:
+                del lat[: _LAT_KEEP // 2]
+
+    async def send_message(self, msg: Message) -> None:
+        """Send a heartbeat, stop or other message with the host's own sequence number."""
+        if self._transport is None:
+            raise LinkClosed(self._lost_reason or "link closed")
+        self._write(encode_message(msg, seq=self._next_seq()))
+
+    async def close(self) -> None:
+        """Send a stop (outputs off), then close the port. Never raises."""
+        with contextlib.suppress(Exception):
+            if self._transport is not None:
+                self._write(encode_message(Stop(self._next_seq(), 0.0, 0)))
+        with contextlib.suppress(Exception):
+            await self._disconnect()
+        self._lost_reason = "link closed"
+
+    async def reconnect(
+        self, timeout_s: float = 10.0, *, first_delay_s: float = 0.05, max_delay_s: float = 1.0
+    ) -> None:
+        """Re-open the port after it went away, retrying with exponential backoff.
+
+        Raises `LinkClosed` (the last error) if it is still gone after `timeout_s`.
+        """
+        await self._disconnect()
+        loop = asyncio.get_running_loop()
+        deadline = loop.time() + timeout_s
+        delay = first_delay_s
+        while True:
+            try:
+                await self.open()
+            except LinkClosed as exc:
+                if loop.time() + delay > deadline:
+                    raise LinkClosed(
+                        f"{self.url} still unavailable after {timeout_s:g} s: {exc}"
+                    ) from exc
+                await asyncio.sleep(delay)
+                delay = min(delay * 2, max_delay_s)
+            else:
+                self.stats.reconnects += 1
+                return
+
+    # ------------------------------------------------------------ helpers
+
+    def _next_seq(self) -> int:
+        self._host_seq = (self._host_seq + 1) & 0xFFFFFFFF
+        return self._host_seq
+
+    def _write(self, frame: bytes) -> None:
+        if self._transport is not None:
+            self._transport.write(frame)
+            self.stats.frames_out += 1
+
+    async def _disconnect(self) -> None:
+        transport, protocol = self._transport, self._protocol
+        self._transport = None
+        self.stats.connected = False
+        if self._lost_reason is None:
+            self._lost_reason = "link closed"
+        self._wake()
+        if transport is not None:
+            transport.close()
+        if protocol is not None:
+            # Closing happens in a worker thread inside the transport; wait for it.
+            with contextlib.suppress(asyncio.TimeoutError):
+                await asyncio.wait_for(asyncio.shield(protocol.lost), 2.0)
+
+
+# ============================================================================ device side
+
+
+def open_pty(link_path: str | None = None) -> tuple[int, int, str]:
+    """Create a raw pseudo-terminal: returns ``(master_fd, slave_fd, path)``.
+
+    `path` is the slave's name, or `link_path` made to point at it (replaced
+    atomically), as a stable name a host can re-open after a re-plug.
+    """
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    os.set_blocking(master, False)
+    path = os.ttyname(slave)
+    if link_path:
+        tmp = f"{link_path}.tmp{os.getpid()}"
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        os.symlink(path, tmp)
+        os.replace(tmp, link_path)
+        path = link_path
+    return master, slave, path
+
+
+class DeviceEndpoint:
+    """Device side of the wire protocol over a file descriptor (synchronous).
+
+    Meant for simulated devices and tests, usually run in a thread that sleeps
+    to absolute deadlines::
+
+        dev = DeviceEndpoint.create_pty(hello)       # dev.path is what the host opens
+        while running:
+            dev.poll(timeout)                        # applies commands, answers hellos
+            u, status = dev.outputs()                # command-timeout fail-safe applied
+            y = plant.step(u)
+            dev.send_sample(y, status)
+
+    It answers every host hello with its own, feeds commands and stops into a
+    `CommandGuard` (built from the hello's limits and command timeout) and
+    never raises on a missing host: writes that cannot go out are counted in
+    `write_drops`.
+    """
+
+    def __init__(
+        self,
+        fd: int,
+        hello: Hello,
+        *,
+        clock: Callable[[], float] = time.monotonic,
+        extra_fds: tuple[int, ...] = (),
+    ) -> None:
+        self.fd = fd
+        self.hello = hello
+        self.path = ""
+        self.stats = LinkStats(connected=True)
+        self.guard = CommandGuard(hello.output_limits, hello.command_timeout_s)
+        self.decoder = FrameDecoder(self.stats, synced=False)
+        self.seq = 0
+        self.write_drops = 0
+        self.host_hellos = 0
+        self.last_command: Command | None = None
+        self._clock = clock
+        self._t0 = clock()
+        self._extra_fds = extra_fds
+        self._closed = False
+        os.set_blocking(fd, False)
+        self._write(b"\x00")  # a leading delimiter marks a clean frame start
+
+    @classmethod
+    def create_pty(
+        cls, hello: Hello, *, link_path: str | None = None, **kwargs: object
+    ) -> DeviceEndpoint:
+        """A device on a fresh pseudo-terminal; the host opens `.path`."""
+        master, slave, path = open_pty(link_path)
+        dev = cls(master, hello, extra_fds=(slave,), **kwargs)  # type: ignore[arg-type]
+        dev.path = path
+        return dev
+
+    def now(self) -> float:
+        """Device time (s since this endpoint started)."""
+        return self._clock() - self._t0
+
+    def fileno(self) -> int:
+        """The file descriptor (for select or an event loop's add_reader)."""
+        return self.fd
+
+    def _write(self, data: bytes) -> bool:
+        try:
+            n = os.write(self.fd, data)
+        except OSError as exc:
+            if exc.errno in (errno.EAGAIN, errno.EIO, errno.EWOULDBLOCK):
+                self.write_drops += 1
+                return False
+            raise
+        if n != len(data):  # partial write: the rest would tear a frame; the
+            self.write_drops += 1  # receiver resynchronises at the next delimiter
+            return False
+        return True
+
+    def send(self, msg: Message, *, seq: int | None = None, t: float | None = None) -> bool:
+        """Send any message; Hello/Heartbeat/Fault/Stop get the device seq and time."""
+        if seq is None:
+            self.seq = (self.seq + 1) & 0xFFFFFFFF
+            seq = self.seq
+        ok = self._write(encode_message(msg, seq=seq, t=self.now() if t is None else t))
+        self.stats.frames_out += ok
+        return ok
+
+    def send_hello(self) -> bool:
+        """Announce the device (also done automatically on every host hello)."""
+        return self.send(self.hello)
+
+    def send_sample(self, y: tuple[float, ...], status: int = 0, t: float | None = None) -> int:
+        """Send one sample with the next sequence number; returns that number."""
+        self.seq = (self.seq + 1) & 0xFFFFFFFF
+        s = Sample(self.seq, self.now() if t is None else t, tuple(y), status)
+        self.stats.frames_out += self._write(encode_message(s))
+        return self.seq
+
+    def poll(self, timeout: float = 0.0) -> list[Message]:
+        """Wait up to `timeout` s for input, handle it, return what arrived."""
+        if self._closed:
+            return []
+        try:
+            r, _, _ = select.select([self.fd], [], [], max(0.0, timeout))
+        except (OSError, ValueError):
+            return []
+        if not r:
+            return []
+        try:
+            data = os.read(self.fd, 65536)
+        except OSError as exc:
+            if exc.errno in (errno.EAGAIN, errno.EIO, errno.EWOULDBLOCK):
+                return []  # EIO: no host has the other end open
+            raise
+        msgs = self.decoder.feed(data)
+        now = self.now()
+        for m in msgs:
+            if type(m) is Command:
+                if self.guard.on_command(m, now):
+                    self.last_command = m
+            elif type(m) is Stop:
+                self.guard.on_stop()
+            elif type(m) is Hello:
+                self.host_hellos += 1
+                self.guard.rearm()
+                self.send_hello()
+        return msgs
+
+    def outputs(self) -> tuple[tuple[float, ...], int]:
+        """Outputs to apply now and status bits (see `CommandGuard.outputs`)."""
+        return self.guard.outputs(self.now())
+
+    def close(self) -> None:
+        """Close the descriptor(s): to the host this looks like an unplug."""
+        if self._closed:
+            return
+        self._closed = True
+        for fd in (self.fd, *self._extra_fds):
+            with contextlib.suppress(OSError):
+                os.close(fd)
