@@ -38,6 +38,11 @@ class Basis:
 
     names: tuple[str, ...]
     terms: tuple[Term, ...]
+    codes: tuple[tuple[str, int, int], ...] = ()
+    """Machine-readable form of each term, (op, i, j), for compiled kernels:
+    op in {"bias", "x", "sin", "cos", "abs", "tanh", "mul"}; i, j state indices
+    (j only for "mul"); the tanh width is `tanh_width`."""
+    tanh_width: float = 0.05
 
     @property
     def size(self) -> int:
@@ -57,7 +62,7 @@ class Basis:
 
 def _parse_term(
     term: str, states: Sequence[str], tanh_width: float, key: str
-) -> Term:
+) -> tuple[Term, tuple[str, int, int]]:
     index = {name: i for i, name in enumerate(states)}
 
     def state(name: str) -> int:
@@ -70,24 +75,24 @@ def _parse_term(
         return index[name]
 
     if term == "bias":
-        return lambda x: np.ones(x.shape[:-1])
+        return (lambda x: np.ones(x.shape[:-1])), ("bias", 0, 0)
     if ":" in term:
         fn, _, arg = term.partition(":")
         i = state(arg)
         if fn == "tanh":
             w = tanh_width
-            return lambda x: np.tanh(x[..., i] / w)
+            return (lambda x: np.tanh(x[..., i] / w)), ("tanh", i, 0)
         if fn in _UNARY:
             f = _UNARY[fn]
-            return lambda x: f(x[..., i])
+            return (lambda x: f(x[..., i])), (fn, i, 0)
         raise ConfigError(key, f"unknown basis term {term!r}: no function {fn!r}.",
                           "use sin, cos, abs or tanh, e.g. 'sin:el'.")
     if "*" in term:
         a, _, b = term.partition("*")
         i, j = state(a), state(b)
-        return lambda x: x[..., i] * x[..., j]
+        return (lambda x: x[..., i] * x[..., j]), ("mul", i, j)
     i = state(term)
-    return lambda x: x[..., i]
+    return (lambda x: x[..., i]), ("x", i, 0)
 
 
 def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
@@ -96,5 +101,6 @@ def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
     if not names:
         raise ConfigError("basis.terms", "is empty.", 'list at least one term, e.g. ["bias"].')
     width = cfg.number("basis.tanh_width", 0.05, positive=True, unit="state units")
-    terms = tuple(_parse_term(n, states, width, "basis.terms") for n in names)
-    return Basis(names=tuple(names), terms=terms)
+    parsed = [_parse_term(n, states, width, "basis.terms") for n in names]
+    return Basis(names=tuple(names), terms=tuple(p[0] for p in parsed),
+                 codes=tuple(p[1] for p in parsed), tanh_width=width)
