@@ -71,18 +71,59 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                            rng=np.random.default_rng(seed))
 
 
-def dry_run(cfg: Config, progress: Any = None) -> DryRunResult:
-    """Run the closed loop for `commands.duration` seconds of simulated time."""
+ENGINES = ("fast", "reference")
+
+
+def _eps_schedule(cfg: Config, design: Design, t: NDArray[np.float64]) -> NDArray[np.float64]:
+    """eps per tick: the time-varying bound when `runtime.bound` provides one, else design.eps."""
+    try:
+        from runtime.bound import schedule_from_config
+    except ImportError:
+        return np.full(t.shape, design.eps)
+    schedule = schedule_from_config(cfg, design)
+    if schedule is None:
+        return np.full(t.shape, design.eps)
+    return np.broadcast_to(np.asarray(schedule.eps(t), dtype=float), t.shape).copy()
+
+
+def _reference_modifiers(cfg: Config, design: Design, settings: Any) -> list[Any]:
+    """The numpy weight modifiers for the reference engine (none when all are off)."""
+    active = settings.leakage != "none" or settings.dead_zone > 0 or settings.projection
+    if not active:
+        return []
+    try:
+        from runtime.modifiers import modifiers_from_config
+    except ImportError:
+        raise ConfigError(
+            "adaptation.leakage", "the reference engine has no numpy weight modifiers yet.",
+            'use the fast engine, or turn the modifiers off (leakage = "none", '
+            "dead_zone = 0, projection = false).",
+        ) from None
+    return list(modifiers_from_config(cfg, design))
+
+
+def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunResult:
+    """Run the closed loop for `commands.duration` seconds of simulated time.
+
+    `engine="fast"` runs the compiled single-plant kernels (`runtime.fast`);
+    `engine="reference"` runs the batched numpy law and plant tick by tick (slow,
+    the source of truth for cross-checks). Both fill the same columns and summary.
+    """
+    if engine not in ENGINES:
+        raise ValueError(f"engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+    from runtime.fast import ModifierSettings
+
     design = design_from_config(cfg)
-    law = AdaptiveLaw(design)
     plant = plant_from_config(cfg, design)
     rig = design.rig
+    settings = ModifierSettings.from_config(cfg, rig.m)
     tracked = tracked_names(rig.C, rig.states)
     schedule = schedule_from_config(cfg, tracked)
     Ts = design.Ts
     ticks = int(round(schedule.duration / Ts))
     t = np.arange(ticks) * Ts
-    cmd = schedule.evaluate(t)
+    cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
+    eps_t = _eps_schedule(cfg, design, t)
     n, m, p = rig.n, rig.m, len(tracked)
 
     cols: dict[str, NDArray[np.float64]] = {
@@ -99,30 +140,13 @@ def dry_run(cfg: Config, progress: Any = None) -> DryRunResult:
              "u": ",".join(rig.input_units), "u_raw": ",".join(rig.input_units),
              "w_norm": "1", "clamped": "1"}
 
-    y0 = plant.measure()[0]
-    state = law.init_state(y0)
-    wall0 = time.perf_counter()
-    report_every = max(1, ticks // 100)
-    y = y0
-    for k in range(ticks):
-        out = law.step(state, y, cmd[k])
-        cols["x"][k] = plant.x[0]
-        cols["y"][k] = y
-        cols["e"][k] = out.e
-        cols["s"][k] = out.s
-        cols["ratio"][k] = out.ratio
-        cols["phi_d"][k] = out.phi_d
-        cols["eff_rate"][k] = out.eff_rate
-        cols["step_gain"][k] = out.step_gain
-        cols["u"][k] = out.u
-        cols["u_raw"][k] = out.u_raw
-        cols["w_norm"][k] = np.sqrt(np.sum(state.W * state.W))
-        cols["clamped"][k] = float(out.clamped)
-        plant.step(out.u, Ts)
-        y = plant.measure()[0]
-        if progress is not None and k % report_every == 0:
-            progress(k, ticks)
-    wall = time.perf_counter() - wall0
+    compile_s = 0.0
+    if engine == "fast" and rig.sim == "pedestal":
+        wall, compile_s = _run_fast(design, settings, plant, cmd, eps_t, cols, progress)
+    else:
+        engine = "reference"
+        law = AdaptiveLaw(design, _reference_modifiers(cfg, design, settings))
+        wall = _run_reference(law, plant, cmd, eps_t, cols, progress)
     cols["c"][:] = cmd
     cols["xr"][:] = cols["y"] - cols["e"]  # the reference state the tick compared against
 
@@ -148,8 +172,115 @@ def dry_run(cfg: Config, progress: Any = None) -> DryRunResult:
         "clamp_ticks": int(np.sum(cols["clamped"])),
         "saturation_fraction": float(np.mean(np.any(np.abs(cols["u_raw"])
                                                     > rig.input_limits, axis=1))),
+        "engine": engine,
+        "compile_seconds": compile_s,
+        "eps_min": float(np.min(eps_t)),
     }
     return DryRunResult(design=design, t=t, columns=cols, units=units, summary=summary)
+
+
+def _run_reference(law: AdaptiveLaw, plant: Any, cmd: NDArray[np.float64],
+                   eps_t: NDArray[np.float64], cols: dict[str, NDArray[np.float64]],
+                   progress: Any) -> float:
+    """The numpy loop, tick by tick; returns wall seconds."""
+    ticks = len(cmd)
+    Ts = law.Ts
+    y0 = plant.measure()[0]
+    state = law.init_state(y0)
+    wall0 = time.perf_counter()
+    report_every = max(1, ticks // 100)
+    y = y0
+    for k in range(ticks):
+        out = law.step(state, y, cmd[k], eps_t[k])
+        cols["x"][k] = plant.x[0]
+        cols["y"][k] = y
+        cols["e"][k] = out.e
+        cols["s"][k] = out.s
+        cols["ratio"][k] = out.ratio
+        cols["phi_d"][k] = out.phi_d
+        cols["eff_rate"][k] = out.eff_rate
+        cols["step_gain"][k] = out.step_gain
+        cols["u"][k] = out.u
+        cols["u_raw"][k] = out.u_raw
+        cols["w_norm"][k] = np.sqrt(np.sum(state.W * state.W))
+        cols["clamped"][k] = float(out.clamped)
+        plant.step(out.u, Ts)
+        y = plant.measure()[0]
+        if progress is not None and k % report_every == 0:
+            progress(k, ticks)
+    return time.perf_counter() - wall0
+
+
+def _sensor_noise(plant: Any, readings: int) -> NDArray[np.float64]:
+    """Pre-drawn, pre-scaled sensor noise (readings, 4), in the order `Pedestal.measure` draws it.
+
+    `Generator.normal(0, s)` is s times a standard normal draw, and measure()
+    draws the angle pair then the rate pair each reading, so one
+    standard-normal block reproduces the reference run's noise exactly.
+    """
+    s = plant.sensors
+    noise = np.zeros((readings, 4))
+    width = 2 * int(s.angle_noise > 0) + 2 * int(s.rate_noise > 0)
+    if width == 0:
+        return noise
+    z = plant.rng.standard_normal((readings, width))
+    col = 0
+    if s.angle_noise > 0:
+        noise[:, :2] = s.angle_noise * z[:, :2]
+        col = 2
+    if s.rate_noise > 0:
+        noise[:, 2:] = s.rate_noise * z[:, col:col + 2]
+    return noise
+
+
+def _run_fast(design: Design, settings: Any, plant: Any, cmd: NDArray[np.float64],
+              eps_t: NDArray[np.float64], cols: dict[str, NDArray[np.float64]],
+              progress: Any) -> tuple[float, float]:
+    """The compiled loop (`runtime.fast.dry_run_loop`); returns (wall, compile) seconds."""
+    from runtime import fast
+
+    ticks = len(cmd)
+    ic, fc = fast.pack_law(design, settings)
+    n, m, n_reg = design.rig.n, design.rig.m, design.n_regressors
+    st = np.zeros(n + n_reg * m)
+    out = np.zeros(fast.out_size(n, m, n_reg))
+    work = np.zeros((6, 4))
+    prm = fast.pack_pedestal(plant.params)
+    limits = np.ascontiguousarray(plant.limits, dtype=float)
+    xp = np.array(plant.x[0], dtype=float)
+    dist = np.zeros((ticks, 2))
+    if plant.disturbance is not None:
+        dist[:] = plant.disturbance[0]
+    lsc = np.ones((ticks, 2))
+    if plant.lam_scale is not None:
+        lsc[:] = plant.lam_scale[0]
+    noise = _sensor_noise(plant, ticks + 1)
+    meas = np.zeros((ticks + 1, 4))
+    res = float(plant.sensors.angle_resolution)
+    delay = int(plant.sensors.delay_ticks)
+    substeps = int(plant.substeps)
+    rec = (cols["x"], cols["y"], cols["e"], cols["s"], cols["ratio"], cols["phi_d"],
+           cols["eff_rate"], cols["step_gain"], cols["u"], cols["u_raw"], cols["w_norm"],
+           cols["clamped"])
+
+    def run(k0: int, k1: int) -> None:
+        fast.dry_run_loop(k0, k1, cmd, eps_t, dist, lsc, xp, prm, limits, substeps, noise,
+                          res, delay, meas, ic, fc, st, out, work, *rec)
+
+    c0 = time.perf_counter()
+    fast.pedestal_measure(xp, res, noise[0], meas[0])
+    run(0, 0)  # compile or load the cached kernels before the clock starts
+    compile_s = time.perf_counter() - c0
+    st[:n] = meas[0]
+    wall0 = time.perf_counter()
+    chunk = max(1, ticks // 100) if progress is not None else max(ticks, 1)
+    for k0 in range(0, ticks, chunk):
+        run(k0, min(ticks, k0 + chunk))
+        if progress is not None:
+            progress(k0, ticks)
+    wall = time.perf_counter() - wall0
+    plant.x[0] = xp
+    return wall, compile_s
 
 
 def write_run_file(result: DryRunResult, path: Path, cfg: Config) -> Path:
