@@ -164,6 +164,8 @@ class SerialLink(Link):
         now = self._clock()
         for msg in self._decoder.feed(data):
             if type(msg) is Sample:
+                if self.hello is None:
+                    continue  # before the handshake: belongs to no session
                 if not self._tracker.accept(msg.seq):
                     continue
                 msg.t_host = now
@@ -487,7 +489,12 @@ class DeviceEndpoint:
         return ok
 
     def send_hello(self) -> bool:
-        """Announce the device (also done automatically on every host hello)."""
+        """Announce the device (also done automatically on every host hello).
+
+        A delimiter goes first, so a host that just opened the port (and drops
+        everything before its first delimiter) sees this hello whole.
+        """
+        self._write(b"\x00")
         return self.send(self.hello)
 
     def send_sample(self, y: tuple[float, ...], status: int = 0, t: float | None = None) -> int:

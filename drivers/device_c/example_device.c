@@ -174,6 +174,8 @@ int main(int argc, char **argv)
         }
         if (dev.hello_requested) {
             dev.hello_requested = 0;
+            buf[0] = 0; /* delimiter first: a host that just opened sees the hello whole */
+            send_all(fd, buf, 1);
             send_all(fd, buf, corral_device_encode_hello(&dev, t, buf, sizeof buf));
         }
         status = corral_device_outputs(&dev, t, u);
