@@ -189,3 +189,24 @@ def test_example_device_closes_a_loop_with_serial_link_and_fails_safe(bins):
     assert int(summary["timeouts"]) >= 1
     assert int(summary["stops"]) == 1  # SerialLink.close() sent a stop
     assert int(summary["crc"]) == int(summary["cobs"]) == int(summary["decode"]) == 0
+
+
+def test_c_header_constants_match_python():
+    import re
+
+    import drivers.base as base
+    from drivers import wire
+
+    text = (SRC / "corral_device.h").read_text()
+    defs = {m[0]: m[1] for m in re.findall(r"#define CORRAL_(\w+) \(?(1u << \d+|\d+u?)\)?", text)}
+
+    def val(s: str) -> int:
+        return eval(s.replace("u", ""))  # "1u << 3" -> 8
+
+    for name in ("STATUS_SATURATED", "STATUS_COMMAND_TIMEOUT", "STATUS_FAULT",
+                 "STATUS_OUTPUTS_OFF", "FLAG_OUTPUTS_ON", "FLAG_FALLBACK", "FLAG_STOP"):
+        assert val(defs[name]) == getattr(base, name), name
+    for kind in ("HELLO", "SAMPLE", "COMMAND", "HEARTBEAT", "FAULT", "STOP"):
+        assert val(defs[f"KIND_{kind}"]) == getattr(wire, f"KIND_{kind}"), kind
+    assert val(defs["PROTOCOL_VERSION"]) == wire.PROTOCOL_VERSION
+    assert val(defs["MAX_FRAME"]) == wire.MAX_FRAME

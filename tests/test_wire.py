@@ -368,3 +368,33 @@ def test_command_guard_fail_safe():
     g.rearm()
     assert g.on_command(Command(1, (1.0, 1.0), FLAG_OUTPUTS_ON), 3.0)
     assert g.outputs(3.0) == ((1.0, 1.0), 0)
+
+
+# --------------------------------------------------------------------------- the spec
+
+
+def _doc_hex(marker: str) -> bytes:
+    text = (ROOT / "docs" / "wire-protocol.md").read_text()
+    after = text.split(f"<!-- {marker} -->", 1)[1].strip().splitlines()[0]
+    return bytes.fromhex(after)
+
+
+def test_worked_example_in_the_spec_is_what_the_codec_produces():
+    s = Sample(7, 0.007, (0.1, -0.2), 0)
+    body = _doc_hex("example-body")
+    assert body == msgpack.packb([1, 7, 0.007, 0, [0.1, -0.2]])  # msgpack-python as reference
+    assert crc16(body) == 0xC950 == _crc_bitwise(body)
+    assert _doc_hex("example-frame") == encode_message(s)
+    assert decode_frame(_doc_hex("example-frame")) == s
+    cmd = _doc_hex("example-command")
+    assert cmd == encode_message(Command(7, (1.25,), FLAG_OUTPUTS_ON), t=0.007)
+    assert decode_frame(cmd) == Command(7, (1.25,), FLAG_OUTPUTS_ON)
+
+
+def test_spec_bits_match_drivers_base():
+    import drivers.base as base
+
+    text = (ROOT / "docs" / "wire-protocol.md").read_text()
+    for name in ("STATUS_SATURATED", "STATUS_COMMAND_TIMEOUT", "STATUS_FAULT",
+                 "STATUS_OUTPUTS_OFF", "FLAG_OUTPUTS_ON", "FLAG_FALLBACK", "FLAG_STOP"):
+        assert f"| 0x{getattr(base, name):02X} | `{name}` |" in text, name
