@@ -249,6 +249,17 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
                 if do_proj:
                     y = y - st[idx] * k_proj
                 st[idx] += fc[F_TS] * y
+            if proj and not dead:
+                # the Euler step may overshoot the ball Proj keeps invariant (f <= 1, i.e.
+                # ||theta|| <= theta_max): pull the column back radially onto it
+                nn = 0.0
+                for i in range(nreg):
+                    nn += st[W0 + i * m + j] * st[W0 + i * m + j]
+                th_max = fc[oTh + j]
+                if nn > th_max * th_max:
+                    shrink = th_max / math.sqrt(nn)
+                    for i in range(nreg):
+                        st[W0 + i * m + j] *= shrink
 
     # 5. control from the new weights, saturation
     for j in range(m):
@@ -423,8 +434,11 @@ class ModifierSettings:
     """Weight modifiers of section 2a, as the fast kernel applies them.
 
     Applied to the weight derivative in this order: leakage, dead zone (no
-    adaptation at all while s < dead_zone), projection (column by column,
-    so the weights stay inside ||W[:, j]|| <= theta_max[j] up to one Euler step).
+    adaptation at all while s < dead_zone), projection (column by column).
+    After the Euler step a column that overshot ||W[:, j]|| <= theta_max[j]
+    (the set Proj keeps invariant in continuous time) is scaled back onto it:
+    without that, a large step lands where f >> 1, the projected derivative
+    overshoots the other way and the weights diverge (seen in tests).
     """
 
     leakage: str = "none"

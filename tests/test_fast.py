@@ -1,0 +1,318 @@
+"""The compiled fast path agrees with the numpy reference tick by tick.
+
+The reference is `runtime.law.AdaptiveLaw` and `sim_rigs.pedestal.Pedestal`
+(the readable source of truth); the weight modifiers are checked against the
+formulas of the design brief section 2a, written out again below in plain
+numpy (projection: Pomet and Praly, IEEE TAC 1992, and Lavretsky and Wise,
+Robust and Adaptive Control, 2013; sigma-modification: Ioannou and Kokotovic;
+e-modification: Narendra and Annaswamy, IEEE TAC 1987).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from runtime import fast
+from runtime.config import load_config
+from runtime.design import design_from_config
+from runtime.dryrun import dry_run
+from runtime.law import AdaptiveLaw
+from sim_rigs.pedestal import Pedestal, SensorModel
+
+DEMO = Path(__file__).resolve().parents[1] / "configs" / "pedestal-sim.toml"
+NOISE_OFF = ["plant.sensors.angle_noise=0", "plant.sensors.rate_noise=0"]
+TOL = 1e-9
+
+
+def demo_design(*overrides: str):
+    return design_from_config(load_config(DEMO, list(overrides)))
+
+
+def close(a, b, tol: float = TOL) -> bool:
+    a = np.asarray(a, dtype=float)
+    b = np.asarray(b, dtype=float)
+    return bool(np.all(np.abs(a - b) <= tol * (1.0 + np.abs(a))))
+
+
+def compare_ticks(design, xs, cs, eps_t=None, modifiers=(), settings=None, w0=None):
+    """Run both laws on the same measurements; return the reference's clamp/cap flags."""
+    ref = AdaptiveLaw(design, modifiers)
+    fl = fast.FastLaw(design, settings)
+    st = ref.init_state(xs[0])
+    fl.init_state(xs[0])
+    if w0 is not None:
+        st.W[:] = w0
+        fl.W[:] = w0
+    clamped, capped = [], []
+    for k in range(len(xs)):
+        eps = None if eps_t is None else eps_t[k]
+        a = ref.step(st, xs[k], cs[k], eps)
+        b = fl.step(xs[k], cs[k], eps)
+        for name in ("u", "u_raw", "u_n", "e", "s", "ratio", "phi_d", "eff_rate", "step_gain"):
+            assert close(getattr(a, name), getattr(b, name)), (k, name)
+        assert bool(a.clamped) == b.clamped, k
+        assert bool(a.capped) == b.capped, k
+        assert close(st.W, fl.W), k
+        assert close(st.xr, fl.xr), k
+        clamped.append(bool(a.clamped))
+        capped.append(bool(a.capped))
+    return np.array(clamped), np.array(capped)
+
+
+def closed_loop_states(design, ticks: int, kicks: bool, seed: int = 3):
+    """Measurements from the numpy plant under the numpy law, with commands (and kicks)."""
+    law = AdaptiveLaw(design)
+    plant = Pedestal.create(batch=1, x0=[0.0, 0.1, 0.0, 0.0],
+                            sensors=SensorModel(0.0, 0.0, 0.0), substeps=2)
+    t = np.arange(ticks) * design.Ts
+    cs = np.stack((0.3 * np.sin(2 * np.pi * 0.5 * t), 0.2 + 0.1 * np.cos(2 * np.pi * t)), -1)
+    xs = np.empty((ticks, 4))
+    rng = np.random.default_rng(seed)
+    st = law.init_state(plant.measure()[0])
+    for k in range(ticks):
+        y = plant.measure()[0]
+        if kicks and k % 50 == 25:
+            y = y + rng.normal(size=4) * 2.0 * design.limits  # far outside the bound
+        xs[k] = y
+        out = law.step(st, y, cs[k])
+        plant.step(out.u, design.Ts)
+    return xs, cs
+
+
+# ---------------------------------------------------------------- law tick
+@pytest.mark.parametrize("overrides", [
+    (),
+    ("adaptation.law=standard",),
+    ("adaptation.barrier=log",),
+    ("adaptation.unknown_effectiveness=false",),
+    ("adaptation.law=standard", "adaptation.unknown_effectiveness=false"),
+])
+def test_law_tick_matches_reference_with_commands(overrides):
+    design = demo_design(*overrides)
+    xs, cs = closed_loop_states(design, 400, kicks=False)
+    compare_ticks(design, xs, cs)
+
+
+def test_law_tick_matches_reference_where_clamp_and_cap_engage():
+    design = demo_design("adaptation.gamma=20")
+    xs, cs = closed_loop_states(design, 400, kicks=True)
+    clamped, capped = compare_ticks(design, xs, cs)
+    assert clamped.any() and (~clamped).any()
+    assert capped.any() and (~capped).any()
+
+
+def test_law_tick_matches_reference_with_time_varying_eps():
+    design = demo_design()
+    xs, cs = closed_loop_states(design, 300, kicks=False)
+    t = np.arange(300) * design.Ts
+    eps_t = design.eps * (1.0 + 2.0 * np.exp(-t / 0.1))
+    compare_ticks(design, xs, cs, eps_t=eps_t)
+
+
+def test_frozen_law_holds_the_weights():
+    design = demo_design()
+    fl = fast.FastLaw(design)
+    fl.init_state(np.zeros(4))
+    fl.step(np.array([0.01, 0.0, 0.1, 0.0]), np.zeros(2))
+    w = fl.W.copy()
+    assert np.any(w != 0)
+    fl.frozen = True
+    fl.step(np.array([0.02, 0.01, 0.1, 0.0]), np.zeros(2))
+    assert np.array_equal(fl.W, w)
+
+
+# ---------------------------------------------------------------- modifiers (brief, section 2a)
+@dataclasses.dataclass
+class BriefModifiers:
+    """The section 2a formulas in plain numpy, applied in the fast kernel's order."""
+
+    gamma: np.ndarray
+    Ts: float
+    leakage: str = "none"
+    sigma0: float = 0.0
+    mu: float = 0.0
+    dead_zone: float = 0.0
+    theta_max: np.ndarray | None = None
+    eps_p: float = 0.1
+
+    def apply(self, W, dW, e, ePB, s, eps):
+        dW = dW.copy()
+        if self.leakage == "sigma":  # W' = gamma (phi_d sigma e'PB - sigma_0 W)
+            dW -= self.gamma[:, None] * self.sigma0 * W
+        elif self.leakage == "e":  # W' = gamma (phi_d sigma e'PB - mu ||e'PB|| W)
+            dW -= self.gamma[:, None] * self.mu * np.linalg.norm(ePB) * W
+        if self.dead_zone > 0 and s < self.dead_zone:
+            return np.zeros_like(dW)
+        if self.theta_max is not None:  # Proj(theta, y), column by column
+            for j in range(W.shape[1]):
+                th, y, tm = W[:, j], dW[:, j], self.theta_max[j]
+                f = ((1 + self.eps_p) * th @ th - tm**2) / (self.eps_p * tm**2)
+                grad = 2 * (1 + self.eps_p) * th / (self.eps_p * tm**2)
+                if f > 0 and y @ grad > 0:
+                    dW[:, j] = y - np.outer(grad, grad) @ y * f / (grad @ grad)
+                # an Euler step that overshoots ||theta|| <= theta_max is pulled back onto it
+                w_new = th + self.Ts * dW[:, j]
+                norm = np.linalg.norm(w_new)
+                if norm > tm:
+                    dW[:, j] = (w_new * (tm / norm) - th) / self.Ts
+        return dW
+
+
+@pytest.mark.parametrize("kind", ["sigma", "e", "dead_zone", "projection", "all"])
+def test_modifiers_match_the_brief_formulas(kind):
+    design = demo_design()
+    m = design.rig.m
+    xs, cs = closed_loop_states(design, 300, kicks=True)
+    theta = np.array([0.3, 0.5])
+    opts = {
+        "sigma": dict(leakage="sigma", sigma0=0.5),
+        "e": dict(leakage="e", mu=2.0),
+        "dead_zone": dict(dead_zone=0.3 * design.eps),
+        "projection": dict(projection=True, theta_max=tuple(theta)),
+        "all": dict(leakage="e", mu=1.0, dead_zone=0.2 * design.eps, projection=True,
+                    theta_max=tuple(theta)),
+    }[kind]
+    settings = fast.ModifierSettings(**opts)
+    ref_mod = BriefModifiers(
+        gamma=np.asarray(design.gamma, float), Ts=design.Ts, leakage=settings.leakage,
+        sigma0=settings.sigma0, mu=settings.mu, dead_zone=settings.dead_zone,
+        theta_max=theta if settings.projection else None, eps_p=settings.projection_eps)
+    rng = np.random.default_rng(5)
+    w0 = rng.normal(size=(design.n_regressors, m)) * 0.1  # inside theta_max, leakage visible
+    compare_ticks(design, xs, cs, modifiers=[ref_mod], settings=settings, w0=w0)
+
+
+def test_sigma_modification_decays_weights_geometrically_at_zero_error():
+    # With e = 0 the update is pure leakage: W_k+1 = (1 - Ts gamma_i sigma_0) W_k (Euler of
+    # W' = -gamma sigma_0 W; brief section 2a).
+    design = demo_design()
+    fl = fast.FastLaw(design, fast.ModifierSettings(leakage="sigma", sigma0=3.0))
+    x = np.zeros(4)
+    w0 = np.ones((design.n_regressors, 2))
+    fl.init_state(x, w0)
+    fl.step(x, np.zeros(2))
+    expect = (1 - design.Ts * np.asarray(design.gamma)[:, None] * 3.0) * w0
+    assert close(fl.W, expect, 1e-12)
+
+
+def test_projection_keeps_each_column_near_its_radius():
+    # Pomet and Praly: with Proj the weights stay in ||theta|| <= theta_max (continuous time);
+    # the sampled kernel pulls an overshooting Euler step back onto that ball.
+    design = demo_design("adaptation.gamma=20")
+    theta = (0.2, 0.4)
+    fl = fast.FastLaw(design, fast.ModifierSettings(projection=True, theta_max=theta))
+    fl.init_state(np.zeros(4))
+    rng = np.random.default_rng(2)
+    for _ in range(3000):
+        fl.init_state(np.zeros(4), fl.W.copy())  # keep the error persistent and large
+        fl.step(rng.normal(size=4) * 0.5 * design.limits, np.zeros(2))
+    norms = np.linalg.norm(fl.W, axis=0)
+    assert np.all(np.isfinite(fl.W))
+    assert np.all(norms <= np.array(theta) * (1 + 1e-12))
+    assert np.all(norms >= np.array(theta) * 0.5)  # it did reach the boundary region
+
+
+# ---------------------------------------------------------------- radial basis block
+class CodedRBFBasis:
+    """Coded terms then Gaussian radial terms sigma_i = exp(-||x - c_i||^2 / (2 w_i^2))."""
+
+    def __init__(self, codes, centres, widths, tanh_width=0.05):
+        self.codes = tuple(codes)
+        self.rbf_centres = np.asarray(centres, float)
+        self.rbf_widths = np.asarray(widths, float)
+        self.tanh_width = tanh_width
+        self.names = tuple(f"t{i}" for i in range(len(codes) + len(widths)))
+
+    @property
+    def size(self):
+        return len(self.names)
+
+    def evaluate(self, x, out=None):
+        x = np.asarray(x, float)
+        cols = []
+        for op, i, j in self.codes:
+            cols.append({"bias": np.ones(x.shape[:-1]), "x": x[..., i],
+                         "sin": np.sin(x[..., i]), "cos": np.cos(x[..., i]),
+                         "abs": np.abs(x[..., i]), "tanh": np.tanh(x[..., i] / self.tanh_width),
+                         "mul": x[..., i] * x[..., j]}[op])
+        d2 = np.sum((x[..., None, :] - self.rbf_centres) ** 2, axis=-1)
+        rbf = np.exp(-d2 / (2 * self.rbf_widths**2))
+        return np.concatenate([np.stack(cols, -1), rbf], axis=-1)
+
+
+def test_radial_basis_block_matches_reference():
+    base = demo_design()
+    rng = np.random.default_rng(9)
+    codes = [("bias", 0, 0), ("x", 1, 0), ("sin", 0, 0), ("cos", 1, 0), ("abs", 2, 0),
+             ("tanh", 3, 0), ("mul", 2, 3)]
+    centres = rng.uniform(-0.3, 0.3, size=(12, 4))
+    basis = CodedRBFBasis(codes, centres, rng.uniform(0.1, 0.4, size=12), tanh_width=0.02)
+    n_reg = basis.size + 2
+    design = dataclasses.replace(base, basis=basis, gamma=np.full(n_reg, 0.5))
+    xs, cs = closed_loop_states(base, 300, kicks=False)
+    compare_ticks(design, xs, cs)
+
+
+# ---------------------------------------------------------------- plant kernels
+def test_pedestal_kernel_matches_reference_with_faults():
+    rng = np.random.default_rng(4)
+    plant = Pedestal.create(batch=1, x0=[0.2, 0.4, -0.5, 0.3], substeps=3)
+    plant.disturbance = np.array([[0.3, -0.7]])
+    plant.lam_scale = np.array([[0.5, 0.8]])
+    prm = fast.pack_pedestal(plant.params)
+    xp = plant.x[0].copy()
+    work = np.zeros((6, 4))
+    for _ in range(500):
+        u = rng.uniform(-15, 15, size=2)  # beyond the 12 V limits too
+        v = plant.step(u, 1e-3)
+        fast.pedestal_step(xp, u, prm, plant.limits, 1e-3, 3, plant.disturbance[0],
+                           plant.lam_scale[0], work)
+        assert close(v[0], work[5, :2], 0.0)
+        assert close(plant.x[0], xp)
+
+
+def test_measurement_kernel_quantises_like_reference():
+    res = 9.5874e-5
+    plant = Pedestal.create(batch=1, x0=[0.123456, -0.5 * res, 0.7, -0.2],
+                            sensors=SensorModel(res, 0.0, 0.0))
+    y = np.zeros(4)
+    fast.pedestal_measure(plant.x[0].copy(), res, np.zeros(4), y)
+    assert np.array_equal(y, plant.measure()[0])
+
+
+# ---------------------------------------------------------------- dry run engines
+KEYS = ("max_margin_ratio", "rms_error_final", "weight_norm", "max_eff_rate", "max_step_gain")
+
+
+@pytest.mark.parametrize("extra", [(), ("adaptation.law=standard", "adaptation.gamma=8")])
+def test_dry_run_engines_agree(extra):
+    cfg = load_config(DEMO, ["commands.duration=2", *NOISE_OFF, *extra])
+    a = dry_run(cfg, engine="fast")
+    b = dry_run(cfg, engine="reference")
+    assert a.summary["engine"] == "fast" and b.summary["engine"] == "reference"
+    for key in KEYS:
+        assert close(a.summary[key], b.summary[key]), key
+    for key in ("ticks", "sim_seconds", "clamp_ticks", "breach_time", "law"):
+        assert a.summary[key] == b.summary[key], key
+    assert a.columns.keys() == b.columns.keys()
+    for name, col in a.columns.items():
+        assert close(col, b.columns[name], 1e-8), name
+
+
+def test_dry_run_engines_agree_with_sensor_noise():
+    # The fast engine pre-draws the same normal variates the reference draws per reading.
+    cfg = load_config(DEMO, ["commands.duration=1"])
+    a = dry_run(cfg, engine="fast")
+    b = dry_run(cfg, engine="reference")
+    assert close(a.columns["y"], b.columns["y"], 1e-8)
+    assert close(a.summary["max_margin_ratio"], b.summary["max_margin_ratio"], 1e-8)
+
+
+def test_unknown_engine_is_refused():
+    cfg = load_config(DEMO, ["commands.duration=0.1"])
+    with pytest.raises(ValueError, match="engine"):
+        dry_run(cfg, engine="quick")
