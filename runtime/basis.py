@@ -9,7 +9,9 @@ Term vocabulary (state names come from the rig):
 - ``<a>*<b>``         product of two states, e.g. ``az_rate*el_rate``
 
 What lives here: parsing term lists into a `Basis` that evaluates over any
-leading batch shape. What does not: radial-basis networks (`runtime.rbf`),
+leading batch shape, with an optional radial-basis block appended (built by
+`runtime.rbf` when `[basis] kind = "rbf"`). What does not: the radial-basis
+formulas and checks themselves (`runtime.rbf`),
 the law that uses the regressor (`runtime.law`).
 """
 
@@ -43,10 +45,19 @@ class Basis:
     op in {"bias", "x", "sin", "cos", "abs", "tanh", "mul"}; i, j state indices
     (j only for "mul"); the tanh width is `tanh_width`."""
     tanh_width: float = 0.05
+    rbf_centres: NDArray[np.float64] | None = None
+    """Radial-basis centres (K, n) over the full state, appended after the named
+    terms (`runtime.rbf`); None when the basis has no radial block."""
+    rbf_widths: NDArray[np.float64] | None = None
+    """Radial-basis widths (K,)."""
+    rbf_scale: NDArray[np.float64] | None = None
+    """Per-state factor (n,) on x - c inside the radial distance: 0 for states the
+    grid does not span, w_ref / w_i for those it does (1 with one common width).
+    Compiled kernels must multiply each difference by it."""
 
     @property
     def size(self) -> int:
-        """Number of regressor terms N."""
+        """Number of regressor terms N (named terms, then radial terms)."""
         return len(self.names)
 
     def evaluate(self, x: NDArray[np.float64], out: NDArray[np.float64] | None = None,
@@ -57,6 +68,11 @@ class Basis:
             out = np.empty(x.shape[:-1] + (self.size,))
         for i, term in enumerate(self.terms):
             out[..., i] = term(x)
+        if self.rbf_centres is not None and self.rbf_widths is not None:
+            from runtime.rbf import rbf_evaluate
+
+            out[..., len(self.terms):] = rbf_evaluate(x, self.rbf_centres, self.rbf_widths,
+                                                      self.rbf_scale)
         return out
 
 
@@ -96,7 +112,24 @@ def _parse_term(
 
 
 def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
-    """Build the basis named in `[basis] terms` for a rig with these state names."""
+    """Build the basis named in `[basis] terms` for a rig with these state names.
+
+    With `[basis] kind = "rbf"` a Gaussian radial-basis block (`runtime.rbf`)
+    follows the named terms, which then default to ["bias"].
+    """
+    kind = cfg.choice("basis.kind", ("terms", "rbf"), "terms")
+    if kind == "rbf":
+        from runtime.rbf import rbf_from_config
+
+        names = cfg.strings("basis.terms", None, ["bias"])
+        width = cfg.number("basis.tanh_width", 0.05, positive=True, unit="state units")
+        parsed = [_parse_term(n, states, width, "basis.terms") for n in names]
+        block = rbf_from_config(cfg, states)
+        rbf_names = tuple(f"rbf:{k}" for k in range(block.size))
+        return Basis(names=tuple(names) + rbf_names, terms=tuple(p[0] for p in parsed),
+                     codes=tuple(p[1] for p in parsed), tanh_width=width,
+                     rbf_centres=block.centres, rbf_widths=block.widths,
+                     rbf_scale=block.scale)
     names = cfg.strings("basis.terms")
     if not names:
         raise ConfigError("basis.terms", "is empty.", 'list at least one term, e.g. ["bias"].')

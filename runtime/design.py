@@ -363,7 +363,7 @@ def design_from_config(cfg: Config) -> Design:
             f"sample rate ({1 / Ts:.3g} Hz); sampled behaviour will differ from the design."
         )
 
-    return Design(
+    design = Design(
         rig=rig, basis=basis, Q=Q, R_u=R_u, R=R, K1=K1, K2=K2, A_r=A_r, B_r=B_r, P=P,
         PB=P @ B, limits=limits, eps=float(eps), eps_from_limits=eps_lim,
         binding_state=rig.states[bind], envelope=envelope, poles=np.linalg.eigvals(A_r),
@@ -373,6 +373,77 @@ def design_from_config(cfg: Config) -> Design:
         step_gain_at_trip=g_trip, step_gain_cap=cap, feasible=not reasons,
         reasons=tuple(reasons), warnings=tuple(warnings),
     )
+    return _wider_checks(cfg, design)
+
+
+def _wider_checks(cfg: Config, d: Design) -> Design:
+    """Checks of the wider method (time-varying bound, radial basis, residual); additive.
+
+    Appends reasons/warnings and `extras` keys "bound", "rbf_coverage",
+    "residual_check"; a config that uses none of these comes back unchanged.
+    """
+    import dataclasses
+
+    from runtime.bound import schedule_from_config
+    from runtime.rbf import coverage, envelope_points, residual_eps
+
+    reasons = list(d.reasons)
+    warnings = list(d.warnings)
+    extras = dict(d.extras)
+    eps_min = eps_max = d.eps
+    if cfg.get("adaptation.bound", None) is not None:
+        sched = schedule_from_config(cfg, d)
+        eps_min = sched.minimum
+        eps_max = max(sched.eps0, float(np.max(sched.values)) if sched.values else sched.eps0)
+        extras["bound"] = sched.to_json()
+        warnings.extend(f"{note} (adaptation.bound.on_violation = \"rate_limit\")"
+                        for note in sched.notes)
+        if d.law == "barrier" and eps_min < d.eps:
+            g_min = d.step_gain * d.eps / eps_min
+            gamma_ok = float(np.max(d.gamma)) * 0.5 * d.step_gain_cap / g_min
+            if g_min >= d.step_gain_cap:
+                reasons.append(
+                    f"at the narrowest bound eps = {eps_min:.4g} the nominal per-step gain is "
+                    f"{g_min:.3g}, at or above the cap {d.step_gain_cap:.3g}. Lower "
+                    f"adaptation.gamma to about {gamma_ok:.3g} "
+                    "or raise adaptation.bound.eps_inf.")
+        if eps_max > d.eps_from_limits * (1 + 1e-9):
+            warnings.append(
+                f"the bound reaches {eps_max:.4g}, wider than the {d.eps_from_limits:.4g} that "
+                "fits design.limits: while it is that wide the guaranteed envelope exceeds "
+                "the limits.")
+    if d.basis.rbf_centres is not None and d.basis.rbf_widths is not None:
+        min_act = cfg.number("basis.rbf_min_activation", 0.3, positive=True, maximum=1.0)
+        pts = envelope_points(d, cfg, eps_max)
+        cov = coverage(d.basis.rbf_centres, d.basis.rbf_widths, d.basis.rbf_scale
+                       if d.basis.rbf_scale is not None else np.ones(d.rig.n), pts, min_act)
+        extras["rbf_coverage"] = cov
+        if cov["covered_fraction"] < 1.0:
+            worst = ", ".join(f"{s}={v:.3g}" for s, v in
+                              zip(d.rig.states, cov["worst_point"], strict=True))
+            warnings.append(
+                f"the radial-basis grid covers {100 * cov['covered_fraction']:.1f} % of the "
+                f"region the bound admits around the commanded reference (activation >= "
+                f"{min_act:g}); worst at {worst} (activation {cov['worst_activation']:.2g}). "
+                "Widen basis.rbf_span, move basis.rbf_centre, add centres (basis.rbf_per_axis) "
+                "or widen basis.rbf_width.")
+    d_max = cfg.number("adaptation.d_max", 0.0, minimum=0.0, unit="input units")
+    if d_max > 0:
+        need = residual_eps(d.P, d.rig.B, d.c_bar, d_max)
+        ok = eps_min > need
+        extras["residual_check"] = {"d_max": d_max, "eps_needed": need, "eps": eps_min, "ok": ok}
+        if not ok:
+            warnings.append(
+                f"residual condition fails: a residual |d| <= {d_max:.3g} (adaptation.d_max) "
+                f"needs eps > 2 ||P^1/2 B|| d_max / c_bar = {need:.4g}, the bound is "
+                f"{eps_min:.4g}. This sufficient condition is conservative; to meet it widen "
+                "the bound (design.limits / adaptation.eps), shrink the residual (a finer "
+                "radial grid, more named terms) or raise c_bar = lambda_min(R)/lambda_max(P) "
+                "(design.Q and the shape of design.R set it; scaling R alone does not).")
+    if len(reasons) == len(d.reasons) and len(warnings) == len(d.warnings) and extras == d.extras:
+        return d
+    return dataclasses.replace(d, reasons=tuple(reasons), warnings=tuple(warnings),
+                               feasible=not reasons, extras=extras)
 
 
 def format_design(d: Design) -> str:

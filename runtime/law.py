@@ -31,6 +31,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from runtime.barrier import clamped_phi_d, get_barrier
+from runtime.config import Config
 from runtime.design import Design
 
 Array = NDArray[np.float64]
@@ -153,6 +154,10 @@ class AdaptiveLaw:
             for mod in self.modifiers:
                 dW = mod.apply(state.W, dW, e, ePB, s, np.asarray(eps_k))
             state.W += self.Ts * dW
+            for mod in self.modifiers:
+                after = getattr(mod, "after_step", None)
+                if after is not None:
+                    after(state.W)  # e.g. projection: pull an Euler overshoot back onto the ball
         u_raw = u_n - np.einsum("...im,...i->...m", state.W, sig)
         u = np.clip(u_raw, -self.u_max, self.u_max)
         state.xr = state.xr @ self.AdT + c @ self.BdT
@@ -168,3 +173,16 @@ class AdaptiveLaw:
         first = self.barrier.phi(s, eps) if self.kind == "barrier" else s * s
         second = np.einsum("...im,...im->...", W_tilde / self.gamma[:, None], W_tilde)
         return first + second
+
+
+def law_from_config(cfg: Config, design: Design | None = None) -> AdaptiveLaw:
+    """The law a config describes, with its weight modifiers (`runtime.modifiers`).
+
+    The time-varying bound is not part of the law: pass `eps` per tick from
+    `runtime.bound.schedule_from_config(cfg, design).eps(t)`.
+    """
+    from runtime.design import design_from_config
+    from runtime.modifiers import modifiers_from_config
+
+    design = design_from_config(cfg) if design is None else design
+    return AdaptiveLaw(design, modifiers_from_config(cfg, design))
