@@ -6,7 +6,11 @@ block rather than editing another's.
 
 from __future__ import annotations
 
+import subprocess
+import sys
 import tomllib
+from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
@@ -69,3 +73,32 @@ def small_rig_toml(tmp_path: Path) -> Path:
 def small_rig_raw() -> dict:
     """The small explicit rig as a fresh nested dict (safe to mutate)."""
     return tomllib.loads(SMALL_RIG_TOML)
+
+
+@dataclass
+class CliResult:
+    """What one `corral` invocation returned."""
+
+    code: int
+    stdout: str
+    stderr: str
+
+
+def _corral_command() -> list[str]:
+    script = Path(sys.executable).with_name("corral")
+    return [str(script)] if script.exists() else [sys.executable, "-m", "runtime.cli"]
+
+
+@pytest.fixture
+def corral(tmp_path: Path) -> Callable[..., CliResult]:
+    """Run the installed `corral` console script (a real process) from the repo root."""
+    root = Path(__file__).resolve().parent.parent
+
+    def run(*args: str, timeout: float = 120.0) -> CliResult:
+        proc = subprocess.run([*_corral_command(), *map(str, args)], cwd=root,
+                              capture_output=True, text=True, timeout=timeout)
+        return CliResult(proc.returncode, proc.stdout, proc.stderr)
+
+    return run
+
+# ------------------------------------------------------- end of the numeric-core block
