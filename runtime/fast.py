@@ -70,10 +70,11 @@ OUT_HEADER = 7
 PEDESTAL_PARAMS = (
     "a_az", "b_az", "a_el", "b_el", "gravity_el", "visc_az", "visc_el", "coulomb_az",
     "coulomb_el", "coulomb_speed", "spring_az", "coupling", "bias_az", "bias_el",
-    "lam_az", "lam_el",
+    "lam_az", "lam_el", "stribeck_az", "stribeck_el", "stribeck_speed",
 )
 (P_A_AZ, P_B_AZ, P_A_EL, P_B_EL, P_GRAV, P_VISC_AZ, P_VISC_EL, P_COUL_AZ, P_COUL_EL,
- P_COUL_SPEED, P_SPRING, P_COUPLING, P_BIAS_AZ, P_BIAS_EL, P_LAM_AZ, P_LAM_EL) = range(16)
+ P_COUL_SPEED, P_SPRING, P_COUPLING, P_BIAS_AZ, P_BIAS_EL, P_LAM_AZ, P_LAM_EL,
+ P_STRIB_AZ, P_STRIB_EL, P_STRIB_SPEED) = range(19)
 
 
 def out_size(n: int, m: int, n_reg: int) -> int:
@@ -311,6 +312,7 @@ def pedestal_deriv(x: Array, v: Array, prm: Array, dist: Array, lsc: Array,
         -(prm[P_A_AZ] + prm[P_VISC_AZ]) * wa
         + prm[P_B_AZ] * lam_a * v[0]
         - prm[P_COUL_AZ] * math.tanh(wa / vs)
+        - prm[P_STRIB_AZ] * math.exp(-(wa / prm[P_STRIB_SPEED]) ** 2) * math.tanh(wa / vs)
         - prm[P_SPRING] * x[0]
         - prm[P_COUPLING] * wa * we
         + prm[P_BIAS_AZ]
@@ -319,6 +321,7 @@ def pedestal_deriv(x: Array, v: Array, prm: Array, dist: Array, lsc: Array,
         -(prm[P_A_EL] + prm[P_VISC_EL]) * we
         + prm[P_B_EL] * lam_e * v[1]
         - prm[P_COUL_EL] * math.tanh(we / vs)
+        - prm[P_STRIB_EL] * math.exp(-(we / prm[P_STRIB_SPEED]) ** 2) * math.tanh(we / vs)
         - prm[P_GRAV] * math.cos(el)
         + 0.5 * prm[P_COUPLING] * wa * wa * math.sin(2 * el)
         + prm[P_BIAS_EL]

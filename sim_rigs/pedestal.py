@@ -27,6 +27,12 @@ input does (matched uncertainty):
 - ``bias_*``: a constant torque bias (cogging, a leaning mount);
 - ``lam_*``: motor effectiveness (worn brushes, low supply): the applied
   voltage acts as ``lam * V``.
+- ``stribeck_*``: stick-slip (Stribeck) friction, rad/s^2: extra breakaway
+  friction near standstill that fades with speed,
+  ``stribeck * exp(-(rate / stribeck_speed)^2) * tanh(rate / coulomb_speed)``
+  with ``stribeck_speed`` in rad/s. Default 0 (off). Its hump shape is not in
+  any small named basis (tanh alone gives a constant level), which is what
+  the radial-basis demo (configs/pedestal-rbf.toml) is for.
 
 Everything broadcasts over a leading batch axis: each parameter is an array
 of shape (batch,) and the state (batch, 4), so one call steps a thousand
@@ -65,6 +71,9 @@ TRUTH_DEFAULTS: dict[str, float] = {
     "bias_el": -0.4,
     "lam_az": 0.7,
     "lam_el": 0.7,
+    "stribeck_az": 0.0,
+    "stribeck_el": 0.0,
+    "stribeck_speed": 0.1,
     "a_az": NOMINAL["a_az"],
     "b_az": NOMINAL["b_az"],
     "a_el": NOMINAL["a_el"],
@@ -75,7 +84,8 @@ PARAM_UNITS: dict[str, str] = {
     "gravity_el": "rad/s^2", "visc_az": "1/s", "visc_el": "1/s",
     "coulomb_az": "rad/s^2", "coulomb_el": "rad/s^2", "coulomb_speed": "rad/s",
     "spring_az": "1/s^2", "coupling": "1", "bias_az": "rad/s^2", "bias_el": "rad/s^2",
-    "lam_az": "1", "lam_el": "1", "a_az": "1/s", "b_az": "rad/s^2/V",
+    "lam_az": "1", "lam_el": "1", "stribeck_az": "rad/s^2", "stribeck_el": "rad/s^2",
+    "stribeck_speed": "rad/s", "a_az": "1/s", "b_az": "rad/s^2/V",
     "a_el": "1/s", "b_el": "rad/s^2/V",
 }
 
@@ -161,10 +171,12 @@ class Pedestal:
             lam_a = lam_a * self.lam_scale[:, 0]
             lam_e = lam_e * self.lam_scale[:, 1]
         vs = p["coulomb_speed"]
+        ss = p["stribeck_speed"]
         acc_az = (
             -(p["a_az"] + p["visc_az"]) * wa
             + p["b_az"] * lam_a * v[:, 0]
             - p["coulomb_az"] * np.tanh(wa / vs)
+            - p["stribeck_az"] * np.exp(-(wa / ss) ** 2) * np.tanh(wa / vs)
             - p["spring_az"] * x[:, 0]
             - p["coupling"] * wa * we
             + p["bias_az"]
@@ -173,6 +185,7 @@ class Pedestal:
             -(p["a_el"] + p["visc_el"]) * we
             + p["b_el"] * lam_e * v[:, 1]
             - p["coulomb_el"] * np.tanh(we / vs)
+            - p["stribeck_el"] * np.exp(-(we / ss) ** 2) * np.tanh(we / vs)
             - p["gravity_el"] * np.cos(el)
             + 0.5 * p["coupling"] * wa * wa * np.sin(2 * el)
             + p["bias_el"]
