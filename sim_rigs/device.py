@@ -1,0 +1,604 @@
+"""The simulated pedestal served as a device: over a pseudo-terminal or through MQTT.
+
+`PedestalDevice` runs one plant (a `sim_rigs.pedestal.Pedestal` of batch 1,
+passed in: this package never imports the runtime) on its own real-time clock:
+a thread that sleeps to absolute deadlines ``t0 + k * period``. Each period
+it applies the held command (zero-order hold, through the device-side
+`drivers.wire.CommandGuard`, so with no valid command for the hello's
+``command_timeout_s`` the outputs go to zero and the sample carries
+``STATUS_COMMAND_TIMEOUT``), steps the physics, reads the sensors and sends
+one sample (angles and rates as ``y``). The fault schedule of
+`sim_rigs.faults` acts on the plant and the readings; the link kinds act on
+the frames: ``corrupt`` (flip bytes of every ``every``-th frame; over MQTT the
+message header, since TCP never delivers flipped bits), ``drop`` (``count``
+samples never sent, their seq skipped), ``link_delay`` (frames held back
+``seconds``), ``disconnect`` (the pseudo-terminal closed, or the MQTT
+connection dropped with the offline status published, until the fault ends).
+
+Transports: `PtyTransport` (the device owns the master of a fresh
+pseudo-terminal, behind a stable symlink so a host can reopen it after a
+disconnect) and `MqttDeviceTransport` (device side of the rig topics, with a
+last will marking it offline). What does not live here: the wire codec
+(`drivers.wire`), the host links (`drivers.serial_link`, `drivers.mqtt_link`),
+the command line (`runtime.cmd_rig`).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import contextlib
+import ctypes
+import math
+import os
+import random
+import threading
+import time
+import uuid
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import aiomqtt
+import numpy as np
+
+from drivers.base import STATUS_COMMAND_TIMEOUT, Command, Hello, Sample
+from drivers.mqtt_link import (
+    HOST_HELLO_RIG_ID,
+    LinkClosed,
+    MqttSettings,
+    Topics,
+    connect_client,
+    decode_body,
+    disconnect_client,
+    expiry,
+    make_client,
+    status_payload,
+)
+from drivers.serial_link import DeviceEndpoint
+from drivers.wire import (
+    PROTOCOL_VERSION,
+    CommandGuard,
+    Stop,
+    WireError,
+    encode_body,
+    encode_message,
+)
+from sim_rigs.faults import LINK_KINDS, FaultInjector, FaultSchedule
+from sim_rigs.link import PedestalStepper
+from sim_rigs.pedestal import INPUT_UNITS, INPUTS, STATE_UNITS, STATES
+
+_RING = 4096
+
+
+# --------------------------------------------------------------------------- transports
+
+
+class Transport:
+    """What the device clock needs from a transport (all called from the clock thread)."""
+
+    guard: CommandGuard
+    connected: bool = True
+
+    def poll_until(self, deadline: float) -> None:
+        """Handle input until monotonic time `deadline` (commands go into the guard)."""
+        while (left := deadline - time.monotonic()) > 0:
+            time.sleep(left)
+
+    def send_sample(self, sample: Sample, corrupt: int) -> None:
+        """Send one sample; `corrupt` > 0 flips that many bytes of its frame."""
+        raise NotImplementedError
+
+    def disconnect(self) -> None:
+        """Drop the connection (a link fault)."""
+
+    def reconnect(self) -> None:
+        """Come back after `disconnect`."""
+
+    def close(self) -> None:
+        """Shut down for good."""
+
+    def outputs(self, now: float) -> tuple[tuple[float, ...], int]:
+        """Outputs to apply at monotonic time `now` and the status bits (the guard's)."""
+        raise NotImplementedError
+
+
+def _flip(data: bytes, n: int, rng: random.Random, keep_last: bool) -> bytes:
+    b = bytearray(data)
+    top = len(b) - (1 if keep_last else 0)
+    for _ in range(n):
+        i = rng.randrange(top)
+        b[i] ^= 1 << rng.randrange(8)
+    return bytes(b)
+
+
+class PtyTransport(Transport):
+    """The device end of a pseudo-terminal (via `drivers.serial_link.DeviceEndpoint`)."""
+
+    def __init__(self, hello: Hello, link_path: str, *, seed: int = 0,
+                 on_command: Callable[[Command, float], None] | None = None) -> None:
+        self.hello = hello
+        self.link_path = link_path
+        self.rng = random.Random(seed)
+        self.on_command = on_command
+        self.ep = DeviceEndpoint.create_pty(hello, link_path=link_path)
+        self.guard = self.ep.guard
+        self.path = self.ep.path
+        self.connected = True
+        self.write_drops = 0
+
+    def poll_until(self, deadline: float) -> None:
+        """Wait in select() for host frames until `deadline`."""
+        ep = self.ep
+        while (left := deadline - time.monotonic()) > 0:
+            if not self.connected:
+                time.sleep(left)
+                return
+            for m in ep.poll(left):
+                if type(m) is Command and self.on_command is not None:
+                    self.on_command(m, time.monotonic())
+
+    def send_sample(self, sample: Sample, corrupt: int) -> None:
+        """Write the frame (bytes flipped when corrupting; the delimiter kept)."""
+        if not self.connected:
+            return
+        frame = encode_message(sample)
+        if corrupt:
+            frame = _flip(frame, corrupt, self.rng, keep_last=True)
+        try:
+            n = os.write(self.ep.fd, frame)
+        except OSError:
+            self.write_drops += 1  # no host has the other end open, or buffer full
+            return
+        if n != len(frame):
+            self.write_drops += 1
+        self.ep.stats.frames_out += 1
+
+    def disconnect(self) -> None:
+        """Close both ends of the pty: the host sees an unplug."""
+        if self.connected:
+            self.connected = False
+            self.ep.close()
+
+    def reconnect(self) -> None:
+        """A fresh pty behind the same symlink; the guard starts over (outputs off)."""
+        if not self.connected:
+            old = self.ep
+            self.ep = DeviceEndpoint.create_pty(self.hello, link_path=self.link_path)
+            self.ep.seq = old.seq
+            self.guard = self.ep.guard
+            self.connected = True
+
+    def outputs(self, now: float) -> tuple[tuple[float, ...], int]:
+        """Outputs and status from the endpoint's guard."""
+        return self.ep.outputs()
+
+    def close(self) -> None:
+        """Close the pty and remove the symlink."""
+        self.disconnect()
+        with contextlib.suppress(OSError):
+            if os.path.islink(self.link_path):
+                os.unlink(self.link_path)
+
+
+class MqttDeviceTransport(Transport):
+    """Device side of the MQTT topics, run on its own asyncio loop in a helper thread.
+
+    Publishes a retained hello and a retained ``online`` status (its last will
+    says offline), samples (QoS 0, message expiry), answers a host hello with
+    its hello (and re-arms the guard, as the serial device does), feeds
+    commands and stops into the guard. Reconnects with backoff when the broker
+    goes away.
+    """
+
+    def __init__(self, hello: Hello, settings: MqttSettings, *, seed: int = 0,
+                 on_command: Callable[[Command, float], None] | None = None) -> None:
+        self.hello = hello
+        self.settings = settings
+        self.topics = Topics(settings.prefix, settings.rig)
+        self.rng = random.Random(seed)
+        self.on_command = on_command
+        self.guard = CommandGuard(hello.output_limits, hello.command_timeout_s)
+        self.guard_lock = threading.Lock()
+        self.connected = False
+        self.wanted = True
+        self.seq = 0
+        self.publish_drops = 0
+        self.decode_errors = 0
+        self.last_error = ""
+        self._inbox: collections.deque[tuple[float, object]] = collections.deque(maxlen=256)
+        self._loop = asyncio.new_event_loop()
+        self._out: asyncio.Queue[bytes] | None = None
+        self._stop_evt: asyncio.Event | None = None
+        self._kick: asyncio.Event | None = None
+        self._up = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="mqtt-device", daemon=True)
+        self._thread.start()
+
+    def wait_connected(self, timeout_s: float) -> bool:
+        """Block until the first connection is up (False on timeout)."""
+        return self._up.wait(timeout_s)
+
+    # ---- asyncio side
+    def _run(self) -> None:
+        asyncio.set_event_loop(self._loop)
+        self._loop.run_until_complete(self._main())
+        self._loop.close()
+
+    async def _main(self) -> None:
+        self._out = asyncio.Queue(256)
+        self._stop_evt = asyncio.Event()
+        self._kick = asyncio.Event()
+        delay = 0.1
+        while not self._stop_evt.is_set():
+            if not self.wanted:
+                self._kick.clear()
+                await self._wait_any(self._kick.wait(), self._stop_evt.wait())
+                continue
+            will = aiomqtt.Will(self.topics.status,
+                                status_payload(False, self.settings.rig, "connection lost"),
+                                qos=1, retain=True)
+            client = make_client(self.settings, identifier=f"corral-device-{self.settings.rig}-"
+                                 f"{uuid.uuid4().hex[:8]}", will=will)
+            try:
+                await connect_client(client, self.settings)
+            except LinkClosed as exc:
+                self.last_error = str(exc)
+                await self._wait_any(asyncio.sleep(delay), self._stop_evt.wait())
+                delay = min(2 * delay, 1.0)
+                continue
+            delay = 0.1
+            reason = "stopped"
+            try:
+                await client.subscribe(self.topics.command, qos=0)
+                await client.publish(self.topics.status,
+                                     status_payload(True, self.settings.rig), qos=1, retain=True)
+                await self._publish_hello(client)
+                while not self._out.empty():
+                    self._out.get_nowait()  # nothing stale from before the connection
+                self.connected = True
+                self._up.set()
+                self._kick.clear()
+                tasks = [asyncio.create_task(c) for c in (
+                    self._reader(client), self._sender(client), self._stop_evt.wait(),
+                    self._kick.wait())]
+                done, pending = await asyncio.wait(tasks, return_when=asyncio.FIRST_COMPLETED)
+                for t in pending:
+                    t.cancel()
+                for t in pending:
+                    with contextlib.suppress(BaseException):
+                        await t
+                for t in done:
+                    if not t.cancelled() and t.exception() is not None:
+                        self.last_error = str(t.exception())
+                        reason = ""
+                if not self.wanted:
+                    reason = "link fault: disconnect"
+            except aiomqtt.MqttError as exc:
+                self.last_error = str(exc)
+                reason = ""
+            finally:
+                self.connected = False
+            if reason:
+                # Announce the going-away ourselves (a clean exit does not fire the will).
+                with contextlib.suppress(Exception):
+                    await asyncio.wait_for(client.publish(
+                        self.topics.status, status_payload(False, self.settings.rig, reason),
+                        qos=1, retain=True), 1.0)
+            await disconnect_client(client)
+
+    @staticmethod
+    async def _wait_any(*aws: Any) -> None:
+        tasks = [asyncio.ensure_future(a) for a in aws]
+        _, pending = await asyncio.wait(tasks, return_when=asyncio.FIRST_COMPLETED)
+        for t in pending:
+            t.cancel()
+
+    async def _publish_hello(self, client: aiomqtt.Client) -> None:
+        self.seq = (self.seq + 1) & 0xFFFFFFFF
+        await client.publish(self.topics.hello, encode_body(self.hello, seq=self.seq), qos=1,
+                             retain=True)
+
+    async def _reader(self, client: aiomqtt.Client) -> None:
+        async for m in client.messages:
+            now = time.monotonic()
+            if m.retain or not isinstance(m.payload, bytes):
+                continue
+            try:
+                msg = decode_body(m.payload)
+            except WireError:
+                self.decode_errors += 1
+                continue
+            if type(msg) is Hello:
+                if msg.rig_id == HOST_HELLO_RIG_ID:
+                    with self.guard_lock:
+                        self.guard.rearm()
+                    await self._publish_hello(client)
+                continue
+            self._inbox.append((now, msg))
+
+    async def _sender(self, client: aiomqtt.Client) -> None:
+        assert self._out is not None
+        exp = expiry(self.settings.sample_expiry_s)
+        while True:
+            body = await self._out.get()
+            await client.publish(self.topics.sample, body, qos=0, properties=exp)
+
+    def _enqueue(self, body: bytes) -> None:
+        assert self._out is not None
+        try:
+            self._out.put_nowait(body)
+        except asyncio.QueueFull:
+            self.publish_drops += 1
+
+    # ---- clock-thread side
+    def poll_until(self, deadline: float) -> None:
+        """Sleep to `deadline`, then apply what arrived (zero-order hold at the period)."""
+        while (left := deadline - time.monotonic()) > 0:
+            time.sleep(left)
+        inbox = self._inbox
+        while inbox:
+            t_arr, msg = inbox.popleft()
+            with self.guard_lock:
+                if type(msg) is Command:
+                    if self.guard.on_command(msg, t_arr) and self.on_command is not None:
+                        self.on_command(msg, t_arr)
+                elif type(msg) is Stop:
+                    self.guard.on_stop()
+
+    def send_sample(self, sample: Sample, corrupt: int) -> None:
+        """Queue the sample for publishing (header bits flipped when corrupting)."""
+        if not self.connected:
+            return
+        body = encode_body(sample)
+        if corrupt:
+            # Flip one bit of the array header: the receiver always sees a bad message.
+            body = bytes([body[0] ^ (1 << self.rng.randrange(8))]) + body[1:]
+        self._loop.call_soon_threadsafe(self._enqueue, body)
+
+    def disconnect(self) -> None:
+        """Drop the broker connection (status goes offline) until `reconnect`."""
+        if self.wanted:
+            self.wanted = False
+            self._loop.call_soon_threadsafe(self._set_kick)
+
+    def reconnect(self) -> None:
+        """Connect again after `disconnect`."""
+        if not self.wanted:
+            self.wanted = True
+            self._loop.call_soon_threadsafe(self._set_kick)
+
+    def _set_kick(self) -> None:
+        if self._kick is not None:
+            self._kick.set()
+
+    def close(self) -> None:
+        """Publish the offline status and disconnect."""
+        if self._thread.is_alive() and self._stop_evt is not None:
+            self._loop.call_soon_threadsafe(self._stop_evt.set)
+        self._thread.join(5)
+
+    def outputs(self, now: float) -> tuple[tuple[float, ...], int]:
+        """Outputs and status from the guard (thread-safe)."""
+        with self.guard_lock:
+            return self.guard.outputs(now)
+
+
+# --------------------------------------------------------------------------- device
+
+
+@dataclass
+class DeviceReport:
+    """Figures of one serving run."""
+
+    ticks: int
+    samples_sent: int
+    commands_applied: int
+    timeouts: int
+    deadline_misses: int
+    lateness_p50_us: float
+    lateness_p99_us: float
+    lateness_max_us: float
+    round_trip_p50_us: float
+    round_trip_p99_us: float
+    round_trip_max_us: float
+    missed_commands: int
+
+    def as_dict(self) -> dict[str, float | int]:
+        """Plain dict for printing."""
+        return dict(self.__dict__)
+
+
+def _set_timer_slack() -> None:
+    with contextlib.suppress(OSError, AttributeError):
+        ctypes.CDLL(None).prctl(29, 1, 0, 0, 0)  # PR_SET_TIMERSLACK = 1 ns
+
+
+class PedestalDevice:
+    """The pedestal as a device on its own real-time clock (see the module docstring)."""
+
+    def __init__(
+        self,
+        plant: Any,
+        *,
+        period: float,
+        rig_id: str = "pedestal-sim",
+        command_timeout_s: float = 0.05,
+        faults: FaultSchedule | None = None,
+        output_limits: Sequence[float] | None = None,
+        seed: int = 0,
+    ) -> None:
+        if not period > 0:
+            raise ValueError("period must be positive")
+        self.plant = plant
+        self.period = float(period)
+        self.schedule = faults or FaultSchedule()
+        self.injector = FaultInjector(self.schedule, plant)
+        self.stepper = PedestalStepper(plant)
+        self.rng = random.Random(seed)
+        limits = tuple(float(v) for v in np.ravel(
+            plant.limits if output_limits is None else output_limits))
+        self.hello = Hello(
+            protocol=PROTOCOL_VERSION, rig_id=rig_id, channels=STATES, units=STATE_UNITS,
+            sample_rate_hz=1.0 / self.period, output_names=INPUTS, output_limits=limits,
+            output_units=INPUT_UNITS, command_timeout_s=float(command_timeout_s),
+        )
+        self.transport: Transport | None = None
+        self.seq = 0
+        self.ticks = 0
+        self.samples_sent = 0
+        self.timeouts = 0
+        self.deadline_misses = 0
+        self.applied = (0.0, 0.0)
+        self.status = 0
+        self._stop = threading.Event()
+        self._lateness = np.zeros(1 << 16)
+        self._rt = np.zeros(1 << 16)
+        self._n_rt = 0
+        self._sent_t = [0.0] * _RING
+        self._sent_seq = [-1] * _RING
+        self._answered: set[int] = set()
+        self.missed_commands = 0
+        self._delay_line: collections.deque[tuple[float, Sample, int]] = collections.deque()
+        self._dropped_for: dict[int, int] = {}
+        self._corrupt_count: dict[int, int] = {}
+
+    # ---- transports
+    def serve_pty(self, link_path: str) -> str:
+        """Create the pseudo-terminal (behind `link_path`); returns the path a host opens."""
+        tr = PtyTransport(self.hello, link_path, seed=self.rng.randrange(1 << 30),
+                          on_command=self._on_command)
+        self.transport = tr
+        return tr.path
+
+    def serve_mqtt(self, settings: MqttSettings, connect_timeout_s: float = 10.0) -> str:
+        """Connect to the broker as this rig; returns ``mqtt://host:port/rig``."""
+        tr = MqttDeviceTransport(self.hello, settings, seed=self.rng.randrange(1 << 30),
+                                 on_command=self._on_command)
+        self.transport = tr
+        if not tr.wait_connected(connect_timeout_s):
+            tr.close()
+            raise LinkClosed(f"device could not reach the MQTT broker: {tr.last_error}")
+        return settings.url
+
+    def _on_command(self, cmd: Command, t_arrival: float) -> None:
+        i = cmd.seq % _RING
+        if self._sent_seq[i] == cmd.seq and cmd.seq not in self._answered:
+            self._answered.add(cmd.seq)
+            if self._n_rt < self._rt.size:
+                self._rt[self._n_rt] = (t_arrival - self._sent_t[i]) * 1e6
+                self._n_rt += 1
+
+    # ---- the clock
+    def stop(self) -> None:
+        """Ask `run` to return after the current period."""
+        self._stop.set()
+
+    def run(self, duration_s: float = math.inf) -> DeviceReport:
+        """Serve until `stop()` or `duration_s` elapses (call in the thread that should tick)."""
+        tr = self.transport
+        if tr is None:
+            raise RuntimeError("call serve_pty() or serve_mqtt() first")
+        _set_timer_slack()
+        period = self.period
+        t0 = time.monotonic()
+        k = 0
+        end = t0 + duration_s
+        try:
+            while not self._stop.is_set():
+                k += 1
+                deadline = t0 + k * period
+                if deadline > end:
+                    break
+                tr.poll_until(deadline)
+                now = time.monotonic()
+                late = now - deadline
+                if late > period:
+                    skipped = int(late // period)
+                    self.deadline_misses += skipped
+                    k += skipped
+                if self.ticks < self._lateness.size:
+                    self._lateness[self.ticks] = late * 1e6
+                self._tick(tr, k * period, now)
+        finally:
+            tr.close()
+        return self.report()
+
+    def _tick(self, tr: Transport, t: float, now: float) -> None:
+        self.ticks += 1
+        # Was the previous sample answered before this period began?
+        prev = self.seq
+        if prev and self._sent_seq[prev % _RING] == prev and prev not in self._answered:
+            self.missed_commands += 1
+        self._answered.discard(prev - 64)
+        link = [f for f in self.schedule.faults if f.kind in LINK_KINDS and f.active(t)]
+        down = any(f.kind == "disconnect" for f in link)
+        if down and tr.connected:
+            tr.disconnect()
+        elif not down and not tr.connected:
+            tr.reconnect()
+        u, status = tr.outputs(now)
+        if status & STATUS_COMMAND_TIMEOUT:
+            self.timeouts += 1
+        self.applied, self.status = u, status
+        self.injector.apply(t)
+        self.stepper.step(u, self.period)
+        y = self.injector.measure(t, self.plant.measure()[0])
+        self.seq = (self.seq + 1) & 0xFFFFFFFF
+        if y is not None:
+            sample = Sample(self.seq, t, tuple(float(v) for v in y), status)
+            corrupt = 0
+            delay = 0.0
+            send = True
+            for i, f in enumerate(self.schedule.faults):
+                if f.kind not in LINK_KINDS or not f.active(t):
+                    continue
+                if f.kind == "drop":
+                    n = self._dropped_for.get(i, 0)
+                    if n < int(f.param("count")):
+                        self._dropped_for[i] = n + 1
+                        send = False
+                elif f.kind == "corrupt":
+                    c = self._corrupt_count.get(i, 0)
+                    self._corrupt_count[i] = c + 1
+                    if c % max(1, int(f.param("every"))) == 0:
+                        corrupt = 1
+                elif f.kind == "link_delay":
+                    delay = max(delay, float(f.param("seconds")))
+            if send:
+                if delay > 0 or self._delay_line:
+                    self._delay_line.append((now + delay, sample, corrupt))
+                else:
+                    self._emit(tr, sample, corrupt, now)
+        while self._delay_line and self._delay_line[0][0] <= now:
+            _, s, c = self._delay_line.popleft()
+            self._emit(tr, s, c, now)
+
+    def _emit(self, tr: Transport, sample: Sample, corrupt: int, now: float) -> None:
+        if isinstance(tr, PtyTransport):
+            tr.ep.seq = sample.seq
+        i = sample.seq % _RING
+        self._sent_seq[i] = sample.seq
+        self._sent_t[i] = time.monotonic()
+        tr.send_sample(sample, corrupt)
+        self.samples_sent += 1
+
+    def report(self) -> DeviceReport:
+        """Lateness of the device clock and round trips seen so far."""
+        lat = self._lateness[: min(self.ticks, self._lateness.size)]
+        rt = self._rt[: self._n_rt]
+
+        def pct(a: np.ndarray, q: float) -> float:
+            return float(np.percentile(a, q)) if a.size else float("nan")
+
+        tr = self.transport
+        applied = tr.guard.commands if tr is not None else 0
+        return DeviceReport(
+            ticks=self.ticks, samples_sent=self.samples_sent, commands_applied=applied,
+            timeouts=self.timeouts, deadline_misses=self.deadline_misses,
+            lateness_p50_us=pct(lat, 50), lateness_p99_us=pct(lat, 99),
+            lateness_max_us=float(lat.max()) if lat.size else float("nan"),
+            round_trip_p50_us=pct(rt, 50), round_trip_p99_us=pct(rt, 99),
+            round_trip_max_us=float(rt.max()) if rt.size else float("nan"),
+            missed_commands=self.missed_commands,
+        )

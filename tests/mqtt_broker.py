@@ -1,0 +1,141 @@
+"""A real mosquitto broker for tests, on a free loopback port.
+
+Import the fixture with ``from mqtt_broker import mosquitto`` (pytest puts
+tests/ on sys.path). `Broker` starts /usr/sbin/mosquitto (or `mosquitto` on
+PATH) with a generated config in a temp folder: listener on 127.0.0.1 only,
+anonymous access allowed unless a password file is asked for, ``user root``
+when running as root (mosquitto started as root otherwise drops to its own
+user and cannot read a 0700 temp folder). It waits until the broker accepts
+TCP connections and stops it at teardown. `restart()` stops and starts it on
+the same port (for reconnect tests).
+
+What does not live here: any MQTT client code (see drivers/mqtt_link.py).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import socket
+import subprocess
+import tempfile
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+
+def mosquitto_binary() -> str | None:
+    """Path of the mosquitto broker, or None when it is not installed."""
+    if os.access("/usr/sbin/mosquitto", os.X_OK):
+        return "/usr/sbin/mosquitto"
+    return shutil.which("mosquitto")
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that was free a moment ago."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+class Broker:
+    """One mosquitto process with its own config, log and (optional) password file."""
+
+    def __init__(self, folder: Path, *, users: dict[str, str] | None = None) -> None:
+        binary = mosquitto_binary()
+        if binary is None:
+            raise RuntimeError("mosquitto is not installed (apt-get install mosquitto)")
+        self.binary = binary
+        self.folder = folder
+        self.host = "127.0.0.1"
+        self.port = free_port()
+        self.users = dict(users or {})
+        self.log_path = folder / "mosquitto.log"
+        self.conf_path = folder / "mosquitto.conf"
+        self.proc: subprocess.Popen[bytes] | None = None
+        self._write_config()
+
+    @property
+    def url(self) -> str:
+        """``HOST:PORT`` as `corral rig serve --mqtt` takes it."""
+        return f"{self.host}:{self.port}"
+
+    def _write_config(self) -> None:
+        lines = [
+            f"listener {self.port} 127.0.0.1",
+            "persistence false",
+            f"log_dest file {self.log_path}",
+            "log_type error",
+            "log_type warning",
+            "log_type notice",
+            "max_keepalive 60",
+        ]
+        if os.geteuid() == 0:
+            lines.append("user root")
+        if self.users:
+            pw = self.folder / "passwords"
+            pw.write_text("")
+            for user, password in self.users.items():
+                subprocess.run(
+                    ["mosquitto_passwd", "-b", str(pw), user, password],
+                    check=True, capture_output=True,
+                )
+            lines += ["allow_anonymous false", f"password_file {pw}"]
+        else:
+            lines.append("allow_anonymous true")
+        self.conf_path.write_text("\n".join(lines) + "\n")
+
+    def start(self, timeout_s: float = 10.0) -> None:
+        """Start the broker and wait until it accepts connections."""
+        self.proc = subprocess.Popen(
+            [self.binary, "-c", str(self.conf_path)],
+            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+        )
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                err = self.proc.stderr.read().decode(errors="replace") if self.proc.stderr else ""
+                log = self.log_path.read_text() if self.log_path.exists() else ""
+                raise RuntimeError(f"mosquitto exited at start: {err}{log}")
+            try:
+                with socket.create_connection((self.host, self.port), timeout=0.2):
+                    return
+            except OSError:
+                time.sleep(0.02)
+        self.stop()
+        raise RuntimeError(f"mosquitto did not accept connections on {self.url}")
+
+    def stop(self) -> None:
+        """Stop the broker (SIGTERM, then SIGKILL after 5 s)."""
+        proc, self.proc = self.proc, None
+        if proc is None:
+            return
+        proc.terminate()
+        try:
+            proc.wait(5)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(5)
+        if proc.stderr:
+            proc.stderr.close()
+
+    def restart(self, pause_s: float = 0.0) -> None:
+        """Stop, wait `pause_s`, start again on the same port."""
+        self.stop()
+        time.sleep(pause_s)
+        self.start()
+
+
+@pytest.fixture
+def mosquitto(request: pytest.FixtureRequest) -> Iterator[Broker]:
+    """A running broker; parametrize indirectly with ``{"users": {...}}`` for a password file."""
+    params = getattr(request, "param", None) or {}
+    with tempfile.TemporaryDirectory(prefix="corral-mqtt-") as folder:
+        broker = Broker(Path(folder), users=params.get("users"))
+        broker.start()
+        try:
+            yield broker
+        finally:
+            broker.stop()
