@@ -76,8 +76,13 @@ class LinkStats:
     decode_errors: int = 0
     unknown_kinds: int = 0
     gaps: int = 0
+    """Missed samples: a sequence jump of k adds k - 1."""
     duplicates: int = 0
+    """Samples repeated or older than the last one (dropped)."""
     late_frames: int = 0
+    """Samples dropped because the loop fell behind (receive queue full)."""
+    send_drops: int = 0
+    """Commands dropped because the device is not reading."""
     reconnects: int = 0
     connected: bool = False
     last_sample_host_s: float = 0.0
@@ -91,7 +96,8 @@ class LinkStats:
             k: getattr(self, k)
             for k in (
                 "frames_in", "frames_out", "crc_errors", "cobs_errors", "decode_errors",
-                "unknown_kinds", "gaps", "duplicates", "late_frames", "reconnects", "connected",
+                "unknown_kinds", "gaps", "duplicates", "late_frames", "send_drops", "reconnects",
+                "connected",
             )
         }
         lat = np.asarray(self.latencies_us[-100_000:], dtype=float)

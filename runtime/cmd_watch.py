@@ -1,0 +1,89 @@
+"""`corral watch`: open the live dashboard on a rig (local socket, MQTT, or a recording).
+
+Also runnable as ``python -m runtime.cmd_watch --socket PATH``, which is how
+`corral run` starts the dashboard in its own process.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+from runtime.cli import UserError
+from runtime.config import load_config
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Arguments of `corral watch`."""
+    parser.add_argument("config", nargs="?", default=None,
+                        help="config of the running rig (finds its socket in log.dir)")
+    parser.add_argument("--set", dest="overrides", action="append", default=[],
+                        metavar="KEY=VALUE", help="override a config key")
+    parser.add_argument("--socket", type=Path, help="the runtime's telemetry socket")
+    parser.add_argument("--mqtt", metavar="HOST:PORT", help="follow a rig through a broker")
+    parser.add_argument("--rig", help="rig name on the broker (with --mqtt)")
+    parser.add_argument("--username", help="broker user name (with --mqtt)")
+    parser.add_argument("--password-env", metavar="VAR",
+                        help="environment variable holding the broker password")
+    parser.add_argument("--tls", action="store_true", help="use TLS to the broker")
+    parser.add_argument("--replay", type=Path, metavar="FILE",
+                        help="show a recorded telemetry file instead of a live rig")
+    parser.add_argument("--speed", type=float, default=1.0,
+                        help="replay speed (1 = as recorded, 0 = at once)")
+
+
+def make_source(args: argparse.Namespace):  # noqa: ANN201 - returns a TelemetrySource
+    """The telemetry source the arguments name."""
+    from runtime.watch_sources import MqttSource, RecordedSource, SocketSource
+
+    if args.replay:
+        if not args.replay.is_file():
+            raise UserError(f"no recording at {args.replay}; give a telemetry file")
+        return RecordedSource(args.replay, speed=args.speed)
+    if args.mqtt:
+        if not args.rig:
+            raise UserError("--mqtt needs --rig NAME (the rig's name on the broker)")
+        host, _, port = args.mqtt.rpartition(":")
+        if not host or not port.isdigit():
+            raise UserError(f"--mqtt {args.mqtt!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
+        password = os.environ.get(args.password_env) if args.password_env else None
+        return MqttSource(host, int(port), args.rig, args.username, password, args.tls)
+    path = args.socket
+    if path is None and args.config:
+        cfg = load_config(args.config, args.overrides)
+        rig = str(cfg.get("rig.name", cfg.get("rig.sim", "rig")))
+        path = Path(str(cfg.get("log.dir", "runs"))) / f"{rig}.sock"
+    if path is None:
+        raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
+                        "--rig NAME, or --replay FILE")
+    if not Path(path).exists():
+        raise UserError(f"no runtime socket at {path}; is `corral run` running with this "
+                        "config (and the same log.dir)?")
+    return SocketSource(path)
+
+
+def main(args: argparse.Namespace) -> int:
+    """Run the dashboard until the operator quits."""
+    from runtime.dashboard import Dashboard
+
+    source = make_source(args)
+
+    async def run() -> None:
+        async with source:
+            await Dashboard(source).run_async()
+
+    import asyncio
+
+    try:
+        asyncio.run(run())
+    except (ConnectionError, OSError) as exc:
+        raise UserError(f"cannot reach the telemetry source ({exc})") from None
+    return 0
+
+
+if __name__ == "__main__":
+    from runtime.cli import main as cli_main
+
+    sys.exit(cli_main(["watch", *sys.argv[1:]]))
