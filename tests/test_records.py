@@ -101,7 +101,7 @@ def make_trip(trip_id: int, tick: int, rng: np.random.Generator, n_pre: int = 40
                      "loop": {"rate_hz": 1000.0, "lateness_p99_us": 80.0, "deadline_misses": 0},
                      "link": {"sample_age_ms": 0.4, "crc_errors": 0}},
         "config_hash": "0123456789abcdef", "software_version": "0.1.0", "rig": "pedestal-sim",
-        "events": [{"type": "event", "t_mono": 4990.0, "t_wall": 1_699_999_990.0, "tick": 0,
+        "events": [{"type": "event", "t_mono": 5000.0, "t_wall": 1_700_000_000.0, "tick": 0,
                     "kind": "arm", "detail": "operator"}],
         "pre": pre,
     }

@@ -1,0 +1,158 @@
+"""The trip plot: one PNG a reviewer reads a trip from.
+
+`plot_trip(trip, path)` draws the pre/post capture around the trip instant:
+the margin ratio with its warning and trip levels, tracking per axis
+(command, reference model, measured), inputs with their limits, the
+effective learning rate and the weight norm, the supervisor mode as shading,
+the trip instant as a vertical line, the first-out rule in the title. Fields
+missing from the capture are simply left out.
+
+What does not live here: reading logs (`runtime.records`), exports
+(`runtime.comtrade_export`), the command line (`runtime.cmd_trips`).
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from runtime.records import Trip
+
+_MODE_COLOURS = {"settling": "#e8e8e8", "fallback": "#fde3c8", "stopped": "#f6c9c9"}
+
+
+def _fmt(v: Any) -> str:
+    return f"{v:.4g}" if isinstance(v, (int, float)) else str(v)
+
+
+def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
+    """Draw the trip's capture to a PNG at `path`; returns the path."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    cap = trip.capture()
+    names = trip.names()
+    t_ms = cap.t * 1e3
+    c, x, xr = cap.numeric("c"), cap.numeric("x"), cap.numeric("xr")
+    u, u_raw = cap.numeric("u"), cap.numeric("u_raw")
+    ratio, eff, wn = cap.numeric("ratio"), cap.numeric("eff_rate"), cap.numeric("w_norm")
+    states = names.get("states") or []
+    units = names.get("state_units") or []
+    tracked = names.get("tracked") or []
+
+    # which state each tracked axis is: by name when known, else the first p states
+    axes_idx: list[int] = []
+    if x is not None:
+        n_track = c.shape[1] if c is not None and c.ndim == 2 else min(2, x.shape[1])
+        for j in range(n_track):
+            name = tracked[j] if j < len(tracked) else None
+            axes_idx.append(states.index(name) if name in states else j)
+
+    panels: list[str] = []
+    if ratio is not None:
+        panels.append("ratio")
+    panels += [f"track{j}" for j in range(len(axes_idx))]
+    if u is not None or u_raw is not None:
+        panels.append("u")
+    if eff is not None:
+        panels.append("eff")
+    if wn is not None:
+        panels.append("w")
+    if not panels:
+        panels.append("empty")
+    fig, axes = plt.subplots(len(panels), 1, figsize=(10, 1.9 * len(panels) + 1.0),
+                             sharex=True, constrained_layout=True, squeeze=False)
+    axes = axes[:, 0]
+    levels = trip.levels()
+    for ax, panel in zip(axes, panels, strict=True):
+        if panel == "ratio":
+            ax.plot(t_ms, ratio, color="tab:purple", lw=1.2, label="||e||_P / eps")
+            ax.axhline(levels["warning"], color="tab:orange", ls="--", lw=1,
+                       label=f"warning {levels['warning']:g}")
+            ax.axhline(levels["trip"], color="tab:red", ls="--", lw=1,
+                       label=f"trip {levels['trip']:g}")
+            ax.axhline(1.0, color="k", lw=0.8, alpha=0.5, label="bound")
+            ax.set_ylabel("margin ratio")
+        elif panel.startswith("track"):
+            j = int(panel[5:])
+            i = axes_idx[j]
+            label = states[i] if i < len(states) else f"x{i}"
+            unit = units[i] if i < len(units) else cap.unit("x", i)
+            if c is not None and c.ndim == 2 and j < c.shape[1]:
+                ax.plot(t_ms, c[:, j], color="0.55", lw=1, label="command")
+            if xr is not None and xr.ndim == 2 and i < xr.shape[1]:
+                ax.plot(t_ms, xr[:, i], color="tab:blue", lw=1.2, label="reference model")
+            if x is not None and x.ndim == 2 and i < x.shape[1]:
+                ax.plot(t_ms, x[:, i], color="tab:orange", lw=1, ls="--", label="measured")
+            ax.set_ylabel(f"{label} [{unit}]" if unit else label)
+        elif panel == "u":
+            inputs = names.get("inputs") or []
+            for col, style in ((u, "-"), (u_raw, ":")):
+                if col is None:
+                    continue
+                col2 = col if col.ndim == 2 else col[:, None]
+                for k in range(col2.shape[1]):
+                    nm = inputs[k] if k < len(inputs) else f"u{k}"
+                    ax.plot(t_ms, col2[:, k], ls=style, lw=1,
+                            label=nm + (" (law, before limits)" if style == ":" else ""))
+            lims = [float(v) for v in names.get("input_limits") or []]
+            for lim in sorted(set(lims)):
+                ax.axhline(lim, color="tab:red", lw=0.8, alpha=0.6)
+                ax.axhline(-lim, color="tab:red", lw=0.8, alpha=0.6)
+            unit = (names.get("input_units") or [cap.unit("u", 0)])[0]
+            ax.set_ylabel(f"inputs [{unit}]" if unit else "inputs")
+        elif panel == "eff":
+            ax.plot(t_ms, eff, color="tab:green", lw=1, label="gamma * phi_d")
+            ax.set_ylabel("learning rate")
+            if np.nanmax(np.abs(eff)) > 0 and np.nanmin(eff) > 0:
+                ax.set_yscale("log")
+        elif panel == "w":
+            ax.plot(t_ms, wn, color="tab:brown", lw=1, label="||W||")
+            ax.set_ylabel("weight norm")
+        else:
+            ax.text(0.5, 0.5, "no captured signals", transform=ax.transAxes, ha="center")
+        _shade_modes(ax, cap, t_ms)
+        ax.axvline(0.0, color="tab:red", lw=1.5)
+        ax.grid(alpha=0.3)
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(loc="upper left", fontsize=7, ncol=4)
+    axes[-1].set_xlabel("time from the trip [ms]")
+    axes[0].annotate("trip", xy=(0.0, 1.0), xycoords=("data", "axes fraction"),
+                     color="tab:red", fontsize=8, ha="left", va="bottom")
+    fo = trip.first_out
+    when = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(trip.t_wall))
+    title = (f"{trip.rig} trip {trip.id}: first out {trip.rule} "
+             f"({fo.get('signal', '?')} = {_fmt(trip.value)} vs {_fmt(trip.threshold)})"
+             f" -> {trip.action}")
+    sub = f"{when}, tick {trip.tick}, config {trip.config_hash}"
+    if trip.later:
+        sub += ", later: " + ", ".join(str(r.get("rule")) for r in trip.later)
+    if trip.cut_short:
+        sub += "  [log cut short]"
+    fig.suptitle(title + "\n" + sub, fontsize=10)
+    fig.savefig(path, dpi=dpi)
+    plt.close(fig)
+    return path
+
+
+def _shade_modes(ax: Any, cap: Any, t_ms: np.ndarray) -> None:
+    """Shade the spans where the supervisor was not engaged (fallback, stopped, settling)."""
+    mode = cap.columns.get("mode")
+    if mode is None or len(t_ms) < 2 or mode.dtype != object:
+        return
+    vals = [str(v) for v in mode.tolist()]
+    start = 0
+    for i in range(1, len(vals) + 1):
+        if i == len(vals) or vals[i] != vals[start]:
+            colour = _MODE_COLOURS.get(vals[start])
+            if colour:
+                ax.axvspan(t_ms[start], t_ms[min(i, len(t_ms) - 1)], color=colour, lw=0,
+                           zorder=0)
+            start = i
