@@ -75,31 +75,11 @@ ENGINES = ("fast", "reference")
 
 
 def _eps_schedule(cfg: Config, design: Design, t: NDArray[np.float64]) -> NDArray[np.float64]:
-    """eps per tick: the time-varying bound when `runtime.bound` provides one, else design.eps."""
-    try:
-        from runtime.bound import schedule_from_config
-    except ImportError:
-        return np.full(t.shape, design.eps)
+    """eps per tick from `[adaptation.bound]` (constant design.eps when absent)."""
+    from runtime.bound import schedule_from_config
+
     schedule = schedule_from_config(cfg, design)
-    if schedule is None:
-        return np.full(t.shape, design.eps)
     return np.broadcast_to(np.asarray(schedule.eps(t), dtype=float), t.shape).copy()
-
-
-def _reference_modifiers(cfg: Config, design: Design, settings: Any) -> list[Any]:
-    """The numpy weight modifiers for the reference engine (none when all are off)."""
-    active = settings.leakage != "none" or settings.dead_zone > 0 or settings.projection
-    if not active:
-        return []
-    try:
-        from runtime.modifiers import modifiers_from_config
-    except ImportError:
-        raise ConfigError(
-            "adaptation.leakage", "the reference engine has no numpy weight modifiers yet.",
-            'use the fast engine, or turn the modifiers off (leakage = "none", '
-            "dead_zone = 0, projection = false).",
-        ) from None
-    return list(modifiers_from_config(cfg, design))
 
 
 def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunResult:
@@ -112,11 +92,12 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
     if engine not in ENGINES:
         raise ValueError(f"engine must be one of {', '.join(ENGINES)}, got {engine!r}")
     from runtime.fast import ModifierSettings
+    from runtime.modifiers import modifiers_from_config
 
     design = design_from_config(cfg)
     plant = plant_from_config(cfg, design)
     rig = design.rig
-    settings = ModifierSettings.from_config(cfg, rig.m)
+    modifiers = modifiers_from_config(cfg, design)
     tracked = tracked_names(rig.C, rig.states)
     schedule = schedule_from_config(cfg, tracked)
     Ts = design.Ts
@@ -142,10 +123,11 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
 
     compile_s = 0.0
     if engine == "fast" and rig.sim == "pedestal":
+        settings = ModifierSettings.from_modifiers(modifiers, rig.m)
         wall, compile_s = _run_fast(design, settings, plant, cmd, eps_t, cols, progress)
     else:
         engine = "reference"
-        law = AdaptiveLaw(design, _reference_modifiers(cfg, design, settings))
+        law = AdaptiveLaw(design, modifiers)
         wall = _run_reference(law, plant, cmd, eps_t, cols, progress)
     cols["c"][:] = cmd
     cols["xr"][:] = cols["y"] - cols["e"]  # the reference state the tick compared against

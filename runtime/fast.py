@@ -54,8 +54,8 @@ LEAKAGES = ("none", "sigma", "e")
 # ic: integer layout
 (I_N, I_M, I_P, I_NCODE, I_NRBF, I_NREG, I_LAW, I_BARRIER, I_AUGMENT, I_LEAK,
  I_PROJ, I_FROZEN, I_OP, I_OPB, I_OK1T, I_OK2T, I_OADT, I_OBDT, I_OGAMMA, I_OUMAX,
- I_OTHETA, I_ORBFC, I_ORBFW, I_OCODES) = range(24)
-IC_HEADER = 24
+ I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS, I_OCODES) = range(25)
+IC_HEADER = 25
 
 # fc: scalar settings at the head
 (F_TS, F_GAMMA_MAX, F_CLAMP, F_LAM_BPB, F_CAP, F_SIGMA0, F_MU, F_DEAD_ZONE, F_EPS_P,
@@ -85,7 +85,10 @@ def out_size(n: int, m: int, n_reg: int) -> int:
 # ------------------------------------------------------------------ law kernel
 @numba.njit(cache=True)
 def basis_eval(x: Array, ic: Any, fc: Array, sig: Array) -> None:  # pragma: no cover - jit
-    """sigma(x) into sig[:N]: the coded terms first, then the radial-basis block."""
+    """sigma(x) into sig[:N]: the coded terms first, then the radial-basis block
+
+    exp(-||scale * (x - c_k)||^2 / (2 w_k^2)) (as `runtime.rbf.rbf_evaluate`).
+    """
     n = ic[I_N]
     oc = ic[I_OCODES]
     tw = fc[F_TANH_W]
@@ -110,10 +113,11 @@ def basis_eval(x: Array, ic: Any, fc: Array, sig: Array) -> None:  # pragma: no 
     base = ic[I_NCODE]
     oc_c = ic[I_ORBFC]
     oc_w = ic[I_ORBFW]
+    oc_s = ic[I_ORBFS]
     for k in range(ic[I_NRBF]):
         d2 = 0.0
         for i in range(n):
-            d = x[i] - fc[oc_c + k * n + i]
+            d = (x[i] - fc[oc_c + k * n + i]) * fc[oc_s + i]
             d2 += d * d
         w = fc[oc_w + k]
         sig[base + k] = math.exp(-d2 / (2.0 * w * w))
@@ -250,7 +254,7 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
                 if do_proj:
                     y = y - st[idx] * k_proj
                 st[idx] += fc[F_TS] * y
-            if proj and not dead:
+            if proj:
                 # the Euler step may overshoot the ball Proj keeps invariant (f <= 1, i.e.
                 # ||theta|| <= theta_max): pull the column back radially onto it
                 nn = 0.0
@@ -460,20 +464,46 @@ class ModifierSettings:
     """Width of the projection's transition band (eps_p)."""
 
     @classmethod
-    def from_config(cls, cfg: Any, m: int) -> ModifierSettings:
-        """Read `adaptation.leakage`, `.sigma0`, `.mu`, `.dead_zone`, `.projection`,
-        `.theta_max`, `.projection_eps` (all optional; absent = off)."""
-        leakage = cfg.choice("adaptation.leakage", LEAKAGES, "none")
-        sigma0 = cfg.number("adaptation.sigma0", 0.0, minimum=0.0, unit="1/s")
-        mu = cfg.number("adaptation.mu", 0.0, minimum=0.0)
-        dead_zone = cfg.number("adaptation.dead_zone", 0.0, minimum=0.0, unit="||e||_P")
-        projection = cfg.flag("adaptation.projection", False)
-        theta: tuple[float, ...] = ()
-        if projection:
-            theta = tuple(cfg.vector("adaptation.theta_max", m, positive=True).tolist())
-        eps_p = cfg.number("adaptation.projection_eps", 0.1, positive=True)
-        return cls(leakage=leakage, sigma0=sigma0, mu=mu, dead_zone=dead_zone,
-                   projection=projection, theta_max=theta, projection_eps=eps_p)
+    def from_config(cls, cfg: Any, design: Design) -> ModifierSettings:
+        """The settings `[adaptation]` asks for: `leakage`, `sigma0`, `mu`, `dead_zone`,
+        `projection`, `theta_max`, `projection_eps` (all optional; absent = off).
+
+        Parsed and checked by `runtime.modifiers.modifiers_from_config`, so both
+        engines refuse the same configs with the same messages.
+        """
+        from runtime.modifiers import modifiers_from_config
+
+        return cls.from_modifiers(modifiers_from_config(cfg, design), design.rig.m)
+
+    @classmethod
+    def from_modifiers(cls, modifiers: Any, m: int) -> ModifierSettings:
+        """The settings equivalent to a list of `runtime.modifiers` objects.
+
+        Raises ValueError for a modifier the kernel does not know, or for an
+        order other than leakage, dead zone, projection.
+        """
+        from runtime.modifiers import DeadZone, EModification, Projection, SigmaModification
+
+        rank = {SigmaModification: 0, EModification: 0, DeadZone: 1, Projection: 2}
+        kw: dict[str, Any] = {}
+        last = -1
+        for mod in modifiers:
+            kind = type(mod)
+            if kind not in rank or rank[kind] < last or (rank[kind] == 0 and "leakage" in kw):
+                raise ValueError(f"the compiled law cannot apply {kind.__name__} here; it knows "
+                                 "one leakage, a dead zone and projection, in that order.")
+            last = rank[kind]
+            if kind is SigmaModification:
+                kw.update(leakage="sigma", sigma0=mod.sigma0)
+            elif kind is EModification:
+                kw.update(leakage="e", mu=mod.mu)
+            elif kind is DeadZone:
+                kw.update(dead_zone=mod.threshold)
+            else:
+                theta = np.broadcast_to(np.asarray(mod.theta_max, dtype=float), (m,))
+                kw.update(projection=True, theta_max=tuple(theta.tolist()),
+                          projection_eps=mod.eps_p)
+        return cls(**kw)
 
 
 def pack_law(design: Design, modifiers: ModifierSettings | None = None,
@@ -487,6 +517,10 @@ def pack_law(design: Design, modifiers: ModifierSettings | None = None,
     codes = list(basis.codes)
     centres = getattr(basis, "rbf_centres", None)
     widths = getattr(basis, "rbf_widths", None)
+    rbf_scale = getattr(basis, "rbf_scale", None)
+    if centres is None or widths is None:
+        centres = widths = None
+    scale = np.ones(n) if rbf_scale is None else np.asarray(rbf_scale, dtype=float)
     n_rbf = 0 if centres is None else int(np.asarray(centres).shape[0])
     if len(codes) + n_rbf != basis.size:
         raise ValueError(
@@ -510,7 +544,8 @@ def pack_law(design: Design, modifiers: ModifierSettings | None = None,
     for M in (d.P, d.PB, d.K1.T, d.K2.T, d.A_d.T, d.B_d.T, gamma,
               np.asarray(d.rig.input_limits, dtype=float), theta,
               np.zeros((0,)) if centres is None else np.asarray(centres, dtype=float),
-              np.zeros((0,)) if widths is None else np.asarray(widths, dtype=float)):
+              np.zeros((0,)) if widths is None else np.asarray(widths, dtype=float),
+              scale):
         flat = np.ascontiguousarray(M, dtype=float).ravel()
         offsets.append(pos)
         blocks.append(flat)
@@ -539,7 +574,7 @@ def pack_law(design: Design, modifiers: ModifierSettings | None = None,
     ic[I_PROJ] = int(mods.projection)
     ic[I_FROZEN] = 0
     (ic[I_OP], ic[I_OPB], ic[I_OK1T], ic[I_OK2T], ic[I_OADT], ic[I_OBDT], ic[I_OGAMMA],
-     ic[I_OUMAX], ic[I_OTHETA], ic[I_ORBFC], ic[I_ORBFW]) = offsets
+     ic[I_OUMAX], ic[I_OTHETA], ic[I_ORBFC], ic[I_ORBFW], ic[I_ORBFS]) = offsets
     ic[I_OCODES] = IC_HEADER
     for k, (op, i, j) in enumerate(codes):
         ic[IC_HEADER + 3 * k: IC_HEADER + 3 * k + 3] = (BASIS_OPS.index(op), i, j)
@@ -672,7 +707,7 @@ def warm_up() -> float:
     ic[I_NCODE] = ic[I_NREG] = 1
     fc = np.ones(FC_HEADER + 16)
     for k, idx in enumerate((I_OP, I_OPB, I_OK1T, I_OK2T, I_OADT, I_OBDT, I_OGAMMA,
-                             I_OUMAX, I_OTHETA, I_ORBFC, I_ORBFW)):
+                             I_OUMAX, I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS)):
         ic[idx] = FC_HEADER + k
     ic[I_OCODES] = IC_HEADER
     st = np.zeros(n + nreg * m)

@@ -146,7 +146,7 @@ class BriefModifiers:
         elif self.leakage == "e":  # W' = gamma (phi_d sigma e'PB - mu ||e'PB|| W)
             dW -= self.gamma[:, None] * self.mu * np.linalg.norm(ePB) * W
         if self.dead_zone > 0 and s < self.dead_zone:
-            return np.zeros_like(dW)
+            dW = np.zeros_like(dW)  # no adaptation; the projection's pull-back still holds
         if self.theta_max is not None:  # Proj(theta, y), column by column
             for j in range(W.shape[1]):
                 th, y, tm = W[:, j], dW[:, j], self.theta_max[j]
@@ -167,7 +167,7 @@ def test_modifiers_match_the_brief_formulas(kind):
     design = demo_design()
     m = design.rig.m
     xs, cs = closed_loop_states(design, 300, kicks=True)
-    theta = np.array([0.3, 0.5])
+    theta = np.array([0.2, 0.4])
     opts = {
         "sigma": dict(leakage="sigma", sigma0=0.5),
         "e": dict(leakage="e", mu=2.0),
@@ -182,8 +182,35 @@ def test_modifiers_match_the_brief_formulas(kind):
         sigma0=settings.sigma0, mu=settings.mu, dead_zone=settings.dead_zone,
         theta_max=theta if settings.projection else None, eps_p=settings.projection_eps)
     rng = np.random.default_rng(5)
-    w0 = rng.normal(size=(design.n_regressors, m)) * 0.1  # inside theta_max, leakage visible
+    w0 = rng.normal(size=(design.n_regressors, m)) * 0.12  # both columns start outside theta_max
     compare_ticks(design, xs, cs, modifiers=[ref_mod], settings=settings, w0=w0)
+
+
+@pytest.mark.parametrize("overrides", [
+    ("adaptation.leakage=sigma", "adaptation.sigma0=0.5"),
+    ("adaptation.leakage=e", "adaptation.mu=2.0", "adaptation.dead_zone=0.01",
+     "adaptation.projection=true", "adaptation.theta_max=[0.3, 0.5]"),
+])
+def test_modifiers_match_runtime_modifiers(overrides):
+    # The numpy modifiers of runtime.modifiers (an independent implementation) as reference.
+    from runtime.modifiers import modifiers_from_config
+
+    cfg = load_config(DEMO, list(overrides))
+    design = design_from_config(cfg)
+    mods = modifiers_from_config(cfg, design)
+    settings = fast.ModifierSettings.from_config(cfg, design)
+    xs, cs = closed_loop_states(design, 300, kicks=True)
+    w0 = np.random.default_rng(6).normal(size=(design.n_regressors, 2)) * 0.1
+    compare_ticks(design, xs, cs, modifiers=mods, settings=settings, w0=w0)
+
+
+def test_modifier_order_the_kernel_cannot_follow_is_refused():
+    from runtime.modifiers import DeadZone, Projection, SigmaModification
+
+    with pytest.raises(ValueError, match="order"):
+        fast.ModifierSettings.from_modifiers([Projection([1.0, 1.0]), DeadZone(0.1)], 2)
+    with pytest.raises(ValueError, match="order"):
+        fast.ModifierSettings.from_modifiers([SigmaModification(1.0), SigmaModification(1.0)], 2)
 
 
 def test_sigma_modification_decays_weights_geometrically_at_zero_error():
@@ -257,6 +284,17 @@ def test_radial_basis_block_matches_reference():
     compare_ticks(design, xs, cs)
 
 
+def test_radial_basis_from_config_matches_reference():
+    design = demo_design('basis.kind="rbf"', 'basis.terms=["bias", "cos:el"]',
+                         'basis.rbf_states=["el", "el_rate"]', "basis.rbf_per_axis=[4, 3]",
+                         "basis.rbf_span=[0.6, 1.0]", "basis.rbf_width=[0.3, 0.8]",
+                         "adaptation.gamma=1.0")
+    assert design.basis.rbf_centres is not None and design.basis.rbf_scale is not None
+    assert design.n_regressors == 2 + 12 + 2
+    xs, cs = closed_loop_states(design, 300, kicks=False)
+    compare_ticks(design, xs, cs)
+
+
 # ---------------------------------------------------------------- plant kernels
 def test_pedestal_kernel_matches_reference_with_faults():
     rng = np.random.default_rng(4)
@@ -301,6 +339,21 @@ def test_dry_run_engines_agree(extra):
     assert a.columns.keys() == b.columns.keys()
     for name, col in a.columns.items():
         assert close(col, b.columns[name], 1e-8), name
+
+
+def test_dry_run_engines_agree_with_a_narrowing_bound_and_modifiers():
+    cfg = load_config(DEMO, ["commands.duration=2", *NOISE_OFF,
+                             'adaptation.bound.kind="exponential"', "adaptation.bound.eps0=0.1",
+                             "adaptation.bound.eps_inf=0.05", "adaptation.bound.alpha=100",
+                             'adaptation.bound.on_violation="rate_limit"',
+                             'adaptation.leakage="e"', "adaptation.mu=0.5",
+                             "adaptation.projection=true", "adaptation.theta_max=[2.0, 2.0]"])
+    a = dry_run(cfg, engine="fast")
+    b = dry_run(cfg, engine="reference")
+    assert a.summary["eps_min"] < 0.1  # the bound did narrow
+    for name, col in a.columns.items():
+        assert close(col, b.columns[name], 1e-8), name
+    assert a.summary["breach_time"] == b.summary["breach_time"]
 
 
 def test_dry_run_engines_agree_with_sensor_noise():
