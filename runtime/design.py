@@ -422,7 +422,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
             worst = ", ".join(f"{s}={v:.3g}" for s, v in
                               zip(d.rig.states, cov["worst_point"], strict=True))
             warnings.append(
-                f"the radial-basis grid covers {100 * cov['covered_fraction']:.1f} % of the "
+                f"the radial-basis grid covers {100 * cov['covered_fraction']:.2f} % of the "
                 f"region the bound admits around the commanded reference (activation >= "
                 f"{min_act:g}); worst at {worst} (activation {cov['worst_activation']:.2g}). "
                 "Widen basis.rbf_span, move basis.rbf_centre, add centres (basis.rbf_per_axis) "
@@ -476,6 +476,7 @@ def format_design(d: Design) -> str:
         lines.append(f"    {s:>10}: limit {lim:9.4g} {u:6}  envelope +-{env:9.4g} {u}{mark}")
     lines += [
         f"  c_bar = lambda_min(R)/lambda_max(P) = {d.c_bar:.4g} 1/s",
+        *_wider_lines(d),
         "",
         "Sampled-data checks:",
         f"  sample period {d.Ts * 1e3:.4g} ms ({1 / d.Ts:.4g} Hz), reference model by exact ZOH",
@@ -493,6 +494,26 @@ def format_design(d: Design) -> str:
     lines.append("The bound is a continuous-time guarantee, not a hardware guarantee: watch the "
                  "measured margin.")
     return "\n".join(lines)
+
+
+def _wider_lines(d: Design) -> list[str]:
+    """Report lines for the time-varying bound and the radial basis (when present)."""
+    lines = []
+    b = d.extras.get("bound")
+    if b:
+        lines.append(f"  bound schedule {b['kind']}: eps0 {b['eps0']:.4g} -> eps_inf "
+                     f"{b['eps_inf']:.4g}, narrowing rate {b['alpha']:.4g} 1/s (admissible "
+                     f"<= c_bar/2 = {b['alpha_max']:.4g} 1/s)")
+    cov = d.extras.get("rbf_coverage")
+    if cov:
+        lines.append(f"  radial basis: {d.basis.size} terms, covers "
+                     f"{100 * cov['covered_fraction']:.2f} % of the admitted region "
+                     f"(worst activation {cov['worst_activation']:.2g})")
+    res = d.extras.get("residual_check")
+    if res:
+        lines.append(f"  residual d_max {res['d_max']:.3g}: needs eps > {res['eps_needed']:.4g} "
+                     + ("(met)" if res["ok"] else "(NOT met, see warning)"))
+    return lines
 
 
 def _named(names: tuple[str, ...], units: tuple[str, ...]) -> str:
