@@ -37,7 +37,7 @@ from runtime.records import MODES, RULES, Trip
 
 #: Capture fields that are flags or modes, never analogue channels.
 DIGITAL_FIELDS = frozenset({"mode", "fallback", "latched", "rules", "active_rules",
-                            "clamped", "capped"})
+                            "clamped", "capped", "outputs_on"})
 #: Capture fields that index time, not signals.
 TIME_FIELDS = frozenset({"t", "tick", "t_mono", "t_wall"})
 ASCII_LIMIT = 99998          # largest analogue sample magnitude we write
@@ -182,7 +182,7 @@ def trip_channels(trip: Trip) -> list[Channel]:
         fallback = None
     if fallback is not None:
         digital.append(Channel("fallback", "", fallback, True))
-    for f in ("latched", "clamped", "capped"):
+    for f in ("latched", "outputs_on", "clamped", "capped"):
         if f in cols:
             digital.append(Channel(f, "", np.array([_truthy(v) for v in cols[f].tolist()]), True))
     for rule, active in _rule_activity(trip).items():

@@ -346,3 +346,44 @@ def test_run_log_queue_of_one_counts_every_drop_while_writer_is_busy(tmp_path):
     assert w.dropped == results.count(False)
     assert len(cols["tick"]) == results.count(True) == w.written
     assert set(cols["tick"].astype(int)) == {k for k, ok in enumerate(results) if ok}
+
+
+def test_flattened_rows_with_widths_mode_codes_and_joined_units(tmp_path):
+    """The loop may store capture rows flat (capture_widths), modes as integer codes
+    (index into idle, settling, engaged, fallback, stopped) and vector units joined by commas."""
+    from runtime.comtrade_export import trip_channels
+
+    rng = np.random.default_rng(6)
+    rec, post = make_trip(1, 4000, rng)
+    widths = [1, 1, 1, 2, 4, 4, 4, 2, 2, 1, 1, 1]
+    codes = {"engaged": 2, "fallback": 3}
+
+    def flat(row):
+        out = []
+        for v in row:
+            v = codes[v] if isinstance(v, str) else v
+            out.extend(v if isinstance(v, list) else [v])
+        return out
+
+    header = make_header()
+    header["capture_widths"] = widths
+    header["capture_units"] = ["s", "1", "code", "rad,rad", "rad,rad,rad/s,rad/s",
+                               "rad,rad,rad/s,rad/s", "rad,rad,rad/s,rad/s", "V,V", "V,V",
+                               "1", "1", "1"]
+    nested_pre = rec["pre"]
+    rec["pre"] = np.array([flat(r) for r in nested_pre])       # numpy, as a ring buffer gives
+    with TripLog(tmp_path / "f.trips", header) as log:
+        log.append(rec)
+        log.append({"type": "post", "trip_id": 1, "rows": [flat(r) for r in post]})
+    trip = load_trips([tmp_path])[0]
+    cap = trip.capture()
+    assert len(cap) == len(nested_pre) + len(post)
+    np.testing.assert_array_equal(cap.columns["x"][: len(nested_pre)],
+                                  [r[4] for r in nested_pre])
+    assert cap.unit("x", 3) == "rad/s" and cap.unit("u", 1) == "V"
+    assert cap.columns["tick"][cap.trip_index] == rec["tick"]
+    chans = {c.name: c for c in trip_channels(trip)}
+    assert chans["x_el_rate"].unit == "rad/s"
+    want = [float(m == "fallback") for m in [r[2] for r in nested_pre + post]]
+    np.testing.assert_array_equal(chans["mode_fallback"].values, want)
+    assert "mode" not in chans                     # a mode is digital, never an analogue channel
