@@ -3,10 +3,13 @@
 Why numba: the numpy reference (`runtime.law.AdaptiveLaw`, `sim_rigs.pedestal`)
 is written for batches, and for one plant its cost is almost all call
 overhead: a 30 s dry run at 1 kHz took ~11 s wall (~370 us a tick). Compiled
-loops over the same formulas run the law tick in ~1-2 us through the Python
-wrapper and the whole dry run several hundred times faster than real time
-(figures from `bench/bench_law.py` and `bench/bench_dryrun.py`). The numpy
-reference stays the source of truth: `tests/test_fast.py` checks these
+loops over the same formulas, measured on a shared 2-core VM: law tick median
+~1.1 us (N_bar = 8) and ~1.4 us (N_bar = 50) through `FastLaw.step`, against
+~27 and ~54 us for `AdaptiveLaw.step` on one plant (`bench/bench_law.py`);
+the recorded demo dry run at 230-770x real time, against ~1-3x for the numpy
+engine (`bench/bench_dryrun.py`). Cost: ~3-5 s of compilation on a cold
+cache (more on a loaded machine), ~0.2-0.6 s to load from the cache. The
+numpy reference stays the source of truth: `tests/test_fast.py` checks these
 kernels against it tick by tick.
 
 Layout. To keep the per-call dispatch cost low, a law carries four flat
