@@ -43,6 +43,8 @@ from sim_rigs.pedestal import Pedestal
 pytestmark = pytest.mark.timeout(60)
 
 ROOT = Path(__file__).resolve().parents[1]
+# The `corral` console script, run by this interpreter.
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
 
 
 def aio(fn):
@@ -178,7 +180,7 @@ async def test_last_will_marks_device_offline_when_killed(mosquitto, tmp_path): 
     cfg.write_text(text)
     rig = "pedestal-sim"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "runtime.cli", "rig", "serve", str(cfg), "--mqtt", mosquitto.url,
+        [*CORRAL, "rig", "serve", str(cfg), "--mqtt", mosquitto.url,
          "--set", "loop.period=0.004"],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT,
     )

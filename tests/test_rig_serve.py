@@ -1,0 +1,203 @@
+"""`corral rig serve` as a subprocess (real pseudo-terminal, real mosquitto), and the
+served device's fail-safe and link faults.
+
+The host side is the real `drivers.serial_link.SerialLink` / `drivers.mqtt_link.MqttLink`.
+What a device must do when commands stop (outputs to zero, report
+STATUS_COMMAND_TIMEOUT) is the protocol's own rule (docs/wire-protocol.md).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import subprocess
+import sys
+import threading
+from pathlib import Path
+
+import pytest
+from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
+
+from drivers.base import (
+    STATUS_COMMAND_TIMEOUT,
+    STATUS_OUTPUTS_OFF,
+    Command,
+    LinkClosed,
+)
+from drivers.mqtt_link import MqttLink, MqttSettings
+from drivers.serial_link import SerialLink
+from sim_rigs.device import PedestalDevice
+from sim_rigs.faults import FaultSchedule, parse_fault
+from sim_rigs.pedestal import Pedestal
+
+pytestmark = pytest.mark.timeout(60)
+
+ROOT = Path(__file__).resolve().parents[1]
+# The `corral` console script, run by this interpreter.
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
+CONFIG = ROOT / "configs" / "pedestal-sim.toml"
+
+
+class Serve:
+    """`corral rig serve CONFIG ...` in a subprocess; `.first` is its first output line."""
+
+    def __init__(self, *args: str) -> None:
+        self.proc = subprocess.Popen(
+            [*CORRAL, "rig", "serve", str(CONFIG), *args],
+            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT,
+        )
+        self.first = self.proc.stdout.readline().strip()
+
+    def __enter__(self) -> Serve:
+        if not self.first:
+            err = self.proc.stderr.read()
+            raise AssertionError(f"rig serve printed nothing: {err}")
+        return self
+
+    def finish(self, timeout: float = 20) -> tuple[str, str]:
+        out, err = self.proc.communicate(timeout=timeout)
+        return out, err
+
+    def __exit__(self, *exc) -> None:
+        if self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.communicate(timeout=10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.communicate()
+
+
+async def drive_then_stop(link, n: int = 200) -> tuple[list[int], int]:
+    """Answer n samples, then stop commanding; return statuses while driven and after."""
+    statuses = []
+    for _ in range(n):
+        s = await link.receive()
+        statuses.append(s.status)
+        await link.send(Command(s.seq, (2.0, -2.0)))
+    await asyncio.sleep(0.25)  # five command timeouts with no command
+    s = await link.receive_latest()
+    return statuses, s.status
+
+
+def test_serve_serial_first_line_samples_commands_and_timeout():
+    with Serve("--serial", "--duration", "6", "--json") as serve:
+        path = serve.first
+        assert Path(path).exists()
+
+        async def main():
+            async with SerialLink(path) as link:
+                assert link.hello.rig_id == "pedestal-sim"
+                assert link.hello.channels == ("az", "el", "az_rate", "el_rate")
+                statuses, after = await drive_then_stop(link)
+                # While commanded the outputs are on (no timeout, not off) ...
+                assert not statuses[-1] & (STATUS_COMMAND_TIMEOUT | STATUS_OUTPUTS_OFF)
+                # ... and with commands gone the device switched them off by itself.
+                assert after & STATUS_COMMAND_TIMEOUT and after & STATUS_OUTPUTS_OFF
+                assert link.stats.crc_errors == 0
+
+        asyncio.run(main())
+        out, err = serve.finish()
+    report = json.loads(out.strip().splitlines()[-1])
+    assert report["commands_applied"] >= 150
+    assert report["timeouts"] > 0
+    assert report["ticks"] > 1000
+    assert serve.proc.returncode == 0
+
+
+def test_serve_mqtt_samples_commands_and_timeout(mosquitto):  # noqa: F811
+    with Serve("--mqtt", mosquitto.url, "--set", "loop.period=0.004", "--duration", "8") as serve:
+        assert serve.first == f"mqtt://{mosquitto.url}/pedestal-sim"
+        settings = MqttSettings(host=mosquitto.host, port=mosquitto.port, rig="pedestal-sim")
+
+        async def main():
+            async with MqttLink(settings) as link:
+                assert link.hello.sample_rate_hz == pytest.approx(250.0)
+                statuses, after = await drive_then_stop(link, 100)
+                assert not statuses[-1] & STATUS_COMMAND_TIMEOUT
+                assert after & STATUS_COMMAND_TIMEOUT and after & STATUS_OUTPUTS_OFF
+
+        asyncio.run(main())
+
+
+def test_serve_refuses_bad_fault_in_one_line():
+    p = subprocess.run(
+        [*CORRAL, "rig", "serve", str(CONFIG), "--serial",
+         "--fault", "explode@3"], capture_output=True, text=True, cwd=ROOT, timeout=30)
+    assert p.returncode == 2
+    assert "unknown fault kind 'explode'" in p.stderr and "Traceback" not in p.stderr
+
+
+class InProcess:
+    """A PedestalDevice over a pty, its clock in a thread (to read its outputs directly)."""
+
+    def __init__(self, tmp_path: Path, faults: list[str] = ()) -> None:
+        schedule = FaultSchedule([parse_fault(f) for f in faults])
+        self.device = PedestalDevice(Pedestal.create(), period=0.002, faults=schedule)
+        self.path = self.device.serve_pty(str(tmp_path / "rig.tty"))
+        self.thread = threading.Thread(target=self.device.run, daemon=True)
+
+    def __enter__(self) -> InProcess:
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.device.stop()
+        self.thread.join(10)
+
+
+def test_command_timeout_zeroes_outputs(tmp_path):
+    with InProcess(tmp_path) as rig:
+
+        async def main():
+            async with SerialLink(rig.path) as link:
+                for _ in range(100):
+                    s = await link.receive()
+                    await link.send(Command(s.seq, (3.0, -4.0)))
+                await asyncio.sleep(0.01)
+                assert rig.device.applied == (3.0, -4.0)  # zero-order hold of the last command
+                await asyncio.sleep(0.2)
+                assert rig.device.applied == (0.0, 0.0)
+                assert rig.device.status & STATUS_COMMAND_TIMEOUT
+
+        asyncio.run(main())
+
+
+def test_link_faults_corrupt_and_drop_are_counted(tmp_path):
+    # corrupt every frame from 0.3 s for 0.2 s; drop 5 samples at 0.8 s
+    faults = ["corrupt@0.3:duration=0.2", "drop@0.8:count=5"]
+    with InProcess(tmp_path, faults) as rig:
+
+        async def main():
+            async with SerialLink(rig.path) as link:
+                while True:
+                    s = await link.receive()
+                    await link.send(Command(s.seq, (0.0, 0.0)))
+                    if s.t_device > 1.2:
+                        break
+                st = link.stats
+                # ~100 corrupted frames (0.2 s at 500 Hz): CRC or COBS errors, never delivered.
+                assert st.crc_errors + st.cobs_errors + st.decode_errors >= 50
+                # The CRC-failed samples and the 5 dropped ones show up as sequence gaps.
+                assert st.gaps >= 55
+
+        asyncio.run(main())
+
+
+def test_disconnect_fault_and_serial_reconnect(tmp_path):
+    with InProcess(tmp_path, ["disconnect@0.4:duration=0.5"]) as rig:
+
+        async def main():
+            link = SerialLink(rig.path)
+            await link.open()
+            with pytest.raises(LinkClosed):
+                while True:
+                    s = await asyncio.wait_for(link.receive(), 5)
+                    await link.send(Command(s.seq, (0.0, 0.0)))
+            # The same path (a symlink to the new pty) comes back; no restart needed.
+            await link.reconnect(timeout_s=10)
+            s = await link.receive()
+            assert s.t_device >= 0.9 and link.stats.reconnects == 1
+            await link.close()
+
+        asyncio.run(main())
