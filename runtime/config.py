@@ -13,8 +13,10 @@ added by the module that owns them without touching this file.
 from __future__ import annotations
 
 import copy
+import difflib
 import hashlib
 import json
+import sys
 import tomllib
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -25,6 +27,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 _MISSING = object()
+
+SECTIONS = (
+    "rig", "basis", "design", "adaptation", "loop", "commands", "plant", "log", "watchdog",
+    "supervisor", "fallback", "telemetry", "faults", "link", "sweep", "preflight", "replay",
+    "estimator", "device", "dashboard", "operator", "recorder", "mqtt",
+)
+"""Top-level tables corral knows; anything else is almost always a typo."""
 
 
 class ConfigError(Exception):
@@ -259,8 +268,45 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(str(path), f"is not valid TOML ({exc}).",
                           "fix the syntax at the line named.") from None
+    check_sections(raw, str(path))
     cfg = Config(raw=raw, path=p)
-    return cfg.with_overrides(overrides) if overrides else cfg
+    if overrides:
+        _note_new_keys(raw, overrides)
+        cfg = cfg.with_overrides(overrides)
+        check_sections(cfg.raw, "--set")
+    return cfg
+
+
+def check_sections(raw: dict[str, Any], where: str) -> None:
+    """Refuse top-level tables corral does not know (a misspelt section is silently ignored
+    otherwise)."""
+    for key in raw:
+        if key not in SECTIONS:
+            close = difflib.get_close_matches(key, SECTIONS, n=1)
+            hint = f"did you mean [{close[0]}]?" if close else (
+                f"known sections: {', '.join(SECTIONS)}.")
+            raise ConfigError(key, f"is not a section corral knows (in {where}).", hint)
+
+
+def _note_new_keys(raw: dict[str, Any], overrides: Sequence[str]) -> None:
+    """Warn when an override adds a key the file does not have: usually a misspelling."""
+    existing = [k for k, _ in walk(raw)] + [k for k in _tables(raw)]
+    for item in overrides:
+        key = item.partition("=")[0].strip()
+        if key in existing:
+            continue
+        close = difflib.get_close_matches(key, existing, n=1, cutoff=0.8)
+        if close:
+            print(f"corral: note: --set {key} is not in the config file; did you mean "
+                  f"{close[0]}? (using it as given)", file=sys.stderr)
+
+
+def _tables(raw: dict[str, Any], prefix: str = "") -> Iterator[str]:
+    for k, v in raw.items():
+        if isinstance(v, dict):
+            key = f"{prefix}.{k}" if prefix else k
+            yield key
+            yield from _tables(v, key)
 
 
 def walk(raw: dict[str, Any], prefix: str = "") -> Iterator[tuple[str, Any]]:

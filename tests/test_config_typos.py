@@ -1,0 +1,37 @@
+"""Misspelt config sections and override keys are caught, not silently ignored
+(common practice for configuration loaders: fail loudly on unknown top-level keys)."""
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from runtime.config import ConfigError, load_config
+
+DEMO = Path(__file__).resolve().parents[1] / "configs" / "pedestal-sim.toml"
+
+
+def test_unknown_section_in_a_file_names_it_and_suggests_the_right_one(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(DEMO.read_text().replace("[adaptation]", "[adaptaton]"))
+    with pytest.raises(ConfigError) as err:
+        load_config(bad)
+    assert err.value.field == "adaptaton"
+    assert "did you mean [adaptation]" in str(err.value)
+
+
+def test_override_of_a_misspelt_key_is_flagged_on_stderr():
+    proc = subprocess.run(
+        [sys.executable, "-m", "runtime.cli", "design", str(DEMO), "--set", "adaptation.gama=3"],
+        capture_output=True, text=True, timeout=120)
+    assert "did you mean adaptation.gamma?" in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_override_of_an_existing_key_is_silent():
+    proc = subprocess.run(
+        [sys.executable, "-m", "runtime.cli", "design", str(DEMO), "--set", "adaptation.gamma=3"],
+        capture_output=True, text=True, timeout=120)
+    assert proc.stderr == ""
+    assert proc.returncode == 0
