@@ -1,0 +1,175 @@
+"""The host clock that paces a host-clocked loop, and the lateness bookkeeping.
+
+Choice (measured with `bench/bench_loop.py` on the 2-core development VM, see
+the README for the figures of a 60 s run): a dedicated thread that sleeps to
+ABSOLUTE deadlines (``t0 + k * period``, so errors never accumulate), wakes
+``spin_us`` early and spins on the monotonic clock for the last stretch, with
+the Linux timer slack set to 1 ns and SCHED_FIFO when the process may use it
+(root or CAP_SYS_NICE; otherwise it stays at normal priority and says so).
+The alternative, `asyncio.sleep`/`call_at` on the event loop, cannot hold
+1 kHz: the epoll selector rounds every timeout up to whole milliseconds, so
+ticks land ~0.5 ms late on average and over 1 ms late at p99, the whole
+period. A `timerfd` needs Python 3.13 (or ctypes) and still wakes the same
+way as an absolute sleep; the thread with a short spin is simpler and gave
+p99 lateness in the tens of microseconds here. Multi-millisecond outliers
+still happen on a shared VM, so the watchdog's overrun rule expects them.
+
+When a tick overruns by more than a whole period the missed deadlines are
+counted as deadline misses and the clock resynchronises to the next future
+deadline instead of firing a burst of catch-up ticks.
+
+What lives here: `DeadlineClock` (the thread-side pacer), `LatencyStats`
+(preallocated lateness record), `try_realtime`, `naive_asyncio_lateness`
+(the comparison the bench prints). What does not: the tick itself
+(`runtime.loop`).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import ctypes
+import os
+import threading
+import time
+from collections.abc import Callable
+
+import numpy as np
+from numpy.typing import NDArray
+
+PR_SET_TIMERSLACK = 29
+
+
+def try_realtime(priority: int = 50) -> str:
+    """Ask for SCHED_FIFO and 1 ns timer slack for the calling thread; say what was granted."""
+    notes = []
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        if libc.prctl(PR_SET_TIMERSLACK, 1, 0, 0, 0) == 0:
+            notes.append("timer slack 1 ns")
+    except (OSError, AttributeError):
+        pass
+    try:
+        prio = min(priority, os.sched_get_priority_max(os.SCHED_FIFO))
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(prio))
+        notes.append(f"SCHED_FIFO priority {prio}")
+    except (PermissionError, OSError, AttributeError):
+        notes.append("normal priority (SCHED_FIFO not permitted)")
+    return ", ".join(notes)
+
+
+class LatencyStats:
+    """Tick lateness (s) kept in a preallocated ring; percentiles on demand."""
+
+    def __init__(self, capacity: int = 600_000) -> None:
+        self.buf: NDArray[np.float64] = np.zeros(capacity)
+        self.count = 0
+        self.misses = 0
+        self.max = 0.0
+
+    def add(self, lateness: float) -> None:
+        """Record one tick's lateness (s)."""
+        self.buf[self.count % self.buf.size] = lateness
+        self.count += 1
+        if lateness > self.max:
+            self.max = lateness
+
+    def percentiles_us(self) -> tuple[float, float, float]:
+        """(p50, p99, max) lateness in microseconds (NaN before the first tick)."""
+        n = min(self.count, self.buf.size)
+        if n == 0:
+            return float("nan"), float("nan"), float("nan")
+        p50, p99 = np.percentile(self.buf[:n], [50, 99])
+        return float(p50 * 1e6), float(p99 * 1e6), float(self.max * 1e6)
+
+
+class DeadlineClock:
+    """Calls ``tick(k, deadline)`` at absolute deadlines ``t0 + k * period`` (monotonic s).
+
+    Run it in a dedicated thread (`start`) and stop it with `stop`. The tick
+    runs in the clock thread; it should be short and must not block.
+    """
+
+    def __init__(self, period: float, spin_us: float = 200.0, realtime: bool = True,
+                 priority: int = 50) -> None:
+        self.period = float(period)
+        self.spin = spin_us * 1e-6
+        self.realtime = realtime
+        self.priority = priority
+        self.stats = LatencyStats()
+        self.granted = ""
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.error: BaseException | None = None
+
+    def run(self, tick: Callable[[int, float], None],
+            on_exit: Callable[[], None] | None = None) -> None:
+        """The pacing loop (blocks until `stop`); exceptions end it and are kept in `error`."""
+        if self.realtime:
+            self.granted = try_realtime(self.priority)
+        period, spin, stats = self.period, self.spin, self.stats
+        mono, sleep = time.monotonic, time.sleep
+        t0 = mono() + period
+        k = 0
+        try:
+            while not self._stop.is_set():
+                deadline = t0 + k * period
+                rest = deadline - mono() - spin
+                if rest > 0:
+                    sleep(rest)
+                while mono() < deadline:
+                    pass
+                stats.add(mono() - deadline)
+                tick(k, deadline)
+                k += 1
+                # Deadline missed if the tick ended after the next deadline.
+                behind = mono() - (t0 + k * period)
+                if behind > 0:
+                    stats.misses += 1
+                    if behind > period:
+                        skipped = int(behind // period)
+                        stats.misses += skipped
+                        t0 += skipped * period
+        except BaseException as exc:  # noqa: BLE001 - handed to the owner
+            self.error = exc
+        finally:
+            if on_exit is not None:
+                on_exit()
+
+    def start(self, tick: Callable[[int, float], None],
+              on_exit: Callable[[], None] | None = None) -> None:
+        """Run the pacing loop in its own thread."""
+        self._stop.clear()
+        self._thread = threading.Thread(target=self.run, args=(tick, on_exit),
+                                        name="corral-tick", daemon=True)
+        self._thread.start()
+
+    def stop(self) -> None:
+        """Ask the loop to end after the current tick."""
+        self._stop.set()
+
+    def join(self, timeout: float | None = None) -> None:
+        """Wait for the clock thread."""
+        if self._thread is not None:
+            self._thread.join(timeout)
+
+
+async def naive_asyncio_lateness(period: float, seconds: float,
+                                 work: Callable[[], None] | None = None) -> LatencyStats:
+    """Lateness of a loop paced by `asyncio.sleep` to absolute deadlines (the naive way)."""
+    stats = LatencyStats(int(seconds / period) + 16)
+    loop = asyncio.get_running_loop()
+    t0 = loop.time() + period
+    k = 0
+    end = t0 + seconds
+    while True:
+        deadline = t0 + k * period
+        if deadline >= end:
+            break
+        await asyncio.sleep(max(0.0, deadline - loop.time()))
+        stats.add(loop.time() - deadline)
+        if work is not None:
+            work()
+        k += 1
+        if loop.time() > t0 + k * period:
+            stats.misses += 1
+    return stats

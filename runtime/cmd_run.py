@@ -1,0 +1,121 @@
+"""`corral run CONFIG`: drive a rig in real time under the watchdog.
+
+Prints the socket path, then (without ``--json``) one line per trip and a
+summary at the end; with ``--headless --duration S --json`` it prints one JSON
+object when the run ends. ``--arm`` arms automatically, and only for the
+simulated rig. Without ``--headless`` the dashboard is started in its own
+process when it is installed (`runtime.dashboard`).
+
+What does not live here: the loop (`runtime.loop`), the dashboard
+(`runtime.cmd_watch`).
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import contextlib
+import importlib.util
+import json
+import signal
+import subprocess
+import sys
+
+from runtime.cli import UserError, common_config_args
+from runtime.config import load_config
+
+HARDWARE_CAUTIONS = """\
+corral: HARDWARE CAUTIONS before you arm a real rig:
+  - keep a physical emergency stop within reach and test it first;
+  - guard the rig: nobody inside its reach while it is armed;
+  - corral's software trips are NOT a safety-rated function and not an emergency stop;
+  - the device must fail safe on its own when commands stop arriving (command timeout);
+  - follow your local codes and licensed practice for machine safety.
+  The continuous-time bound is not a hardware guarantee: watch the measured margin."""
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Arguments of `corral run`."""
+    common_config_args(parser)
+    parser.add_argument("--arm", action="store_true",
+                        help="arm at start (simulated rig only; a real rig is armed by the "
+                             "operator through the dashboard or socket)")
+    parser.add_argument("--headless", action="store_true", help="no dashboard")
+    parser.add_argument("--duration", type=float, default=None, metavar="S",
+                        help="end after S seconds (default: run until stopped)")
+    parser.add_argument("--json", action="store_true",
+                        help="print one JSON summary object at the end")
+    parser.add_argument("--fault", action="append", default=[], metavar="KIND@SECONDS",
+                        help="inject a fault into the simulated rig, e.g. spike@5:axis=az,"
+                             "size=0.2 (repeatable)")
+    parser.add_argument("--link", default=None, metavar="SPEC",
+                        help="link to the rig (default: rig.link of the config; 'sim' = the "
+                             "simulated rig in-process)")
+
+
+def dashboard_available() -> bool:
+    """True when the dashboard module is installed (hook for `corral watch`)."""
+    return importlib.util.find_spec("runtime.dashboard") is not None
+
+
+def main(args: argparse.Namespace) -> int:
+    """Run; exit 0 when the run ended normally (trips included), 2 on a user error."""
+    from runtime.loop import Runner, RunSettings
+
+    if args.duration is not None and not args.duration > 0:
+        raise UserError("--duration must be a positive number of seconds, e.g. --duration 10")
+    cfg = load_config(args.config, args.overrides)
+    settings = RunSettings(duration=args.duration, auto_arm=False, faults=list(args.fault),
+                           link=args.link)
+    runner = Runner(cfg, settings)
+    if not runner.simulated:
+        print(HARDWARE_CAUTIONS, file=sys.stderr)
+        if args.arm:
+            raise UserError("--arm arms only the simulated rig; arm a real rig yourself "
+                            "from the dashboard or the operator socket once it is safe")
+    settings.auto_arm = bool(args.arm)
+    print(f"corral: {runner.design.rig.name} running; operator socket {runner.socket_path}; "
+          f"trip log {runner.core.trip_path}", file=sys.stderr, flush=True)
+
+    dash = None
+    if not args.headless:
+        if dashboard_available():
+            # The dashboard runs in its own process: in the same process its redraws
+            # delay ticks by tens of milliseconds.
+            dash = subprocess.Popen([sys.executable, "-m", "runtime.cmd_watch", "--socket",
+                                     str(runner.socket_path)])
+        else:
+            print("corral: no dashboard installed; running headless", file=sys.stderr)
+
+    async def go() -> dict:
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            with contextlib.suppress(NotImplementedError, RuntimeError):
+                loop.add_signal_handler(sig, runner.request_stop)
+        return await runner.run()
+
+    try:
+        summary = asyncio.run(go())
+    finally:
+        if dash is not None and dash.poll() is None:
+            dash.terminate()
+            with contextlib.suppress(subprocess.TimeoutExpired):
+                dash.wait(3)
+    # Link figures (frames, CRC errors, gaps, duplicates, late frames, latency p50/p99).
+    summary.setdefault("link", dict(runner.link.stats.as_dict()))
+    if args.json:
+        print(json.dumps(summary, indent=2, default=str))
+    else:
+        print(f"corral run: {summary['ticks']} ticks, lateness p50 "
+              f"{_us(summary['lateness_p50_us'])}, p99 {_us(summary['lateness_p99_us'])}, "
+              f"{summary['deadline_misses']} deadline misses; max margin ratio "
+              f"{summary['max_margin_ratio']:.3f}; {len(summary['trips'])} trip(s)")
+        for t in summary["trips"]:
+            print(f"  trip {t['id']}: {t['rule']} at tick {t['tick']} -> {t['action']} "
+                  f"({t['detect_to_action_us']:.0f} us detect to action)")
+        print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
+    return 0
+
+
+def _us(v: float | None) -> str:
+    return "n/a" if v is None else f"{v:.0f} us"

@@ -1,0 +1,898 @@
+"""The real-time loop: one tick, the tasks around it, and link construction.
+
+One tick (`TickCore.step`): operator requests -> estimate x from the sample
+-> supervisor (settling hold, engaged adaptive law, fallback law) ->
+watchdog (every rule; a trip hands over to its fallback in the SAME tick)
+-> command -> record (tick row to the run log through the non-blocking
+writer, a preallocated ring of recent rows for the pre-trip capture,
+decimated telemetry). Nothing here waits on disk, the screen or the network:
+trip records, post captures and operator events go to a writer thread that
+appends them to the trip log (each fsynced).
+
+Clocking (`Runner`): a `sim_rigs.link.SimLink` is host-clocked (the
+`runtime.clock.DeadlineClock` thread runs the tick at absolute deadlines and
+steps the simulated physics one period after each command); any other link
+is rig-clocked (an asyncio task awaits each sample, ticks, sends). The
+runner's tasks (tick, telemetry socket, duration timer) live in one asyncio
+TaskGroup; stopping is one event, and a crash in the tick turns the outputs
+off before the error propagates.
+
+`make_link(cfg, spec)` builds the link a config and ``--link`` name; extend it
+there for new transports. What does not live here: the law
+(`runtime.law`), rules (`runtime.watchdog`), modes (`runtime.supervisor`),
+fallbacks (`runtime.fallback`), files (`runtime.records`).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import math
+import queue
+import sys
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from drivers.base import FLAG_FALLBACK, FLAG_OUTPUTS_ON, Command, Link, LinkClosed, Sample
+from runtime import __version__
+from runtime.clock import DeadlineClock, LatencyStats
+from runtime.commands import schedule_from_config, tracked_names
+from runtime.config import Config, ConfigError
+from runtime.design import Design, design_from_config
+from runtime.estimator import Estimator, rate_pairs
+from runtime.fallback import make_fallback, settings_from_config
+from runtime.records import RunLogWriter, TripLog, log_paths
+from runtime.supervisor import MODE_CODE, Supervisor
+from runtime.telemetry import TelemetryServer
+from runtime.watchdog import Signals, Watchdog
+
+Array = NDArray[np.float64]
+
+
+# ------------------------------------------------------------------ the law adapter
+class LawAdapter:
+    """The adaptive law behind four calls, so the implementation can be swapped.
+
+    ``impl = "reference"`` uses `runtime.law.AdaptiveLaw` (numpy);
+    ``"fast"`` uses the compiled `runtime.fast.FastLaw`. Both see the
+    saturated applied input only through their own clipping (u is clipped to
+    the input limits before it is applied and fed back through u_n).
+    """
+
+    def __init__(self, design: Design, impl: str = "reference") -> None:
+        self.impl = impl
+        self.n, self.m = design.rig.n, design.rig.m
+        if impl == "fast":
+            from runtime.fast import FastLaw
+
+            self._fast: Any = FastLaw(design)
+            self._law: Any = None
+            # Compile (or load) the kernels now, not on the first engaged tick.
+            self._fast.init_state(np.zeros(self.n))
+            self._fast.step(np.zeros(self.n), np.zeros(design.K2.shape[1]))
+        else:
+            from runtime.law import AdaptiveLaw
+
+            self._law = AdaptiveLaw(design)
+            self._fast = None
+        self._state: Any = None
+        self.out: Any = None
+
+    def engage(self, x: Array) -> None:
+        """x_r = x, weights zero, adaptation on."""
+        if self._fast is not None:
+            self._fast.init_state(x)
+        else:
+            self._state = self._law.init_state(x)
+        self.frozen = False
+
+    @property
+    def frozen(self) -> bool:
+        """Adaptation held (a fallback is active)."""
+        return bool((self._fast or self._law).frozen)
+
+    @frozen.setter
+    def frozen(self, value: bool) -> None:
+        (self._fast or self._law).frozen = bool(value)
+
+    @property
+    def xr(self) -> Array:
+        """Reference state (live)."""
+        return self._fast.xr if self._fast is not None else self._state.xr
+
+    @property
+    def W(self) -> Array:
+        """Weights (live)."""
+        return self._fast.W if self._fast is not None else self._state.W
+
+    def step(self, x: Array, c: Array) -> Any:
+        """One adaptive tick; the result has u, u_raw, e, s, ratio, phi_d, eff_rate, ..."""
+        if self._fast is not None:
+            self.out = self._fast.step(x, c)
+        else:
+            self.out = self._law.step(self._state, x, c)
+        return self.out
+
+
+# ------------------------------------------------------------------ links
+def make_link(cfg: Config, spec: str | None, design: Design | None = None,
+              faults: Any = None) -> Link:
+    """The link a config (``rig.link``) or ``--link SPEC`` names.
+
+    ``sim``: the simulated rig in-process (`sim_rigs.link.SimLink`), stepped
+    by the loop. Other transports are added here.
+    """
+    kind = (spec or str(cfg.get("rig.link", "sim"))).split(":", 1)[0]
+    if kind == "sim":
+        from runtime.dryrun import plant_from_config
+        from sim_rigs.link import SimLink
+
+        design = design or design_from_config(cfg)
+        plant = plant_from_config(cfg, design)
+        return SimLink(plant, design.Ts, faults, rig_id=design.rig.name,
+                       states=design.rig.states, units=design.rig.state_units,
+                       inputs=design.rig.inputs,
+                       seed=int(cfg.number("plant.seed", 0, minimum=0)),
+                       command_timeout_s=cfg.number("rig.command_timeout_s", 0.05,
+                                                    positive=True, unit="s"))
+    full = spec or str(cfg.get("rig.link", "sim"))
+    if kind == "serial":  # serial:PATH[@BAUD] (drivers.serial_link)
+        from drivers.serial_link import SerialLink
+
+        try:
+            return SerialLink.from_url(full)
+        except ValueError as exc:
+            raise ConfigError("rig.link", str(exc), "write serial:PATH[@BAUD].") from None
+    if kind in ("mqtt", "mqtts"):  # mqtt://HOST:PORT/RIG, TLS and login from [link.mqtt]
+        from drivers.mqtt_link import MqttConfigError, MqttLink
+
+        try:
+            return MqttLink.from_url(full, cfg.get("link.mqtt", {}))
+        except MqttConfigError as exc:
+            raise ConfigError(exc.field, exc.problem, exc.fix) from None
+        except ValueError as exc:
+            raise ConfigError("rig.link", str(exc), "write mqtt://HOST:PORT/RIG.") from None
+    raise ConfigError("rig.link", f"link {kind!r} is not available in this build.",
+                      "use sim, serial:PATH[@BAUD] or mqtt://HOST:PORT/RIG.")
+
+
+def is_simulated(link: Link) -> bool:
+    """True for the in-process simulated rig."""
+    from sim_rigs.link import SimLink
+
+    return isinstance(link, SimLink)
+
+
+# ------------------------------------------------------------------ run settings
+@dataclass
+class RunSettings:
+    """Everything a run needs besides the config (command-line choices)."""
+
+    duration: float | None = None
+    auto_arm: bool = False
+    faults: list[str] = field(default_factory=list)
+    link: str | None = None
+    echo_trips: bool = True
+    """Print one line on stderr when a trip is on disk."""
+
+
+def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[str]]:
+    rig = design.rig
+    su = ",".join(rig.state_units)
+    iu = ",".join(rig.input_units)
+    out_units = ",".join(rig.state_units[i] for i in np.argmax(rig.C != 0, axis=1))
+    fields = [("t", 1, "s"), ("tick", 1, "1"), ("mode", 1, "code"), ("latched", 1, "1"),
+              ("c", p, out_units), ("x", rig.n, su), ("xr", rig.n, su), ("e", rig.n, su),
+              ("s", 1, "1"), ("ratio", 1, "1"), ("phi_d", 1, "1"), ("eff_rate", 1, "1"),
+              ("step_gain", 1, "1"), ("u_cmd", rig.m, iu), ("u", rig.m, iu),
+              ("w_norm", 1, "1"), ("sample_age_ms", 1, "ms"), ("lateness_us", 1, "us"),
+              ("outputs_on", 1, "1")]
+    return [f[0] for f in fields], [f[1] for f in fields], [f[2] for f in fields]
+
+
+# ------------------------------------------------------------------ the tick
+class TickCore:
+    """The per-tick logic and its records (runs in the clock thread or an asyncio task)."""
+
+    def __init__(self, cfg: Config, design: Design, link: Link, settings: RunSettings,
+                 log_dir: Path, simulated: bool) -> None:
+        self.cfg = cfg
+        self.design = d = design
+        self.link = link
+        self.settings = settings
+        self.simulated = simulated
+        rig = d.rig
+        self.Ts = Ts = d.Ts
+        self.n, self.m = rig.n, rig.m
+        self.tracked = tracked_names(rig.C, rig.states)
+        self.p = len(self.tracked)
+        schedule = schedule_from_config(cfg, self.tracked)
+        n_cmd = int(round(schedule.duration / Ts)) + 1
+        self.cmd_table = np.ascontiguousarray(schedule.evaluate(np.arange(n_cmd) * Ts))
+        self.law = LawAdapter(d, str(cfg.choice("loop.law", ("reference", "fast"),
+                                                "reference")))
+        channels = len(link.hello.channels) if link.hello is not None else rig.n
+        jump = cfg.vector("watchdog.jump_limit", rig.n, (0.5 * d.limits).tolist(),
+                          positive=True)
+        self.est = Estimator(rig.A, Ts, jump, channels=channels,
+                             cutoff_hz=cfg.number("estimator.cutoff_hz", 50.0, positive=True,
+                                                  unit="Hz"))
+        self.watchdog = Watchdog.from_config(cfg, Ts, d.clamp_margin)
+        self.sup = Supervisor(
+            settle_time=cfg.number("supervisor.settle_time", 0.5, minimum=0.0, unit="s"),
+            settle_rate_tol=cfg.number("supervisor.settle_rate_tol", 0.05, positive=True),
+            rate_states=tuple(j for _, j in rate_pairs(rig.A)),
+            disarm_action=cfg.choice("supervisor.disarm_action",
+                                     ("baseline", "controlled_stop", "outputs_off"),
+                                     "controlled_stop"),
+            stop_action=cfg.choice("supervisor.stop_action", ("controlled_stop", "outputs_off"),
+                                   "outputs_off"),
+        )
+        self.fb_settings = settings_from_config(cfg, self.p)
+        self.engage_slew = cfg.number("supervisor.engage_slew", 0.1, positive=True)
+        self.c_offset: Array | None = None
+        self.fb: Any = None
+        self.sig = Signals()
+        self.u_max = np.asarray(rig.input_limits, dtype=float)
+
+        # records
+        self.fields, self.widths, self.units = _capture_layout(d, self.p)
+        self.row_len = sum(self.widths)
+        offs = np.cumsum([0] + self.widths)
+        self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
+        pre_s = cfg.number("log.pre_capture_s", 1.0, minimum=0.0, unit="s")
+        post_s = cfg.number("log.post_capture_s", 1.0, minimum=0.0, unit="s")
+        self.pre_n = max(1, int(round(pre_s / Ts)))
+        self.post_n = int(round(post_s / Ts))
+        self.ring = np.zeros((self.pre_n, self.row_len))
+        self.post_buf = np.zeros((max(1, self.post_n), self.row_len))
+        self.post_count = 0
+        self.post_trip: int | None = None
+        self.post_later: list[dict[str, Any]] = []
+        self.row = np.zeros(self.row_len)
+        self.config_hash = cfg.hash()
+        run_path, trip_path = log_paths(log_dir, rig.name)
+        self.run_path, self.trip_path = run_path, trip_path
+        common = {"rig": rig.name, "config_hash": self.config_hash,
+                  "software_version": __version__, "config": cfg.raw, "period": Ts,
+                  "states": list(rig.states), "state_units": list(rig.state_units),
+                  "inputs": list(rig.inputs), "input_units": list(rig.input_units),
+                  "input_limits": self.u_max.tolist(), "tracked": list(self.tracked),
+                  "eps": d.eps, "levels": self.levels(), "simulated": simulated}
+        self.trip_log = TripLog(trip_path, {**common, "capture_fields": self.fields,
+                                            "capture_units": self.units,
+                                            "capture_widths": self.widths,
+                                            "watchdog": self.watchdog.settings()})
+        self.run_log = RunLogWriter(run_path, {**common, "fields": self.fields,
+                                               "widths": self.widths, "units": self.units})
+        self._writes: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self._writer = threading.Thread(target=self._write_records, name="corral-triplog",
+                                        daemon=True)
+        self._writer.start()
+        self.trips_written = 0
+
+        # live state
+        self.tick = 0
+        self.t = 0.0
+        self.requests: list[tuple[str, Callable[[bool, str], None]]] = []
+        self._req_lock = threading.Lock()
+        self.x: Array = np.zeros(self.n)
+        self.c: Array = np.zeros(self.p)
+        self.u: Array = np.zeros(self.m)
+        """Input applied (sent with outputs on) this tick."""
+        self.u_prev: Array = np.zeros(self.m)
+        self.u_cmd: Array = np.zeros(self.m)
+        self.outputs_on = False
+        self.engage_tick = 0
+        self.engagements: list[dict[str, Any]] = []
+        """Each engage: tick, x and x_r at that moment (tests and review)."""
+        self.e = np.zeros(self.n)
+        self.s = self.ratio = self.phi_d = self.eff_rate = self.step_gain = 0.0
+        self.clamped = False
+        self.ratio_rate = 0.0
+        self.max_ratio = 0.0
+        self.W_prev = np.zeros((d.n_regressors, self.m))
+        self.w_norm = self.w_rate = 0.0
+        self.sat_time = np.zeros(self.m)
+        self.last_sample_t = -math.inf
+        self.trips: list[dict[str, Any]] = []
+        self.trip_id = 0
+        self.current_trip: dict[str, Any] | None = None
+        self.recent_events: list[dict[str, Any]] = []
+        self.lateness = 0.0
+        self.loop_stats: LatencyStats | None = None
+        self.telemetry: TelemetryServer | None = None
+        self.tel_every = 40
+        self.misses_seen = 0
+        self._alpha_rr = math.exp(-2 * math.pi * 20.0 * Ts)
+        self.seq = 0
+        self._pending_trip: dict[str, Any] | None = None
+
+    # ------------------------------------------------------------- helpers
+    def levels(self) -> dict[str, float]:
+        """Margin warning and trip levels (fractions of eps)."""
+        r = self.watchdog.by_id if hasattr(self, "watchdog") else None
+        if r is None:
+            return {"warning": 0.8, "trip": 0.9}
+        return {"warning": r["margin_warning"].threshold, "trip": r["margin"].threshold}
+
+    def submit(self, op: str, reply: Callable[[bool, str], None]) -> None:
+        """Queue an operator request (thread-safe); it is handled at the next tick."""
+        with self._req_lock:
+            self.requests.append((op, reply))
+
+    def hello(self) -> dict[str, Any]:
+        """The telemetry hello map."""
+        d, rig = self.design, self.design.rig
+        return {"rig": rig.name, "states": list(rig.states),
+                "state_units": list(rig.state_units), "inputs": list(rig.inputs),
+                "input_units": list(rig.input_units), "input_limits": self.u_max.tolist(),
+                "limits": np.asarray(d.limits).tolist(),
+                "envelope": np.asarray(d.envelope).tolist(), "eps": d.eps,
+                "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
+                "tracked": list(self.tracked)}
+
+    def _start_fallback(self, kind: str) -> None:
+        self.law.frozen = True
+        self.fb = make_fallback(kind, self.design, self.fb_settings, self.u_prev, self.x)
+
+    def _event(self, kind: str, detail: str) -> None:
+        rec = {"type": "event", "t_mono": time.monotonic(), "t_wall": time.time(),
+               "tick": self.tick, "kind": kind, "detail": detail}
+        self.recent_events.append(rec)
+        del self.recent_events[:-20]
+        self._writes.put(("event", rec))
+        if self.telemetry is not None:
+            self.telemetry.post(rec)
+
+    def _drain_supervisor_events(self) -> None:
+        ev = self.sup.events
+        while ev:
+            kind, detail = ev.pop(0)
+            self._event(kind, detail)
+
+    # ------------------------------------------------------------- the tick
+    def step(self, sample: Sample | None, now: float) -> Command:
+        """One tick for this period's sample (None: none arrived); returns the command."""
+        Ts = self.Ts
+        k = self.tick
+        self.t = k * Ts
+        sup = self.sup
+
+        if self.requests:
+            with self._req_lock:
+                reqs, self.requests = self.requests, []
+            for op, reply in reqs:
+                self._handle_request(op, reply)
+
+        x = self.est.update(sample, now)
+        self.x = x
+        if sample is not None:
+            self.last_sample_t = now
+
+        law_ran = False
+        mode = sup.mode
+        if mode == "settling":
+            if self.fb is None:
+                self._start_fallback("baseline")
+            u, on, _ = self.fb.step(x)
+            self.u_cmd = u
+            if sup.settle_step(x, Ts):
+                self._engage(x)
+                mode = "engaged"
+        if mode == "engaged":
+            i = k - self.engage_tick
+            c = self.cmd_table[i if i < len(self.cmd_table) else -1]
+            off = self.c_offset
+            if off is not None:
+                c = c + off
+                off -= np.clip(off, -self.engage_slew * Ts, self.engage_slew * Ts)
+                if not np.any(off):
+                    self.c_offset = None
+            self.c = c
+            out = self.law.step(x, c)
+            u, on = out.u, True
+            law_ran = True
+            self.e = out.e
+            self.s = float(out.s)
+            ratio = float(out.ratio)
+            self.ratio_rate = (self._alpha_rr * self.ratio_rate
+                               + (1 - self._alpha_rr) * (ratio - self.ratio) / Ts)
+            self.ratio = ratio
+            self.phi_d = float(out.phi_d)
+            self.eff_rate = float(out.eff_rate)
+            self.step_gain = float(out.step_gain)
+            self.clamped = bool(out.clamped)
+            self.u_cmd = np.asarray(out.u_raw)
+            if ratio > self.max_ratio:
+                self.max_ratio = ratio
+            W = self.law.W
+            self.w_norm = float(np.sqrt(np.sum(W * W)))
+            dW = W - self.W_prev
+            self.w_rate = float(np.sqrt(np.sum(dW * dW))) / Ts
+            self.W_prev[:] = W
+        elif mode == "fallback":
+            u, on, done = self.fb.step(x)
+            self.u_cmd = u
+            if done:
+                sup.fallback_done()
+        elif mode != "settling":
+            u, on = np.zeros(self.m), False
+            self.u_cmd = u
+
+        # watchdog: every rule, same tick
+        sig = self.sig
+        sig.t = self.t
+        sig.tick = k
+        sig.engaged = law_ran
+        sig.ratio = self.ratio if law_ran else 0.0
+        sig.ratio_rate = self.ratio_rate if law_ran else 0.0
+        sig.clamped = self.clamped and law_ran
+        sig.sample_age = self.est.age
+        sig.frozen_age = self.est.frozen_age
+        sig.seq_gap = self.est.seq_gap
+        sig.connected = bool(getattr(self.link.stats, "connected", True))
+        sig.since_sample = now - self.last_sample_t
+        finite = bool(np.all(np.isfinite(u))) and (not law_ran or bool(np.isfinite(self.w_norm)))
+        sig.nonfinite = self.est.nonfinite or not finite
+        sig.jump = self.est.jump
+        if on:
+            sat = np.abs(self.u_cmd) >= self.u_max
+            self.sat_time = np.where(sat, self.sat_time + Ts, 0.0)
+        else:
+            self.sat_time[:] = 0.0
+        sig.sat_time = float(np.max(self.sat_time))
+        stats = self.loop_stats
+        if stats is not None:
+            missed = stats.misses > self.misses_seen
+            self.misses_seen = stats.misses
+            sig.misses_window = self.watchdog.note_miss(k, missed)
+        sig.w_norm = self.w_norm if law_ran else 0.0
+        sig.w_rate = self.w_rate if law_ran else 0.0
+        tripped = self.watchdog.check(sig)
+        t_detect = time.monotonic() if tripped else 0.0
+        trip_ctx = None
+        if tripped and (sup.mode in ("settling", "engaged", "fallback")
+                        or (sup.mode == "stopped" and sup.latched)):
+            trip_ctx = self._on_trips(tripped, u, on)
+            if trip_ctx is not None:
+                u, on = trip_ctx["u"], trip_ctx["on"]
+        if not np.all(np.isfinite(u)):
+            u, on = np.zeros(self.m), False
+
+        # command
+        self.seq += 1
+        flags = FLAG_OUTPUTS_ON if on else 0
+        if sup.mode == "fallback":
+            flags |= FLAG_FALLBACK
+        u_out = np.clip(u, -self.u_max, self.u_max) if on else np.zeros(self.m)
+        cmd = Command(sample.seq if sample is not None else self.seq,
+                      (float(u_out[0]), float(u_out[1])) if self.m == 2
+                      else tuple(float(v) for v in u_out), flags)
+        self.u_prev = u_out
+        self.u = u_out
+        self.outputs_on = on
+        if trip_ctx is not None:
+            trip_ctx["t_detect"] = t_detect
+        self._pending_trip = trip_ctx
+        return cmd
+
+    def after_send(self, t_sent: float) -> None:
+        """Record the tick (after the command is out): row, ring, trip record, telemetry."""
+        k = self.tick
+        row = self.row
+        sl = self.slot
+        row[0] = self.t
+        row[1] = k
+        row[2] = MODE_CODE[self.sup.mode]
+        row[3] = float(self.sup.latched)
+        row[sl["c"]] = self.c
+        row[sl["x"]] = self.x
+        engaged = self.sup.mode == "engaged"
+        row[sl["xr"]] = self.x - self.e if engaged else self.x
+        row[sl["e"]] = self.e if engaged else 0.0
+        row[sl["s"]] = self.s if engaged else 0.0
+        row[sl["ratio"]] = self.ratio if engaged else 0.0
+        row[sl["phi_d"]] = self.phi_d
+        row[sl["eff_rate"]] = self.eff_rate
+        row[sl["step_gain"]] = self.step_gain
+        row[sl["u_cmd"]] = self.u_cmd
+        row[sl["u"]] = self.u
+        row[sl["w_norm"]] = self.w_norm
+        row[sl["sample_age_ms"]] = min(self.est.age, 1e6) * 1e3
+        row[sl["lateness_us"]] = self.lateness * 1e6
+        row[sl["outputs_on"]] = float(self.outputs_on)
+        self.ring[k % self.pre_n] = row
+        self.run_log.append(row.tolist())
+        trip = self._pending_trip
+        if trip is not None:
+            self._finish_trip(trip, t_sent)
+        elif self.post_trip is not None:
+            self.post_buf[self.post_count] = row
+            self.post_count += 1
+            if self.post_count >= self.post_n:
+                self._flush_post()
+        if self.sup.events:
+            self._drain_supervisor_events()
+        if self.telemetry is not None and k % self.tel_every == 0:
+            self.telemetry.publish(self.telemetry_record())
+        self.tick = k + 1
+
+    # ------------------------------------------------------------- engage / requests
+    def _engage(self, x: Array) -> None:
+        self.fb = None
+        self.law.engage(x)
+        self.engage_tick = self.tick
+        self.W_prev[:] = 0.0
+        # The command starts at the measured pose and slews onto the schedule, so the
+        # reference model does not start with a step the untrained law cannot follow.
+        off = self.design.rig.C @ x - self.cmd_table[0]
+        self.c_offset = off if np.any(off) else None
+        self.ratio = self.ratio_rate = 0.0
+        self.e = np.zeros(self.n)
+        self.engagements.append({"tick": self.tick, "x": x.tolist(),
+                                 "xr": np.array(self.law.xr).tolist()})
+
+    def _handle_request(self, op: str, reply: Callable[[bool, str], None]) -> None:
+        decision = self.sup.request(op, self.watchdog.conditions_present())
+        if decision.action is not None:
+            if decision.action == "outputs_off" or self.sup.mode == "stopped":
+                self.fb = None
+                self.law.frozen = True
+            else:
+                self._start_fallback(decision.action)
+        if decision.enter_settling:
+            self.fb = None  # a fresh bumpless hold starts this tick
+        self._drain_supervisor_events()
+        reply(decision.ok, decision.message)
+
+    # ------------------------------------------------------------- trips
+    def _on_trips(self, rules: list[Any], u: Array, on: bool) -> dict[str, Any] | None:
+        sup = self.sup
+        first_new = not sup.latched
+        before = sup.current_reaction
+        entries = []
+        for rule in rules:
+            action = sup.trip(rule.id, rule.reaction)
+            entries.append({**rule.describe(), "tick": self.tick, "action": action})
+        action = sup.current_reaction or "outputs_off"
+        if action != before:
+            if action == "outputs_off":
+                self.fb = None
+                self.law.frozen = True
+                u, on = np.zeros(self.m), False
+            else:
+                self._start_fallback(action)
+                u, on, _ = self.fb.step(self.x)
+        if first_new:
+            self.trip_id += 1
+            ctx = {"first": entries[0], "later": entries[1:], "action": action,
+                   "u": u, "on": on, "new": True}
+        else:
+            self.post_later.extend(entries)
+            ctx = {"first": None, "later": entries, "action": action, "u": u, "on": on,
+                   "new": False}
+        return ctx
+
+    def _finish_trip(self, ctx: dict[str, Any], t_sent: float) -> None:
+        d2a = (t_sent - ctx["t_detect"]) * 1e6
+        if not ctx["new"]:
+            for e in ctx["later"]:
+                self.trips[-1]["later"].append(e["rule"])
+            if self.post_trip is not None:
+                self.post_buf[self.post_count] = self.row
+                self.post_count += 1
+                if self.post_count >= self.post_n:
+                    self._flush_post()
+            return
+        if self.post_trip is not None:
+            self._flush_post()
+        k = self.tick
+        n_pre = min(k + 1, self.pre_n)
+        idx = (np.arange(k + 1 - n_pre, k + 1)) % self.pre_n
+        pre = self.ring[idx].copy()
+        first = ctx["first"]
+        link_stats: dict[str, Any] = {}
+        with contextlib.suppress(Exception):
+            link_stats = dict(self.link.stats.as_dict())
+        link_stats["sample_age_ms"] = float(min(self.est.age, 1e6) * 1e3)
+        stats = self.loop_stats
+        p50, p99, mx = stats.percentiles_us() if stats is not None else (math.nan,) * 3
+        rec = {
+            "type": "trip", "id": self.trip_id, "t_mono": ctx["t_detect"], "t_wall": time.time(),
+            "tick": k, "t": self.t,
+            "first_out": {key: first[key] for key in ("rule", "signal", "value", "threshold")},
+            "later": [{key: e[key] for key in ("rule", "signal", "value", "threshold", "tick")}
+                      for e in ctx["later"]],
+            "action": ctx["action"], "detect_to_action_us": d2a,
+            "snapshot": {
+                "mode": self.sup.mode, "W": np.array(self.law.W).tolist()
+                if self.law.out is not None else [],
+                "x": self.x.tolist(), "xr": (self.x - self.e).tolist(), "e": self.e.tolist(),
+                "u_cmd": np.asarray(self.u_cmd).tolist(), "u_applied": self.u.tolist(),
+                "eps": self.design.eps, "phi_d": self.phi_d, "ratio": self.ratio,
+                "loop": {"ticks": k + 1, "lateness_p50_us": p50, "lateness_p99_us": p99,
+                         "lateness_max_us": mx,
+                         "deadline_misses": stats.misses if stats is not None else 0,
+                         "lateness_us": self.lateness * 1e6},
+                "link": link_stats,
+            },
+            "config_hash": self.config_hash, "software_version": __version__,
+            "rig": self.design.rig.name, "events": list(self.recent_events),
+            "pre": pre,
+        }
+        summary = {"id": self.trip_id, "rule": first["rule"], "tick": k, "t": self.t,
+                   "action": ctx["action"], "detect_to_action_us": d2a,
+                   "value": first["value"], "threshold": first["threshold"],
+                   "later": [e["rule"] for e in ctx["later"]]}
+        self.trips.append(summary)
+        self.current_trip = summary
+        self._writes.put(("trip", rec))
+        if self.telemetry is not None:
+            self.telemetry.post({"type": "trip", **summary})
+        self.post_trip = self.trip_id
+        self.post_count = 0
+        self.post_later = []
+        if self.post_n == 0:
+            self._flush_post()
+
+    def _flush_post(self) -> None:
+        if self.post_trip is None:
+            return
+        rec = {"type": "post", "trip_id": self.post_trip,
+               "rows": self.post_buf[:self.post_count].copy(), "later": list(self.post_later)}
+        self._writes.put(("post", rec))
+        self.post_trip = None
+        self.post_count = 0
+
+    def _write_records(self) -> None:
+        while True:
+            item = self._writes.get()
+            if item is None:
+                return
+            kind, rec = item
+            try:
+                if kind in ("trip", "post"):
+                    rec = dict(rec)
+                    key = "pre" if kind == "trip" else "rows"
+                    rec[key] = np.asarray(rec[key]).tolist()
+                self.trip_log.append(rec)
+            except Exception as exc:  # noqa: BLE001 - a full disk must not stop the loop
+                print(f"corral: could not write the trip log: {exc}", file=sys.stderr)
+                continue
+            if kind == "trip":
+                self.trips_written += 1
+                if self.settings.echo_trips:
+                    print(f"corral: trip {rec['id']} ({rec['first_out']['rule']}, action "
+                          f"{rec['action']}) logged to {self.trip_path}", file=sys.stderr,
+                          flush=True)
+
+    def close(self) -> None:
+        """Flush the post capture, then close the trip log and run log writers."""
+        if self.post_trip is not None:
+            self._flush_post()
+        self._drain_supervisor_events()
+        self._writes.put(None)
+        self._writer.join(10.0)
+        self.trip_log.close()
+        self.run_log.close(10.0)
+
+    # ------------------------------------------------------------- telemetry
+    def telemetry_record(self) -> dict[str, Any]:
+        """The decimated telemetry map (docs/telemetry.md)."""
+        stats = self.loop_stats
+        p50, p99, _ = stats.percentiles_us() if stats is not None else (math.nan,) * 3
+        engaged = self.sup.mode == "engaged"
+        ttb = None
+        if engaged and self.ratio_rate > 1e-9 and self.ratio < 1.0:
+            ttb = (1.0 - self.ratio) / self.ratio_rate
+        link: dict[str, Any] = {}
+        with contextlib.suppress(Exception):
+            link = dict(self.link.stats.as_dict())
+        link["sample_age_ms"] = float(min(self.est.age, 1e6) * 1e3)
+        for key, v in list(link.items()):
+            if isinstance(v, float) and not math.isfinite(v):
+                link[key] = None
+        xr = (self.x - self.e) if engaged else self.x
+        return {
+            "type": "telemetry", "t": self.t, "tick": self.tick, "mode": self.sup.mode,
+            "latched": self.sup.latched, "fallback": self.sup.fallback,
+            "ratio": self.ratio if engaged else 0.0, "s": self.s if engaged else 0.0,
+            "eps": self.design.eps, "phi_d": self.phi_d, "eff_rate": self.eff_rate,
+            "step_gain": self.step_gain, "step_gain_cap": self.design.step_gain_cap,
+            "c": self.c.tolist(), "x": self.x.tolist(), "xr": xr.tolist(),
+            "e": (self.e if engaged else np.zeros(self.n)).tolist(),
+            "u": self.u.tolist(), "u_raw": np.asarray(self.u_cmd).tolist(),
+            "w_norm": self.w_norm, "w_rate": self.w_rate, "sat_time": self.sat_time.tolist(),
+            "time_to_bound": ttb,
+            "loop": {"rate_hz": 1.0 / self.Ts, "lateness_p50_us": _finite(p50),
+                     "lateness_p99_us": _finite(p99),
+                     "deadline_misses": stats.misses if stats is not None else 0,
+                     "ticks": self.tick},
+            "link": link, "trip": self.current_trip if self.sup.latched else None,
+            "trips": list(self.trips[-20:]),
+        }
+
+
+def _finite(v: float) -> float | None:
+    return v if math.isfinite(v) else None
+
+
+# ------------------------------------------------------------------ the runner
+class Runner:
+    """Builds a run from a config and drives it: tasks, clock, shutdown."""
+
+    def __init__(self, cfg: Config, settings: RunSettings) -> None:
+        from sim_rigs.faults import FaultError, FaultSchedule
+
+        self.cfg = cfg
+        self.settings = settings
+        self.design = design_from_config(cfg)
+        if not self.design.feasible:
+            raise ConfigError("design", "the design is refused: " + "; ".join(
+                self.design.reasons), "run `corral design CONFIG` and fix what it names.")
+        try:
+            self.faults = FaultSchedule.from_config(cfg, settings.faults)
+        except FaultError as exc:
+            raise ConfigError("faults", str(exc), "see docs/operating.md for fault syntax.") \
+                from None
+        self.link = make_link(cfg, settings.link, self.design, self.faults)
+        self.simulated = is_simulated(self.link)
+        if self.faults.faults and not self.simulated:
+            raise ConfigError("faults", "fault injection needs the simulated rig.",
+                              "drop --fault and [[faults]] for a real rig.")
+        self.log_dir = Path(str(cfg.get("log.dir", "runs")))
+        self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
+                             self.simulated)
+        self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"
+        rate = cfg.number("telemetry.rate_hz", 25.0, positive=True, unit="Hz")
+        self.telemetry = TelemetryServer(self.socket_path, self.core.hello(), self.core.submit,
+                                         rate_hz=rate,
+                                         client_buffer=int(cfg.number(
+                                             "telemetry.client_buffer", 256 * 1024,
+                                             positive=True)))
+        self.core.telemetry = self.telemetry
+        self.core.tel_every = max(1, int(round(1.0 / (self.telemetry.rate_hz * self.design.Ts))))
+        self.clock = DeadlineClock(self.design.Ts,
+                                   spin_us=cfg.number("loop.spin_us", 200.0, minimum=0.0),
+                                   realtime=cfg.flag("loop.realtime", True))
+        self.core.loop_stats = self.clock.stats
+        # The tick thread must get the GIL back quickly from the writer and socket
+        # threads; the default 5 ms switch interval would make every wake-up wait.
+        self.switch_interval = cfg.number("loop.switch_interval_us", 100.0, positive=True) * 1e-6
+        self.stop_event: asyncio.Event | None = None
+        self.error: BaseException | None = None
+        self.ready = threading.Event()
+
+    def request_stop(self) -> None:
+        """End the run (thread-safe)."""
+        ev = self.stop_event
+        if ev is not None and self._loop is not None:
+            with contextlib.suppress(RuntimeError):
+                self._loop.call_soon_threadsafe(ev.set)
+
+    async def run(self) -> dict[str, Any]:
+        """Run until the duration ends or `request_stop`; returns the summary."""
+        self._loop = asyncio.get_running_loop()
+        self.stop_event = asyncio.Event()
+        old_switch = sys.getswitchinterval()
+        sys.setswitchinterval(self.switch_interval)
+        try:
+            async with self.link:
+                async with asyncio.TaskGroup() as tg:
+                    tel = tg.create_task(self.telemetry.serve(), name="telemetry")
+                    if self.settings.auto_arm:
+                        self.core.submit("arm", lambda ok, msg: None)
+                    await asyncio.sleep(0)
+                    self.ready.set()
+                    try:
+                        if self.simulated:
+                            await self._host_clocked()
+                        else:
+                            await self._rig_clocked()
+                    finally:
+                        tel.cancel()
+        finally:
+            sys.setswitchinterval(old_switch)
+            self.core.close()
+        if self.error is not None:
+            raise self.error
+        return self.summary()
+
+    async def _host_clocked(self) -> None:
+        core, link, clock = self.core, self.link, self.clock
+        assert self.stop_event is not None
+        end_tick = (int(round(self.settings.duration / core.Ts))
+                    if self.settings.duration is not None else None)
+        loop = asyncio.get_running_loop()
+        finished = asyncio.Event()
+        mono = time.monotonic
+
+        base: list[float] = []
+
+        def tick(k: int, deadline: float) -> None:
+            core.lateness = mono() - deadline
+            if not base:
+                base.append(deadline)
+            # Rig time of this tick on the host clock: skipped deadlines are counted by
+            # the overrun rule, they do not age the simulated rig's samples.
+            t_nom = base[0] + core.tick * core.Ts
+            sample = link.sample_now(t_nom)  # type: ignore[attr-defined]
+            cmd = core.step(sample, t_nom)
+            t_sent = mono()
+            link.apply(cmd)  # type: ignore[attr-defined]
+            core.after_send(t_sent)
+            if end_tick is not None and core.tick >= end_tick:
+                clock.stop()
+
+        def on_exit() -> None:
+            with contextlib.suppress(RuntimeError):
+                loop.call_soon_threadsafe(finished.set)
+
+        clock.start(tick, on_exit)
+        stop_wait = asyncio.ensure_future(self.stop_event.wait())
+        done_wait = asyncio.ensure_future(finished.wait())
+        try:
+            await asyncio.wait({stop_wait, done_wait}, return_when=asyncio.FIRST_COMPLETED)
+        finally:
+            stop_wait.cancel()
+            done_wait.cancel()
+            clock.stop()
+            await asyncio.to_thread(clock.join, 5.0)
+            # Outputs off before anything else happens.
+            with contextlib.suppress(Exception):
+                link.apply(Command(core.seq + 1, (0.0,) * core.m, 0))  # type: ignore[attr-defined]
+        if clock.error is not None:
+            self.error = clock.error
+
+    async def _rig_clocked(self) -> None:
+        core, link = self.core, self.link
+        assert self.stop_event is not None
+        stats = self.clock.stats
+        timeout = core.Ts * 2
+        end = (time.monotonic() + self.settings.duration
+               if self.settings.duration is not None else math.inf)
+        try:
+            while not self.stop_event.is_set() and time.monotonic() < end:
+                try:
+                    sample: Sample | None = await asyncio.wait_for(link.receive(), timeout)
+                except TimeoutError:
+                    sample = None
+                now = time.monotonic()
+                ref = sample.t_host if sample is not None and sample.t_host else now
+                core.lateness = now - ref
+                stats.add(core.lateness)
+                cmd = core.step(sample, now)
+                t_sent = time.monotonic()
+                await link.send(cmd)
+                core.after_send(t_sent)
+        except LinkClosed:
+            pass
+        finally:
+            with contextlib.suppress(Exception):
+                await link.send(Command(core.seq + 1, (0.0,) * core.m, 0))
+
+    def summary(self) -> dict[str, Any]:
+        """The run's figures (the `--json` object)."""
+        core = self.core
+        p50, p99, mx = self.clock.stats.percentiles_us()
+        return {
+            "ticks": core.tick, "deadline_misses": self.clock.stats.misses,
+            "lateness_p50_us": _finite(p50), "lateness_p99_us": _finite(p99),
+            "lateness_max_us": _finite(mx), "max_margin_ratio": core.max_ratio,
+            "trips": list(core.trips), "trip_log": str(core.trip_path),
+            "run_log": str(core.run_path), "socket": str(self.socket_path),
+            "mode": core.sup.mode, "latched": core.sup.latched,
+            "engagements": len(core.engagements), "clock": self.clock.granted,
+            "run_log_dropped": core.run_log.dropped,
+            "telemetry_clients_dropped": self.telemetry.dropped_clients,
+            "simulated": self.simulated, "rig": self.design.rig.name,
+            "config_hash": core.config_hash,
+        }

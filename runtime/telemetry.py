@@ -1,0 +1,206 @@
+"""The telemetry and operator socket: a Unix stream socket speaking msgpack maps.
+
+Server -> client: one ``hello`` map on connect, then ``telemetry`` maps at
+``telemetry.rate_hz`` (default 25 Hz, clamped to 1..50), ``trip`` maps when a
+trip happens and ``reply`` maps answering requests. Client -> server:
+``{"type": "request", "op": "arm" | "disarm" | "reset" | "stop"}``. The map
+fields are listed in docs/telemetry.md.
+
+A slow client is dropped, never waited for: messages go out through the
+transport without awaiting a drain, and a client whose unsent bytes exceed
+``telemetry.client_buffer`` (default 256 KiB) is disconnected and counted.
+The tick thread hands records over with `publish` (latest wins) and `post`
+(queued, thread-safe); packing and socket writes happen on the event loop.
+
+What does not live here: the records themselves (built by `runtime.loop`),
+the dashboard that reads them (`runtime.cmd_watch`).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import os
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import msgpack
+
+RequestHandler = Callable[[str, Callable[[bool, str], None]], None]
+
+
+class _Client:
+    def __init__(self, writer: asyncio.StreamWriter) -> None:
+        self.writer = writer
+        self.closed = False
+
+
+class TelemetryServer:
+    """The socket server (see the module docstring). Run `serve()` as a task."""
+
+    def __init__(self, path: str | Path, hello: dict[str, Any], on_request: RequestHandler,
+                 rate_hz: float = 25.0, client_buffer: int = 256 * 1024) -> None:
+        self.path = str(path)
+        self.hello = {"type": "hello", **hello}
+        self.on_request = on_request
+        self.rate_hz = min(50.0, max(1.0, float(rate_hz)))
+        self.client_buffer = int(client_buffer)
+        self.clients: list[_Client] = []
+        self.dropped_clients = 0
+        self.sent = 0
+        self._latest: dict[str, Any] | None = None
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._server: asyncio.AbstractServer | None = None
+
+    # ------------------------------------------------------------ from the tick thread
+    def publish(self, record: dict[str, Any]) -> None:
+        """Offer the newest telemetry record (thread-safe; only the latest is sent)."""
+        self._latest = record
+
+    def post(self, record: dict[str, Any]) -> None:
+        """Send a record to every client soon (thread-safe): trips and events."""
+        loop = self._loop
+        if loop is not None and not loop.is_closed():
+            with contextlib.suppress(RuntimeError):
+                loop.call_soon_threadsafe(self._broadcast, record)
+
+    # ------------------------------------------------------------ event-loop side
+    async def serve(self) -> None:
+        """Listen and stream telemetry until cancelled; removes the socket file at the end."""
+        self._loop = asyncio.get_running_loop()
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(self.path)
+        Path(self.path).parent.mkdir(parents=True, exist_ok=True)
+        self._server = await asyncio.start_unix_server(self._handle, path=self.path)
+        try:
+            period = 1.0 / self.rate_hz
+            while True:
+                await asyncio.sleep(period)
+                rec, self._latest = self._latest, None
+                if rec is not None:
+                    self._broadcast(rec)
+        finally:
+            self._server.close()
+            for c in list(self.clients):
+                self._drop(c, count=False)
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(self.path)
+
+    def _broadcast(self, record: dict[str, Any]) -> None:
+        if not self.clients:
+            return
+        data = msgpack.packb(record, use_bin_type=True)
+        for c in list(self.clients):
+            self._send(c, data)
+
+    def _send(self, c: _Client, data: bytes) -> None:
+        if c.closed:
+            return
+        transport = c.writer.transport
+        if transport.is_closing():
+            self._drop(c, count=False)
+            return
+        if transport.get_write_buffer_size() + len(data) > self.client_buffer:
+            self._drop(c, count=True)
+            return
+        c.writer.write(data)
+        self.sent += 1
+
+    def _drop(self, c: _Client, count: bool) -> None:
+        if c.closed:
+            return
+        c.closed = True
+        if count:
+            self.dropped_clients += 1
+        if c in self.clients:
+            self.clients.remove(c)
+        with contextlib.suppress(Exception):
+            c.writer.transport.abort()
+
+    async def _handle(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        c = _Client(writer)
+        # Never let the transport pause us: we police the buffer ourselves.
+        writer.transport.set_write_buffer_limits(high=self.client_buffer * 4)
+        self.clients.append(c)
+        self._send(c, msgpack.packb(self.hello, use_bin_type=True))
+        unpacker = msgpack.Unpacker(raw=False, max_buffer_size=1 << 20)
+        try:
+            while not c.closed:
+                chunk = await reader.read(4096)
+                if not chunk:
+                    break
+                unpacker.feed(chunk)
+                for msg in unpacker:
+                    self._on_message(c, msg)
+        except (ConnectionError, ValueError, msgpack.UnpackException):
+            pass
+        finally:
+            self._drop(c, count=False)
+
+    def _on_message(self, c: _Client, msg: Any) -> None:
+        if not isinstance(msg, dict) or msg.get("type") != "request":
+            self._reply(c, str(msg.get("op", "")) if isinstance(msg, dict) else "", False,
+                        'expected {"type": "request", "op": ...}')
+            return
+        op = str(msg.get("op", ""))
+        loop = self._loop
+
+        def reply(ok: bool, message: str) -> None:
+            if loop is not None and not loop.is_closed():
+                with contextlib.suppress(RuntimeError):
+                    loop.call_soon_threadsafe(self._reply, c, op, ok, message)
+
+        self.on_request(op, reply)
+
+    def _reply(self, c: _Client, op: str, ok: bool, message: str) -> None:
+        self._send(c, msgpack.packb({"type": "reply", "op": op, "ok": ok, "message": message},
+                                    use_bin_type=True))
+
+
+class TelemetryClient:
+    """A small client for tests and tools: read maps, send requests."""
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = str(path)
+        self.reader: asyncio.StreamReader | None = None
+        self.writer: asyncio.StreamWriter | None = None
+        self.unpacker = msgpack.Unpacker(raw=False)
+        self.pending: list[dict[str, Any]] = []
+
+    async def connect(self) -> dict[str, Any]:
+        """Connect; returns the hello map."""
+        self.reader, self.writer = await asyncio.open_unix_connection(self.path)
+        return await self.next("hello")
+
+    async def next(self, kind: str | None = None, timeout: float = 5.0) -> dict[str, Any]:
+        """The next map (of `kind`, skipping others)."""
+        assert self.reader is not None
+        async with asyncio.timeout(timeout):
+            while True:
+                while self.pending:
+                    msg = self.pending.pop(0)
+                    if kind is None or msg.get("type") == kind:
+                        return msg
+                chunk = await self.reader.read(65536)
+                if not chunk:
+                    raise ConnectionError("telemetry socket closed")
+                self.unpacker.feed(chunk)
+                self.pending.extend(self.unpacker)
+
+    async def request(self, op: str, timeout: float = 5.0) -> dict[str, Any]:
+        """Send a request and wait for its reply."""
+        assert self.writer is not None
+        self.writer.write(msgpack.packb({"type": "request", "op": op}, use_bin_type=True))
+        await self.writer.drain()
+        while True:
+            msg = await self.next("reply", timeout)
+            if msg.get("op") == op:
+                return msg
+
+    async def close(self) -> None:
+        """Close the connection."""
+        if self.writer is not None:
+            self.writer.close()
+            with contextlib.suppress(Exception):
+                await self.writer.wait_closed()

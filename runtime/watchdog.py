@@ -1,0 +1,245 @@
+"""The watchdog: every rule on every tick, first-out and later trips.
+
+Each rule is one small object with an id (the shared contract's names), the
+signal it watches, a threshold, an on-delay (the condition must hold that
+long before it trips), a clearing deadband (it counts as gone only below
+threshold - deadband) and the reaction (fallback name) it asks for. The
+rule's value is a plain function of the tick's `Signals`.
+
+`Watchdog.check(sig)` runs every rule and returns the rules that tripped on
+this tick, first-out first (rule order breaks ties: the most specific data
+faults come before the margin). The loop reacts in the same tick. The
+supervisor asks `Watchdog.clear()` whether a reset may be granted.
+
+Config (all optional, defaults in `DEFAULTS`): ``[watchdog]`` thresholds
+(``margin_warning``, ``margin_trip``, ``predicted_horizon_s``,
+``stale_periods``, ``seq_gap_max``, ``link_timeout_s``, ``saturation_s``,
+``overrun_misses``, ``overrun_window``, ``weight_norm_max``,
+``weight_rate_max``, ``jump_limit``), and per rule
+``[watchdog.rules.<id>]`` with ``reaction``, ``on_delay_s``, ``deadband``,
+``enabled``.
+
+The software watchdog is not a safety-rated function and not an emergency
+stop; the device must fail safe on its own when commands stop arriving.
+
+What does not live here: the fallbacks (`runtime.fallback`), the mode
+machine (`runtime.supervisor`), the trip log (`runtime.records`).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+REACTIONS = ("baseline", "controlled_stop", "outputs_off")
+SEVERITY = {"none": 0, "baseline": 1, "controlled_stop": 2, "outputs_off": 3}
+
+RULE_IDS = ("margin_warning", "margin", "predicted_crossing", "clamp", "stale", "seq_gap",
+            "link_loss", "nonfinite", "jump", "saturation", "overrun", "weight_norm",
+            "weight_rate")
+
+# Safe default reaction per rule: data that cannot be trusted -> outputs off;
+# the adaptive part misbehaving -> the fixed-gain baseline; the drive pinned
+# at its limit -> a controlled stop.
+DEFAULT_REACTIONS = {
+    "margin_warning": "none", "margin": "baseline", "predicted_crossing": "baseline",
+    "clamp": "baseline", "stale": "outputs_off", "seq_gap": "baseline",
+    "link_loss": "outputs_off", "nonfinite": "outputs_off", "jump": "baseline",
+    "saturation": "controlled_stop", "overrun": "baseline", "weight_norm": "baseline",
+    "weight_rate": "baseline",
+}
+
+DEFAULTS: dict[str, Any] = {
+    "margin_warning": 0.8,
+    "margin_trip": 0.9,
+    "predicted_horizon_s": 0.01,
+    "stale_periods": 3,
+    "seq_gap_max": 0,
+    "link_timeout_s": 0.1,
+    "saturation_s": 0.5,
+    "overrun_misses": 10,
+    "overrun_window": 1000,
+    "weight_norm_max": 100.0,
+    "weight_rate_max": 1000.0,
+}
+
+
+@dataclass
+class Signals:
+    """What the watchdog sees on one tick (filled in place by the loop)."""
+
+    t: float = 0.0
+    tick: int = 0
+    engaged: bool = False
+    """The adaptive law ran this tick (margin and weight rules apply)."""
+    ratio: float = 0.0
+    ratio_rate: float = 0.0
+    """d(ratio)/dt (1/s), filtered."""
+    clamped: bool = False
+    sample_age: float = 0.0
+    frozen_age: float = 0.0
+    seq_gap: int = 0
+    connected: bool = True
+    since_sample: float = 0.0
+    nonfinite: bool = False
+    nonfinite_where: str = ""
+    jump: float = 0.0
+    sat_time: float = 0.0
+    misses_window: int = 0
+    w_norm: float = 0.0
+    w_rate: float = 0.0
+
+
+@dataclass
+class Rule:
+    """One watchdog rule."""
+
+    id: str
+    signal: str
+    threshold: float
+    value: Callable[[Signals], float]
+    reaction: str = "baseline"
+    on_delay: float = 0.0
+    deadband: float = 0.0
+    engaged_only: bool = False
+    warning_only: bool = False
+    enabled: bool = True
+    since: float = field(default=math.nan)
+    active: bool = False
+    last_value: float = 0.0
+
+    def evaluate(self, sig: Signals) -> bool:
+        """Update the rule's state; True when it trips (newly) on this tick."""
+        if not self.enabled or (self.engaged_only and not sig.engaged):
+            self.since = math.nan
+            self.last_value = 0.0
+            if self.active and self.engaged_only:
+                self.active = False
+            return False
+        v = self.value(sig)
+        self.last_value = v
+        over = not (v < self.threshold)  # NaN counts as over
+        if self.active:
+            if v < self.threshold - self.deadband:
+                self.active = False
+                self.since = math.nan
+            return False
+        if not over:
+            self.since = math.nan
+            return False
+        if math.isnan(self.since):
+            self.since = sig.t
+        if sig.t - self.since + 1e-12 >= self.on_delay:
+            self.active = True
+            return True
+        return False
+
+    def describe(self) -> dict[str, Any]:
+        """Rule, signal, value and threshold (a first-out or later entry)."""
+        v = self.last_value
+        return {"rule": self.id, "signal": self.signal,
+                "value": float(v) if math.isfinite(v) else str(v),
+                "threshold": float(self.threshold)}
+
+
+def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
+    """The rules a config asks for, in first-out tie-break order."""
+
+    def num(key: str) -> float:
+        return float(cfg.number(f"watchdog.{key}", DEFAULTS[key]) if cfg is not None
+                     else DEFAULTS[key])
+
+    stale_s = num("stale_periods") * period
+    horizon = num("predicted_horizon_s")
+    rules = [
+        Rule("nonfinite", "non-finite value", 0.5, lambda s: float(s.nonfinite)),
+        Rule("link_loss", "seconds without a sample (inf: disconnected)", num("link_timeout_s"),
+             lambda s: s.since_sample if s.connected else math.inf),
+        Rule("stale", "sample age (s)", stale_s + 0.5 * period,
+             lambda s: max(s.sample_age, s.frozen_age)),
+        Rule("seq_gap", "samples missed", num("seq_gap_max") + 0.5, lambda s: float(s.seq_gap)),
+        Rule("jump", "innovation / jump limit", 1.0, lambda s: s.jump),
+        Rule("clamp", "||e||_P / eps with the phi_d clamp engaged", 1.0 - clamp_margin,
+             lambda s: s.ratio if s.clamped else 0.0, engaged_only=True),
+        Rule("margin", "||e||_P / eps", num("margin_trip"), lambda s: s.ratio,
+             engaged_only=True, deadband=0.05),
+        Rule("predicted_crossing", "predicted ||e||_P / eps", 1.0,
+             lambda s: s.ratio + max(0.0, s.ratio_rate) * horizon,
+             engaged_only=True, deadband=0.05),
+        Rule("weight_norm", "||W||_F", num("weight_norm_max"), lambda s: s.w_norm,
+             engaged_only=True),
+        Rule("weight_rate", "||dW/dt||_F (1/s)", num("weight_rate_max"), lambda s: s.w_rate,
+             engaged_only=True),
+        Rule("saturation", "seconds at the input limit", num("saturation_s"),
+             lambda s: s.sat_time),
+        Rule("overrun", "deadline misses in the window", num("overrun_misses") - 0.5,
+             lambda s: float(s.misses_window)),
+        Rule("margin_warning", "||e||_P / eps", num("margin_warning"), lambda s: s.ratio,
+             engaged_only=True, deadband=0.05, warning_only=True),
+    ]
+    for rule in rules:
+        rule.reaction = DEFAULT_REACTIONS[rule.id]
+        if cfg is None:
+            continue
+        base = f"watchdog.rules.{rule.id}"
+        if rule.warning_only:
+            rule.reaction = "none"
+        else:
+            rule.reaction = cfg.choice(f"{base}.reaction", REACTIONS, rule.reaction)
+        rule.on_delay = float(cfg.number(f"{base}.on_delay_s", rule.on_delay, minimum=0.0,
+                                         unit="s"))
+        rule.deadband = float(cfg.number(f"{base}.deadband", rule.deadband, minimum=0.0))
+        rule.enabled = bool(cfg.flag(f"{base}.enabled", True))
+    return rules
+
+
+class Watchdog:
+    """All rules; `check` per tick returns the rules that newly tripped (first-out first)."""
+
+    def __init__(self, rules: list[Rule], overrun_window: int = 1000) -> None:
+        self.rules = rules
+        self.by_id = {r.id: r for r in rules}
+        self.window = np.zeros(max(1, overrun_window), dtype=np.int8)
+        self.window_sum = 0
+        self.warning = False
+
+    @classmethod
+    def from_config(cls, cfg: Any, period: float, clamp_margin: float) -> Watchdog:
+        """Rules and overrun window from ``[watchdog]``."""
+        window = int(cfg.number("watchdog.overrun_window", DEFAULTS["overrun_window"],
+                                minimum=1)) if cfg is not None else DEFAULTS["overrun_window"]
+        return cls(build_rules(cfg, period, clamp_margin), window)
+
+    def note_miss(self, tick: int, missed: bool) -> int:
+        """Record whether this tick missed its deadline; misses in the last window ticks."""
+        i = tick % self.window.size
+        self.window_sum += int(missed) - int(self.window[i])
+        self.window[i] = int(missed)
+        return self.window_sum
+
+    def check(self, sig: Signals) -> list[Rule]:
+        """Every rule on this tick; the trips (warnings excluded), first-out first."""
+        tripped = []
+        for rule in self.rules:
+            if rule.evaluate(sig) and not rule.warning_only:
+                tripped.append(rule)
+        self.warning = self.by_id["margin_warning"].active
+        return tripped
+
+    def conditions_present(self) -> list[str]:
+        """Ids of trip rules whose condition is still present (not cleared)."""
+        return [r.id for r in self.rules if r.active and not r.warning_only]
+
+    def clear(self) -> bool:
+        """True when no trip condition is present (a reset may be granted)."""
+        return not self.conditions_present()
+
+    def settings(self) -> list[dict[str, Any]]:
+        """The rules as configured (for the run header and the docs)."""
+        return [{"rule": r.id, "signal": r.signal, "threshold": r.threshold,
+                 "on_delay_s": r.on_delay, "deadband": r.deadband, "reaction": r.reaction,
+                 "enabled": r.enabled} for r in self.rules]
