@@ -1,0 +1,938 @@
+"""Monte Carlo sweeps: many uncertain plants through the closed loop at once.
+
+`run_sweep(cfg)` draws N plants from the config's `[plant.ranges]` (each
+ranged parameter uniform in [lo, hi], `sim_rigs.pedestal.draw_truth`), runs
+them in chunks spread over the machine's cores, and evaluates offline the
+watchdog rules a simulation can see (contract rule ids): ``margin``
+(ratio >= watchdog.margin_trip), ``clamp`` (phi_d clamp engaged, ratio >=
+1 - clamp_margin; ratio >= 1 for the standard law), ``nonfinite`` and
+``saturation`` (an input beyond its limit longer than watchdog.saturation_time),
+plus ``diverged`` (true state beyond sweep.divergence_factor x
+design.state_range, or non-finite). Each plant ends *inside* (no rule fired),
+*tripped* (first rule by time) or *diverged*. `run_grid` repeats the sweep
+over settings (`--grid adaptation.gamma=1,2,4`); `plot_sweep` and
+`plot_grid` draw the PNGs.
+
+Two engines run one chunk (a batch is one array; the time loop is Python):
+
+- ``fused``: the law of `runtime.law` and the plant of `sim_rigs.pedestal`
+  rewritten for speed: batch as the LAST axis (contiguous rows), every
+  buffer preallocated, in-place ufuncs, the commands' K2 c and B_d c
+  precomputed, rule bookkeeping once per block of ticks, and the elevation
+  trigonometry inside a tick by the angle-addition formula (exact
+  sin/cos once per tick, then a Taylor series in the small in-tick angle
+  change, truncation < 1e-18 for |d| <= 0.02 rad; exact fallback beyond).
+  Pedestal rigs without weight modifiers.
+- ``reference``: `AdaptiveLaw.step` and `Pedestal.step` themselves over the
+  batch (slow; any design). Tests check the engines against each other and
+  against the single-plant dry run.
+
+Runs are reproducible: plant i's parameters depend on (seed, plants) only;
+its sensor noise on (seed, chunk layout); with the noise off a plant's result
+does not depend on the chunking or the number of workers at all.
+
+What does not live here: the CLI (`runtime.cmd_sweep`), the go / no-go
+verdict (`runtime.preflight`), the live watchdog (`runtime.watchdog`).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from runtime.commands import schedule_from_config, tracked_names
+from runtime.config import Config, ConfigError
+from runtime.design import Design, design_from_config
+
+Array = NDArray[np.float64]
+Progress = Callable[[int, int], None]
+
+RULES = ("margin", "clamp", "nonfinite", "saturation")
+"""Rules the sweep evaluates offline, contract ids, in first-out tie order."""
+OUTCOMES = ("inside", "tripped", "diverged")
+ENGINES = ("auto", "fused", "reference")
+BLOCK = 64
+"""Ticks between rule bookkeeping passes (buffers hold one block)."""
+FUSED_PARAMS = frozenset((
+    "gravity_el", "visc_az", "visc_el", "coulomb_az", "coulomb_el", "coulomb_speed", "spring_az",
+    "coupling", "bias_az", "bias_el", "lam_az", "lam_el", "stribeck_az", "stribeck_el",
+    "stribeck_speed", "a_az", "b_az", "a_el", "b_el"))
+"""Pedestal parameters the fused engine models; a rig with others falls back to the reference."""
+TAYLOR_LIMIT = 0.02
+"""Largest in-tick elevation change (rad) the angle-addition series handles."""
+
+
+# ------------------------------------------------------------------ settings
+@dataclass(frozen=True)
+class SweepSettings:
+    """Everything a worker needs besides the plants; read from the config once."""
+
+    plants: int
+    seed: int
+    duration: float
+    workers: int
+    chunk: int
+    latency_ticks: int
+    noise: bool
+    substeps: int
+    margin_trip: float
+    saturation_time: float
+    divergence_factor: float
+    engine: str
+
+    @classmethod
+    def from_config(cls, cfg: Config, plants: int | None = None, seed: int | None = None,
+                    duration: float | None = None, workers: int | None = None,
+                    chunk: int | None = None, engine: str | None = None) -> SweepSettings:
+        """Sweep settings: arguments win over `[sweep]` keys, which win over defaults."""
+        n = plants if plants is not None else int(cfg.number("sweep.plants", 1000, minimum=1))
+        if n < 1:
+            raise ConfigError("sweep.plants", f"must be at least 1, got {n}.",
+                              "ask for one plant or more, e.g. --plants 500.")
+        s = seed if seed is not None else int(cfg.number("sweep.seed", cfg.number(
+            "plant.seed", 0, minimum=0), minimum=0))
+        dur = duration if duration is not None else cfg.number(
+            "commands.duration", 30.0, positive=True, unit="s")
+        if not dur > 0:
+            raise ConfigError("commands.duration", f"the sweep duration must be positive, got "
+                              f"{dur}.", "give --duration S with S > 0.")
+        w = workers if workers is not None else int(cfg.number(
+            "sweep.workers", os.cpu_count() or 1, minimum=1))
+        ch = chunk if chunk is not None else int(cfg.number("sweep.chunk", 8000, minimum=1))
+        eng = engine or cfg.choice("sweep.engine", ENGINES, "auto")
+        return cls(
+            plants=int(n), seed=int(s), duration=float(dur), workers=max(1, int(w)),
+            chunk=max(1, int(ch)),
+            latency_ticks=int(cfg.number("sweep.latency_ticks", 0, minimum=0, maximum=1000)),
+            noise=cfg.flag("sweep.noise", True),
+            substeps=int(cfg.number("sweep.substeps", cfg.number(
+                "plant.substeps", 4, minimum=1, maximum=100), minimum=1, maximum=100)),
+            margin_trip=cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0),
+            saturation_time=cfg.number("watchdog.saturation_time", 0.5, positive=True,
+                                       unit="s"),
+            divergence_factor=cfg.number("sweep.divergence_factor", 10.0, minimum=1.0),
+            engine=eng,
+        )
+
+
+def _ranges(cfg: Config, truth_names: Sequence[str]) -> dict[str, tuple[float, float]]:
+    raw = cfg.get("plant.ranges", {})
+    if not isinstance(raw, dict):
+        raise ConfigError("plant.ranges", "must be a table of [lo, hi] pairs.",
+                          "write e.g. gravity_el = [1.0, 3.0] under [plant.ranges].")
+    out: dict[str, tuple[float, float]] = {}
+    for key, val in raw.items():
+        where = f"plant.ranges.{key}"
+        if key not in truth_names:
+            raise ConfigError(where, "is not a parameter of this rig.",
+                              f"use one of: {', '.join(truth_names)}.")
+        ok = (isinstance(val, list) and len(val) == 2
+              and all(isinstance(v, int | float) and not isinstance(v, bool)
+                      and math.isfinite(v) for v in val))
+        if not ok or val[0] > val[1]:
+            raise ConfigError(where, f"must be [lo, hi] with lo <= hi, got {val!r}.",
+                              f"write {key} = [lo, hi].")
+        out[key] = (float(val[0]), float(val[1]))
+    return out
+
+
+def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
+    """The truth of `plants` plants: ranged parameters uniform in [lo, hi], others at truth."""
+    from sim_rigs import RIGS
+    from sim_rigs.pedestal import draw_truth
+
+    sim = cfg.get("rig.sim", None)
+    if sim not in RIGS:
+        raise ConfigError("rig.sim", "a sweep needs a simulated rig to stand in for the plant.",
+                          'set rig.sim = "pedestal" (the only simulated rig so far).')
+    spec = RIGS[sim]
+    truth = dict(cfg.get("plant.truth", {}))
+    for key in truth:
+        if key not in spec.truth_defaults:
+            raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
+                              f"use one of: {', '.join(spec.truth_defaults)}.")
+    ranges = _ranges(cfg, tuple(spec.truth_defaults))
+    return draw_truth(ranges, truth, plants, np.random.default_rng(seed))
+
+
+# ------------------------------------------------------------------ per-process setup
+@dataclass
+class _Setup:
+    design: Design
+    settings: SweepSettings
+    cmd: Array
+    eps_t: Array
+    x0: Array
+    sensors: Any
+    modifiers: list[Any]
+    engine: str
+
+
+_SETUP_CACHE: dict[str, _Setup] = {}
+
+
+def _setup(raw: dict[str, Any], settings: SweepSettings) -> _Setup:
+    key = json.dumps([raw, settings.__dict__], sort_keys=True, default=str)
+    if key in _SETUP_CACHE:
+        return _SETUP_CACHE[key]
+    from runtime.dryrun import _eps_schedule, plant_from_config
+    from runtime.modifiers import modifiers_from_config
+
+    cfg = Config(raw=raw)
+    design = design_from_config(cfg)
+    rig = design.rig
+    schedule = schedule_from_config(cfg, tracked_names(rig.C, rig.states))
+    ticks = max(1, int(round(settings.duration / design.Ts)))
+    t = np.arange(ticks) * design.Ts
+    cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
+    eps_t = _eps_schedule(cfg, design, t)
+    plant = plant_from_config(cfg, design)
+    mods = list(modifiers_from_config(cfg, design))
+    from sim_rigs.pedestal import TRUTH_DEFAULTS
+
+    fusable = rig.sim == "pedestal" and not mods and set(TRUTH_DEFAULTS) <= FUSED_PARAMS
+    engine = settings.engine
+    if engine == "auto":
+        engine = "fused" if fusable else "reference"
+    if engine == "fused" and not fusable:
+        raise ConfigError("sweep.engine", "the fused engine runs pedestal rigs without weight "
+                          "modifiers only.", 'use engine "reference" (or "auto").')
+    out = _Setup(design, settings, cmd, eps_t, np.array(plant.x[0]), plant.sensors, mods,
+                 engine)
+    _SETUP_CACHE.clear()
+    _SETUP_CACHE[key] = out
+    return out
+
+
+# ------------------------------------------------------------------ rule bookkeeping
+class _Rules:
+    """First tick of each rule per plant, fed one block of ticks at a time."""
+
+    def __init__(self, B: int, design: Design, settings: SweepSettings) -> None:
+        self.B = B
+        self.max_ratio = np.zeros(B)
+        self.first = {r: np.full(B, -1, dtype=np.int64) for r in (*RULES, "breach", "diverged")}
+        self.levels = {
+            "margin": settings.margin_trip,
+            "clamp": (1.0 - design.clamp_margin) if design.law == "barrier" else 1.0,
+            "breach": 1.0,
+        }
+        self.u_max = design.rig.input_limits[:, None]
+        self.sat_ticks = settings.saturation_time / design.Ts
+        self.carry = np.zeros((design.rig.m, B))
+        self.bound = settings.divergence_factor * design.state_range
+
+    def block(self, k0: int, R: Array, UR: Array) -> None:
+        """R (K, B) ratios and UR (K, m, B) raw inputs of ticks k0 .. k0+K-1."""
+        K = R.shape[0]
+        blockmax = np.max(np.where(np.isfinite(R), R, -np.inf), axis=0)
+        np.fmax(self.max_ratio, blockmax, out=self.max_ratio)
+        for rule, level in self.levels.items():
+            hit = R >= level
+            first = self.first[rule]
+            newly = (first < 0) & hit.any(axis=0)
+            if newly.any():
+                first[newly] = k0 + np.argmax(hit[:, newly], axis=0)
+        bad = ~np.isfinite(R) | ~np.isfinite(UR).all(axis=1)
+        first = self.first["nonfinite"]
+        newly = (first < 0) & bad.any(axis=0)
+        if newly.any():
+            first[newly] = k0 + np.argmax(bad[:, newly], axis=0)
+        sat = np.abs(UR) > self.u_max  # (K, m, B)
+        idx = np.arange(K)[:, None, None]
+        last = np.maximum.accumulate(np.where(sat, -1, idx), axis=0)
+        run = np.where(last < 0, idx + 1 + self.carry, idx - last)
+        over = run > self.sat_ticks
+        self.carry = run[-1].astype(float)
+        first = self.first["saturation"]
+        any_over = over.any(axis=(0, 1))
+        newly = (first < 0) & any_over
+        if newly.any():
+            o = over[:, :, newly].any(axis=1)
+            first[newly] = k0 + np.argmax(o, axis=0)
+
+    def state(self, k: int, x: Array) -> None:
+        """Divergence check on the true state x (n, B) after tick k."""
+        bad = ~(np.abs(x) <= self.bound[:, None]).all(axis=0)
+        first = self.first["diverged"]
+        newly = (first < 0) & bad
+        if newly.any():
+            first[newly] = k
+
+    def result(self) -> dict[str, Array]:
+        out = {f"first_{r}": v for r, v in self.first.items()}
+        ratio = self.max_ratio.copy()
+        ratio[self.first["nonfinite"] >= 0] = np.inf
+        out["max_ratio"] = ratio
+        return out
+
+
+# ------------------------------------------------------------------ the fused engine
+def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
+               ) -> dict[str, Array]:
+    d = setup.design
+    st = setup.settings
+    B = len(next(iter(prm.values())))
+    n, m = d.rig.n, d.rig.m
+    nb = d.basis.size
+    nreg = d.n_regressors
+    Ts = d.Ts
+    ticks = len(setup.cmd)
+    sens = setup.sensors
+    noise = st.noise and (sens.angle_noise > 0 or sens.rate_noise > 0)
+    lat = st.latency_ticks
+    delay = int(sens.delay_ticks)
+    res = float(sens.angle_resolution)
+
+    # law constants
+    P, PBT, K1, Ad = d.P, np.ascontiguousarray(d.PB.T), d.K1, d.A_d
+    K2c = setup.cmd @ d.K2.T          # (ticks, m)
+    Bdc = setup.cmd @ d.B_d.T         # (ticks, n)
+    umax = d.rig.input_limits[:, None]
+    gamma = np.asarray(d.gamma, dtype=float)[:, None]
+    gcoef = Ts * float(np.max(d.gamma)) * d.lam_max_BPB
+    cap = d.step_gain_cap
+    barrier = d.law == "barrier"
+    from runtime.barrier import get_barrier
+
+    bar = get_barrier(d.barrier)
+    smax_f = 1.0 - d.clamp_margin
+
+    # plant constants (rows: az, el, az_rate, el_rate)
+    Da = prm["a_az"] + prm["visc_az"]
+    De = prm["a_el"] + prm["visc_el"]
+    Ga = prm["b_az"] * prm["lam_az"]
+    Ge = prm["b_el"] * prm["lam_el"]
+    Ca, Ce, vs = prm["coulomb_az"], prm["coulomb_el"], prm["coulomb_speed"]
+    Sa, G = prm["spring_az"], prm["gravity_el"]
+    Cp, Cp1 = prm["coupling"], prm["coupling"].copy()  # Cp1 multiplies wa^2 sin(el) cos(el)
+    ba, be = prm["bias_az"], prm["bias_el"]
+    Sta, Ste, ss = prm["stribeck_az"], prm["stribeck_el"], prm["stribeck_speed"]
+    stribeck = bool(np.any(Sta != 0) or np.any(Ste != 0))
+    from sim_rigs.pedestal import INPUT_LIMITS
+
+    plim = np.asarray(INPUT_LIMITS, dtype=float)[:, None]
+
+    # state and buffers
+    x = np.empty((n, B))
+    x[:] = setup.x0[:, None]
+    W = np.zeros((nreg, m, B))
+    tmpW = np.empty((nreg, m, B))
+    sig = np.empty((nreg, B))
+    e = np.empty((n, B))
+    Pe = np.empty((n, B))
+    s = np.empty(B)
+    un = np.empty((m, B))
+    ur = np.empty((m, B))
+    epb = np.empty((m, B))
+    xr_t = np.empty((n, B))
+    gs = np.empty((nreg, B))
+    R = np.empty((BLOCK, B))
+    UR = np.empty((BLOCK, m, B))
+    ubuf = np.zeros((lat + 1, m, B))
+    meas = np.empty((delay + 1, n, B))
+    first_y = np.empty((n, B))
+    rules = _Rules(B, d, st)
+    # plant work
+    xs = np.empty((n, B))
+    acc = np.empty((n, B))
+    ksum = np.empty((n, B))
+    t1 = np.empty(B)
+    t2 = np.empty(B)
+    cd = np.empty(B)
+    sd = np.empty(B)
+    dd = np.empty(B)
+    d2 = np.empty(B)
+    Fa = np.empty(B)
+    Fe = np.empty(B)
+    v = np.empty((m, B))
+
+    codes = d.basis.codes
+    width = d.basis.tanh_width
+    for r, (op, _i, _j) in enumerate(codes):
+        if op == "bias":
+            sig[r] = 1.0
+
+    def measure(out: Array) -> None:
+        out[:] = x
+        if noise:
+            z = rng.standard_normal((n, B))
+            out[:2] += sens.angle_noise * z[:2]
+            out[2:] += sens.rate_noise * z[2:]
+        if res > 0:
+            np.divide(out[:2], res, out=out[:2])
+            np.rint(out[:2], out=out[:2])
+            np.multiply(out[:2], res, out=out[:2])
+
+    def deriv(xv: Array, c0: Array, s0: Array, el0: Array | None, out: Array) -> None:
+        """out[2:] = accelerations at stage state xv (out[:2] are xv's rates)."""
+        nonlocal t1, t2, cd, sd
+        az, el, wa, we = xv
+        if el0 is None:
+            np.cos(el, out=cd)
+            np.sin(el, out=sd)
+            ce, se = cd, sd
+        else:
+            np.subtract(el, el0, out=dd)
+            np.multiply(dd, dd, out=d2)
+            # cos d = 1 - d^2/2 + d^4/24 - d^6/720 ; sin d = d (1 - d^2/6 + d^4/120 - d^6/5040)
+            np.multiply(d2, -1.0 / 720.0, out=t1)
+            t1 += 1.0 / 24.0
+            t1 *= d2
+            t1 -= 0.5
+            t1 *= d2
+            t1 += 1.0
+            np.multiply(d2, -1.0 / 5040.0, out=t2)
+            t2 += 1.0 / 120.0
+            t2 *= d2
+            t2 -= 1.0 / 6.0
+            t2 *= d2
+            t2 += 1.0
+            t2 *= dd
+            # cos(el0 + d) = c0 cd - s0 sd ; sin(el0 + d) = s0 cd + c0 sd
+            np.multiply(c0, t1, out=cd)
+            np.multiply(s0, t2, out=sd)
+            cd -= sd
+            np.multiply(s0, t1, out=sd)
+            t2 *= c0
+            sd += t2
+            ce, se = cd, sd
+        aa, ae = out[2], out[3]
+        out[0] = wa
+        out[1] = we
+        # az: Fa - Da wa - Ca tanh(wa/vs) - Sa az - Cp wa we
+        np.divide(wa, vs, out=t1)
+        np.tanh(t1, out=t1)
+        if stribeck:  # (C + S exp(-(w/ss)^2)) tanh(w/vs)
+            np.divide(wa, ss, out=t2)
+            t2 *= t2
+            np.negative(t2, out=t2)
+            np.exp(t2, out=t2)
+            t2 *= Sta
+            t2 += Ca
+            t1 *= t2
+        else:
+            t1 *= Ca
+        np.multiply(Da, wa, out=aa)
+        np.subtract(Fa, aa, out=aa)
+        aa -= t1
+        np.multiply(Sa, az, out=t1)
+        aa -= t1
+        np.multiply(wa, we, out=t1)
+        t1 *= Cp
+        aa -= t1
+        # el: Fe - De we - Ce tanh(we/vs) - G cos(el) + coupling wa^2 sin(el) cos(el)
+        np.divide(we, vs, out=t1)
+        np.tanh(t1, out=t1)
+        if stribeck:
+            np.divide(we, ss, out=t2)
+            t2 *= t2
+            np.negative(t2, out=t2)
+            np.exp(t2, out=t2)
+            t2 *= Ste
+            t2 += Ce
+            t1 *= t2
+        else:
+            t1 *= Ce
+        np.multiply(De, we, out=ae)
+        np.subtract(Fe, ae, out=ae)
+        ae -= t1
+        np.multiply(G, ce, out=t1)
+        ae -= t1
+        np.multiply(wa, wa, out=t1)
+        t1 *= Cp1
+        t1 *= se
+        t1 *= ce
+        ae += t1
+
+    def plant_step(u: Array) -> None:
+        nonlocal Fa, Fe, x, ksum, xs
+        np.clip(u, -plim, plim, out=v)
+        np.multiply(Ga, v[0], out=Fa)
+        Fa += ba
+        np.multiply(Ge, v[1], out=Fe)
+        Fe += be
+        el0 = x[1].copy()
+        c0 = np.cos(el0)
+        s0 = np.sin(el0)
+        span = float(np.max(np.abs(x[3]))) * Ts * 1.5 if B else 0.0
+        base = el0 if span <= TAYLOR_LIMIT else None
+        h = Ts / st.substeps
+        for _ in range(st.substeps):
+            deriv(x, c0, s0, base, acc)
+            np.copyto(ksum, acc)
+            np.multiply(acc, 0.5 * h, out=xs)
+            xs += x
+            deriv(xs, c0, s0, base, acc)
+            np.multiply(acc, 2.0, out=xs)
+            ksum += xs
+            np.multiply(acc, 0.5 * h, out=xs)
+            xs += x
+            deriv(xs, c0, s0, base, acc)
+            np.multiply(acc, 2.0, out=xs)
+            ksum += xs
+            np.multiply(acc, h, out=xs)
+            xs += x
+            deriv(xs, c0, s0, base, acc)
+            ksum += acc
+            ksum *= h / 6.0
+            x += ksum
+
+    # engage: x_r = first reading, weights zero
+    measure(first_y)
+    meas[0] = first_y
+    xr = first_y.copy()
+    y = first_y
+    blk = 0
+    k_block0 = 0
+    with np.errstate(all="ignore"):
+        for k in range(ticks):
+            eps_k = float(setup.eps_t[k])
+            # --- law tick (runtime.law.AdaptiveLaw.step, batch last)
+            np.subtract(y, xr, out=e)
+            np.matmul(P, e, out=Pe)
+            Pe *= e
+            np.sum(Pe, axis=0, out=s)
+            np.maximum(s, 0.0, out=s)
+            np.sqrt(s, out=s)
+            np.divide(s, eps_k, out=R[blk])
+            if barrier:
+                phi_d = bar.phi_d(np.minimum(s, smax_f * eps_k), eps_k)
+            else:
+                phi_d = np.ones(B)
+            np.matmul(K1, y, out=un)
+            np.subtract(K2c[k][:, None], un, out=un)
+            for r, (op, i, j) in enumerate(codes):
+                if op == "x":
+                    np.copyto(sig[r], y[i])
+                elif op == "tanh":
+                    np.divide(y[i], width, out=sig[r])
+                    np.tanh(sig[r], out=sig[r])
+                elif op == "cos":
+                    np.cos(y[i], out=sig[r])
+                elif op == "sin":
+                    np.sin(y[i], out=sig[r])
+                elif op == "abs":
+                    np.abs(y[i], out=sig[r])
+                elif op == "mul":
+                    np.multiply(y[i], y[j], out=sig[r])
+            if nreg > nb:
+                np.divide(un, umax, out=sig[nb:])
+            sig_sq = np.einsum("ib,ib->b", sig, sig)
+            g = sig_sq
+            g *= phi_d
+            g *= gcoef
+            np.divide(cap, g, out=g)
+            np.minimum(g, 1.0, out=g)
+            g *= phi_d
+            g *= Ts          # Ts * rate
+            np.matmul(PBT, e, out=epb)
+            epb *= g
+            np.multiply(gamma, sig, out=gs)
+            np.multiply(gs[:, None, :], epb[None, :, :], out=tmpW)
+            W += tmpW
+            np.multiply(W, sig[:, None, :], out=tmpW)
+            np.sum(tmpW, axis=0, out=ur)
+            np.subtract(un, ur, out=UR[blk])
+            np.matmul(Ad, xr, out=xr_t)
+            np.add(xr_t, Bdc[k][:, None], out=xr)
+            # --- actuator: saturate, apply `lat` ticks late
+            u_now = ubuf[k % (lat + 1)]
+            np.clip(UR[blk], -umax, umax, out=u_now)
+            plant_step(ubuf[(k - lat) % (lat + 1)] if k >= lat else np.zeros((m, B)))
+            # --- sensors (reading k+1), delayed `delay` ticks
+            slot = meas[(k + 1) % (delay + 1)]
+            measure(slot)
+            kk = k + 1 - delay
+            y = meas[kk % (delay + 1)] if kk > 0 else first_y
+            blk += 1
+            if blk == BLOCK or k == ticks - 1:
+                rules.block(k_block0, R[:blk], UR[:blk])
+                rules.state(k, x)
+                blk = 0
+                k_block0 = k + 1
+    return rules.result()
+
+
+# ------------------------------------------------------------------ the reference engine
+def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
+                   ) -> dict[str, Array]:
+    from runtime.law import AdaptiveLaw
+    from sim_rigs.pedestal import Pedestal, SensorModel
+
+    d = setup.design
+    st = setup.settings
+    B = len(next(iter(prm.values())))
+    m = d.rig.m
+    sens = setup.sensors
+    sensors = sens if st.noise else SensorModel(
+        angle_resolution=sens.angle_resolution, angle_noise=0.0, rate_noise=0.0,
+        delay_ticks=sens.delay_ticks)
+    plant = Pedestal.create(prm, batch=B, x0=setup.x0, sensors=sensors,
+                            substeps=st.substeps, rng=rng)
+    law = AdaptiveLaw(d, setup.modifiers)
+    rules = _Rules(B, d, st)
+    R = np.empty((BLOCK, B))
+    UR = np.empty((BLOCK, m, B))
+    lat = st.latency_ticks
+    ubuf = np.zeros((lat + 1, B, m))
+    y = plant.measure()
+    state = law.init_state(y)
+    blk = 0
+    k_block0 = 0
+    ticks = len(setup.cmd)
+    with np.errstate(all="ignore"):
+        for k in range(ticks):
+            out = law.step(state, y, setup.cmd[k], setup.eps_t[k])
+            R[blk] = out.ratio
+            UR[blk] = out.u_raw.T
+            ubuf[k % (lat + 1)] = out.u
+            plant.step(ubuf[(k - lat) % (lat + 1)] if k >= lat else np.zeros((B, m)), d.Ts)
+            y = plant.measure()
+            blk += 1
+            if blk == BLOCK or k == ticks - 1:
+                rules.block(k_block0, R[:blk], UR[:blk])
+                rules.state(k, plant.x.T)
+                blk = 0
+                k_block0 = k + 1
+    return rules.result()
+
+
+def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: dict[str, Array],
+              chunk_index: int) -> dict[str, Array]:
+    """Simulate one chunk of plants (runs in a worker process); per-plant result arrays."""
+    setup = _setup(raw, settings)
+    rng = np.random.default_rng([settings.seed, chunk_index])
+    prm = {k: np.ascontiguousarray(v, dtype=float) for k, v in prm.items()}
+    if setup.engine == "fused":
+        return _run_fused(setup, prm, rng)
+    return _run_reference(setup, prm, rng)
+
+
+# ------------------------------------------------------------------ the sweep
+@dataclass
+class SweepResult:
+    """Per-plant outcomes plus the summary the CLI prints."""
+
+    design: Design
+    settings: SweepSettings
+    truth: dict[str, Array]
+    per_plant: dict[str, Array]
+    summary: dict[str, Any] = field(default_factory=dict)
+
+
+def _clean(v: Any) -> Any:
+    """JSON-safe: numpy scalars to Python, inf / NaN to None."""
+    if isinstance(v, dict):
+        return {k: _clean(x) for k, x in v.items()}
+    if isinstance(v, list | tuple):
+        return [_clean(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return _clean(v.tolist())
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, float | np.floating):
+        f = float(v)
+        return f if math.isfinite(f) else None
+    return v
+
+
+def classify(per_plant: dict[str, Array], Ts: float) -> dict[str, Array]:
+    """Outcome (0 inside, 1 tripped, 2 diverged), first-out rule index and its time per plant."""
+    B = len(per_plant["max_ratio"])
+    big = np.iinfo(np.int64).max
+    ticks = np.stack([np.where(per_plant[f"first_{r}"] >= 0, per_plant[f"first_{r}"], big)
+                      for r in RULES])
+    first_rule = np.argmin(ticks, axis=0)  # ties: RULES order
+    first_tick = ticks[first_rule, np.arange(B)]
+    tripped = first_tick < big
+    diverged = per_plant["first_diverged"] >= 0
+    outcome = np.where(diverged, 2, np.where(tripped, 1, 0))
+    trip_time = np.where(tripped, first_tick * Ts, np.nan)
+    return {"outcome": outcome, "first_rule": np.where(tripped, first_rule, -1),
+            "trip_time": trip_time}
+
+
+def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
+              per_plant: dict[str, Array], wall: float, worst: int = 5) -> dict[str, Any]:
+    """The report: fractions, trips by rule, worst margin and its distribution, worst cases."""
+    Ts = design.Ts
+    cls = classify(per_plant, Ts)
+    per_plant.update(cls)
+    N = len(per_plant["max_ratio"])
+    ticks = max(1, int(round(settings.duration / Ts)))
+    out = cls["outcome"]
+    ratio = per_plant["max_ratio"]
+    finite = ratio[np.isfinite(ratio)]
+    pct = {f"p{q}": float(np.percentile(finite, q)) for q in (5, 50, 90, 95, 99)} \
+        if finite.size else {}
+    tripped = out == 1
+    by_rule = {r: int(np.sum(tripped & (cls["first_rule"] == i))) for i, r in enumerate(RULES)}
+    fired = {r: int(np.sum(per_plant[f"first_{r}"] >= 0)) for r in RULES}
+    breach = per_plant["first_breach"]
+    order = np.argsort(-np.where(np.isnan(ratio), np.inf, ratio), kind="stable")[:worst]
+    cases = []
+    for i in order:
+        ft = per_plant["first_breach"][i]
+        cases.append({
+            "plant": int(i),
+            "outcome": OUTCOMES[int(out[i])],
+            "first_rule": RULES[cls["first_rule"][i]] if cls["first_rule"][i] >= 0 else None,
+            "trip_time": cls["trip_time"][i],
+            "breach_time": ft * Ts if ft >= 0 else None,
+            "diverged_time": (per_plant["first_diverged"][i] * Ts
+                              if per_plant["first_diverged"][i] >= 0 else None),
+            "max_margin_ratio": ratio[i],
+            "params": {k: float(v[i]) for k, v in truth.items()},
+        })
+    trip_times = cls["trip_time"][tripped]
+    summary = {
+        "plants": N,
+        "ticks": ticks,
+        "duration": ticks * Ts,
+        "sample_period": Ts,
+        "latency_ticks": settings.latency_ticks,
+        "noise": settings.noise,
+        "substeps": settings.substeps,
+        "seed": settings.seed,
+        "law": design.law,
+        "gamma_max": float(np.max(design.gamma)),
+        "eps": design.eps,
+        "margin_trip": settings.margin_trip,
+        "inside_fraction": float(np.mean(out == 0)),
+        "trip_fraction": float(np.mean(out == 1)),
+        "diverged_fraction": float(np.mean(out == 2)),
+        "bound_held_fraction": float(np.mean(breach < 0)),
+        "trips_by_rule": by_rule,
+        "rules_fired": fired,
+        "worst_margin_ratio": float(np.max(ratio)) if N else None,
+        "margin_ratio_percentiles": pct,
+        "median_trip_time": float(np.median(trip_times)) if trip_times.size else None,
+        "plant_steps_per_second": N * ticks / wall if wall > 0 else None,
+        "wall_seconds": wall,
+        "workers": settings.workers,
+        "chunk": min(settings.chunk, -(-N // settings.workers)),
+        "worst_cases": cases,
+    }
+    return _clean(summary)
+
+
+def run_sweep(cfg: Config, plants: int | None = None, seed: int | None = None,
+              duration: float | None = None, workers: int | None = None,
+              chunk: int | None = None, engine: str | None = None,
+              progress: Progress | None = None) -> SweepResult:
+    """Draw the plants, run them in chunks over `workers` processes, summarise."""
+    settings = SweepSettings.from_config(cfg, plants, seed, duration, workers, chunk, engine)
+    design = design_from_config(cfg)
+    if not design.feasible:
+        raise ConfigError("adaptation.gamma", "the design is refused: "
+                          + "; ".join(design.reasons), "fix the design first (corral design).")
+    truth = draw_plants(cfg, settings.plants, settings.seed)
+    _setup(cfg.raw, settings)  # validate in this process: errors are one line, not a traceback
+    N = settings.plants
+    cs = min(settings.chunk, -(-N // settings.workers))  # every worker gets a chunk
+    starts = list(range(0, N, cs))
+    results: dict[int, dict[str, Array]] = {}
+    done = 0
+    if progress:
+        progress(0, N)
+    wall0 = time.perf_counter()
+    jobs = [(i, s, {k: v[s:s + cs] for k, v in truth.items()}) for i, s in enumerate(starts)]
+    if settings.workers == 1 or len(jobs) == 1:
+        for i, s, prm in jobs:
+            results[s] = run_chunk(cfg.raw, settings, prm, i)
+            done += len(next(iter(prm.values())))
+            if progress:
+                progress(done, N)
+    else:
+        with ProcessPoolExecutor(max_workers=min(settings.workers, len(jobs))) as pool:
+            futs = {pool.submit(run_chunk, cfg.raw, settings, prm, i): (s, prm)
+                    for i, s, prm in jobs}
+            for fut in as_completed(futs):
+                s, prm = futs[fut]
+                results[s] = fut.result()
+                done += len(next(iter(prm.values())))
+                if progress:
+                    progress(done, N)
+    wall = time.perf_counter() - wall0
+    per_plant = {k: np.concatenate([results[s][k] for s in starts]) for k in results[starts[0]]}
+    summary = summarise(design, settings, truth, per_plant, wall)
+    summary["engine"] = _setup(cfg.raw, settings).engine
+    return SweepResult(design, settings, truth, per_plant, summary)
+
+
+# ------------------------------------------------------------------ grids
+def parse_grid(items: Sequence[str]) -> list[tuple[str, list[Any]]]:
+    """`KEY=v1,v2,...` items into (key, values); values parsed like --set values."""
+    from runtime.config import parse_value
+
+    axes = []
+    for item in items:
+        key, sep, vals = item.partition("=")
+        key = key.strip()
+        if not sep or not key or not vals.strip():
+            raise ConfigError("--grid", f"cannot read {item!r}.",
+                              "write KEY=v1,v2,..., e.g. --grid adaptation.gamma=1,2,4,8.")
+        values = [parse_value(v.strip()) for v in vals.split(",") if v.strip()]
+        axes.append((key, values))
+    if len(axes) > 2:
+        raise ConfigError("--grid", f"{len(axes)} axes given; at most 2 are supported.",
+                          "sweep one or two keys at a time.")
+    return axes
+
+
+def _fmt(v: Any) -> str:
+    return json.dumps(v) if not isinstance(v, str) else v
+
+
+def run_grid(cfg: Config, axes: Sequence[tuple[str, list[Any]]], progress: Progress | None = None,
+             **kwargs: Any) -> dict[str, Any]:
+    """One sweep per grid setting; refused designs are reported, not run.
+
+    Returns {"axes": [{"key", "values"}], "grid": [entry...], "best": entry | None} where
+    each entry is {"setting": {key: value}, "refused": bool, "reasons": [...], plus the
+    sweep summary keys when run}; "best" is the run setting with the highest
+    inside_fraction (ties: lower worst_margin_ratio).
+    """
+    import itertools
+
+    entries: list[dict[str, Any]] = []
+    combos = list(itertools.product(*[vals for _k, vals in axes]))
+    for combo in combos:
+        setting = {k: v for (k, _vals), v in zip(axes, combo, strict=True)}
+        sub = cfg.with_overrides([f"{k}={_fmt(v)}" for k, v in setting.items()])
+        entry: dict[str, Any] = {"setting": setting}
+        try:
+            design = design_from_config(sub)
+        except ConfigError as exc:
+            entry.update(refused=True, reasons=[str(exc)])
+            entries.append(entry)
+            continue
+        if not design.feasible:
+            entry.update(refused=True, reasons=list(design.reasons))
+            entries.append(entry)
+            continue
+        res = run_sweep(sub, progress=progress, **kwargs)
+        entry.update(refused=False, reasons=[])
+        entry.update({k: v for k, v in res.summary.items() if k != "worst_cases"})
+        entry["worst_cases"] = res.summary["worst_cases"][:3]
+        entries.append(entry)
+    ran = [e for e in entries if not e["refused"]]
+    best = max(ran, key=lambda e: (e["inside_fraction"], -(e["worst_margin_ratio"] or 0)),
+               default=None)
+    return {"axes": [{"key": k, "values": list(v)} for k, v in axes], "grid": entries,
+            "best": best}
+
+
+# ------------------------------------------------------------------ plots
+def plot_sweep(result: SweepResult, path: Path) -> Path:
+    """Histogram of the worst margin ratio (trip level and bound marked) and outcome fractions."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    s = result.summary
+    ratio = result.per_plant["max_ratio"]
+    shown = np.clip(np.where(np.isfinite(ratio), ratio, 2.0), 0.0, 2.0)
+    fig, (ax, ax2) = plt.subplots(1, 2, figsize=(11, 4), constrained_layout=True,
+                                  gridspec_kw={"width_ratios": [3, 1.2]})
+    ax.hist(shown, bins=60, range=(0.0, max(1.1, float(shown.max()) * 1.02)),
+            color="tab:purple", alpha=0.8)
+    ax.axvline(s["margin_trip"], color="tab:red", ls=":", lw=1.2,
+               label=f"trip level {s['margin_trip']:.2f}")
+    ax.axvline(1.0, color="tab:red", lw=1.8, label="bound (ratio 1)")
+    ax.set_xlabel("worst margin ratio ||e||_P / eps per plant [1] (values > 2 shown at 2)")
+    ax.set_ylabel("plants")
+    ax.legend(loc="upper right", fontsize=8)
+    ax.grid(alpha=0.3)
+    fr = [s["inside_fraction"], s["trip_fraction"], s["diverged_fraction"]]
+    bars = ax2.bar(OUTCOMES, fr, color=["tab:green", "tab:orange", "tab:red"])
+    for b, f in zip(bars, fr, strict=True):
+        ax2.text(b.get_x() + b.get_width() / 2, f + 0.01, f"{100 * f:.1f} %", ha="center",
+                 fontsize=9)
+    ax2.set_ylim(0, 1.12)
+    ax2.set_ylabel("fraction of plants")
+    ax2.grid(alpha=0.3, axis="y")
+    rules = ", ".join(f"{k} {v}" for k, v in s["trips_by_rule"].items() if v) or "none"
+    fig.suptitle(f"corral sweep: {s['plants']} plants, {s['law']} law, gamma {s['gamma_max']:g}, "
+                 f"{s['duration']:g} s at {1 / s['sample_period']:g} Hz; first-out trips: {rules}",
+                 fontsize=10)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
+def plot_grid(grid: dict[str, Any], path: Path) -> Path:
+    """Trip / inside / diverged fraction against the setting; refused settings shaded."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    axes = grid["axes"]
+    entries = grid["grid"]
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if len(axes) == 1:
+        key, values = axes[0]["key"], axes[0]["values"]
+        numeric = all(isinstance(v, int | float) and not isinstance(v, bool) for v in values)
+        xs = np.array(values, dtype=float) if numeric else np.arange(len(values), dtype=float)
+        fig, ax = plt.subplots(figsize=(8, 4), constrained_layout=True)
+        pos = xs[xs > 0] if numeric else xs
+        if numeric and pos.size == xs.size and xs.size > 1 and xs.max() / xs.min() >= 10:
+            ax.set_xscale("log")
+        for name, color in (("inside_fraction", "tab:green"), ("trip_fraction", "tab:orange"),
+                            ("diverged_fraction", "tab:red")):
+            pts = [(x, e[name]) for x, e in zip(xs, entries, strict=True) if not e["refused"]]
+            if pts:
+                px, py = zip(*pts, strict=True)
+                ax.plot(px, py, "o-", color=color, label=name.replace("_", " "))
+        for x, e in zip(xs, entries, strict=True):
+            if e["refused"]:
+                ax.axvline(x, color="0.5", lw=6, alpha=0.3)
+                ax.text(x, 0.5, "refused", rotation=90, ha="center", va="center", fontsize=8)
+        good = [x for x, e in zip(xs, entries, strict=True)
+                if not e["refused"] and e["inside_fraction"] >= 0.95]
+        if good:
+            ax.axvspan(min(good), max(good), color="tab:green", alpha=0.08,
+                       label="feasible window (>= 95 % inside)")
+        if not numeric:
+            ax.set_xticks(xs, [str(v) for v in values])
+        ax.set_xlabel(key)
+        ax.set_ylabel("fraction of plants")
+        ax.set_ylim(-0.02, 1.05)
+        ax.grid(alpha=0.3, which="both")
+        ax.legend(fontsize=8)
+    else:
+        (k1, v1), (k2, v2) = (axes[0]["key"], axes[0]["values"]), (axes[1]["key"],
+                                                                  axes[1]["values"])
+        Z = np.full((len(v1), len(v2)), np.nan)
+        for idx, e in enumerate(entries):
+            if not e["refused"]:
+                Z[idx // len(v2), idx % len(v2)] = e["inside_fraction"]
+        fig, ax = plt.subplots(figsize=(7, 5), constrained_layout=True)
+        im = ax.imshow(Z, origin="lower", cmap="RdYlGn", vmin=0, vmax=1, aspect="auto")
+        for i in range(len(v1)):
+            for j in range(len(v2)):
+                txt = "refused" if np.isnan(Z[i, j]) else f"{100 * Z[i, j]:.0f}%"
+                ax.text(j, i, txt, ha="center", va="center", fontsize=8)
+        ax.set_xticks(range(len(v2)), [str(v) for v in v2])
+        ax.set_yticks(range(len(v1)), [str(v) for v in v1])
+        ax.set_xlabel(k2)
+        ax.set_ylabel(k1)
+        fig.colorbar(im, ax=ax, label="inside fraction")
+    fig.suptitle("corral sweep grid: where the bound holds", fontsize=10)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
