@@ -214,6 +214,22 @@ def _config_lines(config: dict[str, Any]) -> list[str]:
     return out
 
 
+def _watchdog_lines(wd: Any) -> list[str]:
+    """The run's watchdog rules as recorded in the header (a list of rule maps, or a map)."""
+    if isinstance(wd, dict):
+        wd = [{"rule": k, **v} if isinstance(v, dict) else {"rule": k, "value": v}
+              for k, v in wd.items()]
+    if not isinstance(wd, list) or not wd:
+        return []
+    out = ["watchdog rules of the run:"]
+    for r in wd:
+        if not isinstance(r, dict):
+            continue
+        rest = ", ".join(f"{k} {_num(v)}" for k, v in r.items() if k not in ("rule", "signal"))
+        out.append(f"  {str(r.get('rule', '?')):<20} {r.get('signal', '')}: {rest}")
+    return out
+
+
 def show_text(trip: Trip, all_trips: list[Trip]) -> str:
     """`--show`: the trip, its sequence of events, snapshot with units, later rules, config."""
     names = trip.names()
@@ -253,6 +269,9 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
             cols = len(val[0]) if rows and isinstance(val[0], list) else 1
             flat = [abs(v) for row in val for v in (row if isinstance(row, list) else [row])
                     if isinstance(v, (int, float))]
+            if not flat:
+                out.append(f"  {'W':<10} (empty: the adaptive law had not run)")
+                continue
             norm = math.sqrt(sum(v * v for v in flat)) if flat else float("nan")
             out.append(f"  {'W':<10} {rows} x {cols}, Frobenius norm {_num(norm)}, "
                        f"max |w| {_num(max(flat) if flat else float('nan'))}")
@@ -263,6 +282,7 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
     cap = trip.capture()
     out.append(f"capture: {cap.n_pre} ticks before (to the trip), {len(cap) - cap.n_pre} after, "
                f"period {_num(cap.period * 1e3)} ms; fields {', '.join(cap.fields) or '-'}")
+    out.extend(_watchdog_lines(trip.header.get("watchdog")))
     out.append(f"config that ran (hash {trip.config_hash or '?'}):")
     out.extend(_config_lines(trip.config) or ["  (not recorded)"])
     return "\n".join(out)

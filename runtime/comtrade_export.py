@@ -83,20 +83,6 @@ def _element_units(trip: Trip, field: str, width: int) -> list[str]:
     return units
 
 
-def _mode_names(trip: Trip, col: NDArray) -> list[str]:
-    """The mode at each row as a name (integer codes use the header's or MODES order)."""
-    order = [str(m) for m in trip.header.get("modes") or MODES]
-    out = []
-    for v in col.tolist():
-        if isinstance(v, str):
-            out.append(v)
-        elif isinstance(v, (int, float)) and math.isfinite(v) and 0 <= int(v) < len(order):
-            out.append(order[int(v)])
-        else:
-            out.append("")
-    return out
-
-
 def _truthy(v: object) -> float:
     if isinstance(v, str):
         return 1.0 if v.strip().lower() not in ("", "0", "false", "no", "none") else 0.0
@@ -166,8 +152,7 @@ def trip_channels(trip: Trip) -> list[Channel]:
                                  _element_units(trip, src, width), range(width), strict=True):
             analog.append(Channel(name, unit, col[:, j]))
     digital: list[Channel] = []
-    mode_col = cols.get("mode")
-    modes = _mode_names(trip, mode_col) if mode_col is not None else None
+    modes = trip.modes() if "mode" in cols else None
     if modes is not None:
         order = [str(m) for m in trip.header.get("modes") or MODES]
         for m in order:
@@ -211,7 +196,7 @@ def export_csv(trip: Trip, path: str | Path) -> Path:
     head = ["t_trip [s]"] + (["tick"] if tick is not None else [])
     head += [f"{c.name} [{c.unit}]" if c.unit else c.name for c in chans]
     head += ["mode"] if mode_col is not None else []
-    modes = _mode_names(trip, mode_col) if mode_col is not None else []
+    modes = trip.modes()
     with open(path, "w", newline="") as fh:
         w = csv.writer(fh)
         w.writerow(head)

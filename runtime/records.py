@@ -557,6 +557,25 @@ class Trip:
             self._capture = build_capture(self.header, self.record, self.post)
         return self._capture
 
+    def modes(self) -> list[str]:
+        """The supervisor mode at each captured row, as a name ("" where unknown).
+
+        Integer codes index the header's "modes" list, else `MODES`.
+        """
+        col = self.capture().columns.get("mode")
+        if col is None:
+            return []
+        order = [str(m) for m in self.header.get("modes") or MODES]
+        out = []
+        for v in col.tolist():
+            if isinstance(v, str):
+                out.append(v)
+            elif isinstance(v, (int, float)) and math.isfinite(v) and 0 <= int(v) < len(order):
+                out.append(order[int(v)])
+            else:
+                out.append("")
+        return out
+
     def levels(self) -> dict[str, float]:
         """Margin warning and trip levels (fractions of eps) the run used."""
         lv = dict(DEFAULT_LEVELS)

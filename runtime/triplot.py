@@ -22,6 +22,7 @@ import numpy as np
 from runtime.records import Trip
 
 _MODE_COLOURS = {"settling": "#e8e8e8", "fallback": "#fde3c8", "stopped": "#f6c9c9"}
+_MODE_NAMES = {"settling": "grey", "fallback": "orange", "stopped": "red"}
 
 
 def _fmt(v: Any) -> str:
@@ -41,7 +42,11 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
     names = trip.names()
     t_ms = cap.t * 1e3
     c, x, xr = cap.numeric("c"), cap.numeric("x"), cap.numeric("xr")
-    u, u_raw = cap.numeric("u"), cap.numeric("u_raw")
+    u = cap.numeric("u")
+    u_raw = cap.numeric("u_raw")
+    if u_raw is None:
+        u_raw = cap.numeric("u_cmd")
+    age, late = cap.numeric("sample_age_ms"), cap.numeric("lateness_us")
     ratio, eff, wn = cap.numeric("ratio"), cap.numeric("eff_rate"), cap.numeric("w_norm")
     states = names.get("states") or []
     units = names.get("state_units") or []
@@ -65,6 +70,8 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
         panels.append("eff")
     if wn is not None:
         panels.append("w")
+    if age is not None or late is not None:
+        panels.append("timing")
     if not panels:
         panels.append("empty")
     fig, axes = plt.subplots(len(panels), 1, figsize=(10, 1.9 * len(panels) + 1.0),
@@ -101,7 +108,7 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
                 for k in range(col2.shape[1]):
                     nm = inputs[k] if k < len(inputs) else f"u{k}"
                     ax.plot(t_ms, col2[:, k], ls=style, lw=1,
-                            label=nm + (" (law, before limits)" if style == ":" else ""))
+                            label=nm + (" (law's command)" if style == ":" else " (applied)"))
             lims = [float(v) for v in names.get("input_limits") or []]
             for lim in sorted(set(lims)):
                 ax.axhline(lim, color="tab:red", lw=0.8, alpha=0.6)
@@ -116,14 +123,24 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
         elif panel == "w":
             ax.plot(t_ms, wn, color="tab:brown", lw=1, label="||W||")
             ax.set_ylabel("weight norm")
+        elif panel == "timing":
+            if age is not None:
+                ax.plot(t_ms, age, color="tab:cyan", lw=1, label="sample age [ms]")
+            if late is not None:
+                ax.plot(t_ms, late * 1e-3, color="tab:gray", lw=0.8,
+                        label="tick lateness [ms]")
+            ax.set_ylabel("timing [ms]")
         else:
             ax.text(0.5, 0.5, "no captured signals", transform=ax.transAxes, ha="center")
-        _shade_modes(ax, cap, t_ms)
+        _shade_modes(ax, trip.modes(), t_ms)
         ax.axvline(0.0, color="tab:red", lw=1.5)
         ax.grid(alpha=0.3)
         if ax.get_legend_handles_labels()[0]:
             ax.legend(loc="upper left", fontsize=7, ncol=4)
-    axes[-1].set_xlabel("time from the trip [ms]")
+    shown = [m for m in _MODE_COLOURS if m in set(trip.modes())]
+    axes[-1].set_xlabel("time from the trip [ms]" + (
+        "   (shaded: " + ", ".join(f"{m} {_MODE_NAMES[m]}" for m in shown) + ")"
+        if shown else ""))
     axes[0].annotate("trip", xy=(0.0, 1.0), xycoords=("data", "axes fraction"),
                      color="tab:red", fontsize=8, ha="left", va="bottom")
     fo = trip.first_out
@@ -142,16 +159,14 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
     return path
 
 
-def _shade_modes(ax: Any, cap: Any, t_ms: np.ndarray) -> None:
+def _shade_modes(ax: Any, modes: list[str], t_ms: np.ndarray) -> None:
     """Shade the spans where the supervisor was not engaged (fallback, stopped, settling)."""
-    mode = cap.columns.get("mode")
-    if mode is None or len(t_ms) < 2 or mode.dtype != object:
+    if len(modes) != len(t_ms) or len(t_ms) < 2:
         return
-    vals = [str(v) for v in mode.tolist()]
     start = 0
-    for i in range(1, len(vals) + 1):
-        if i == len(vals) or vals[i] != vals[start]:
-            colour = _MODE_COLOURS.get(vals[start])
+    for i in range(1, len(modes) + 1):
+        if i == len(modes) or modes[i] != modes[start]:
+            colour = _MODE_COLOURS.get(modes[start])
             if colour:
                 ax.axvspan(t_ms[start], t_ms[min(i, len(t_ms) - 1)], color=colour, lw=0,
                            zorder=0)

@@ -176,6 +176,10 @@ def test_trips_of_a_real_run_with_a_fault(tmp_path):
     assert [t["rule"] for t in listed] == [t["rule"] for t in summary["trips"]]
     assert [t["tick"] for t in listed] == [t["tick"] for t in summary["trips"]]
     assert Path(summary["trip_log"]).exists()
+    res = run_cli("trips", summary["trip_log"], "--show", "1")
+    assert res.returncode == 0, res.stderr
+    assert f"first out: {summary['trips'][0]['rule']}" in res.stdout
+    assert "snapshot at the trip:" in res.stdout and "config that ran" in res.stdout
     res = run_cli("trips", summary["trip_log"], "--comtrade", "1", "--out",
                   str(tmp_path / "real"))
     assert res.returncode == 0, res.stderr
