@@ -80,6 +80,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("corral: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (e.g. `| head`): not an error of ours.
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
 
 
 class UserError(Exception):
