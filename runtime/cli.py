@@ -94,4 +94,8 @@ class UserError(Exception):
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # Run through the imported module so `UserError` raised by a subcommand is the
+    # same class this handler catches (as __main__, this file is a second copy).
+    from runtime.cli import main as _main
+
+    sys.exit(_main())
