@@ -113,3 +113,16 @@ def test_cli_without_a_command_prints_help_and_exits_2(corral):
     res = corral()
     assert res.code == 2
     assert "design" in res.stdout and "dry-run" in res.stdout
+
+
+def test_python_dash_m_entry_reports_user_errors_in_one_line(tmp_path):
+    # `python -m runtime.cli` must behave like the `corral` script (no traceback, exit 2).
+    import subprocess
+    import sys
+
+    missing = tmp_path / "nothing.toml"
+    proc = subprocess.run([sys.executable, "-m", "runtime.cli", "design", str(missing)],
+                          cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and str(missing) in lines[0]
