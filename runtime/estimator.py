@@ -124,10 +124,13 @@ class Estimator:
                     new[j] = 0.0
         else:
             new = y
-        if self.valid:
+        dt = t_meas - self.fresh_t
+        if self.valid and dt <= 2.5 * T:
+            # Compared with a recent estimate only: after a gap (dropout, NaN, a
+            # rejected reading or two) the next reading re-acquires the state.
             pred = self.x.copy()
             for i, j in self.pairs:
-                pred[i] += T * self.x[j]
+                pred[i] += dt * self.x[j]
             ratios = np.abs(new - pred) / self.jump_limit
             if self.angles_only:
                 ratios[[j for _, j in self.pairs]] = 0.0

@@ -451,7 +451,7 @@ class TickCore:
         sig.sat_time = float(np.max(self.sat_time))
         stats = self.loop_stats
         if stats is not None:
-            missed = stats.misses > self.misses_seen
+            missed = stats.misses - self.misses_seen
             self.misses_seen = stats.misses
             sig.misses_window = self.watchdog.note_miss(k, missed)
         sig.w_norm = self.w_norm if law_ran else 0.0
@@ -804,6 +804,32 @@ class Runner:
             self.core.close()
         if self.error is not None:
             raise self.error
+        return self.summary()
+
+    async def run_ticks(self, ticks: int) -> dict[str, Any]:
+        """The same ticks as fast as the machine allows (no clock; simulated rig only).
+
+        For tests and rehearsal: every decision, record and trip is the real one;
+        only the pacing is missing (lateness is recorded as zero).
+        """
+        if not self.simulated:
+            raise ConfigError("rig.link", "unpaced runs need the simulated rig.",
+                              "use --link sim.")
+        core, link = self.core, self.link
+        await link.open()
+        if self.settings.auto_arm:
+            core.submit("arm", lambda ok, msg: None)
+        try:
+            for _ in range(ticks):
+                t_nom = core.tick * core.Ts
+                sample = link.sample_now(t_nom)  # type: ignore[attr-defined]
+                cmd = core.step(sample, t_nom)
+                t_sent = time.monotonic()
+                link.apply(cmd)  # type: ignore[attr-defined]
+                core.after_send(t_sent)
+        finally:
+            await link.close()
+            core.close()
         return self.summary()
 
     async def _host_clocked(self) -> None:

@@ -21,6 +21,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import os
+import socket
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -122,6 +123,10 @@ class TelemetryServer:
         c = _Client(writer)
         # Never let the transport pause us: we police the buffer ourselves.
         writer.transport.set_write_buffer_limits(high=self.client_buffer * 4)
+        sock = writer.get_extra_info("socket")
+        if sock is not None:  # bound what the kernel holds for a client too
+            with contextlib.suppress(OSError):
+                sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, self.client_buffer)
         self.clients.append(c)
         self._send(c, msgpack.packb(self.hello, use_bin_type=True))
         unpacker = msgpack.Unpacker(raw=False, max_buffer_size=1 << 20)

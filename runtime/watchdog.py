@@ -61,7 +61,7 @@ DEFAULTS: dict[str, Any] = {
     "seq_gap_max": 0,
     "link_timeout_s": 0.1,
     "saturation_s": 0.5,
-    "overrun_misses": 10,
+    "overrun_misses": 25,
     "overrun_window": 1000,
     "weight_norm_max": 100.0,
     "weight_rate_max": 1000.0,
@@ -214,11 +214,12 @@ class Watchdog:
                                 minimum=1)) if cfg is not None else DEFAULTS["overrun_window"]
         return cls(build_rules(cfg, period, clamp_margin), window)
 
-    def note_miss(self, tick: int, missed: bool) -> int:
-        """Record whether this tick missed its deadline; misses in the last window ticks."""
+    def note_miss(self, tick: int, missed: int) -> int:
+        """Record this tick's deadline misses (skipped deadlines count); misses in the window."""
         i = tick % self.window.size
-        self.window_sum += int(missed) - int(self.window[i])
-        self.window[i] = int(missed)
+        missed = min(int(missed), 127)
+        self.window_sum += missed - int(self.window[i])
+        self.window[i] = missed
         return self.window_sum
 
     def check(self, sig: Signals) -> list[Rule]:
