@@ -201,3 +201,71 @@ def test_disconnect_fault_and_serial_reconnect(tmp_path):
             await link.close()
 
         asyncio.run(main())
+
+
+
+E2E_SLOW = ["--set", "loop.period=0.004", "--set", "adaptation.gamma=0.5"]  # 250 Hz over MQTT
+
+
+@pytest.mark.parametrize("transport", ["serial", "mqtt"])
+def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path):  # noqa: F811
+    """`corral rig serve` in one process, `corral run --link ...` in another.
+
+    `corral run --arm` arms only the in-process simulated rig, so the served rig is
+    armed the way an operator would: an "arm" request on the run's operator socket.
+    The stale-sample rule is widened to 20 periods: two Python processes ticking on
+    a shared 2-core machine see multi-millisecond stalls, which would (correctly)
+    trip it and end the test before the loop engages.
+    """
+    import json as _json
+    import socket
+    import time
+
+    import msgpack
+
+    if transport == "serial":
+        serve_args, extra = ["--serial"], []
+    else:
+        serve_args, extra = ["--mqtt", mosquitto.url, *E2E_SLOW], E2E_SLOW
+    with Serve(*serve_args, "--duration", "25") as serve:
+        spec = f"serial:{serve.first}" if transport == "serial" else serve.first
+        run = subprocess.Popen(
+            [*CORRAL, "run", str(CONFIG), "--link", spec, "--headless", "--duration", "4",
+             "--json", "--set", f"log.dir={tmp_path}", "--set", "watchdog.stale_periods=20",
+             *extra],
+            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+        try:
+            sock_path = tmp_path / "pedestal-sim.sock"
+            deadline = time.monotonic() + 15
+            while not sock_path.exists() and time.monotonic() < deadline:
+                assert run.poll() is None, run.communicate()[1]
+                time.sleep(0.05)
+            reply = None
+            with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as s:
+                s.connect(str(sock_path))
+                s.sendall(msgpack.packb({"type": "request", "op": "arm"}))
+                s.settimeout(5)
+                unpacker = msgpack.Unpacker(raw=False)
+                while reply is None:
+                    unpacker.feed(s.recv(65536))
+                    for m in unpacker:
+                        if m.get("type") == "reply" and m.get("op") == "arm":
+                            reply = m
+            out, err = run.communicate(timeout=30)
+        finally:
+            if run.poll() is None:
+                run.kill()
+                run.communicate()
+    assert run.returncode == 0, err
+    assert reply["ok"], reply
+    summary = _json.loads(out)
+    assert summary["simulated"] is False
+    assert summary["engagements"] >= 1, summary["trips"]
+    link = summary["link"]
+    for key in ("frames_in", "frames_out", "crc_errors", "gaps", "duplicates", "late_frames",
+                "latency_p50_us", "latency_p99_us"):
+        assert key in link
+    rate = 1000 if transport == "serial" else 250
+    assert link["frames_in"] > 2 * rate and link["frames_out"] > 2 * rate  # ~4 s of samples
+    assert link["crc_errors"] == 0 and link["decode_errors"] == 0
+    assert link["latency_p50_us"] > 0
