@@ -77,7 +77,10 @@ def main(args: argparse.Namespace) -> int:
     design = design_from_config(cfg)
     plant = plant_from_config(cfg, design)
     rig = str(cfg.get("rig.name", design.rig.name or "rig"))
-    timeout = cfg.number("link.command_timeout", 0.05, positive=True, unit="s")
+    # link.command_timeout (s); rig.command_timeout_s is the in-process SimLink's name for it.
+    timeout = cfg.number("link.command_timeout",
+                         cfg.number("rig.command_timeout_s", 0.05, positive=True, unit="s"),
+                         positive=True, unit="s")
     try:
         FaultSchedule.from_config(cfg)
     except FaultError as exc:
