@@ -101,6 +101,7 @@ def schedule_from_config(cfg: Config, tracked: Sequence[str]) -> CommandSchedule
         if key not in known:
             raise ConfigError(f"commands.{key}", "is not a tracked output.",
                               f"name segments after a tracked output: {', '.join(tracked)}.")
+    initial = cfg.vector("commands.initial", len(tracked), [0.0] * len(tracked))
     axes = []
     for j, name in enumerate(tracked):
         items = cfg.get(f"commands.{name}", [])
@@ -131,7 +132,6 @@ def schedule_from_config(cfg: Config, tracked: Sequence[str]) -> CommandSchedule
             else:
                 segs.append(Segment(at, kind))
         segs.sort(key=lambda s: s.at)
-        initial = cfg.get("commands.initial", [0.0] * len(tracked))
         axes.append(AxisProfile(name, float(initial[j]), tuple(segs)))
     return CommandSchedule(tuple(axes), duration)
 

@@ -160,7 +160,7 @@ class Config:
                               f"write {key} = [a, b, ...].")
         if length is not None and arr.size != length:
             raise ConfigError(key, f"has {arr.size} entries, expected {length}.",
-                              f"give exactly {length} values (one per state/input).")
+                              f"give exactly {length} values.")
         if positive and np.any(arr <= 0):
             raise ConfigError(key, f"must be all positive, got {arr.tolist()}.",
                               "make every entry greater than zero.")
@@ -271,9 +271,10 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
     check_sections(raw, str(path))
     cfg = Config(raw=raw, path=p)
     if overrides:
-        _note_new_keys(raw, overrides)
-        cfg = cfg.with_overrides(overrides)
-        check_sections(cfg.raw, "--set")
+        merged = cfg.with_overrides(overrides)
+        check_sections(merged.raw, "--set")
+        _note_new_keys(raw, overrides)  # only once the overrides are accepted: one message
+        cfg = merged
     return cfg
 
 

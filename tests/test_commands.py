@@ -132,15 +132,6 @@ def test_bad_segment_through_the_cli_is_one_line(corral, tmp_path):
     assert len(lines) == 1 and "'commands.az[0].kind'" in lines[0]
 
 
-INITIAL_BUG = pytest.mark.xfail(
-    strict=True,
-    reason="runtime/commands.py schedule_from_config does not validate commands.initial "
-           "(IndexError / ValueError / silently ignores extras); fix: read it with "
-           "cfg.vector('commands.initial', len(tracked), [0.0] * len(tracked))",
-)
-
-
-@INITIAL_BUG
 @pytest.mark.parametrize("initial", [[0.1], [0.1, 0.2, 0.3], ["a", "b"]])
 def test_bad_initial_commands_name_the_field(initial):
     # House rule: a user error is a ConfigError naming the field, never an IndexError or
@@ -150,7 +141,6 @@ def test_bad_initial_commands_name_the_field(initial):
     assert info.value.field == "commands.initial"
 
 
-@INITIAL_BUG
 def test_bad_initial_commands_through_the_cli_are_one_line(corral, tmp_path):
     res = corral("dry-run", "configs/pedestal-sim.toml", "--no-plot", "--out", tmp_path,
                  "--set", "commands.duration=0.1", "--set", "commands.initial=[0.1]")

@@ -59,13 +59,6 @@ def test_config_error_is_one_line_naming_the_field(corral, small_rig_toml, case)
     assert res.stdout == ""
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="runtime/config.py load_config: _note_new_keys prints a 'did you mean' note for "
-           "a --set key before that key is refused (empty part, unknown section), so stderr "
-           "has two lines; fix: apply the overrides and check_sections first, then note new "
-           "keys only if loading succeeded",
-)
 @pytest.mark.parametrize(
     ("override", "field", "words"),
     [("adaptation..gamma=3", "adaptation..gamma", ["empty"]),
