@@ -265,7 +265,7 @@ class PlantFit:
 
 
 def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
-                 window_s: float = 0.02) -> PlantFit:
+                 window_s: float = 0.02, _refit: bool = True) -> PlantFit:
     """Least-squares fit of the pedestal's uncertain parameters to the record.
 
     Target: the mean measured acceleration over a window of `window_s`
@@ -280,7 +280,10 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
     is checked to enter linearly (its column at 2 equals twice its column at
     1); the others (the tanh and Stribeck speeds) stay at the config truth.
     Fitted by default: the parameters with a `[plant.ranges]` entry (the
-    uncertain ones), else every linear one except the nominal a, b.
+    uncertain ones), else every linear one except the nominal a, b. Ticks with
+    the outputs off are left out. A parameter the record does not excite
+    (standard error over half its config range) is held at the config truth
+    and the rest are fitted again, once.
     """
     from sim_rigs.pedestal import TRUTH_DEFAULTS, Pedestal
 
@@ -299,7 +302,7 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
         raise ConfigError("plant.ranges", f"{', '.join(unknown)} is not a pedestal parameter.",
                           f"use names from: {', '.join(TRUTH_DEFAULTS)}.")
 
-    lo = 0 if rec.kind != "runtime" else rec.window()[0]
+    lo = 0
     delay = int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0))
     span = max(1, int(round(window_s / rec.period)))
     y = rec.y
@@ -308,16 +311,17 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
     ok = np.abs(dt - rec.period) < 0.25 * rec.period  # no dropped rows between the two ends
     ku = k - delay  # the measurement at k shows the true state of k - delay
     ok &= np.all(np.isfinite(y[k]), axis=1) & np.all(np.isfinite(y[k + 1]), axis=1)
-    ok &= np.all(np.isfinite(rec.u[ku]), axis=1)
+    ok &= np.all(np.isfinite(rec.u[ku]), axis=1) & rec.outputs_on[ku]
     # blocks of `span` consecutive usable ticks (non-overlapping, so residuals stay independent)
     k = k[ok]
     breaks = np.flatnonzero(np.diff(k) != 1) + 1
     blocks = [run[: (run.size // span) * span] for run in np.split(k, breaks)]
     k = np.concatenate(blocks) if blocks else k[:0]
     n_blocks = k.size // span
-    if n_blocks < 10 * max(1, len(names)):
-        raise RunFileError(f"{rec.path}: too few usable ticks ({k.size}) to fit "
-                           f"{len(names)} parameters")
+    if 2 * n_blocks < 5 * max(1, len(names)):  # at least 5 equations per parameter
+        raise RunFileError(f"{rec.path}: too few usable ticks ({k.size}, "
+                           f"{k.size * rec.period:.2f} s) to fit {len(names)} parameters over "
+                           f"{span * rec.period:g} s windows; record a longer run")
     ku = k - delay
     xa, xb, v = y[k], y[k + 1], rec.u[ku]
     batch = k.size
@@ -364,6 +368,24 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
     explained = target.reshape(n_blocks, 2)
     rms = np.sqrt(np.mean(resid**2, axis=0))
     rel = rms / np.maximum(np.sqrt(np.mean(explained**2, axis=0)), 1e-300)
+    # A parameter the record barely excites (standard error beyond half its
+    # config range, or beyond its own size without a range) would only add
+    # noise to the plant: hold it at the config truth and fit the rest again.
+    weak = []
+    for name, value, err in zip(fitted, theta, se, strict=True):
+        lo_hi = ranges.get(name)
+        width = abs(float(lo_hi[1]) - float(lo_hi[0])) if lo_hi is not None else abs(value)
+        if not err <= 0.5 * width:
+            weak.append(name)
+    if weak and len(weak) < len(fitted) and _refit:
+        again = fit_pedestal(rec, cfg, [n for n in names if n not in weak], window_s,
+                             _refit=False)
+        again.skipped.update(skipped)
+        for name, value, err in zip(fitted, theta, se, strict=True):
+            if name in weak:
+                again.skipped[name] = (f"poorly identified by this record ({value:.3g} +- "
+                                       f"{err:.2g}); held at the config truth")
+        return again
     return PlantFit(
         params={n: float(v) for n, v in zip(fitted, theta, strict=True)},
         stderr={n: float(s) for n, s in zip(fitted, se, strict=True)},
@@ -779,7 +801,7 @@ def plot_replay(result: ReplayResult, path: Path) -> Path:
         ax.plot(result.t, result.columns["y"][:, idx[j]], color="tab:orange", lw=1, ls="--",
                 label="replayed (measured)")
         ax.set_ylabel(f"{name} [{unit}]")
-        ax.legend(loc="upper right", fontsize=7, ncol=3)
+        ax.legend(loc="best", fontsize=7, ncol=3)
         ax.grid(alpha=0.3)
     axes[-1].set_xlabel("time [s]")
     sets = ", ".join(result.overrides) if result.overrides else "no overrides"
