@@ -72,8 +72,9 @@ def _print_text(out: dict[str, Any]) -> None:
     widths = [max(len(r[i]) for r in rows) for i in range(4)]
     for r in rows:
         print("  " + "  ".join(c.ljust(widths[i]) for i, c in enumerate(r)).rstrip())
-    if out.get("recorded", {}).get("logged_trip"):
-        print(f"  the run's trip log: {_trip(out['recorded']['logged_trip'])}")
+    if out["recorded"].get("logged_trip"):
+        print(f"  recorded first-out is from the run's trip log; re-evaluated on the recorded "
+              f"ticks: {_trip(out['recorded'].get('reevaluated_trip'))}")
     verdict = ("would trip" if out["would_trip"] else "would not trip")
     if out["trip_avoided"]:
         verdict += " (the recorded trip is avoided)"

@@ -543,8 +543,13 @@ class ReplayResult:
         """The machine-readable comparison (see docs/replay.md)."""
         start, engaged_end, stop = self.window
         rec = self.recorded.to_json()
+        rec["trip_source"] = "watchdog re-evaluated on the recorded ticks"
         if self.rec.kind == "runtime":
             rec["logged_trip"] = self.logged_trip
+            if self.logged_trip is not None:  # what the loop really did comes first
+                rec["reevaluated_trip"] = rec["trip"]
+                rec["trip"] = self.logged_trip
+                rec["trip_source"] = "the run's trip log"
         return {
             "run_file": str(self.rec.path), "kind": self.rec.kind,
             "rig": self.design.rig.name, "torn": self.rec.torn,
@@ -555,7 +560,7 @@ class ReplayResult:
             "recorded_rechecked": self.rechecked.to_json(),
             "replayed": self.replayed.to_json(),
             "would_trip": self.would_trip,
-            "trip_avoided": self.recorded.check.trip is not None and not self.would_trip,
+            "trip_avoided": rec["trip"] is not None and not self.would_trip,
             "watchdog": {"implementation": "runtime.watchdog.Watchdog, signals rebuilt from "
                                            "the recorded columns",
                          "not_evaluated": UNRECORDED_RULES},
@@ -688,6 +693,10 @@ def replay(rec: Recording, overrides: list[str] | None = None,
         notes.append(f"commands after the recorded engaged stretch come from the config's "
                      f"schedule ({counts['scheduled_commands']} ticks)")
 
+    faults = rec.header.get("faults") or cfg.get("faults", None)
+    if faults:
+        notes.append("the recorded run had injected faults; the replay does not inject them, "
+                     "so a trip they caused will not recur")
     fit = None
     truth = None
     if plant == "fitted":

@@ -290,3 +290,20 @@ def test_replays_a_real_time_run_log(corral, tmp_path):
                                                           rel=0.2)
     std = replay(rec, ["adaptation.law=standard"])
     assert std.would_trip
+
+
+def test_a_logged_trip_is_the_recorded_first_out(corral, tmp_path):
+    if not (ROOT / "runtime" / "cmd_run.py").exists():
+        pytest.skip("corral run (runtime/cmd_run.py) is not in this checkout yet")
+    # A disturbance torque far beyond what the law can absorb makes the loop trip.
+    run = corral("run", DEMO, "--headless", "--duration", "3", "--arm", "--json",
+                 "--fault", "disturbance_step@2.5:axis=el,size=40",
+                 "--set", f"log.dir={tmp_path}")
+    summary = json.loads(run.stdout)
+    assert summary["trips"], "precondition: the injected disturbance trips the loop"
+    res = corral("replay", summary["run_log"], "--no-plot", "--json", "--out", tmp_path)
+    out = json.loads(res.stdout)
+    first = summary["trips"][0]
+    assert out["recorded"]["trip_source"] == "the run's trip log"
+    assert out["recorded"]["trip"]["rule"] == first["rule"]
+    assert out["recorded"]["trip"]["t"] == pytest.approx(first["t"])
