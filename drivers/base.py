@@ -88,11 +88,11 @@ class LinkStats:
     last_sample_host_s: float = 0.0
     latencies_us: list[float] = field(default_factory=list, repr=False)
 
-    def as_dict(self) -> dict[str, float | int | bool]:
+    def as_dict(self) -> dict[str, float | int | bool | None]:
         """Counters as a plain dict (latency as p50/p99 in microseconds)."""
         import numpy as np
 
-        out: dict[str, float | int | bool] = {
+        out: dict[str, float | int | bool | None] = {
             k: getattr(self, k)
             for k in (
                 "frames_in", "frames_out", "crc_errors", "cobs_errors", "decode_errors",
@@ -101,8 +101,9 @@ class LinkStats:
             )
         }
         lat = np.asarray(self.latencies_us[-100_000:], dtype=float)
-        out["latency_p50_us"] = float(np.percentile(lat, 50)) if lat.size else float("nan")
-        out["latency_p99_us"] = float(np.percentile(lat, 99)) if lat.size else float("nan")
+        # None (JSON null) rather than NaN when nothing was measured: NaN is not JSON.
+        out["latency_p50_us"] = float(np.percentile(lat, 50)) if lat.size else None
+        out["latency_p99_us"] = float(np.percentile(lat, 99)) if lat.size else None
         return out
 
 

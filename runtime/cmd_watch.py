@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import time
 from pathlib import Path
 
 from runtime.cli import UserError
@@ -32,6 +33,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="show a recorded telemetry file instead of a live rig")
     parser.add_argument("--speed", type=float, default=1.0,
                         help="replay speed (1 = as recorded, 0 = at once)")
+    parser.add_argument("--wait", type=float, default=0.0, metavar="S",
+                        help="wait up to S seconds for the runtime's socket to appear")
 
 
 def make_source(args: argparse.Namespace):  # noqa: ANN201 - returns a TelemetrySource
@@ -58,6 +61,9 @@ def make_source(args: argparse.Namespace):  # noqa: ANN201 - returns a Telemetry
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
                         "--rig NAME, or --replay FILE")
+    deadline = time.monotonic() + max(0.0, getattr(args, "wait", 0.0))
+    while not Path(path).exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
     if not Path(path).exists():
         raise UserError(f"no runtime socket at {path}; is `corral run` running with this "
                         "config (and the same log.dir)?")
