@@ -43,6 +43,7 @@ LEVEL_STYLE = {
     panels.LEVEL_WARNING: "bold yellow",
     panels.LEVEL_TRIP: "bold red",
     panels.LEVEL_BREACH: "bold white on red",
+    panels.LEVEL_OFF: "dim",
 }
 
 REFRESH_HZ = 15.0

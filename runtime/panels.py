@@ -21,6 +21,7 @@ LEVEL_OK = "ok"
 LEVEL_WARNING = "warning"
 LEVEL_TRIP = "trip"
 LEVEL_BREACH = "breach"
+LEVEL_OFF = "not engaged"
 
 
 def _num(value: Any, default: float = math.nan) -> float:
@@ -75,6 +76,11 @@ def margin_view(hello: Record, tel: Record) -> MarginView:
     """The margin panel's content."""
     warning, trip = levels(hello)
     ratio = _num(tel.get("ratio"))
+    if tel.get("mode") != "engaged" and not ratio > 0:
+        # The adaptive law is not running: there is no margin to show.
+        return MarginView(ratio=math.nan, ratio_text="-", level=LEVEL_OFF,
+                          eps_text=fmt(tel.get("eps") or hello.get("eps")), s_text="-",
+                          time_to_bound_text="-", warning=warning, trip=trip)
     ttb = tel.get("time_to_bound")
     if ttb is None or math.isnan(_num(ttb)):
         ttb_text = "not approaching"

@@ -173,6 +173,13 @@ def test_margin_level_follows_the_configured_levels(ratio, level):
     assert panels.margin_level(ratio, 0.8, 0.9) == level
 
 
+def test_margin_is_not_shown_while_the_adaptive_law_is_off():
+    view = panels.margin_view(HELLO, {"mode": "settling", "ratio": 0.0, "eps": 0.0})
+    assert view.level == panels.LEVEL_OFF and view.ratio_text == "-"
+    view = panels.margin_view(HELLO, {"mode": "engaged", "ratio": 0.0, "eps": 0.05})
+    assert view.level == panels.LEVEL_OK and view.ratio_text == "0.000"
+
+
 def test_trace_lines_scale_and_mark_levels():
     rows = panels.trace_lines([0.0, 0.5, 1.0], width=3, height=4, top=1.0, marks=(0.8,))
     assert len(rows) == 4 and all(len(r) == 3 for r in rows)
