@@ -42,6 +42,7 @@ from numpy.typing import NDArray
 
 from drivers.base import FLAG_FALLBACK, FLAG_OUTPUTS_ON, Command, Link, LinkClosed, Sample
 from runtime import __version__
+from runtime.bound import schedule_from_config as schedule_from_bound
 from runtime.clock import DeadlineClock, LatencyStats
 from runtime.commands import schedule_from_config, tracked_names
 from runtime.config import Config, ConfigError
@@ -60,27 +61,41 @@ Array = NDArray[np.float64]
 class LawAdapter:
     """The adaptive law behind four calls, so the implementation can be swapped.
 
-    ``impl = "reference"`` uses `runtime.law.AdaptiveLaw` (numpy);
-    ``"fast"`` uses the compiled `runtime.fast.FastLaw`. Both see the
-    saturated applied input only through their own clipping (u is clipped to
-    the input limits before it is applied and fed back through u_n).
+    ``impl = "fast"`` (the default, ``loop.law``) uses the compiled
+    `runtime.fast.FastLaw` with the config's weight modifiers
+    (`runtime.fast.ModifierSettings.from_config`), compiled (or loaded from
+    the cache) here, before the clock starts; ``"reference"`` uses the numpy
+    `runtime.law.AdaptiveLaw` with the same modifiers (`runtime.law.law_from_config`).
+    Both see the saturated applied input only through their own clipping (u is
+    clipped to the input limits before it is applied and fed back through u_n).
+    `step` takes the bound eps_k of this tick (the time-varying bound).
+
+    The fast law's results are views of a buffer it reuses every tick: callers
+    copy what they keep.
     """
 
-    def __init__(self, design: Design, impl: str = "reference") -> None:
+    def __init__(self, design: Design, impl: str = "fast", cfg: Config | None = None) -> None:
         self.impl = impl
         self.n, self.m = design.rig.n, design.rig.m
         if impl == "fast":
-            from runtime.fast import FastLaw
+            from runtime.fast import FastLaw, ModifierSettings
 
-            self._fast: Any = FastLaw(design)
+            try:
+                mods = (ModifierSettings.from_config(cfg, design) if cfg is not None
+                        else None)
+                self._fast: Any = FastLaw(design, mods)
+            except ValueError as exc:
+                raise ConfigError("loop.law", f"the compiled law cannot run this config: {exc}",
+                                  'set loop.law = "reference" (the numpy law).') from None
             self._law: Any = None
             # Compile (or load) the kernels now, not on the first engaged tick.
             self._fast.init_state(np.zeros(self.n))
             self._fast.step(np.zeros(self.n), np.zeros(design.K2.shape[1]))
+            self._fast.init_state(np.zeros(self.n))
         else:
-            from runtime.law import AdaptiveLaw
+            from runtime.law import AdaptiveLaw, law_from_config
 
-            self._law = AdaptiveLaw(design)
+            self._law = law_from_config(cfg, design) if cfg is not None else AdaptiveLaw(design)
             self._fast = None
         self._state: Any = None
         self.out: Any = None
@@ -112,12 +127,15 @@ class LawAdapter:
         """Weights (live)."""
         return self._fast.W if self._fast is not None else self._state.W
 
-    def step(self, x: Array, c: Array) -> Any:
-        """One adaptive tick; the result has u, u_raw, e, s, ratio, phi_d, eff_rate, ..."""
+    def step(self, x: Array, c: Array, eps: float | None = None) -> Any:
+        """One adaptive tick under bound eps (None: the design's constant eps).
+
+        The result has u, u_raw, e, s, ratio, phi_d, eff_rate, step_gain, clamped.
+        """
         if self._fast is not None:
-            self.out = self._fast.step(x, c)
+            self.out = self._fast.step(x, c, eps)
         else:
-            self.out = self._law.step(self._state, x, c)
+            self.out = self._law.step(self._state, x, c, eps)
         return self.out
 
 
@@ -190,7 +208,8 @@ def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[
     out_units = ",".join(rig.state_units[i] for i in np.argmax(rig.C != 0, axis=1))
     fields = [("t", 1, "s"), ("tick", 1, "1"), ("mode", 1, "code"), ("latched", 1, "1"),
               ("c", p, out_units), ("x", rig.n, su), ("xr", rig.n, su), ("e", rig.n, su),
-              ("s", 1, "1"), ("ratio", 1, "1"), ("phi_d", 1, "1"), ("eff_rate", 1, "1"),
+              ("s", 1, "1"), ("eps", 1, "1"), ("ratio", 1, "1"), ("phi_d", 1, "1"),
+              ("eff_rate", 1, "1"),
               ("step_gain", 1, "1"), ("u_cmd", rig.m, iu), ("u", rig.m, iu),
               ("w_norm", 1, "1"), ("sample_age_ms", 1, "ms"), ("lateness_us", 1, "us"),
               ("outputs_on", 1, "1")]
@@ -216,8 +235,15 @@ class TickCore:
         schedule = schedule_from_config(cfg, self.tracked)
         n_cmd = int(round(schedule.duration / Ts)) + 1
         self.cmd_table = np.ascontiguousarray(schedule.evaluate(np.arange(n_cmd) * Ts))
-        self.law = LawAdapter(d, str(cfg.choice("loop.law", ("reference", "fast"),
-                                                "reference")))
+        self.law = LawAdapter(d, str(cfg.choice("loop.law", ("fast", "reference"), "fast")),
+                              cfg)
+        # The bound eps(t), t = seconds since the law engaged (constant design.eps when
+        # [adaptation.bound] is absent). The law, the margin rules (the ratio is
+        # ||e||_P / eps_k), telemetry, trip snapshots and the run log all use eps_k.
+        self.bound = schedule_from_bound(cfg, d)
+        self.bound_varies = self.bound.kind != "constant"
+        self.eps0 = float(self.bound.eps(0.0))
+        self.eps_now = self.eps0
         channels = len(link.hello.channels) if link.hello is not None else rig.n
         jump = cfg.vector("watchdog.jump_limit", rig.n, (0.5 * d.limits).tolist(),
                           positive=True)
@@ -265,7 +291,8 @@ class TickCore:
                   "states": list(rig.states), "state_units": list(rig.state_units),
                   "inputs": list(rig.inputs), "input_units": list(rig.input_units),
                   "input_limits": self.u_max.tolist(), "tracked": list(self.tracked),
-                  "eps": d.eps, "levels": self.levels(), "simulated": simulated}
+                  "eps": self.eps0, "bound": self.bound.to_json(),
+                  "levels": self.levels(), "simulated": simulated}
         self.trip_log = TripLog(trip_path, {**common, "capture_fields": self.fields,
                                             "capture_units": self.units,
                                             "capture_widths": self.widths,
@@ -335,7 +362,8 @@ class TickCore:
                 "state_units": list(rig.state_units), "inputs": list(rig.inputs),
                 "input_units": list(rig.input_units), "input_limits": self.u_max.tolist(),
                 "limits": np.asarray(d.limits).tolist(),
-                "envelope": np.asarray(d.envelope).tolist(), "eps": d.eps,
+                "envelope": np.asarray(d.envelope).tolist(), "eps": self.eps0,
+                "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
                 "tracked": list(self.tracked)}
 
@@ -397,10 +425,13 @@ class TickCore:
                 if not np.any(off):
                     self.c_offset = None
             self.c = c
-            out = self.law.step(x, c)
-            u, on = out.u, True
+            if self.bound_varies:
+                self.eps_now = float(self.bound.eps(i * Ts))
+            out = self.law.step(x, c, self.eps_now)
+            # The fast law's results are views it overwrites next tick: copy.
+            u, on = out.u.copy(), True
             law_ran = True
-            self.e = out.e
+            self.e[:] = out.e
             self.s = float(out.s)
             ratio = float(out.ratio)
             self.ratio_rate = (self._alpha_rr * self.ratio_rate
@@ -410,7 +441,7 @@ class TickCore:
             self.eff_rate = float(out.eff_rate)
             self.step_gain = float(out.step_gain)
             self.clamped = bool(out.clamped)
-            self.u_cmd = np.asarray(out.u_raw)
+            self.u_cmd = np.array(out.u_raw, dtype=float)
             if ratio > self.max_ratio:
                 self.max_ratio = ratio
             W = self.law.W
@@ -499,6 +530,7 @@ class TickCore:
         row[sl["xr"]] = self.x - self.e if engaged else self.x
         row[sl["e"]] = self.e if engaged else 0.0
         row[sl["s"]] = self.s if engaged else 0.0
+        row[sl["eps"]] = self.eps_now
         row[sl["ratio"]] = self.ratio if engaged else 0.0
         row[sl["phi_d"]] = self.phi_d
         row[sl["eff_rate"]] = self.eff_rate
@@ -536,7 +568,8 @@ class TickCore:
         off = self.design.rig.C @ x - self.cmd_table[0]
         self.c_offset = off if np.any(off) else None
         self.ratio = self.ratio_rate = 0.0
-        self.e = np.zeros(self.n)
+        self.e[:] = 0.0
+        self.eps_now = self.eps0
         self.engagements.append({"tick": self.tick, "x": x.tolist(),
                                  "xr": np.array(self.law.xr).tolist()})
 
@@ -617,7 +650,7 @@ class TickCore:
                 if self.law.out is not None else [],
                 "x": self.x.tolist(), "xr": (self.x - self.e).tolist(), "e": self.e.tolist(),
                 "u_cmd": np.asarray(self.u_cmd).tolist(), "u_applied": self.u.tolist(),
-                "eps": self.design.eps, "phi_d": self.phi_d, "ratio": self.ratio,
+                "eps": self.eps_now, "phi_d": self.phi_d, "ratio": self.ratio,
                 "loop": {"ticks": k + 1, "lateness_p50_us": p50, "lateness_p99_us": p99,
                          "lateness_max_us": mx,
                          "deadline_misses": stats.misses if stats is not None else 0,
@@ -705,7 +738,7 @@ class TickCore:
             "type": "telemetry", "t": self.t, "tick": self.tick, "mode": self.sup.mode,
             "latched": self.sup.latched, "fallback": self.sup.fallback,
             "ratio": self.ratio if engaged else 0.0, "s": self.s if engaged else 0.0,
-            "eps": self.design.eps, "phi_d": self.phi_d, "eff_rate": self.eff_rate,
+            "eps": self.eps_now, "phi_d": self.phi_d, "eff_rate": self.eff_rate,
             "step_gain": self.step_gain, "step_gain_cap": self.design.step_gain_cap,
             "c": self.c.tolist(), "x": self.x.tolist(), "xr": xr.tolist(),
             "e": (self.e if engaged else np.zeros(self.n)).tolist(),
