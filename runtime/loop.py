@@ -221,7 +221,7 @@ class TickCore:
     """The per-tick logic and its records (runs in the clock thread or an asyncio task)."""
 
     def __init__(self, cfg: Config, design: Design, link: Link, settings: RunSettings,
-                 log_dir: Path, simulated: bool) -> None:
+                 log_dir: Path, simulated: bool, faults: Any = None) -> None:
         self.cfg = cfg
         self.design = d = design
         self.link = link
@@ -292,7 +292,10 @@ class TickCore:
                   "inputs": list(rig.inputs), "input_units": list(rig.input_units),
                   "input_limits": self.u_max.tolist(), "tracked": list(self.tracked),
                   "eps": self.eps0, "bound": self.bound.to_json(),
-                  "levels": self.levels(), "simulated": simulated}
+                  "levels": self.levels(), "simulated": simulated,
+                  # Injected faults as `KIND@SECONDS:...` labels, by where they were set.
+                  "faults": (faults.describe() if faults is not None
+                             else {"config": [], "command_line": []})}
         self.trip_log = TripLog(trip_path, {**common, "capture_fields": self.fields,
                                             "capture_units": self.units,
                                             "capture_widths": self.widths,
@@ -341,6 +344,8 @@ class TickCore:
         self._alpha_rr = math.exp(-2 * math.pi * 20.0 * Ts)
         self.seq = 0
         self._pending_trip: dict[str, Any] | None = None
+        self.law_ran = False
+        """The adaptive law ran this tick (its ratio, s, e are recorded even on a trip)."""
 
     # ------------------------------------------------------------- helpers
     def levels(self) -> dict[str, float]:
@@ -513,6 +518,7 @@ class TickCore:
         if trip_ctx is not None:
             trip_ctx["t_detect"] = t_detect
         self._pending_trip = trip_ctx
+        self.law_ran = law_ran
         return cmd
 
     def after_send(self, t_sent: float) -> None:
@@ -526,7 +532,9 @@ class TickCore:
         row[3] = float(self.sup.latched)
         row[sl["c"]] = self.c
         row[sl["x"]] = self.x
-        engaged = self.sup.mode == "engaged"
+        # The law's figures whenever it ran this tick, also when the tick ended in a
+        # fallback (the tick that tripped the margin rule is in the log with its ratio).
+        engaged = self.law_ran
         row[sl["xr"]] = self.x - self.e if engaged else self.x
         row[sl["e"]] = self.e if engaged else 0.0
         row[sl["s"]] = self.s if engaged else 0.0
@@ -722,7 +730,7 @@ class TickCore:
         """The decimated telemetry map (docs/telemetry.md)."""
         stats = self.loop_stats
         p50, p99, _ = stats.percentiles_us() if stats is not None else (math.nan,) * 3
-        engaged = self.sup.mode == "engaged"
+        engaged = self.law_ran
         ttb = None
         if engaged and self.ratio_rate > 1e-9 and self.ratio < 1.0:
             ttb = (1.0 - self.ratio) / self.ratio_rate
@@ -783,7 +791,7 @@ class Runner:
                               "drop --fault and [[faults]] for a real rig.")
         self.log_dir = Path(str(cfg.get("log.dir", "runs")))
         self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
-                             self.simulated)
+                             self.simulated, self.faults)
         self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"
         rate = cfg.number("telemetry.rate_hz", 25.0, positive=True, unit="Hz")
         self.telemetry = TelemetryServer(self.socket_path, self.core.hello(), self.core.submit,

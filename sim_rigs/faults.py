@@ -152,6 +152,8 @@ class FaultSchedule:
 
     def __init__(self, faults: Iterable[Fault] = ()) -> None:
         self.faults = sorted(faults, key=lambda f: f.at)
+        self.sources: dict[str, list[str]] = {"config": [], "command_line": []}
+        """Labels (`Fault.label`) by where each fault was scheduled (for the log headers)."""
 
     @classmethod
     def from_config(cls, cfg: Any, extra: Sequence[str] = ()) -> FaultSchedule:
@@ -169,8 +171,19 @@ class FaultSchedule:
                 raise FaultError(f"faults[{i}]: each [[faults]] table needs kind and at.")
             params = {k: v for k, v in table.items() if k not in ("kind", "at")}
             faults.append(_make(str(table["kind"]), table["at"], params, f"faults[{i}]"))
-        faults.extend(parse_fault(t) for t in extra)
-        return cls(faults)
+        from_cfg = list(faults)
+        extra_faults = [parse_fault(t) for t in extra]
+        out = cls(from_cfg + extra_faults)
+        out.sources = {"config": [f.label() for f in from_cfg],
+                       "command_line": [f.label() for f in extra_faults]}
+        return out
+
+    def describe(self) -> dict[str, list[str]]:
+        """The schedule as labels: ``{"config": [...], "command_line": [...]}``."""
+        known = set(self.sources["config"]) | set(self.sources["command_line"])
+        other = [f.label() for f in self.faults if f.label() not in known]
+        return {"config": list(self.sources["config"]) + other,
+                "command_line": list(self.sources["command_line"])}
 
     def __len__(self) -> int:
         return len(self.faults)

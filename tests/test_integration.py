@@ -88,3 +88,39 @@ def test_fast_and_reference_loops_agree(tmp_path):
     np.testing.assert_allclose(cols[0]["u"], cols[1]["u"], atol=1e-8)
     np.testing.assert_allclose(cols[0]["ratio"], cols[1]["ratio"], atol=1e-8)
     assert math.isfinite(float(cols[0]["ratio"].max()))
+
+
+# ------------------------------------------------------------------ 2. run log
+def test_tripping_tick_is_in_the_run_log_with_its_ratio(tmp_path):
+    """A margin trip: the run log's row of the trip tick holds the ratio that tripped."""
+    r = _runner(DEMO, tmp_path, faults=["disturbance_step@1.5:axis=el,size=40"])
+    summary = _unpaced(r, 2.1)
+    trip = summary["trips"][0]
+    assert trip["rule"] in ("margin", "predicted_crossing")
+    header, cols = read_run_log(summary["run_log"])
+    row = int(np.flatnonzero(cols["tick"] == trip["tick"])[0])
+    assert cols["mode"][row] != 2  # the tick ended in the fallback ...
+    assert cols["ratio"][row] > 0 and cols["s"][row] > 0  # ... but the law's figures are there
+    if trip["rule"] == "margin":
+        assert cols["ratio"][row] == pytest.approx(trip["value"])
+    assert np.any(cols["e"][row] != 0)
+    # The trip record's pre-capture ends on that same row, ratio included.
+    th, trips, _, _ = read_trip_log(summary["trip_log"])
+    pre = trips[0].record["pre"]
+    ratio_col = th["capture_fields"].index("ratio")
+    offs = np.cumsum([0] + th["capture_widths"])
+    assert pre[-1][int(offs[ratio_col])] == pytest.approx(cols["ratio"][row])
+    # Later ticks in the fallback: the law no longer runs, nothing is recorded for it.
+    assert cols["ratio"][row + 5] == 0.0
+
+
+def test_fault_schedule_labels_in_both_log_headers(tmp_path):
+    cfg_path = tmp_path / "faulty.toml"
+    cfg_path.write_text(DEMO.read_text() + '\n[[faults]]\nkind = "spike"\nat = 1.2\nsize = 0.3\n')
+    r = _runner(cfg_path, tmp_path, faults=["dropout@1.8:duration=0.01"])
+    summary = _unpaced(r, 0.3)
+    want = {"config": ["spike@1.2:size=0.3"], "command_line": ["dropout@1.8:duration=0.01"]}
+    run_header, _ = read_run_log(summary["run_log"])
+    trip_header, _, _, _ = read_trip_log(summary["trip_log"])
+    assert run_header["faults"] == want
+    assert trip_header["faults"] == want
