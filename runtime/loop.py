@@ -140,6 +140,27 @@ class LawAdapter:
 
 
 # ------------------------------------------------------------------ links
+def command_timeout(cfg: Config) -> float:
+    """The device's command timeout (s): ``link.command_timeout``, default 0.05.
+
+    ``rig.command_timeout_s`` (the older name) is still accepted; giving both
+    with different values is refused.
+    """
+    new = cfg.get("link.command_timeout", None)
+    old = cfg.get("rig.command_timeout_s", None)
+    if new is not None and old is not None:
+        a = cfg.number("link.command_timeout", positive=True, unit="s")
+        b = cfg.number("rig.command_timeout_s", positive=True, unit="s")
+        if a != b:
+            raise ConfigError("link.command_timeout",
+                              f"is {a:g} s but its old name rig.command_timeout_s says {b:g} s.",
+                              "keep link.command_timeout only.")
+        return a
+    if old is not None:
+        return cfg.number("rig.command_timeout_s", positive=True, unit="s")
+    return cfg.number("link.command_timeout", 0.05, positive=True, unit="s")
+
+
 def make_link(cfg: Config, spec: str | None, design: Design | None = None,
               faults: Any = None) -> Link:
     """The link a config (``rig.link``) or ``--link SPEC`` names.
@@ -158,8 +179,7 @@ def make_link(cfg: Config, spec: str | None, design: Design | None = None,
                        states=design.rig.states, units=design.rig.state_units,
                        inputs=design.rig.inputs,
                        seed=int(cfg.number("plant.seed", 0, minimum=0)),
-                       command_timeout_s=cfg.number("rig.command_timeout_s", 0.05,
-                                                    positive=True, unit="s"))
+                       command_timeout_s=command_timeout(cfg))
     full = spec or str(cfg.get("rig.link", "sim"))
     if kind == "serial":  # serial:PATH[@BAUD] (drivers.serial_link)
         from drivers.serial_link import SerialLink

@@ -124,3 +124,22 @@ def test_fault_schedule_labels_in_both_log_headers(tmp_path):
     trip_header, _, _, _ = read_trip_log(summary["trip_log"])
     assert run_header["faults"] == want
     assert trip_header["faults"] == want
+
+
+# ------------------------------------------------------------------ 3. key names
+@pytest.mark.parametrize(("overrides", "expect"), [
+    ([], 0.05),
+    (["link.command_timeout=0.08"], 0.08),
+    (["rig.command_timeout_s=0.07"], 0.07),  # the older name, still accepted
+])
+def test_command_timeout_key_and_alias_reach_the_simulated_device(tmp_path, overrides, expect):
+    r = _runner(DEMO, tmp_path, overrides, arm=False)
+    assert r.link.hello.command_timeout_s == pytest.approx(expect)
+
+
+def test_command_timeout_conflicting_names_refused(tmp_path):
+    from runtime.config import ConfigError
+
+    with pytest.raises(ConfigError) as err:
+        _runner(DEMO, tmp_path, ["link.command_timeout=0.08", "rig.command_timeout_s=0.07"])
+    assert err.value.field == "link.command_timeout"
