@@ -51,6 +51,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--link", default=None, metavar="SPEC",
                         help="link to the rig (default: rig.link of the config; 'sim' = the "
                              "simulated rig in-process)")
+    parser.add_argument("--telemetry-mqtt", default=None, metavar="HOST:PORT",
+                        help="also publish telemetry, mode and trips on this MQTT broker "
+                             "(default: telemetry.mqtt of the config; an mqtt:// link "
+                             "publishes on its own broker)")
 
 
 def dashboard_available() -> bool:
@@ -66,7 +70,7 @@ def main(args: argparse.Namespace) -> int:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10")
     cfg = load_config(args.config, args.overrides)
     settings = RunSettings(duration=args.duration, auto_arm=False, faults=list(args.fault),
-                           link=args.link)
+                           link=args.link, telemetry_mqtt=args.telemetry_mqtt)
     runner = Runner(cfg, settings)
     if not runner.simulated:
         print(HARDWARE_CAUTIONS, file=sys.stderr)

@@ -51,7 +51,7 @@ from runtime.estimator import Estimator, rate_pairs
 from runtime.fallback import make_fallback, settings_from_config
 from runtime.records import RunLogWriter, TripLog, log_paths
 from runtime.supervisor import MODE_CODE, Supervisor
-from runtime.telemetry import TelemetryServer
+from runtime.telemetry import MqttBridge, TelemetryServer
 from runtime.watchdog import Signals, Watchdog
 
 Array = NDArray[np.float64]
@@ -219,6 +219,48 @@ class RunSettings:
     link: str | None = None
     echo_trips: bool = True
     """Print one line on stderr when a trip is on disk."""
+    telemetry_mqtt: str | None = None
+    """``HOST:PORT`` of a broker for telemetry (``--telemetry-mqtt``; else ``telemetry.mqtt``)."""
+    console: Any = None
+    """Where progress and trip lines go (a text file while a dashboard owns the terminal);
+    None = stderr."""
+
+
+def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: str | None,
+                            rig: str) -> Any:
+    """The broker settings telemetry is published with, or None (no MQTT telemetry).
+
+    An MQTT link (``mqtt://HOST:PORT/RIG``) publishes on its own broker under its
+    rig name; otherwise ``--telemetry-mqtt HOST:PORT`` or ``telemetry.mqtt``
+    names a broker, and the config's rig name is used. Login, TLS, prefix and
+    ``remote_requests`` come from ``[link.mqtt]``.
+    """
+    from dataclasses import replace
+
+    from drivers.mqtt_link import MqttConfigError, MqttSettings, parse_host_port, parse_mqtt_url
+
+    table = cfg.get("link.mqtt", {}) or {}
+    spec = link_spec or str(cfg.get("rig.link", "sim"))
+    try:
+        if spec.startswith(("mqtt://", "mqtts://")):
+            try:
+                host, port, url_rig = parse_mqtt_url(spec)
+            except ValueError as exc:
+                raise ConfigError("rig.link", str(exc), "write mqtt://HOST:PORT/RIG.") from None
+            out = MqttSettings.from_table(table, host=host, port=port, rig=url_rig)
+            return replace(out, tls=True) if spec.startswith("mqtts://") else out
+        where = "--telemetry-mqtt" if telemetry_mqtt else "telemetry.mqtt"
+        text = telemetry_mqtt or cfg.get("telemetry.mqtt", None)
+        if not text:
+            return None
+        try:
+            host, port = parse_host_port(str(text))
+        except ValueError as exc:
+            raise ConfigError(where, str(exc), "write HOST:PORT, e.g. 127.0.0.1:1883.") \
+                from None
+        return MqttSettings.from_table(table, host=host, port=port, rig=rig)
+    except MqttConfigError as exc:
+        raise ConfigError(exc.field, exc.problem, exc.fix) from None
 
 
 def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[str]]:
@@ -820,6 +862,14 @@ class Runner:
                                              "telemetry.client_buffer", 256 * 1024,
                                              positive=True)))
         self.core.telemetry = self.telemetry
+        self.mqtt_settings = mqtt_telemetry_settings(cfg, settings.link, settings.telemetry_mqtt,
+                                                     self.design.rig.name)
+        self.mqtt: MqttBridge | None = None
+        if self.mqtt_settings is not None:
+            self.mqtt = MqttBridge(self.mqtt_settings, self.core.hello(), self.core.submit,
+                                   rate_hz=cfg.number("telemetry.mqtt_rate_hz", 10.0,
+                                                      positive=True, unit="Hz"))
+            self.telemetry.listeners.append(self.mqtt.on_record)
         self.core.tel_every = max(1, int(round(1.0 / (self.telemetry.rate_hz * self.design.Ts))))
         self.clock = DeadlineClock(self.design.Ts,
                                    spin_us=cfg.number("loop.spin_us", 200.0, minimum=0.0),
@@ -849,6 +899,8 @@ class Runner:
             async with self.link:
                 async with asyncio.TaskGroup() as tg:
                     tel = tg.create_task(self.telemetry.serve(), name="telemetry")
+                    mqtt = (tg.create_task(self.mqtt.run(), name="mqtt-telemetry")
+                            if self.mqtt is not None else None)
                     if self.settings.auto_arm:
                         self.core.submit("arm", lambda ok, msg: None)
                     await asyncio.sleep(0)
@@ -860,6 +912,8 @@ class Runner:
                             await self._rig_clocked()
                     finally:
                         tel.cancel()
+                        if mqtt is not None:
+                            mqtt.cancel()
         finally:
             sys.setswitchinterval(old_switch)
             self.core.close()
@@ -982,4 +1036,5 @@ class Runner:
             "telemetry_clients_dropped": self.telemetry.dropped_clients,
             "simulated": self.simulated, "rig": self.design.rig.name,
             "config_hash": core.config_hash,
+            "mqtt": self.mqtt.summary if self.mqtt is not None else None,
         }

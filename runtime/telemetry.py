@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import math
 import os
 import socket
 from collections.abc import Callable
@@ -51,6 +52,9 @@ class TelemetryServer:
         self.dropped_clients = 0
         self.sent = 0
         self._latest: dict[str, Any] | None = None
+        self.listeners: list[Callable[[dict[str, Any]], None]] = []
+        """Called on the event loop with every record sent (telemetry at the socket rate,
+        trips, events), whether or not a client is connected: the MQTT publisher."""
         self._loop: asyncio.AbstractEventLoop | None = None
         self._server: asyncio.AbstractServer | None = None
 
@@ -64,7 +68,7 @@ class TelemetryServer:
         loop = self._loop
         if loop is not None and not loop.is_closed():
             with contextlib.suppress(RuntimeError):
-                loop.call_soon_threadsafe(self._broadcast, record)
+                loop.call_soon_threadsafe(self._deliver, record)
 
     # ------------------------------------------------------------ event-loop side
     async def serve(self) -> None:
@@ -80,13 +84,21 @@ class TelemetryServer:
                 await asyncio.sleep(period)
                 rec, self._latest = self._latest, None
                 if rec is not None:
-                    self._broadcast(rec)
+                    self._deliver(rec)
         finally:
             self._server.close()
             for c in list(self.clients):
                 self._drop(c, count=False)
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(self.path)
+
+    def _deliver(self, record: dict[str, Any]) -> None:
+        for listener in self.listeners:
+            try:
+                listener(record)
+            except Exception:  # noqa: BLE001 - a listener must never stop the telemetry
+                pass
+        self._broadcast(record)
 
     def _broadcast(self, record: dict[str, Any]) -> None:
         if not self.clients:
@@ -209,3 +221,108 @@ class TelemetryClient:
             self.writer.close()
             with contextlib.suppress(Exception):
                 await self.writer.wait_closed()
+
+
+class MqttBridge:
+    """The socket's records on the broker too, and the broker's requests into the loop.
+
+    Listens to a `TelemetryServer` (add `on_record` to its `listeners`) and runs a
+    `drivers.mqtt_link.MqttPublisher` while `run()` is awaited: decimated
+    telemetry on ``<prefix>/<rig>/telemetry`` (at `rate_hz`, default 10), the
+    supervisor mode (retained, with expiry) on ``<prefix>/<rig>/mode`` whenever
+    mode, latch or fallback change, trip summaries on ``<prefix>/<rig>/trip``,
+    and the socket's hello map RETAINED on ``<prefix>/<rig>/telemetry/hello``
+    (re-published every `hello_refresh_s`, expiring `hello_expiry_s` after the
+    last one, so a dead runtime's hello does not linger). Requests arriving on
+    ``<prefix>/<rig>/request`` go to `on_request` (the same path as the
+    socket's) when ``[link.mqtt] remote_requests`` lists them; ``stop`` always.
+    """
+
+    def __init__(self, settings: Any, hello: dict[str, Any], on_request: RequestHandler,
+                 rate_hz: float = 10.0, hello_refresh_s: float = 5.0,
+                 hello_expiry_s: float = 30.0, reply_timeout_s: float = 2.0) -> None:
+        self.settings = settings
+        self.hello = {"type": "hello", **hello}
+        self.on_request = on_request
+        self.rate_hz = float(rate_hz)
+        self.hello_refresh_s = float(hello_refresh_s)
+        self.hello_expiry_s = float(hello_expiry_s)
+        self.reply_timeout_s = float(reply_timeout_s)
+        self.publisher: Any = None
+        self._pub: Any = None
+        self.stats: dict[str, Any] = {"published": 0, "dropped": 0, "requests": []}
+        """Publisher figures, kept after `run` ends (the run summary's ``mqtt``)."""
+        self._mode_key: tuple[Any, ...] | None = None
+
+    @property
+    def hello_topic(self) -> str:
+        """Where the retained hello goes."""
+        from drivers.mqtt_link import Topics
+
+        return f"{Topics(self.settings.prefix, self.settings.rig).telemetry}/hello"
+
+    def on_record(self, rec: dict[str, Any]) -> None:
+        """A record the socket sends (event-loop thread): forward what remote tools read."""
+        pub = self.publisher
+        if pub is None:
+            return
+        kind = rec.get("type")
+        if kind == "telemetry":
+            key = (rec.get("mode"), rec.get("latched"), rec.get("fallback"))
+            if key != self._mode_key:
+                self._mode_key = key
+                trip = rec.get("trip")
+                pub.publish_mode(str(rec.get("mode")), latched=bool(rec.get("latched")),
+                                 fallback=rec.get("fallback"),
+                                 trip=trip.get("rule") if isinstance(trip, dict) else None)
+            pub.publish_telemetry(rec)
+        elif kind == "trip":
+            pub.publish_trip(rec)
+
+    async def _remote(self, op: str, request: dict[str, Any]) -> tuple[bool, str]:
+        loop = asyncio.get_running_loop()
+        fut: asyncio.Future[tuple[bool, str]] = loop.create_future()
+
+        def done(ok: bool, message: str) -> None:
+            if not fut.done():
+                fut.set_result((ok, message))
+
+        def reply(ok: bool, message: str) -> None:  # called from the tick thread
+            with contextlib.suppress(RuntimeError):
+                loop.call_soon_threadsafe(done, ok, message)
+
+        self.on_request(op, reply)
+        try:
+            return await asyncio.wait_for(fut, self.reply_timeout_s)
+        except TimeoutError:
+            return False, f"{op}: no answer from the loop within {self.reply_timeout_s:g} s"
+
+    async def run(self) -> None:
+        """Publish until cancelled (reconnecting in the background; never raises on an outage)."""
+        from drivers.mqtt_link import MqttPublisher
+
+        payload = msgpack.packb(self.hello, use_bin_type=True)
+        async with MqttPublisher(self.settings, on_request=self._remote,
+                                 telemetry_hz=self.rate_hz) as pub:
+            self.publisher = pub
+            try:
+                while True:
+                    # No public call publishes a retained map on an arbitrary topic yet.
+                    pub._enqueue(self.hello_topic, payload, 1, True,
+                                 int(math.ceil(self.hello_expiry_s)))
+                    await asyncio.sleep(self.hello_refresh_s)
+            finally:
+                pub.publish_mode("ended", online=False)
+                self.publisher = None
+                self._pub = pub
+
+    @property
+    def summary(self) -> dict[str, Any]:
+        """Publisher figures (the run summary's ``mqtt``): published, dropped, requests."""
+        pub = self.publisher or self._pub
+        if pub is None:
+            return dict(self.stats)
+        return {"published": pub.published, "dropped": pub.dropped,
+                "requests": [list(r) for r in pub.requests], "connected": pub.connected,
+                "broker": f"{self.settings.host}:{self.settings.port}",
+                "rig": self.settings.rig}

@@ -143,3 +143,67 @@ def test_command_timeout_conflicting_names_refused(tmp_path):
     with pytest.raises(ConfigError) as err:
         _runner(DEMO, tmp_path, ["link.command_timeout=0.08", "rig.command_timeout_s=0.07"])
     assert err.value.field == "link.command_timeout"
+
+
+# ------------------------------------------------------------------ 4. MQTT telemetry
+from mqtt_broker import mosquitto  # noqa: E402, F401  (the fixture: a real broker)
+
+
+async def _next(it, kind: str, timeout: float = 10.0, pred=lambda r: True) -> dict:
+    async with asyncio.timeout(timeout):
+        async for rec in it:
+            if rec.get("type") == kind and pred(rec):
+                return rec
+    raise AssertionError(f"no {kind} record")
+
+
+@pytest.mark.parametrize("allow_arm", [False, True])
+def test_mqtt_telemetry_and_remote_requests(tmp_path, mosquitto, allow_arm):  # noqa: F811
+    from runtime.watch_sources import MqttSource
+
+    extra = ['link.mqtt.remote_requests=["arm"]'] if allow_arm else []
+    cfg = load_config(DEMO, [*BASE, f"log.dir={tmp_path}", *extra])
+    r = Runner(cfg, RunSettings(auto_arm=True, echo_trips=False, duration=30.0,
+                                telemetry_mqtt=mosquitto.url))
+    rig = r.design.rig.name
+
+    async def scenario():
+        task = asyncio.create_task(r.run())
+        try:
+            # The dashboard's own MQTT source (runtime.watch_sources) reads what we publish.
+            async with MqttSource(mosquitto.host, mosquitto.port, rig) as src:
+                it = src.records().__aiter__()
+                hello = await _next(it, "hello")
+                assert hello["rig"] == rig and hello["eps"] == pytest.approx(r.design.eps)
+                tel = await _next(it, "telemetry", pred=lambda x: x["mode"] == "engaged")
+                assert len(tel["x"]) == r.design.rig.n and tel["eps"] > 0
+                await src.request("arm")
+                arm = await _next(it, "reply", pred=lambda x: x["op"] == "arm")
+                assert arm["ok"] is False  # engaged already, or not allowed remotely
+                if not allow_arm:
+                    assert "remote_requests" in arm["message"]
+                else:
+                    assert "already armed" in arm["message"]  # reached the supervisor
+                await src.request("stop")
+                stop = await _next(it, "reply", pred=lambda x: x["op"] == "stop")
+                assert stop["ok"] is True
+                tel = await _next(it, "telemetry", pred=lambda x: x["mode"] == "stopped")
+                assert tel["u"] == [0.0] * r.design.rig.m
+                if allow_arm:  # after the stop, a remote arm settles again
+                    await src.request("arm")
+                    arm = await _next(it, "reply", pred=lambda x: x["op"] == "arm")
+                    assert arm["ok"] is True, arm
+                    await _next(it, "telemetry", pred=lambda x: x["mode"] in
+                                ("settling", "engaged"))
+        finally:
+            r.request_stop()
+            summary = await task
+        return summary
+
+    summary = asyncio.run(scenario())
+    assert summary["mqtt"]["published"] > 5
+    ops = [op for op, ok, _ in summary["mqtt"]["requests"]]
+    assert ops[:2] == ["arm", "stop"]
+    # The operator stop went through the supervisor like a socket stop: an event is logged.
+    _, _, events, _ = read_trip_log(summary["trip_log"])
+    assert any(e["kind"] == "stop" for e in events)
