@@ -4,7 +4,10 @@ Prints the socket path, then (without ``--json``) one line per trip and a
 summary at the end; with ``--headless --duration S --json`` it prints one JSON
 object when the run ends. ``--arm`` arms automatically, and only for the
 simulated rig. Without ``--headless`` the dashboard is started in its own
-process when it is installed (`runtime.dashboard`).
+process (``python -m runtime.cmd_watch --socket PATH --wait 10``, or the command
+in ``CORRAL_DASHBOARD_CMD``); while it owns the terminal the runtime's own lines
+go to ``<log.dir>/<rig>-<stamp>.console``, and when it exits (the operator
+quit) the run stops and the summary is printed.
 
 What does not live here: the loop (`runtime.loop`), the dashboard
 (`runtime.cmd_watch`).
@@ -17,9 +20,12 @@ import asyncio
 import contextlib
 import importlib.util
 import json
+import os
+import shlex
 import signal
 import subprocess
 import sys
+from pathlib import Path
 
 from runtime.cli import UserError, common_config_args
 from runtime.config import load_config
@@ -62,6 +68,24 @@ def dashboard_available() -> bool:
     return importlib.util.find_spec("runtime.dashboard") is not None
 
 
+DASHBOARD_ENV = "CORRAL_DASHBOARD_CMD"
+"""Environment variable replacing the dashboard command (tests, other viewers): a command
+line; ``{socket}`` in it is replaced by the socket path, else ``--socket PATH --wait 10``
+is appended."""
+
+
+def dashboard_command(socket_path: str) -> list[str] | None:
+    """The dashboard process's command line, or None when no dashboard is installed."""
+    custom = os.environ.get(DASHBOARD_ENV)
+    if custom:
+        if "{socket}" in custom:
+            return shlex.split(custom.replace("{socket}", shlex.quote(socket_path)))
+        return [*shlex.split(custom), "--socket", socket_path, "--wait", "10"]
+    if not dashboard_available():
+        return None
+    return [sys.executable, "-m", "runtime.cmd_watch", "--socket", socket_path, "--wait", "10"]
+
+
 def main(args: argparse.Namespace) -> int:
     """Run; exit 0 when the run ended normally (trips included), 2 on a user error."""
     from runtime.loop import Runner, RunSettings
@@ -82,21 +106,43 @@ def main(args: argparse.Namespace) -> int:
           f"trip log {runner.core.trip_path}", file=sys.stderr, flush=True)
 
     dash = None
+    console_path: Path | None = None
+    console = None
     if not args.headless:
-        if dashboard_available():
-            # The dashboard runs in its own process: in the same process its redraws
-            # delay ticks by tens of milliseconds.
-            dash = subprocess.Popen([sys.executable, "-m", "runtime.cmd_watch", "--socket",
-                                     str(runner.socket_path)])
-        else:
+        cmd = dashboard_command(str(runner.socket_path))
+        if cmd is None:
             print("corral: no dashboard installed; running headless", file=sys.stderr)
+        else:
+            # The dashboard owns the terminal from here on: the runtime's own lines go to
+            # a file beside the logs, whose path is printed at the end.
+            console_path = runner.core.trip_path.with_suffix(".console")
+            console = open(console_path, "a", buffering=1, encoding="utf-8")  # noqa: SIM115
+            settings.console = console
+            # Its own process: in the same process its redraws delay ticks by tens of ms.
+            dash = subprocess.Popen(cmd)
+
+    dash_exit: list[int] = []
+
+    async def watch_dashboard() -> None:
+        assert dash is not None
+        while dash.poll() is None:
+            await asyncio.sleep(0.1)
+        dash_exit.append(int(dash.returncode))
+        print(f"corral: dashboard exited ({dash.returncode}); stopping the run",
+              file=console or sys.stderr, flush=True)
+        runner.request_stop()
 
     async def go() -> dict:
         loop = asyncio.get_running_loop()
         for sig in (signal.SIGINT, signal.SIGTERM):
             with contextlib.suppress(NotImplementedError, RuntimeError):
                 loop.add_signal_handler(sig, runner.request_stop)
-        return await runner.run()
+        watcher = asyncio.create_task(watch_dashboard()) if dash is not None else None
+        try:
+            return await runner.run()
+        finally:
+            if watcher is not None:
+                watcher.cancel()
 
     try:
         summary = asyncio.run(go())
@@ -105,8 +151,14 @@ def main(args: argparse.Namespace) -> int:
             dash.terminate()
             with contextlib.suppress(subprocess.TimeoutExpired):
                 dash.wait(3)
+        if console is not None:
+            settings.console = None
+            console.close()
     # Link figures (frames, CRC errors, gaps, duplicates, late frames, latency p50/p99).
     summary.setdefault("link", dict(runner.link.stats.as_dict()))
+    if console_path is not None:
+        summary["console"] = str(console_path)
+        summary["dashboard_exit"] = dash_exit[0] if dash_exit else None
     if args.json:
         print(json.dumps(summary, indent=2, default=str))
     else:
@@ -118,6 +170,8 @@ def main(args: argparse.Namespace) -> int:
             print(f"  trip {t['id']}: {t['rule']} at tick {t['tick']} -> {t['action']} "
                   f"({t['detect_to_action_us']:.0f} us detect to action)")
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
+        if console_path is not None:
+            print(f"  console:  {console_path}")
     return 0
 
 

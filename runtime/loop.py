@@ -768,14 +768,20 @@ class TickCore:
                     rec[key] = np.asarray(rec[key]).tolist()
                 self.trip_log.append(rec)
             except Exception as exc:  # noqa: BLE001 - a full disk must not stop the loop
-                print(f"corral: could not write the trip log: {exc}", file=sys.stderr)
+                print(f"corral: could not write the trip log: {exc}", file=self.console(),
+                      flush=True)
                 continue
             if kind == "trip":
                 self.trips_written += 1
                 if self.settings.echo_trips:
                     print(f"corral: trip {rec['id']} ({rec['first_out']['rule']}, action "
-                          f"{rec['action']}) logged to {self.trip_path}", file=sys.stderr,
+                          f"{rec['action']}) logged to {self.trip_path}", file=self.console(),
                           flush=True)
+
+    def console(self) -> Any:
+        """Where progress lines go: `RunSettings.console` (a file beside the logs while a
+        dashboard owns the terminal) or stderr."""
+        return self.settings.console if self.settings.console is not None else sys.stderr
 
     def close(self) -> None:
         """Flush the post capture, then close the trip log and run log writers."""

@@ -207,3 +207,57 @@ def test_mqtt_telemetry_and_remote_requests(tmp_path, mosquitto, allow_arm):  # 
     # The operator stop went through the supervisor like a socket stop: an event is logged.
     _, _, events, _ = read_trip_log(summary["trip_log"])
     assert any(e["kind"] == "stop" for e in events)
+
+
+# ------------------------------------------------------------------ 5. dashboard process
+FAKE_DASHBOARD = '''\
+"""Stands in for the dashboard: connect, read telemetry for a second, exit."""
+import socket, sys, time, os
+import msgpack
+path = sys.argv[sys.argv.index("--socket") + 1]
+out = sys.argv[1]
+deadline = time.monotonic() + 30
+while not os.path.exists(path) and time.monotonic() < deadline:
+    time.sleep(0.05)
+s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+s.connect(path)
+s.settimeout(2.0)
+unpacker = msgpack.Unpacker(raw=False)
+kinds = []
+end = time.monotonic() + 1.0
+while time.monotonic() < end:
+    unpacker.feed(s.recv(65536))
+    kinds.extend(m.get("type") for m in unpacker)
+s.close()
+with open(out, "w") as fh:
+    fh.write(" ".join(kinds))
+'''
+
+
+def test_run_stops_when_the_dashboard_exits_and_keeps_its_lines_off_the_terminal(tmp_path):
+    import json
+    import os
+    import subprocess
+    import sys
+
+    script = tmp_path / "fake_dash.py"
+    script.write_text(FAKE_DASHBOARD)
+    seen = tmp_path / "seen.txt"
+    env = {**os.environ, "CORRAL_DASHBOARD_CMD": f"{sys.executable} {script} {seen}"}
+    sets = [a for kv in [*BASE, f"log.dir={tmp_path}"] for a in ("--set", kv)]
+    # No --duration: only the dashboard's exit can end this run (the timeout is a guard).
+    proc = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--arm",
+                           "--json", "--fault", "spike@0.5:size=0.3", *sets],
+                          capture_output=True, text=True, timeout=120, env=env, cwd=ROOT)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads(proc.stdout)
+    kinds = seen.read_text().split()
+    assert kinds[0] == "hello" and "telemetry" in kinds  # the dashboard read the live socket
+    assert summary["dashboard_exit"] == 0 and summary["ticks"] > 0
+    assert [t["rule"] for t in summary["trips"]] == ["jump"]
+    # The trip's echo line went to the console file, not to the terminal.
+    console = Path(summary["console"])
+    assert console.parent == tmp_path and console.suffix == ".console"
+    text = console.read_text()
+    assert "trip 1 (jump" in text and "dashboard exited (0)" in text
+    assert "trip 1 (jump" not in proc.stderr
