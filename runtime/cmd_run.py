@@ -57,6 +57,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--link", default=None, metavar="SPEC",
                         help="link to the rig (default: rig.link of the config; 'sim' = the "
                              "simulated rig in-process)")
+    parser.add_argument("--no-preflight", action="store_true",
+                        help="arm a non-simulated rig without the preflight sweep first")
     parser.add_argument("--telemetry-mqtt", default=None, metavar="HOST:PORT",
                         help="also publish telemetry, mode and trips on this MQTT broker "
                              "(default: telemetry.mqtt of the config; an mqtt:// link "
@@ -94,7 +96,8 @@ def main(args: argparse.Namespace) -> int:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10")
     cfg = load_config(args.config, args.overrides)
     settings = RunSettings(duration=args.duration, auto_arm=False, faults=list(args.fault),
-                           link=args.link, telemetry_mqtt=args.telemetry_mqtt)
+                           link=args.link, telemetry_mqtt=args.telemetry_mqtt,
+                           preflight=not args.no_preflight)
     runner = Runner(cfg, settings)
     if not runner.simulated:
         print(HARDWARE_CAUTIONS, file=sys.stderr)

@@ -221,6 +221,9 @@ class RunSettings:
     """Print one line on stderr when a trip is on disk."""
     telemetry_mqtt: str | None = None
     """``HOST:PORT`` of a broker for telemetry (``--telemetry-mqtt``; else ``telemetry.mqtt``)."""
+    preflight: bool = True
+    """Run `runtime.preflight.run_preflight` before accepting an arm on a non-simulated
+    link (``--no-preflight`` turns it off)."""
     console: Any = None
     """Where progress and trip lines go (a text file while a dashboard owns the terminal);
     None = stderr."""
@@ -406,6 +409,8 @@ class TickCore:
         self._alpha_rr = math.exp(-2 * math.pi * 20.0 * Ts)
         self.seq = 0
         self._pending_trip: dict[str, Any] | None = None
+        self.arm_refusal: str | None = None
+        """When set, every arm request is refused with this reason (preflight NO-GO)."""
         self.law_ran = False
         """The adaptive law ran this tick (its ratio, s, e are recorded even on a trip)."""
 
@@ -438,9 +443,9 @@ class TickCore:
         self.law.frozen = True
         self.fb = make_fallback(kind, self.design, self.fb_settings, self.u_prev, self.x)
 
-    def _event(self, kind: str, detail: str) -> None:
+    def _event(self, kind: str, detail: str, **extra: Any) -> None:
         rec = {"type": "event", "t_mono": time.monotonic(), "t_wall": time.time(),
-               "tick": self.tick, "kind": kind, "detail": detail}
+               "tick": self.tick, "kind": kind, "detail": detail, **extra}
         self.recent_events.append(rec)
         del self.recent_events[:-20]
         self._writes.put(("event", rec))
@@ -644,6 +649,11 @@ class TickCore:
                                  "xr": np.array(self.law.xr).tolist()})
 
     def _handle_request(self, op: str, reply: Callable[[bool, str], None]) -> None:
+        if op == "arm" and self.arm_refusal is not None:
+            decision = self.sup.refuse(op, self.arm_refusal)
+            self._drain_supervisor_events()
+            reply(decision.ok, decision.message)
+            return
         decision = self.sup.request(op, self.watchdog.conditions_present())
         if decision.action is not None:
             if decision.action == "outputs_off" or self.sup.mode == "stopped":
@@ -885,6 +895,8 @@ class Runner:
         # threads; the default 5 ms switch interval would make every wake-up wait.
         self.switch_interval = cfg.number("loop.switch_interval_us", 100.0, positive=True) * 1e-6
         self.stop_event: asyncio.Event | None = None
+        self.preflight: dict[str, Any] | None = None
+        """The preflight verdict (go, predicted_trip_rate, reasons, record), when one ran."""
         self.error: BaseException | None = None
         self.ready = threading.Event()
 
@@ -899,6 +911,10 @@ class Runner:
         """Run until the duration ends or `request_stop`; returns the summary."""
         self._loop = asyncio.get_running_loop()
         self.stop_event = asyncio.Event()
+        if self.settings.preflight and not self.simulated:
+            # Before the link opens: the sweep gets both cores, and no arm can arrive
+            # before the verdict (the socket does not exist yet).
+            await asyncio.to_thread(self.run_preflight)
         old_switch = sys.getswitchinterval()
         sys.setswitchinterval(self.switch_interval)
         try:
@@ -926,6 +942,50 @@ class Runner:
         if self.error is not None:
             raise self.error
         return self.summary()
+
+    def run_preflight(self) -> dict[str, Any]:
+        """Preflight (`runtime.preflight.run_preflight`, ``preflight.plants``, default 50 here);
+        a NO-GO makes every arm request refused with its reasons. The verdict goes into
+        the trip log as a ``preflight`` event (with the whole verdict under ``preflight``)
+        and into the run summary."""
+        from runtime.preflight import run_preflight
+
+        core = self.core
+        plants = int(self.cfg.number("preflight.plants", 50, minimum=1))
+        out = core.console()
+        print(f"corral: preflight: sweeping {plants} simulated plants before arming "
+              "(--no-preflight skips this)", file=out, flush=True)
+        last = [0.0]
+
+        def progress(done: int, total: int) -> None:
+            now = time.monotonic()
+            if now - last[0] > 2.0 or done == total:
+                last[0] = now
+                print(f"corral: preflight: {done}/{total}", file=out, flush=True)
+
+        try:
+            res = run_preflight(self.cfg, plants=plants, progress=progress, write=True)
+        except (ConfigError, ValueError) as exc:
+            res = {"go": False, "predicted_trip_rate": None, "record": None,
+                   "reasons": [f"preflight could not run: {exc}"]}
+        verdict = {key: res.get(key) for key in ("go", "predicted_trip_rate", "max_trip_rate",
+                                                 "reasons", "record", "plants")}
+        self.preflight = verdict
+        reasons = " ".join(str(r) for r in verdict["reasons"] or [])
+        if verdict["go"]:
+            core.arm_refusal = None
+            detail = f"GO: {reasons}"
+        else:
+            core.arm_refusal = (f"preflight NO-GO: {reasons} (record {verdict['record']}; "
+                                "fix the config, or run with --no-preflight at your own risk)")
+            detail = f"NO-GO: {reasons}"
+        core._event("preflight", detail, preflight=verdict)
+        # Clients connecting later see the verdict in the hello.
+        self.telemetry.hello["preflight"] = verdict
+        if self.mqtt is not None:
+            self.mqtt.hello["preflight"] = verdict
+        print(f"corral: preflight {detail}", file=out, flush=True)
+        return verdict
 
     async def run_ticks(self, ticks: int) -> dict[str, Any]:
         """The same ticks as fast as the machine allows (no clock; simulated rig only).
@@ -1043,4 +1103,5 @@ class Runner:
             "simulated": self.simulated, "rig": self.design.rig.name,
             "config_hash": core.config_hash,
             "mqtt": self.mqtt.summary if self.mqtt is not None else None,
+            "preflight": self.preflight,
         }

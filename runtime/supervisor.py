@@ -107,6 +107,10 @@ class Supervisor:
             return Decision(True, f"reset: trip cleared, mode stays {self.mode}; arm to restart")
         return self._refuse(op, f"unknown request (use one of {', '.join(OPS)})")
 
+    def refuse(self, op: str, why: str) -> Decision:
+        """Refuse a request for a reason outside the mode machine (e.g. a preflight NO-GO)."""
+        return self._refuse(op, why)
+
     def _refuse(self, op: str, why: str) -> Decision:
         self._event("refused", f"{op}: {why}")
         return Decision(False, f"{op} refused: {why}")
