@@ -22,6 +22,7 @@ import contextlib
 import inspect
 import math
 import os
+import socket
 import ssl
 import time
 import uuid
@@ -383,6 +384,76 @@ async def connect_client(client: aiomqtt.Client, settings: MqttSettings) -> None
         await client.__aenter__()
     except (aiomqtt.MqttError, OSError, ssl.SSLError) as exc:
         raise explain_mqtt_error(exc, settings) from None
+    set_nodelay(client)
+
+
+def set_nodelay(client: aiomqtt.Client) -> bool:
+    """Turn Nagle's algorithm off on the client's socket (paho leaves it on); True if set.
+
+    With Nagle on, a small publish waits while an earlier one is unacknowledged.
+    """
+    sock = client._client.socket()  # aiomqtt keeps its paho client here
+    if sock is None:
+        return False
+    with contextlib.suppress(OSError, AttributeError):
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        return True
+    return False
+
+
+_TCP_QUICKACK = getattr(socket, "TCP_QUICKACK", None)
+
+
+def quick_ack(sock: Any) -> None:
+    """Acknowledge what was just read at once (Linux TCP_QUICKACK; a no-op elsewhere).
+
+    A broker without ``set_tcp_nodelay`` holds its next small message to us
+    until our kernel acknowledges the last one; the delayed acknowledgement
+    otherwise rides on our next message, a whole period later. The kernel
+    clears the flag by itself, so it is set again after every read.
+    """
+    if _TCP_QUICKACK is not None and sock is not None:
+        with contextlib.suppress(OSError, AttributeError):
+            sock.setsockopt(socket.IPPROTO_TCP, _TCP_QUICKACK, 1)
+
+
+def publish_now(
+    client: aiomqtt.Client,
+    topic: str,
+    payload: bytes,
+    properties: Properties | None = None,
+    *,
+    qos: int = 0,
+    retain: bool = False,
+) -> None:
+    """Publish and write the packet to the socket before returning.
+
+    `aiomqtt.Client.publish` leaves the write to the event loop (a writer
+    callback registered for the next turn, then a wait for paho's publish
+    callback): two or three loop turns per message. This writes at once.
+    Call it in the client's own loop thread, never from inside a paho callback
+    (paho holds a non-reentrant lock there). Raises `aiomqtt.MqttCodeError`.
+    """
+    pc = client._client
+    # Paho would ask aiomqtt to watch the socket for writability (a callback
+    # scheduled for the loop's next turn, which may find the socket closed);
+    # the write follows here at once, so the loop is asked only when bytes are
+    # left over (a full socket buffer).
+    was_registered = getattr(pc, "_registered_write", True)
+    pc._registered_write = True
+    try:
+        info = pc.publish(topic, payload, qos, retain, properties)
+        rc = pc.loop_write() if info.rc == 0 else 0
+    finally:
+        if not was_registered and pc.want_write() and pc._registered_write:
+            pc._registered_write = False
+            pc._call_socket_register_write()
+        elif not was_registered and not pc.want_write():
+            pc._registered_write = False
+    if info.rc != 0:
+        raise aiomqtt.MqttCodeError(info.rc, "Could not publish message")
+    if rc != 0:
+        raise aiomqtt.MqttCodeError(rc, "Could not write to the broker")
 
 
 async def disconnect_client(client: aiomqtt.Client | None) -> None:
@@ -456,6 +527,7 @@ class MqttLink(Link):
         self._offset: float | None = None  # min(t_host - t_device) this session
         self._ring_seq = [-1] * _RING
         self._ring_t = [(0.0, 0.0)] * _RING
+        self._expiry = expiry(settings.sample_expiry_s)
 
     @classmethod
     def from_url(
@@ -508,11 +580,28 @@ class MqttLink(Link):
             self.stats.decode_errors += 1
         return None
 
+    def _on_paho_sample(self, pc: Any, userdata: Any, m: Any) -> None:
+        """Paho's callback for the sample topic, run inside its socket read (loop thread).
+
+        Samples skip aiomqtt's message queue and the reader task: the waiting
+        `receive()` is woken straight from the socket read. Never raises (an
+        exception here would tear down the connection).
+        """
+        now = self._clock()
+        quick_ack(pc.socket())
+        try:
+            self._on_topic(m.topic, m.payload, m.retain, now)
+        except Exception as exc:
+            self._set_lost(f"MQTT sample handler failed: {exc!r}")
+
     def _on_message(self, m: aiomqtt.Message, now: float) -> None:
-        topic = m.topic.value
-        payload = m.payload if isinstance(m.payload, bytes | bytearray) else b""
+        self._on_topic(m.topic.value, m.payload, m.retain, now)
+
+    def _on_topic(self, topic: str, payload: Any, retain: bool, now: float) -> None:
+        if not isinstance(payload, bytes | bytearray):
+            payload = b""
         if topic == self.topics.sample:
-            if m.retain:
+            if retain:
                 # A retained value is history, never live data.
                 self.retained_dropped += 1
                 self.stats.late_frames += 1
@@ -534,7 +623,7 @@ class MqttLink(Link):
             if type(msg) is not Hello or msg.rig_id == HOST_HELLO_RIG_ID:
                 return
             self.stats.frames_in += 1
-            if m.retain:
+            if retain:
                 self.retained_hello = msg
                 return
             self.hello = msg
@@ -608,6 +697,7 @@ class MqttLink(Link):
         self._hello_waiter = loop.create_future()
         try:
             t = self.topics
+            client._client.message_callback_add(t.sample, self._on_paho_sample)
             await client.subscribe([(t.hello, 1), (t.status, 1), (t.sample, 0)])
             self._reader = loop.create_task(self._read(client), name="mqtt-link-reader")
             await self._handshake()
@@ -699,8 +789,7 @@ class MqttLink(Link):
         if client is None:
             raise LinkClosed(self._lost_reason or "link closed")
         try:
-            await client.publish(self.topics.command, body, qos=0,
-                                 properties=expiry(self.settings.sample_expiry_s))
+            publish_now(client, self.topics.command, body, self._expiry)
         except aiomqtt.MqttError as exc:
             self._set_lost(f"MQTT publish failed: {exc}")
             raise LinkClosed(self._lost_reason or str(exc)) from None

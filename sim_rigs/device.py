@@ -32,6 +32,7 @@ import ctypes
 import math
 import os
 import random
+import sys
 import threading
 import time
 import uuid
@@ -53,6 +54,8 @@ from drivers.mqtt_link import (
     disconnect_client,
     expiry,
     make_client,
+    publish_now,
+    quick_ack,
     status_payload,
 )
 from drivers.serial_link import DeviceEndpoint
@@ -69,6 +72,10 @@ from sim_rigs.link import PedestalStepper
 from sim_rigs.pedestal import INPUT_UNITS, INPUTS, STATE_UNITS, STATES
 
 _RING = 4096
+REALTIME_PRIORITY = 40
+"""SCHED_FIFO priority of the device's threads when permitted (a real rig has its own CPU)."""
+SWITCH_INTERVAL_S = 100e-6
+"""GIL switch interval while serving (the runtime's loop uses the same 100 us)."""
 
 
 # --------------------------------------------------------------------------- transports
@@ -192,9 +199,12 @@ class MqttDeviceTransport(Transport):
     """
 
     def __init__(self, hello: Hello, settings: MqttSettings, *, seed: int = 0,
-                 on_command: Callable[[Command, float], None] | None = None) -> None:
+                 on_command: Callable[[Command, float], None] | None = None,
+                 realtime: bool = False) -> None:
         self.hello = hello
         self.settings = settings
+        self.realtime = realtime
+        """SCHED_FIFO for the network thread when permitted (it carries samples, commands)."""
         self.topics = Topics(settings.prefix, settings.rig)
         self.rng = random.Random(seed)
         self.on_command = on_command
@@ -208,7 +218,8 @@ class MqttDeviceTransport(Transport):
         self.last_error = ""
         self._inbox: collections.deque[tuple[float, object]] = collections.deque(maxlen=256)
         self._loop = asyncio.new_event_loop()
-        self._out: asyncio.Queue[bytes] | None = None
+        self._client: aiomqtt.Client | None = None
+        self._expiry = expiry(settings.sample_expiry_s)
         self._stop_evt: asyncio.Event | None = None
         self._kick: asyncio.Event | None = None
         self._up = threading.Event()
@@ -221,12 +232,13 @@ class MqttDeviceTransport(Transport):
 
     # ---- asyncio side
     def _run(self) -> None:
+        if self.realtime:
+            _try_fifo()
         asyncio.set_event_loop(self._loop)
         self._loop.run_until_complete(self._main())
         self._loop.close()
 
     async def _main(self) -> None:
-        self._out = asyncio.Queue(256)
         self._stop_evt = asyncio.Event()
         self._kick = asyncio.Event()
         delay = 0.1
@@ -250,18 +262,20 @@ class MqttDeviceTransport(Transport):
             delay = 0.1
             reason = "stopped"
             try:
+                # Commands skip aiomqtt's queue: paho hands them over inside its socket read.
+                client._client.message_callback_add(
+                    self.topics.command,
+                    lambda pc, ud, m, c=client: self._on_paho_command(c, pc, m))
                 await client.subscribe(self.topics.command, qos=0)
                 await client.publish(self.topics.status,
                                      status_payload(True, self.settings.rig), qos=1, retain=True)
                 await self._publish_hello(client)
-                while not self._out.empty():
-                    self._out.get_nowait()  # nothing stale from before the connection
+                self._client = client
                 self.connected = True
                 self._up.set()
                 self._kick.clear()
                 tasks = [asyncio.create_task(c) for c in (
-                    self._reader(client), self._sender(client), self._stop_evt.wait(),
-                    self._kick.wait())]
+                    self._reader(client), self._stop_evt.wait(), self._kick.wait())]
                 done, pending = await asyncio.wait(tasks, return_when=asyncio.FIRST_COMPLETED)
                 for t in pending:
                     t.cancel()
@@ -279,6 +293,7 @@ class MqttDeviceTransport(Transport):
                 reason = ""
             finally:
                 self.connected = False
+                self._client = None
             if reason:
                 # Announce the going-away ourselves (a clean exit does not fire the will).
                 with contextlib.suppress(Exception):
@@ -300,36 +315,52 @@ class MqttDeviceTransport(Transport):
                              retain=True)
 
     async def _reader(self, client: aiomqtt.Client) -> None:
-        async for m in client.messages:
-            now = time.monotonic()
-            if m.retain or not isinstance(m.payload, bytes):
-                continue
-            try:
-                msg = decode_body(m.payload)
-            except WireError:
-                self.decode_errors += 1
-                continue
-            if type(msg) is Hello:
-                if msg.rig_id == HOST_HELLO_RIG_ID:
-                    with self.guard_lock:
-                        self.guard.rearm()
-                    await self._publish_hello(client)
-                continue
-            self._inbox.append((now, msg))
+        # Commands arrive through `_on_paho_command`; this only notices a lost connection.
+        async for _ in client.messages:
+            pass
 
-    async def _sender(self, client: aiomqtt.Client) -> None:
-        assert self._out is not None
-        exp = expiry(self.settings.sample_expiry_s)
-        while True:
-            body = await self._out.get()
-            await client.publish(self.topics.sample, body, qos=0, properties=exp)
+    def _on_paho_command(self, client: aiomqtt.Client, pc: Any, m: Any) -> None:
+        """A message on the command topic, inside paho's socket read (loop thread).
 
-    def _enqueue(self, body: bytes) -> None:
-        assert self._out is not None
+        Commands and stops go straight into the inbox the clock thread drains;
+        a host hello re-arms the guard and is answered on the next loop turn
+        (no publishing from inside a paho callback). Never raises.
+        """
+        now = time.monotonic()
+        quick_ack(pc.socket())
+        payload = m.payload
+        if m.retain or not isinstance(payload, bytes):
+            return
         try:
-            self._out.put_nowait(body)
-        except asyncio.QueueFull:
+            msg = decode_body(payload)
+        except WireError:
+            self.decode_errors += 1
+            return
+        except Exception:
+            self.decode_errors += 1
+            return
+        if type(msg) is Hello:
+            if msg.rig_id == HOST_HELLO_RIG_ID:
+                with self.guard_lock:
+                    self.guard.rearm()
+                self._loop.create_task(self._answer_hello(client))
+            return
+        self._inbox.append((now, msg))
+
+    async def _answer_hello(self, client: aiomqtt.Client) -> None:
+        with contextlib.suppress(aiomqtt.MqttError):
+            await self._publish_hello(client)
+
+    def _publish_sample(self, body: bytes) -> None:
+        """Write one sample to the broker now (loop thread; called from the clock thread)."""
+        client = self._client
+        if client is None:
             self.publish_drops += 1
+            return
+        try:
+            publish_now(client, self.topics.sample, body, self._expiry)
+        except aiomqtt.MqttError:
+            self.publish_drops += 1  # the reader sees the lost connection
 
     # ---- clock-thread side
     def poll_until(self, deadline: float) -> None:
@@ -354,7 +385,7 @@ class MqttDeviceTransport(Transport):
         if corrupt:
             # Flip one bit of the array header: the receiver always sees a bad message.
             body = bytes([body[0] ^ (1 << self.rng.randrange(8))]) + body[1:]
-        self._loop.call_soon_threadsafe(self._enqueue, body)
+        self._loop.call_soon_threadsafe(self._publish_sample, body)
 
     def disconnect(self) -> None:
         """Drop the broker connection (status goes offline) until `reconnect`."""
@@ -414,6 +445,16 @@ def _set_timer_slack() -> None:
         ctypes.CDLL(None).prctl(29, 1, 0, 0, 0)  # PR_SET_TIMERSLACK = 1 ns
 
 
+def _try_fifo(priority: int = REALTIME_PRIORITY) -> bool:
+    """SCHED_FIFO for the calling thread when the process may (root or CAP_SYS_NICE)."""
+    try:
+        prio = min(priority, os.sched_get_priority_max(os.SCHED_FIFO))
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(prio))
+    except (PermissionError, OSError, AttributeError):
+        return False
+    return True
+
+
 class PedestalDevice:
     """The pedestal as a device on its own real-time clock (see the module docstring)."""
 
@@ -427,9 +468,13 @@ class PedestalDevice:
         faults: FaultSchedule | None = None,
         output_limits: Sequence[float] | None = None,
         seed: int = 0,
+        realtime: bool = True,
     ) -> None:
         if not period > 0:
             raise ValueError("period must be positive")
+        self.realtime = realtime
+        """Run the clock (and the MQTT network thread) at SCHED_FIFO when permitted."""
+        self.granted_realtime = False
         self.plant = plant
         self.period = float(period)
         self.schedule = faults or FaultSchedule()
@@ -474,7 +519,7 @@ class PedestalDevice:
     def serve_mqtt(self, settings: MqttSettings, connect_timeout_s: float = 10.0) -> str:
         """Connect to the broker as this rig; returns ``mqtt://host:port/rig``."""
         tr = MqttDeviceTransport(self.hello, settings, seed=self.rng.randrange(1 << 30),
-                                 on_command=self._on_command)
+                                 on_command=self._on_command, realtime=self.realtime)
         self.transport = tr
         if not tr.wait_connected(connect_timeout_s):
             tr.close()
@@ -500,6 +545,14 @@ class PedestalDevice:
         if tr is None:
             raise RuntimeError("call serve_pty() or serve_mqtt() first")
         _set_timer_slack()
+        old_policy = (os.sched_getscheduler(0), os.sched_getparam(0))
+        if self.realtime:
+            self.granted_realtime = _try_fifo()
+        # The clock thread must get the GIL back at once from the transport's
+        # network thread: the default 5 ms switch interval made wake-ups (and
+        # the hand-over of every sample) wait whole periods.
+        old_switch = sys.getswitchinterval()
+        sys.setswitchinterval(SWITCH_INTERVAL_S)
         period = self.period
         t0 = time.monotonic()
         k = 0
@@ -521,6 +574,10 @@ class PedestalDevice:
                     self._lateness[self.ticks] = late * 1e6
                 self._tick(tr, k * period, now)
         finally:
+            sys.setswitchinterval(old_switch)
+            if self.granted_realtime:
+                with contextlib.suppress(OSError):
+                    os.sched_setscheduler(0, *old_policy)
             tr.close()
         return self.report()
 

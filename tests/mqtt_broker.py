@@ -43,7 +43,8 @@ def free_port() -> int:
 class Broker:
     """One mosquitto process with its own config, log and (optional) password file."""
 
-    def __init__(self, folder: Path, *, users: dict[str, str] | None = None) -> None:
+    def __init__(self, folder: Path, *, users: dict[str, str] | None = None,
+                 tcp_nodelay: bool = False) -> None:
         binary = mosquitto_binary()
         if binary is None:
             raise RuntimeError("mosquitto is not installed (apt-get install mosquitto)")
@@ -52,6 +53,8 @@ class Broker:
         self.host = "127.0.0.1"
         self.port = free_port()
         self.users = dict(users or {})
+        self.tcp_nodelay = tcp_nodelay
+        """``set_tcp_nodelay true``: the broker sends small messages without Nagle's wait."""
         self.log_path = folder / "mosquitto.log"
         self.conf_path = folder / "mosquitto.conf"
         self.proc: subprocess.Popen[bytes] | None = None
@@ -72,6 +75,8 @@ class Broker:
             "log_type notice",
             "max_keepalive 60",
         ]
+        if self.tcp_nodelay:
+            lines.append("set_tcp_nodelay true")
         if os.geteuid() == 0:
             lines.append("user root")
         if self.users:
