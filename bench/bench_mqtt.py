@@ -10,10 +10,14 @@ sample with an `MqttLink` at once. Reports, in microseconds:
 - device: publish of a sample to receipt of its command (the full trip
   through the broker twice, the figure a firmware sees); misses = samples
   whose command had not arrived when the next period began;
-- bare: QoS 0 publish-to-receive of a 32-byte payload through the same
-  broker, one client echoing for another, measured in the same run.
+- bare: QoS 0 round trip of a 32-byte payload through the same broker, one
+  client echoing for another, measured in the same run with the same client
+  machinery as the link (`publish_now`, paho's direct message callbacks,
+  TCP_NODELAY): the floor the closed loop can reach.
 
-Usage: python bench/bench_mqtt.py [SECONDS]   (default 20). Prints figures only.
+Usage: python bench/bench_mqtt.py [SECONDS] [--broker-nodelay]   (default 20 s).
+``--broker-nodelay`` starts mosquitto with ``set_tcp_nodelay true``; by
+default it runs with the Debian package's defaults (Nagle on). Prints figures only.
 """
 
 from __future__ import annotations
@@ -25,15 +29,23 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
-import aiomqtt
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 from mqtt_broker import Broker  # noqa: E402
 
 from drivers.base import Command  # noqa: E402
-from drivers.mqtt_link import MqttLink, MqttSettings  # noqa: E402
+from drivers.mqtt_link import (  # noqa: E402
+    MqttLink,
+    MqttSettings,
+    connect_client,
+    disconnect_client,
+    make_client,
+    publish_now,
+    quick_ack,
+)
 
 RATE_HZ = 250.0
 
@@ -47,28 +59,42 @@ def pct(a: np.ndarray) -> str:
 
 async def bare_round_trip(broker: Broker, n: int) -> np.ndarray:
     """Ping on one topic, echo on another by a second client; QoS 0, 32 bytes."""
-    v5 = aiomqtt.ProtocolVersion.V5
+    settings = MqttSettings(host=broker.host, port=broker.port, rig="bench")
+    loop = asyncio.get_running_loop()
     out = np.zeros(n)
-    async with aiomqtt.Client(broker.host, broker.port, protocol=v5) as echo, \
-            aiomqtt.Client(broker.host, broker.port, protocol=v5) as ping:
+    echo = make_client(settings, identifier="bench-echo")
+    ping = make_client(settings, identifier="bench-ping")
+    await connect_client(echo, settings)
+    await connect_client(ping, settings)
+    got: list[asyncio.Future[float]] = []
+
+    def on_ping(pc: Any, ud: Any, m: Any) -> None:
+        quick_ack(pc.socket())
+        loop.call_soon(publish_now, echo, "bench/pong", m.payload)
+
+    def on_pong(pc: Any, ud: Any, m: Any) -> None:
+        t = time.perf_counter()
+        quick_ack(pc.socket())
+        if got and not got[-1].done():
+            got[-1].set_result(t)
+
+    try:
+        echo._client.message_callback_add("bench/ping", on_ping)
+        ping._client.message_callback_add("bench/pong", on_pong)
         await echo.subscribe("bench/ping")
         await ping.subscribe("bench/pong")
-
-        async def echoer() -> None:
-            async for m in echo.messages:
-                await echo.publish("bench/pong", m.payload)
-
-        task = asyncio.create_task(echoer())
         await asyncio.sleep(0.2)
         payload = bytes(32)
-        it = ping.messages.__aiter__()
         for i in range(n):
+            got.append(loop.create_future())
             t0 = time.perf_counter()
-            await ping.publish("bench/ping", payload)
-            await it.__anext__()
-            out[i] = (time.perf_counter() - t0) * 1e6
+            publish_now(ping, "bench/ping", payload)
+            out[i] = (await got[-1] - t0) * 1e6
+            got.clear()
             await asyncio.sleep(1.0 / RATE_HZ)
-        task.cancel()
+    finally:
+        await disconnect_client(ping)
+        await disconnect_client(echo)
     return out
 
 
@@ -85,10 +111,13 @@ async def closed_loop(settings: MqttSettings, seconds: float) -> tuple[MqttLink,
 
 
 def main() -> None:
-    seconds = float(sys.argv[1]) if len(sys.argv) > 1 else 20.0
+    args = [a for a in sys.argv[1:] if not a.startswith("--")]
+    nodelay = "--broker-nodelay" in sys.argv[1:]
+    seconds = float(args[0]) if args else 20.0
+    sys.setswitchinterval(100e-6)  # as the runtime's loop does
     root = Path(__file__).resolve().parents[1]
     with tempfile.TemporaryDirectory(prefix="corral-bench-") as folder:
-        broker = Broker(Path(folder))
+        broker = Broker(Path(folder), tcp_nodelay=nodelay)
         broker.start()
         try:
             serve = subprocess.Popen(
@@ -108,13 +137,15 @@ def main() -> None:
             broker.stop()
     host = np.asarray(link.stats.latencies_us)
     st = link.stats.as_dict()
-    print(f"MQTT closed loop at {RATE_HZ:g} Hz for {seconds:g} s through mosquitto (loopback)")
+    print(f"MQTT closed loop at {RATE_HZ:g} Hz for {seconds:g} s through mosquitto (loopback, "
+          f"set_tcp_nodelay {'true' if nodelay else 'false'})")
     print(f"  host  sample->command (us):        {pct(host)}")
     print(f"  device sample->command back (us):  p50 {rep['round_trip_p50_us']:7.0f}  "
           f"p99 {rep['round_trip_p99_us']:7.0f}  max {rep['round_trip_max_us']:7.0f}")
     print(f"  misses (command after next period): {rep['missed_commands']} of "
           f"{rep['samples_sent']} samples sent; answered {answered} "
-          f"(samples before and after the host loop count as misses)")
+          f"(samples before and after the host loop count as misses: "
+          f"{rep['missed_commands'] - (rep['samples_sent'] - answered)} while it answered)")
     print(f"  device clock lateness (us):        p50 {rep['lateness_p50_us']:.0f}  "
           f"p99 {rep['lateness_p99_us']:.0f}  max {rep['lateness_max_us']:.0f}  "
           f"deadline misses {rep['deadline_misses']}")
