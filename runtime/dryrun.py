@@ -74,12 +74,15 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
 ENGINES = ("fast", "reference")
 
 
-def _eps_schedule(cfg: Config, design: Design, t: NDArray[np.float64]) -> NDArray[np.float64]:
+def eps_schedule(cfg: Config, design: Design, t: NDArray[np.float64]) -> NDArray[np.float64]:
     """eps per tick from `[adaptation.bound]` (constant design.eps when absent)."""
     from runtime.bound import schedule_from_config
 
     schedule = schedule_from_config(cfg, design)
     return np.broadcast_to(np.asarray(schedule.eps(t), dtype=float), t.shape).copy()
+
+
+_eps_schedule = eps_schedule  # the old private name, kept for existing callers
 
 
 def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunResult:
@@ -104,7 +107,7 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
     ticks = int(round(schedule.duration / Ts))
     t = np.arange(ticks) * Ts
     cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
-    eps_t = _eps_schedule(cfg, design, t)
+    eps_t = eps_schedule(cfg, design, t)
     n, m, p = rig.n, rig.m, len(tracked)
 
     cols: dict[str, NDArray[np.float64]] = {

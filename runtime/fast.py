@@ -109,7 +109,8 @@ def basis_eval(x: Array, ic: Any, fc: Array, sig: Array) -> None:  # pragma: no 
         elif op == OP_ABS:
             v = abs(x[i])
         elif op == OP_TANH:
-            v = math.tanh(x[i] / tw)
+            z = x[i] / tw  # math.tanh, without the library call where it rounds to +-1
+            v = 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
         else:
             v = x[i] * x[ic[oc + 3 * k + 2]]
         sig[k] = v
@@ -717,3 +718,433 @@ def warm_up() -> float:
     out = np.zeros(out_size(n, m, nreg))
     law_tick(np.zeros(1), np.zeros(1), 1.0, ic, fc, st, out)
     return time.perf_counter() - t0
+
+
+# ------------------------------------------------------------------ the batch sweep kernel
+# Specialised for the pedestal (n = 4 states, m = 2 inputs, p = 2 commands): fixed-size loops
+# the compiler unrolls, the plant's state in registers, and the elevation trigonometry inside
+# a tick by the angle-addition formula. `tests/test_fast.py` checks each piece against the
+# general kernels above (`law_tick`, `pedestal_step`), which stay the single source of truth.
+SWEEP_RULES = ("margin", "clamp", "nonfinite", "saturation", "breach", "diverged")
+"""Columns of the sweep kernel's `first` output: first tick of each rule per plant."""
+(R_MARGIN, R_CLAMP, R_NONFINITE, R_SATURATION, R_BREACH, R_DIVERGED) = range(6)
+DIVERGENCE_EVERY = 64
+"""The sweep checks the true state for divergence after ticks 63, 127, ... and the last."""
+TAYLOR_LIMIT = 0.02
+"""Largest in-tick elevation change (rad) the angle-addition series handles (else exact)."""
+NOISE_OFF, NOISE_STREAM, NOISE_GIVEN = 0, 1, 2
+"""Sensor noise of the sweep kernel: none, each plant's own stream, or pre-drawn."""
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+_MIX1 = np.uint64(0xBF58476D1CE4E5B9)
+_MIX2 = np.uint64(0x94D049BB133111EB)
+_S30, _S27, _S31, _S11 = np.uint64(30), np.uint64(27), np.uint64(31), np.uint64(11)
+
+
+def sweep_law_fits(ic: NDArray[np.int64]) -> bool:
+    """True when `law_tick_pedestal` computes this law (4 states, 2 inputs, 2 commands,
+    no weight modifiers, not frozen); otherwise the sweep kernel calls `law_tick`."""
+    return bool(ic[I_N] == 4 and ic[I_M] == 2 and ic[I_P] == 2 and ic[I_LEAK] == 0
+                and ic[I_PROJ] == 0 and ic[I_FROZEN] == 0)
+
+
+@numba.njit(cache=True)
+def law_tick_pedestal(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
+                      out: Array) -> None:  # pragma: no cover - jit
+    """`law_tick` for n = 4, m = 2, p = 2 without modifiers (same buffers, same results).
+
+    The dead zone is still honoured (it needs no state). Checked against `law_tick`
+    in tests/test_fast.py.
+    """
+    nreg = ic[I_NREG]
+    oP = ic[I_OP]
+    oPB = ic[I_OPB]
+    oK1 = ic[I_OK1T]
+    oK2 = ic[I_OK2T]
+    oAd = ic[I_OADT]
+    oBd = ic[I_OBDT]
+    oG = ic[I_OGAMMA]
+    oU = ic[I_OUMAX]
+    o_u = OUT_HEADER
+    o_uraw = o_u + 2
+    o_un = o_uraw + 2
+    o_e = o_un + 2
+    o_sig = o_e + 4
+    e0 = x[0] - st[0]
+    e1 = x[1] - st[1]
+    e2 = x[2] - st[2]
+    e3 = x[3] - st[3]
+    out[o_e] = e0
+    out[o_e + 1] = e1
+    out[o_e + 2] = e2
+    out[o_e + 3] = e3
+    q = 0.0
+    for i in range(4):
+        r = oP + 4 * i
+        acc = fc[r] * e0 + fc[r + 1] * e1 + fc[r + 2] * e2 + fc[r + 3] * e3
+        q += out[o_e + i] * acc
+    if q < 0.0:
+        q = 0.0
+    s = math.sqrt(q)
+    if ic[I_LAW] == 1:
+        s_max = (1.0 - fc[F_CLAMP]) * eps
+        clamped = not (s <= s_max)
+        se = s_max if clamped else s
+        if ic[I_BARRIER] == 0:
+            gap = eps - se
+            phi_d = (2.0 * eps - se) / (2.0 * gap * gap)
+        else:
+            phi_d = eps / (eps * eps - se * se)
+    else:
+        phi_d = 1.0
+        clamped = not (s < eps)
+    un0 = (c[0] * fc[oK2] + c[1] * fc[oK2 + 2]) - (
+        x[0] * fc[oK1] + x[1] * fc[oK1 + 2] + x[2] * fc[oK1 + 4] + x[3] * fc[oK1 + 6])
+    un1 = (c[0] * fc[oK2 + 1] + c[1] * fc[oK2 + 3]) - (
+        x[0] * fc[oK1 + 1] + x[1] * fc[oK1 + 3] + x[2] * fc[oK1 + 5] + x[3] * fc[oK1 + 7])
+    out[o_un] = un0
+    out[o_un + 1] = un1
+    basis_eval(x, ic, fc, out[o_sig:])
+    nb = ic[I_NCODE] + ic[I_NRBF]
+    if ic[I_AUGMENT] == 1:
+        out[o_sig + nb] = un0 / fc[oU]
+        out[o_sig + nb + 1] = un1 / fc[oU + 1]
+    sig_sq = 0.0
+    for i in range(nreg):
+        sig_sq += out[o_sig + i] * out[o_sig + i]
+    g = fc[F_TS] * fc[F_GAMMA_MAX] * phi_d * sig_sq * fc[F_LAM_BPB]
+    cap = fc[F_CAP]
+    capped = g > cap
+    scale = cap / (g if g > 1e-300 else 1e-300) if capped else 1.0
+    rate = phi_d * scale
+    ts = fc[F_TS]
+    if not (fc[F_DEAD_ZONE] > 0.0 and s < fc[F_DEAD_ZONE]):
+        p0 = e0 * fc[oPB] + e1 * fc[oPB + 2] + e2 * fc[oPB + 4] + e3 * fc[oPB + 6]
+        p1 = e0 * fc[oPB + 1] + e1 * fc[oPB + 3] + e2 * fc[oPB + 5] + e3 * fc[oPB + 7]
+        for i in range(nreg):
+            a = fc[oG + i] * (rate * out[o_sig + i])
+            st[4 + 2 * i] += ts * (a * p0)
+            st[5 + 2 * i] += ts * (a * p1)
+    a0 = 0.0
+    a1 = 0.0
+    for i in range(nreg):
+        a0 += st[4 + 2 * i] * out[o_sig + i]
+        a1 += st[5 + 2 * i] * out[o_sig + i]
+    u0 = un0 - a0
+    u1 = un1 - a1
+    out[o_uraw] = u0
+    out[o_uraw + 1] = u1
+    lim = fc[oU]
+    out[o_u] = lim if u0 > lim else (-lim if u0 < -lim else u0)
+    lim = fc[oU + 1]
+    out[o_u + 1] = lim if u1 > lim else (-lim if u1 < -lim else u1)
+    r0 = st[0]
+    r1 = st[1]
+    r2 = st[2]
+    r3 = st[3]
+    for j in range(4):
+        st[j] = (r0 * fc[oAd + j] + r1 * fc[oAd + 4 + j] + r2 * fc[oAd + 8 + j]
+                 + r3 * fc[oAd + 12 + j]) + (c[0] * fc[oBd + j] + c[1] * fc[oBd + 4 + j])
+    out[O_S] = s
+    out[O_RATIO] = s / eps
+    out[O_PHI_D] = phi_d
+    out[O_EFF_RATE] = fc[F_GAMMA_MAX] * rate
+    out[O_STEP_GAIN] = g
+    out[O_CLAMPED] = 1.0 if clamped else 0.0
+    out[O_CAPPED] = 1.0 if capped else 0.0
+
+
+@numba.njit(cache=True, inline="always")
+def fast_tanh(z: float) -> float:  # pragma: no cover - jit
+    """math.tanh(z), skipping the library call where tanh rounds to +-1 in double precision
+    (|z| > 20: 1 - tanh|z| < 1e-17, below half an ulp of 1)."""
+    if z > 20.0:
+        return 1.0
+    if z < -20.0:
+        return -1.0
+    return math.tanh(z)
+
+
+@numba.njit(cache=True, inline="always")
+def _trig(el: float, el0: float, c0: float, s0: float) -> tuple[float, float]:
+    """cos(el), sin(el) from cos(el0), sin(el0): angle addition with a Taylor series in
+    d = el - el0 (truncation < 1e-18 for |d| <= TAYLOR_LIMIT), exact beyond."""  # noqa: D401
+    d = el - el0
+    if abs(d) > TAYLOR_LIMIT:
+        return math.cos(el), math.sin(el)
+    d2 = d * d
+    cd = 1.0 + d2 * (-0.5 + d2 * (1.0 / 24.0 - d2 / 720.0))
+    sd = d * (1.0 + d2 * (-1.0 / 6.0 + d2 * (1.0 / 120.0 - d2 / 5040.0)))
+    return c0 * cd - s0 * sd, s0 * cd + c0 * sd
+
+
+@numba.njit(cache=True, inline="always")
+def _mix64(z: np.uint64) -> np.uint64:  # pragma: no cover - jit
+    """The splitmix64 output function (Steele, Lea and Flood, OOPSLA 2014)."""
+    z = (z ^ (z >> _S30)) * _MIX1
+    z = (z ^ (z >> _S27)) * _MIX2
+    return z ^ (z >> _S31)
+
+
+@numba.njit(cache=True)
+def stream_key(seed: int, plant: int) -> np.uint64:  # pragma: no cover - jit
+    """The starting state of plant `plant`'s noise stream under `seed`."""
+    return _mix64(_mix64(np.uint64(seed) * _GOLDEN + _GOLDEN) ^ np.uint64(plant))
+
+
+@numba.njit(cache=True)
+def stream_normals(state: Array, out: Array) -> None:  # pragma: no cover - jit
+    """Fill `out` with standard normal draws from the splitmix64 stream at state[0].
+
+    `state` is a one-element uint64 array, advanced in place. Normals by the
+    Marsaglia polar method (Marsaglia and Bray, SIAM Review 1964) on 53-bit
+    uniforms; `out` must have even length.
+    """
+    s = state[0]
+    scale = 1.0 / 9007199254740992.0  # 2^-53
+    for k in range(0, out.shape[0], 2):
+        while True:
+            s = s + _GOLDEN
+            a = 2.0 * (float(_mix64(s) >> _S11) * scale) - 1.0
+            s = s + _GOLDEN
+            b = 2.0 * (float(_mix64(s) >> _S11) * scale) - 1.0
+            r = a * a + b * b
+            if r < 1.0 and r > 0.0:
+                break
+        f = math.sqrt(-2.0 * math.log(r) / r)
+        out[k] = a * f
+        out[k + 1] = b * f
+    state[0] = s
+
+
+LANES = 4
+"""Plants one thread steps together: their RK4 chains are independent, so the CPU overlaps
+one plant's tanh latency with the others' arithmetic (one plant alone is latency-bound)."""
+(K_DA, K_DE, K_GA, K_GE, K_IVS, K_IVSS, K_STRIB, K_FA, K_FE, K_EL0, K_C0, K_S0) = range(12)
+
+
+@numba.njit(cache=True)
+def pedestal_lanes_setup(prm: Array, lanes: Any, konst: Array) -> None:  # pragma: no cover - jit
+    """Per-lane constants of `pedestal_step_lanes` for plants prm[lanes[l]]."""
+    for ln in range(konst.shape[0]):
+        p = prm[lanes[ln]]
+        konst[ln, K_DA] = p[P_A_AZ] + p[P_VISC_AZ]
+        konst[ln, K_DE] = p[P_A_EL] + p[P_VISC_EL]
+        konst[ln, K_GA] = p[P_B_AZ] * p[P_LAM_AZ]
+        konst[ln, K_GE] = p[P_B_EL] * p[P_LAM_EL]
+        konst[ln, K_IVS] = 1.0 / p[P_COUL_SPEED]
+        konst[ln, K_IVSS] = 1.0 / p[P_STRIB_SPEED]
+        konst[ln, K_STRIB] = 1.0 if (p[P_STRIB_AZ] != 0.0 or p[P_STRIB_EL] != 0.0) else 0.0
+
+
+@numba.njit(cache=True, inline="always")
+def _accel_lane(p: Array, kn: Array, az: float, wa: float, we: float, el: float,
+                ) -> tuple[float, float]:  # pragma: no cover - jit
+    ce, se = _trig(el, kn[K_EL0], kn[K_C0], kn[K_S0])
+    ta = fast_tanh(wa * kn[K_IVS])
+    te = fast_tanh(we * kn[K_IVS])
+    fa = p[P_COUL_AZ]
+    fe = p[P_COUL_EL]
+    if kn[K_STRIB] != 0.0:
+        q = wa * kn[K_IVSS]
+        fa = fa + p[P_STRIB_AZ] * math.exp(-(q * q))
+        q = we * kn[K_IVSS]
+        fe = fe + p[P_STRIB_EL] * math.exp(-(q * q))
+    acc_az = (kn[K_FA] - kn[K_DA] * wa - fa * ta - p[P_SPRING] * az
+              - p[P_COUPLING] * wa * we)
+    acc_el = (kn[K_FE] - kn[K_DE] * we - fe * te - p[P_GRAV] * ce
+              + p[P_COUPLING] * wa * wa * se * ce)
+    return acc_az, acc_el
+
+
+@numba.njit(cache=True)
+def pedestal_step_lanes(X: Array, U: Array, prm: Array, lanes: Any, konst: Array,
+                        limits: Array, dt: float, substeps: int,
+                        S: Array) -> None:  # pragma: no cover - jit
+    """`pedestal_step` (no faults) for the plants prm[lanes[l]], states X[l], inputs U[l],
+    stage by stage across the lanes. `konst` from `pedestal_lanes_setup`; S is (L, 12)
+    scratch. Division by the Coulomb and Stribeck speeds is a product with their
+    reciprocals; cos / sin of the elevation by `_trig`. Agrees with `pedestal_step` to
+    rounding (tests/test_fast.py).
+    """
+    L = X.shape[0]
+    h = dt / substeps
+    hh = 0.5 * h
+    k6 = h / 6.0
+    for ln in range(L):
+        p = prm[lanes[ln]]
+        kn = konst[ln]
+        u0 = U[ln, 0]
+        u1 = U[ln, 1]
+        v0 = limits[0] if u0 > limits[0] else (-limits[0] if u0 < -limits[0] else u0)
+        v1 = limits[1] if u1 > limits[1] else (-limits[1] if u1 < -limits[1] else u1)
+        kn[K_FA] = kn[K_GA] * v0 + p[P_BIAS_AZ]
+        kn[K_FE] = kn[K_GE] * v1 + p[P_BIAS_EL]
+        kn[K_EL0] = X[ln, 1]
+        kn[K_C0] = math.cos(X[ln, 1])
+        kn[K_S0] = math.sin(X[ln, 1])
+    for _ in range(substeps):
+        for ln in range(L):  # stage 1
+            a1, b1 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0], X[ln, 2], X[ln, 3],
+                                 X[ln, 1])
+            S[ln, 0] = a1
+            S[ln, 1] = b1
+        for ln in range(L):  # stage 2
+            wa2 = X[ln, 2] + hh * S[ln, 0]
+            we2 = X[ln, 3] + hh * S[ln, 1]
+            a2, b2 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0] + hh * X[ln, 2], wa2, we2,
+                                 X[ln, 1] + hh * X[ln, 3])
+            S[ln, 2] = a2
+            S[ln, 3] = b2
+            S[ln, 8] = wa2
+            S[ln, 9] = we2
+        for ln in range(L):  # stage 3
+            wa3 = X[ln, 2] + hh * S[ln, 2]
+            we3 = X[ln, 3] + hh * S[ln, 3]
+            a3, b3 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0] + hh * S[ln, 8], wa3, we3,
+                                 X[ln, 1] + hh * S[ln, 9])
+            S[ln, 4] = a3
+            S[ln, 5] = b3
+            S[ln, 10] = wa3
+            S[ln, 11] = we3
+        for ln in range(L):  # stage 4 and the update
+            wa = X[ln, 2]
+            we = X[ln, 3]
+            wa2 = S[ln, 8]
+            we2 = S[ln, 9]
+            wa3 = S[ln, 10]
+            we3 = S[ln, 11]
+            wa4 = wa + h * S[ln, 4]
+            we4 = we + h * S[ln, 5]
+            a4, b4 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0] + h * wa3, wa4, we4,
+                                 X[ln, 1] + h * we3)
+            X[ln, 0] = X[ln, 0] + k6 * (wa + 2 * wa2 + 2 * wa3 + wa4)
+            X[ln, 1] = X[ln, 1] + k6 * (we + 2 * we2 + 2 * we3 + we4)
+            X[ln, 2] = wa + k6 * (S[ln, 0] + 2 * S[ln, 2] + 2 * S[ln, 4] + a4)
+            X[ln, 3] = we + k6 * (S[ln, 1] + 2 * S[ln, 3] + 2 * S[ln, 5] + b4)
+
+
+@numba.njit(parallel=True, cache=True)
+def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, prm: Array, plant_ids: Any, seed: int,
+                 substeps: int, limits: Array, angle_noise: float, rate_noise: float,
+                 resolution: float, delay: int, latency: int, noise_mode: int, given: Array,
+                 ic: Any, fc: Array, special: bool, levels: Array, sat_ticks: float,
+                 bound: Array, first: Any, max_ratio: Array) -> None:  # pragma: no cover - jit
+    """N plants x T ticks of the closed loop, each plant on its own.
+
+    prange over groups of `LANES` plants (a short last group repeats its last plant
+    and discards the copies). Per plant b: truth prm[b] (`PEDESTAL_PARAMS` order),
+    start x0, law state x_r = first reading, W = 0; each tick the law
+    (`law_tick_pedestal` when `special`, else `law_tick`) on the reading `delay`
+    ticks old, the saturated input applied `latency` ticks late to
+    `pedestal_step_lanes`, then the next reading. Noise: `noise_mode` NOISE_OFF,
+    NOISE_STREAM (plant_ids[b]'s own splitmix64 stream under `seed`, 4 normals a
+    reading: angles then rates) or NOISE_GIVEN (`given[b, reading, :4]`, standard
+    normals). Nothing is recorded per tick: `first[b, SWEEP_RULES]` gets the first
+    tick each rule fired (-1: never; levels = margin, clamp, breach ratios;
+    saturation: a raw input beyond its limit for more than `sat_ticks` ticks in a
+    row; diverged: |x_i| > bound_i or non-finite after ticks 63, 127, ... and the
+    last) and `max_ratio[b]` the largest finite margin ratio (from 0).
+    """
+    N = prm.shape[0]
+    T = cmd.shape[0]
+    m = ic[I_M]
+    nst = 4 + ic[I_NREG] * m
+    nout = OUT_HEADER + 4 * m + 8 + ic[I_NREG]  # out_size(4, m, N_bar)
+    dt = fc[F_TS]
+    oU = ic[I_OUMAX]
+    L = LANES
+    groups = (N + L - 1) // L
+    for g in numba.prange(groups):
+        lanes = np.empty(L, dtype=np.int64)
+        for ln in range(L):
+            lanes[ln] = min(g * L + ln, N - 1)
+        konst = np.zeros((L, 12))
+        pedestal_lanes_setup(prm, lanes, konst)
+        scratch = np.zeros((L, 12))
+        st = np.zeros((L, nst))
+        out = np.zeros((L, nout))
+        X = np.empty((L, 4))
+        U = np.zeros((L, 2))
+        meas = np.empty((L, delay + 1, 4))
+        ubuf = np.zeros((L, latency + 1, 2))
+        z = np.zeros(4)
+        rs = np.zeros((L, 1), dtype=np.uint64)
+        fb = np.full((L, 6), -1, dtype=np.int64)
+        run = np.zeros((L, 2), dtype=np.int64)
+        mr = np.zeros(L)
+        for ln in range(L):
+            X[ln] = x0
+            rs[ln, 0] = stream_key(seed, plant_ids[lanes[ln]])
+        # reading 0, then engage: x_r = first reading, W = 0
+        for r in range(T + 1):
+            if r > 0:
+                k = r - 1
+                # ring slots, once a tick for all lanes
+                ys = (k - delay) % (delay + 1) if k >= delay else 0
+                us = k % (latency + 1)
+                ua_s = (k - latency) % (latency + 1)
+                for ln in range(L):
+                    y = meas[ln, ys]
+                    o = out[ln]
+                    if special:
+                        law_tick_pedestal(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
+                    else:
+                        law_tick(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
+                    ratio = o[O_RATIO]
+                    ur0 = o[OUT_HEADER + m]
+                    ur1 = o[OUT_HEADER + m + 1]
+                    f = fb[ln]
+                    if ratio > mr[ln]:
+                        mr[ln] = ratio
+                    if f[R_MARGIN] < 0 and ratio >= levels[0]:
+                        f[R_MARGIN] = k
+                    if f[R_CLAMP] < 0 and ratio >= levels[1]:
+                        f[R_CLAMP] = k
+                    if f[R_BREACH] < 0 and ratio >= levels[2]:
+                        f[R_BREACH] = k
+                    if f[R_NONFINITE] < 0 and not (math.isfinite(ratio) and math.isfinite(ur0)
+                                                   and math.isfinite(ur1)):
+                        f[R_NONFINITE] = k
+                    run[ln, 0] = run[ln, 0] + 1 if abs(ur0) > fc[oU] else 0
+                    run[ln, 1] = run[ln, 1] + 1 if abs(ur1) > fc[oU + 1] else 0
+                    if f[R_SATURATION] < 0 and (run[ln, 0] > sat_ticks
+                                                or run[ln, 1] > sat_ticks):
+                        f[R_SATURATION] = k
+                    ubuf[ln, us, 0] = o[OUT_HEADER]
+                    ubuf[ln, us, 1] = o[OUT_HEADER + 1]
+                    if k >= latency:
+                        ua = ubuf[ln, ua_s]
+                        U[ln, 0] = ua[0]
+                        U[ln, 1] = ua[1]
+                pedestal_step_lanes(X, U, prm, lanes, konst, limits, dt, substeps, scratch)
+                if (k + 1) % DIVERGENCE_EVERY == 0 or k == T - 1:
+                    for ln in range(L):
+                        for i in range(4):
+                            if fb[ln, R_DIVERGED] < 0 and not (abs(X[ln, i]) <= bound[i]):
+                                fb[ln, R_DIVERGED] = k
+            # the sensors: reading r
+            rslot = r % (delay + 1)
+            for ln in range(L):
+                if noise_mode == NOISE_STREAM:
+                    stream_normals(rs[ln], z)
+                elif noise_mode == NOISE_GIVEN:
+                    for i in range(4):
+                        z[i] = given[lanes[ln], r, i]
+                yr = meas[ln, rslot]
+                for i in range(2):
+                    a = X[ln, i] + angle_noise * z[i] if noise_mode != NOISE_OFF else X[ln, i]
+                    if resolution > 0.0:
+                        a = np.rint(a / resolution) * resolution
+                    yr[i] = a
+                for i in range(2, 4):
+                    yr[i] = X[ln, i] + rate_noise * z[i] if noise_mode != NOISE_OFF else X[ln, i]
+                if r == 0:
+                    for i in range(4):
+                        st[ln, i] = yr[i]
+        for ln in range(L):
+            b = g * L + ln
+            if b < N:
+                for j in range(6):
+                    first[b, j] = fb[ln, j]
+                max_ratio[b] = mr[ln]

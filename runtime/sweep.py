@@ -14,23 +14,33 @@ design.state_range, or non-finite). Each plant ends *inside* (no rule fired),
 over settings (`--grid adaptation.gamma=1,2,4`); `plot_sweep` and
 `plot_grid` draw the PNGs.
 
-Two engines run one chunk (a batch is one array; the time loop is Python):
+Three engines:
 
+- ``compiled`` (the default of ``auto``): `runtime.fast.sweep_kernel`, a numba
+  kernel with a prange over plants on `workers` threads; each plant runs its
+  own time loop with its own truth, law state and noise stream, and only the
+  rule bookkeeping is kept (no per-tick arrays). Pedestal rigs; any basis
+  the law kernel packs (named terms, radial-basis block), weight modifiers,
+  time-varying eps, latency, sensor delay. Plants go in slices so the
+  progress bar moves.
 - ``fused``: the law of `runtime.law` and the plant of `sim_rigs.pedestal`
-  rewritten for speed: batch as the LAST axis (contiguous rows), every
-  buffer preallocated, in-place ufuncs, the commands' K2 c and B_d c
-  precomputed, rule bookkeeping once per block of ticks, and the elevation
-  trigonometry inside a tick by the angle-addition formula (exact
-  sin/cos once per tick, then a Taylor series in the small in-tick angle
-  change, truncation < 1e-18 for |d| <= 0.02 rad; exact fallback beyond).
-  Pedestal rigs without weight modifiers.
+  rewritten as batched numpy for speed (a chunk is one array, the time loop
+  is Python): batch as the LAST axis (contiguous rows), every buffer
+  preallocated, in-place ufuncs, the commands' K2 c and B_d c precomputed,
+  rule bookkeeping once per block of ticks, and the elevation trigonometry
+  inside a tick by the angle-addition formula (exact sin/cos once per tick,
+  then a Taylor series in the small in-tick angle change, truncation < 1e-18
+  for |d| <= 0.02 rad; exact fallback beyond). Pedestal rigs without weight
+  modifiers or radial-basis terms; chunks over `workers` processes.
 - ``reference``: `AdaptiveLaw.step` and `Pedestal.step` themselves over the
   batch (slow; any design). Tests check the engines against each other and
   against the single-plant dry run.
 
-Runs are reproducible: plant i's parameters depend on (seed, plants) only;
-its sensor noise on (seed, chunk layout); with the noise off a plant's result
-does not depend on the chunking or the number of workers at all.
+Runs are reproducible: plant i's parameters depend on (seed, plants) only.
+Sensor noise: in the compiled engine plant i's noise is its own stream keyed
+by (seed, i), so results do not depend on the thread count or the slicing;
+in the fused and reference engines it depends on (seed, chunk layout). With
+the noise off a plant's result depends on neither.
 
 What does not live here: the CLI (`runtime.cmd_sweep`), the go / no-go
 verdict (`runtime.preflight`), the live watchdog (`runtime.watchdog`).
@@ -61,7 +71,7 @@ Progress = Callable[[int, int], None]
 RULES = ("margin", "clamp", "nonfinite", "saturation")
 """Rules the sweep evaluates offline, contract ids, in first-out tie order."""
 OUTCOMES = ("inside", "tripped", "diverged")
-ENGINES = ("auto", "fused", "reference")
+ENGINES = ("auto", "compiled", "fused", "reference")
 BLOCK = 64
 """Ticks between rule bookkeeping passes (buffers hold one block)."""
 FUSED_PARAMS = frozenset((
@@ -178,16 +188,37 @@ class _Setup:
     sensors: Any
     modifiers: list[Any]
     engine: str
+    packed: tuple[Any, Any] | None = None
+    """(ic, fc) of `runtime.fast.pack_law` when the compiled engine can run this design."""
 
 
 _SETUP_CACHE: dict[str, _Setup] = {}
+
+
+def _compiled_packing(design: Design, mods: Sequence[Any]) -> tuple[Any, str]:
+    """((ic, fc), "") when the compiled engine can run this design, else (None, why)."""
+    from sim_rigs.pedestal import TRUTH_DEFAULTS
+
+    rig = design.rig
+    if rig.sim != "pedestal" or rig.n != 4 or rig.m != 2:
+        return None, "it simulates the pedestal only."
+    try:
+        from runtime import fast
+    except ImportError:  # pragma: no cover - numba is a dependency
+        return None, "numba is not installed."
+    if set(TRUTH_DEFAULTS) != set(fast.PEDESTAL_PARAMS):
+        return None, "the pedestal has parameters the kernel does not know."
+    try:
+        return fast.pack_law(design, fast.ModifierSettings.from_modifiers(mods, rig.m)), ""
+    except ValueError as exc:
+        return None, str(exc)
 
 
 def _setup(raw: dict[str, Any], settings: SweepSettings) -> _Setup:
     key = json.dumps([raw, settings.__dict__], sort_keys=True, default=str)
     if key in _SETUP_CACHE:
         return _SETUP_CACHE[key]
-    from runtime.dryrun import _eps_schedule, plant_from_config
+    from runtime.dryrun import eps_schedule, plant_from_config
     from runtime.modifiers import modifiers_from_config
 
     cfg = Config(raw=raw)
@@ -197,20 +228,26 @@ def _setup(raw: dict[str, Any], settings: SweepSettings) -> _Setup:
     ticks = max(1, int(round(settings.duration / design.Ts)))
     t = np.arange(ticks) * design.Ts
     cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
-    eps_t = _eps_schedule(cfg, design, t)
+    eps_t = eps_schedule(cfg, design, t)
     plant = plant_from_config(cfg, design)
     mods = list(modifiers_from_config(cfg, design))
     from sim_rigs.pedestal import TRUTH_DEFAULTS
 
-    fusable = rig.sim == "pedestal" and not mods and set(TRUTH_DEFAULTS) <= FUSED_PARAMS
+    fusable = (rig.sim == "pedestal" and not mods and set(TRUTH_DEFAULTS) <= FUSED_PARAMS
+               and len(design.basis.codes) == design.basis.size)  # no radial-basis block
+    packed, why = _compiled_packing(design, mods)
     engine = settings.engine
     if engine == "auto":
-        engine = "fused" if fusable else "reference"
+        engine = "compiled" if packed is not None else ("fused" if fusable else "reference")
     if engine == "fused" and not fusable:
         raise ConfigError("sweep.engine", "the fused engine runs pedestal rigs without weight "
-                          "modifiers only.", 'use engine "reference" (or "auto").')
+                          "modifiers or radial-basis terms only.",
+                          'use engine "compiled" or "reference" (or "auto").')
+    if engine == "compiled" and packed is None:
+        raise ConfigError("sweep.engine", f"the compiled engine cannot run this config: {why}",
+                          'use engine "reference" (or "auto", which falls back by itself).')
     out = _Setup(design, settings, cmd, eps_t, np.array(plant.x[0]), plant.sensors, mods,
-                 engine)
+                 engine, packed)
     _SETUP_CACHE.clear()
     _SETUP_CACHE[key] = out
     return out
@@ -610,12 +647,62 @@ def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generato
     return rules.result()
 
 
+# ------------------------------------------------------------------ the compiled engine
+def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.int64],
+                  noise_given: Array | None = None) -> dict[str, Array]:
+    """Plants `plant_ids` through `runtime.fast.sweep_kernel` (threads: numba's current count).
+
+    Noise: each plant's own stream keyed by (seed, plant id), or `noise_given`
+    (B, ticks + 1, 4) standard normals (tests use it to replay another engine's draws).
+    """
+    from runtime import fast
+
+    d = setup.design
+    st = setup.settings
+    sens = setup.sensors
+    B = len(plant_ids)
+    ic, fc = setup.packed
+    P = np.ascontiguousarray(np.stack([np.asarray(prm[k], dtype=float)
+                                       for k in fast.PEDESTAL_PARAMS], axis=1))
+    noisy = st.noise and (sens.angle_noise > 0 or sens.rate_noise > 0)
+    mode = fast.NOISE_OFF if not noisy else (
+        fast.NOISE_STREAM if noise_given is None else fast.NOISE_GIVEN)
+    given = np.zeros((1, 1, 4)) if noise_given is None else np.ascontiguousarray(
+        noise_given, dtype=float)
+    levels = np.array([st.margin_trip,
+                       (1.0 - d.clamp_margin) if d.law == "barrier" else 1.0, 1.0])
+    from sim_rigs.pedestal import INPUT_LIMITS
+
+    first = np.empty((B, len(fast.SWEEP_RULES)), dtype=np.int64)
+    max_ratio = np.empty(B)
+    fast.sweep_kernel(
+        setup.cmd, setup.eps_t, np.ascontiguousarray(setup.x0, dtype=float), P,
+        np.ascontiguousarray(plant_ids, dtype=np.int64), int(st.seed), int(st.substeps),
+        np.asarray(INPUT_LIMITS, dtype=float), float(sens.angle_noise), float(sens.rate_noise),
+        float(sens.angle_resolution), int(sens.delay_ticks), int(st.latency_ticks), mode, given,
+        ic, fc, fast.sweep_law_fits(ic), levels, st.saturation_time / d.Ts,
+        np.asarray(st.divergence_factor * d.state_range, dtype=float), first, max_ratio)
+    out = {f"first_{r}": first[:, j].copy() for j, r in enumerate(fast.SWEEP_RULES)}
+    max_ratio[out["first_nonfinite"] >= 0] = np.inf
+    out["max_ratio"] = max_ratio
+    return out
+
+
+def _compiled_threads(workers: int) -> int:
+    import numba
+
+    return max(1, min(int(workers), int(numba.config.NUMBA_NUM_THREADS)))
+
+
 def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: dict[str, Array],
               chunk_index: int) -> dict[str, Array]:
     """Simulate one chunk of plants (runs in a worker process); per-plant result arrays."""
     setup = _setup(raw, settings)
     rng = np.random.default_rng([settings.seed, chunk_index])
     prm = {k: np.ascontiguousarray(v, dtype=float) for k, v in prm.items()}
+    if setup.engine == "compiled":
+        B = len(next(iter(prm.values())))
+        return _run_compiled(setup, prm, np.arange(B, dtype=np.int64))
     if setup.engine == "fused":
         return _run_fused(setup, prm, rng)
     return _run_reference(setup, prm, rng)
@@ -729,47 +816,88 @@ def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
     return _clean(summary)
 
 
+def _sweep_compiled(setup: _Setup, truth: dict[str, Array], progress: Progress | None,
+                    ) -> tuple[dict[int, dict[str, Array]], int, float, float]:
+    """All plants through the compiled kernel on numba threads, in plant slices so the
+    progress bar moves; returns (results by slice start, slice size, wall, compile) seconds."""
+    import numba
+
+    settings = setup.settings
+    N = settings.plants
+    threads = _compiled_threads(settings.workers)
+    before = numba.get_num_threads()
+    numba.set_num_threads(threads)
+    results: dict[int, dict[str, Array]] = {}
+    try:
+        t0 = time.perf_counter()
+        short = _Setup(**{**setup.__dict__, "cmd": setup.cmd[:1], "eps_t": setup.eps_t[:1]})
+        _run_compiled(short, {k: v[:1] for k, v in truth.items()}, np.zeros(1, np.int64))
+        compile_s = time.perf_counter() - t0  # compiling, or loading numba's cache
+        cs = min(settings.chunk, max(4 * threads, -(-N // 20)))
+        wall0 = time.perf_counter()
+        for s in range(0, N, cs):
+            ids = np.arange(s, min(N, s + cs), dtype=np.int64)
+            results[s] = _run_compiled(setup, {k: v[ids] for k, v in truth.items()}, ids)
+            if progress:
+                progress(int(ids[-1]) + 1, N)
+        wall = time.perf_counter() - wall0
+    finally:
+        numba.set_num_threads(before)
+    return results, cs, wall, compile_s
+
+
 def run_sweep(cfg: Config, plants: int | None = None, seed: int | None = None,
               duration: float | None = None, workers: int | None = None,
               chunk: int | None = None, engine: str | None = None,
               progress: Progress | None = None) -> SweepResult:
-    """Draw the plants, run them in chunks over `workers` processes, summarise."""
+    """Draw the plants, run them (compiled: `workers` threads; fused / reference: chunks
+    over `workers` processes), summarise."""
     settings = SweepSettings.from_config(cfg, plants, seed, duration, workers, chunk, engine)
     design = design_from_config(cfg)
     if not design.feasible:
         raise ConfigError("adaptation.gamma", "the design is refused: "
                           + "; ".join(design.reasons), "fix the design first (corral design).")
     truth = draw_plants(cfg, settings.plants, settings.seed)
-    _setup(cfg.raw, settings)  # validate in this process: errors are one line, not a traceback
+    # validate in this process: errors are one line, not a traceback
+    setup = _setup(cfg.raw, settings)
     N = settings.plants
-    cs = min(settings.chunk, -(-N // settings.workers))  # every worker gets a chunk
-    starts = list(range(0, N, cs))
-    results: dict[int, dict[str, Array]] = {}
-    done = 0
     if progress:
         progress(0, N)
-    wall0 = time.perf_counter()
-    jobs = [(i, s, {k: v[s:s + cs] for k, v in truth.items()}) for i, s in enumerate(starts)]
-    if settings.workers == 1 or len(jobs) == 1:
-        for i, s, prm in jobs:
-            results[s] = run_chunk(cfg.raw, settings, prm, i)
-            done += len(next(iter(prm.values())))
-            if progress:
-                progress(done, N)
+    compile_s = 0.0
+    if setup.engine == "compiled":
+        results, cs, wall, compile_s = _sweep_compiled(setup, truth, progress)
     else:
-        with ProcessPoolExecutor(max_workers=min(settings.workers, len(jobs))) as pool:
-            futs = {pool.submit(run_chunk, cfg.raw, settings, prm, i): (s, prm)
-                    for i, s, prm in jobs}
-            for fut in as_completed(futs):
-                s, prm = futs[fut]
-                results[s] = fut.result()
+        results = {}
+        cs = min(settings.chunk, -(-N // settings.workers))  # every worker gets a chunk
+        jobs = [(i, s, {k: v[s:s + cs] for k, v in truth.items()})
+                for i, s in enumerate(range(0, N, cs))]
+        done = 0
+        wall0 = time.perf_counter()
+        if settings.workers == 1 or len(jobs) == 1:
+            for i, s, prm in jobs:
+                results[s] = run_chunk(cfg.raw, settings, prm, i)
                 done += len(next(iter(prm.values())))
                 if progress:
                     progress(done, N)
-    wall = time.perf_counter() - wall0
+        else:
+            with ProcessPoolExecutor(max_workers=min(settings.workers, len(jobs))) as pool:
+                futs = {pool.submit(run_chunk, cfg.raw, settings, prm, i): (s, prm)
+                        for i, s, prm in jobs}
+                for fut in as_completed(futs):
+                    s, prm = futs[fut]
+                    results[s] = fut.result()
+                    done += len(next(iter(prm.values())))
+                    if progress:
+                        progress(done, N)
+        wall = time.perf_counter() - wall0
+    starts = sorted(results)
     per_plant = {k: np.concatenate([results[s][k] for s in starts]) for k in results[starts[0]]}
     summary = summarise(design, settings, truth, per_plant, wall)
-    summary["engine"] = _setup(cfg.raw, settings).engine
+    summary["engine"] = setup.engine
+    summary["compile_seconds"] = compile_s
+    if setup.engine == "compiled":
+        summary["workers"] = _compiled_threads(settings.workers)
+        summary["chunk"] = cs
     return SweepResult(design, settings, truth, per_plant, summary)
 
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 import dataclasses
 from pathlib import Path
 
+import numba
 import numpy as np
 import pytest
 
@@ -369,3 +370,114 @@ def test_unknown_engine_is_refused():
     cfg = load_config(DEMO, ["commands.duration=0.1"])
     with pytest.raises(ValueError, match="engine"):
         dry_run(cfg, engine="quick")
+
+
+# ---------------------------------------------------------------- sweep kernel pieces
+def specialised_vs_general(design, xs, cs, eps_t=None, settings=None):
+    """law_tick_pedestal and law_tick on the same measurements: every output, every tick."""
+    ic, fc = fast.pack_law(design, settings)
+    assert fast.sweep_law_fits(ic)
+    n, m, n_reg = 4, 2, design.n_regressors
+    sa, sb = np.zeros(n + n_reg * m), np.zeros(n + n_reg * m)
+    oa, ob = np.zeros(fast.out_size(n, m, n_reg)), np.zeros(fast.out_size(n, m, n_reg))
+    sa[:n] = sb[:n] = xs[0]
+    flags = []
+    for k in range(len(xs)):
+        eps = design.eps if eps_t is None else eps_t[k]
+        fast.law_tick(xs[k], cs[k], eps, ic, fc, sa, oa)
+        fast.law_tick_pedestal(xs[k], cs[k], eps, ic, fc, sb, ob)
+        assert close(oa[:fast.OUT_HEADER + 3 * m + n + n_reg],
+                     ob[:fast.OUT_HEADER + 3 * m + n + n_reg], 1e-12), k
+        assert close(sa, sb, 1e-12), k
+        flags.append((oa[fast.O_CLAMPED], oa[fast.O_CAPPED]))
+    return np.array(flags)
+
+
+@pytest.mark.parametrize("overrides", [
+    ("adaptation.gamma=20",),
+    ("adaptation.law=standard",),
+    ("adaptation.barrier=log", "adaptation.unknown_effectiveness=false"),
+    ("adaptation.dead_zone=0.01",),
+])
+def test_specialised_law_tick_matches_the_general_kernel(overrides):
+    # The source of truth for law_tick_pedestal is law_tick (itself checked against
+    # runtime.law.AdaptiveLaw above); kicks push the error past the clamp and the cap.
+    design = demo_design(*overrides)
+    xs, cs = closed_loop_states(design, 400, kicks=True)
+    t = np.arange(400) * design.Ts
+    flags = specialised_vs_general(design, xs, cs, eps_t=design.eps * (1 + np.exp(-t / 0.1)))
+    if overrides == ("adaptation.gamma=20",):
+        assert flags[:, 0].any() and flags[:, 1].any()  # clamp and cap both engaged
+
+
+def test_specialised_law_tick_with_radial_basis():
+    design = demo_design('basis.kind="rbf"', 'basis.terms=["bias", "cos:el"]',
+                         'basis.rbf_states=["el", "el_rate"]', "basis.rbf_per_axis=[4, 3]",
+                         "basis.rbf_span=[0.6, 1.0]", "basis.rbf_width=[0.3, 0.8]",
+                         "adaptation.gamma=1.0")
+    xs, cs = closed_loop_states(design, 300, kicks=False)
+    specialised_vs_general(design, xs, cs)
+
+
+def test_modifiers_send_the_sweep_to_the_general_law_kernel():
+    ic, _fc = fast.pack_law(demo_design(), fast.ModifierSettings(leakage="e", mu=1.0))
+    assert not fast.sweep_law_fits(ic)
+
+
+@pytest.mark.parametrize("stribeck", [False, True])
+def test_lane_plant_step_matches_pedestal_step(stribeck):
+    # Four different plants, inputs beyond the 12 V limits, fast elevation swings (the exact
+    # trigonometry fallback) and near-standstill rates (tanh off its +-1 shortcut).
+    rng = np.random.default_rng(8)
+    L = fast.LANES
+    prm = np.stack([fast.pack_pedestal(Pedestal.create().params) for _ in range(L)])
+    prm *= rng.uniform(0.7, 1.3, size=prm.shape)
+    if stribeck:
+        prm[:, fast.P_STRIB_AZ] = 0.8
+        prm[:, fast.P_STRIB_EL] = 0.5
+    lanes = np.arange(L)
+    konst = np.zeros((L, 12))
+    fast.pedestal_lanes_setup(prm, lanes, konst)
+    X = rng.normal(size=(L, 4)) * [0.3, 0.3, 0.01, 0.01]
+    X[0, 3] = 40.0  # 0.04 rad a tick: beyond the angle-addition series
+    ref = X.copy()
+    limits = np.array([12.0, 12.0])
+    work, scratch = np.zeros((6, 4)), np.zeros((L, 12))
+    for _ in range(300):
+        U = rng.uniform(-15, 15, size=(L, 2))
+        for ln in range(L):
+            fast.pedestal_step(ref[ln], U[ln], prm[ln], limits, 1e-3, 3, np.zeros(2),
+                               np.ones(2), work)
+        fast.pedestal_step_lanes(X, U, prm, lanes, konst, limits, 1e-3, 3, scratch)
+        assert close(X, ref, 1e-12)
+
+
+def test_fast_tanh_equals_math_tanh():
+    import math
+
+    z = np.concatenate([np.linspace(-30, 30, 20001), [19.9999, 20.0, 20.0001, 1e300, -1e300]])
+    got = np.array([fast.fast_tanh(float(v)) for v in z])
+    assert np.array_equal(got, np.array([math.tanh(float(v)) for v in z]))
+
+
+@numba.njit
+def _draw(seed, plant, count):
+    st = np.zeros(1, dtype=np.uint64)
+    st[0] = fast.stream_key(seed, plant)
+    out = np.empty(count)
+    fast.stream_normals(st, out)
+    return out
+
+
+def test_noise_streams_are_standard_normal_and_independent():
+    from scipy import stats
+
+    a = _draw(7, 0, 200_000)
+    b = _draw(7, 1, 200_000)
+    # Kolmogorov-Smirnov against N(0, 1) (scipy.stats.kstest); a fixed seed, so not flaky
+    assert stats.kstest(a, "norm").pvalue > 1e-3
+    assert abs(a.mean()) < 5 / np.sqrt(a.size) and abs(a.var() - 1) < 5 * np.sqrt(2 / a.size)
+    assert abs(np.corrcoef(a, b)[0, 1]) < 5 / np.sqrt(a.size)          # plant to plant
+    assert abs(np.corrcoef(a[:-1], a[1:])[0, 1]) < 5 / np.sqrt(a.size)  # draw to draw
+    assert np.array_equal(_draw(7, 0, 1000), a[:1000])                 # reproducible
+    assert not np.array_equal(_draw(8, 0, 1000), a[:1000])             # the seed matters

@@ -165,3 +165,114 @@ def test_bad_grid_is_one_line_error(capsys):
     assert main(["sweep", DEMO, "--grid", "adaptation.gamma"]) == 2
     err = capsys.readouterr().err
     assert "--grid" in err and "Traceback" not in err
+
+
+# ---------------------------------------------------------------- the compiled engine
+FIRSTS = tuple(f"first_{r}" for r in (*RULES, "breach", "diverged"))
+
+
+def assert_same_plants(a, b, rtol=1e-9):
+    """Per plant: identical rule ticks (hence outcome and first-out), worst ratio to rtol."""
+    for key in FIRSTS:
+        np.testing.assert_array_equal(a[key], b[key], err_msg=key)
+    np.testing.assert_allclose(a["max_ratio"], b["max_ratio"], rtol=rtol)
+
+
+# Harder settings than the demo, so that rules fire: sensor delay, command latency and a
+# bound that narrows (time-varying eps); then also a command step far beyond the bound.
+HARD = ["plant.sensors.delay_ticks=2", "sweep.latency_ticks=3", "watchdog.saturation_s=0.02",
+        "adaptation.gamma=1.5", 'adaptation.bound.kind="exponential"',
+        "adaptation.bound.eps0=0.05", "adaptation.bound.eps_inf=0.012",
+        "adaptation.bound.alpha=50", 'adaptation.bound.on_violation="rate_limit"']
+STEP = ['commands.az=[{at=0.3, kind="step", to=1.0}]']
+
+
+@pytest.mark.parametrize("extra", [[], HARD, HARD + STEP])
+def test_compiled_engine_matches_the_fused_engine_noise_off(cfg, extra):
+    c = cfg.with_overrides(extra)
+    a = run_sweep(c, plants=10, seed=5, duration=1.5, workers=1, engine="fused")
+    b = run_sweep(c, plants=10, seed=5, duration=1.5, workers=2, engine="compiled")
+    assert b.summary["engine"] == "compiled"
+    assert_same_plants(a.per_plant, b.per_plant)
+    np.testing.assert_array_equal(a.per_plant["outcome"], b.per_plant["outcome"])
+    fired = {r for r in (*RULES, "breach") if np.any(b.per_plant[f"first_{r}"] >= 0)}
+    if extra:  # the comparison covered rules that fired, not only plants that stayed inside
+        assert {"margin", "clamp", "breach"} <= fired, fired
+    if extra == HARD + STEP:
+        assert "saturation" in fired
+
+
+def test_compiled_engine_matches_the_fused_engine_with_the_same_noise():
+    # The fused engine draws rng.standard_normal((4, B)) per reading from
+    # default_rng([seed, chunk]); replaying those draws into the kernel gives the same noise.
+    from runtime.sweep import _run_compiled, _setup
+
+    c = load_config(DEMO, ["sweep.latency_ticks=1"])
+    st = SweepSettings.from_config(c, plants=5, seed=3, duration=1.0, workers=1, engine="fused")
+    prm = draw_plants(c, 5, 3)
+    fused = run_chunk(c.raw, st, prm, 0)
+    ticks = len(_setup(c.raw, st).cmd)
+    rng = np.random.default_rng([3, 0])
+    given = np.stack([rng.standard_normal((4, 5)) for _ in range(ticks + 1)], axis=0)
+    st_c = SweepSettings.from_config(c, plants=5, seed=3, duration=1.0, workers=1,
+                                     engine="compiled")
+    comp = _run_compiled(_setup(c.raw, st_c), prm, np.arange(5),
+                         noise_given=np.ascontiguousarray(given.transpose(2, 0, 1)))
+    assert_same_plants(fused, comp)
+    noisy = run_sweep(c, plants=5, seed=3, duration=1.0, workers=1, engine="compiled")
+    assert not np.array_equal(noisy.per_plant["max_ratio"], comp["max_ratio"])  # own streams
+
+
+def test_compiled_engine_runs_modifiers_and_radial_basis_like_the_reference():
+    # The reference engine: runtime.law.AdaptiveLaw (with runtime.modifiers) + Pedestal.step.
+    for extra in (['adaptation.leakage="e"', "adaptation.mu=0.5", "adaptation.projection=true",
+                   "adaptation.theta_max=[2.0, 2.0]"],
+                  ['basis.kind="rbf"', 'basis.terms=["bias", "cos:el"]',
+                   'basis.rbf_states=["el", "el_rate"]', "basis.rbf_per_axis=[4, 3]",
+                   "basis.rbf_span=[0.6, 1.0]", "basis.rbf_width=[0.3, 0.8]",
+                   "adaptation.gamma=1.0"]):
+        c = load_config(DEMO, QUIET + extra)
+        a = run_sweep(c, plants=4, seed=2, duration=1.0, workers=1, engine="reference")
+        b = run_sweep(c, plants=4, seed=2, duration=1.0, workers=1)
+        assert b.summary["engine"] == "compiled", extra
+        assert_same_plants(a.per_plant, b.per_plant)
+
+
+def test_compiled_results_do_not_depend_on_threads_or_slicing():
+    # Noise on: each plant has its own stream keyed by (seed, plant index).
+    c = load_config(DEMO, [])
+    one = run_sweep(c, plants=11, seed=4, duration=0.8, workers=1, engine="compiled")
+    two = run_sweep(c, plants=11, seed=4, duration=0.8, workers=2, chunk=3, engine="compiled")
+    assert one.summary["noise"] and two.summary["workers"] == 2 and two.summary["chunk"] == 3
+    for key in (*FIRSTS, "max_ratio"):
+        np.testing.assert_array_equal(one.per_plant[key], two.per_plant[key], err_msg=key)
+
+
+def test_compiled_noise_statistics_match_the_fused_engine():
+    # Different streams, same distribution: the worst ratio over 60 noisy plants agrees in
+    # the mean to within a few standard errors; with the noise off both are identical above.
+    c = load_config(DEMO, ["plant.sensors.rate_noise=0.02"])
+    a = run_sweep(c, plants=60, seed=9, duration=1.0, workers=1, engine="fused")
+    b = run_sweep(c, plants=60, seed=9, duration=1.0, workers=2, engine="compiled")
+    q = load_config(DEMO, QUIET)
+    z = run_sweep(q, plants=60, seed=9, duration=1.0, workers=2, engine="compiled")
+    da = a.per_plant["max_ratio"] - z.per_plant["max_ratio"]  # the noise's effect per plant
+    db = b.per_plant["max_ratio"] - z.per_plant["max_ratio"]
+    assert np.std(db) > 0 and np.std(da) > 0
+    se = np.sqrt(np.var(da) / da.size + np.var(db) / db.size)
+    assert abs(np.mean(da) - np.mean(db)) < 4 * se + 1e-12
+
+
+def test_auto_picks_compiled_and_falls_back_for_the_fused_only_cases(cfg):
+    from runtime.config import ConfigError
+
+    st = SweepSettings.from_config(cfg, plants=2, duration=0.1, workers=1)
+    assert st.engine == "auto"
+    r = run_sweep(cfg, plants=2, duration=0.1, workers=1)
+    assert r.summary["engine"] == "compiled" and r.summary["compile_seconds"] >= 0
+    with pytest.raises(ConfigError, match="fused"):
+        run_sweep(cfg.with_overrides(['basis.kind="rbf"', 'basis.terms=["bias"]',
+                                      'basis.rbf_states=["el"]', "basis.rbf_per_axis=[3]",
+                                      "basis.rbf_span=[0.6]", "basis.rbf_width=[0.3]",
+                                      "adaptation.gamma=1.0"]),
+                  plants=2, duration=0.1, workers=1, engine="fused")
