@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import gc
 import math
 import queue
 import sys
@@ -917,6 +918,11 @@ class Runner:
             await asyncio.to_thread(self.run_preflight)
         old_switch = sys.getswitchinterval()
         sys.setswitchinterval(self.switch_interval)
+        # Everything built so far (numpy, numba, scipy, the design) moves to the permanent
+        # generation: a full collection then scans only what the run allocates. Measured
+        # rig-clocked over a pty: without this a full collection stalled the loop ~15 ms.
+        gc.collect()
+        gc.freeze()
         try:
             async with self.link:
                 async with asyncio.TaskGroup() as tg:
@@ -938,6 +944,7 @@ class Runner:
                             mqtt.cancel()
         finally:
             sys.setswitchinterval(old_switch)
+            gc.unfreeze()
             self.core.close()
         if self.error is not None:
             raise self.error
