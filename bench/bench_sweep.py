@@ -1,19 +1,29 @@
-"""Sweep throughput: plant-steps per second of `runtime.sweep` vs per-plant scipy solve_ivp.
+"""Sweep throughput: plant-steps per second of `runtime.sweep` engines vs per-plant scipy solve_ivp.
 
-Usage: python bench/bench_sweep.py [--plants 2000] [--duration 5] [--workers 2]
-       [--ivp-plants 3] [--ivp-duration 0.5] [--config configs/pedestal-sim.toml]
+Usage: python bench/bench_sweep.py [--plants 2000,8000] [--duration 5] [--workers 2]
+       [--substeps 4,1] [--fused-plants 2000,8000] [--ivp-plants 3] [--ivp-duration 0.5]
+       [--no-cold] [--config configs/pedestal-sim.toml]
 
-The sweep runs N plants (default 2000 for 5 s at the config's period, 1 kHz in
-the demo) on `--workers` processes with the config's plant substeps and, for
-comparison, with sweep.substeps = 1. The baseline integrates the same closed
-loop per plant with scipy `solve_ivp` (RK45): the continuous pedestal ODE with
-the input held over each tick (zero-order hold), one solve_ivp call per tick,
-the law ticking between calls. Prints figures only.
+For each plant count and RK4 substep count (the demo's 4, and 1) the same plants (same
+seed) run through the `compiled` engine (numba threads, `--workers` of them; the default
+engine) and the `fused` engine (batched numpy over `--workers` processes), 5 s at the
+config's period (1 kHz in the demo), with the config's sensor noise. The numba compile time
+is reported apart and excluded from the rates: once cold (a fresh cache folder, in a
+subprocess) and once as this process found it (normally a load from the on-disk cache).
+The baseline integrates the same closed loop per plant with scipy `solve_ivp` (RK45,
+rtol 1e-8): the continuous pedestal ODE with the input held over each tick, one
+solve_ivp call per tick, the law ticking between calls. Last, the per-plant agreement of
+the worst margin ratio and the outcome between substep counts, the evidence for the
+sweep's substep default. Prints figures only.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
+import subprocess
+import sys
+import tempfile
 import time
 
 import numpy as np
@@ -55,33 +65,86 @@ def ivp_rate(cfg, plants: int, duration: float) -> tuple[float, float]:
     return plants * ticks / wall, worst
 
 
+def cold_compile(config: str) -> float | None:
+    """Seconds to compile the sweep kernel with an empty numba cache (fresh subprocess)."""
+    code = ("from runtime.config import load_config; from runtime.sweep import run_sweep; "
+            f"r = run_sweep(load_config({config!r}, []), plants=1, duration=0.01, workers=1, "
+            "engine='compiled'); print(r.summary['compile_seconds'])")
+    with tempfile.TemporaryDirectory() as tmp:
+        env = {**os.environ, "NUMBA_CACHE_DIR": tmp}
+        res = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                             text=True, check=False)
+    try:
+        return float(res.stdout.strip().splitlines()[-1])
+    except (ValueError, IndexError):
+        return None
+
+
+def ints(text: str) -> list[int]:
+    return [int(v) for v in text.split(",") if v.strip()]
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--config", default="configs/pedestal-sim.toml")
-    ap.add_argument("--plants", type=int, default=2000)
+    ap.add_argument("--plants", type=ints, default=[2000, 8000])
     ap.add_argument("--duration", type=float, default=5.0)
     ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--substeps", type=ints, default=None,
+                    help="RK4 substeps to measure (default: the config's plant.substeps, then 1)")
+    ap.add_argument("--fused-plants", type=ints, default=None,
+                    help="plant counts to run the fused engine at (default: all of --plants)")
     ap.add_argument("--ivp-plants", type=int, default=3)
     ap.add_argument("--ivp-duration", type=float, default=0.5)
+    ap.add_argument("--no-cold", action="store_true", help="skip the cold-compile subprocess")
     a = ap.parse_args()
     cfg = load_config(a.config, [])
     d = design_from_config(cfg)
-    print(f"sweep: {a.plants} plants x {a.duration:g} s at {1 / d.Ts:g} Hz "
-          f"({a.plants * round(a.duration / d.Ts)} plant-steps), {a.workers} workers")
-    rates = {}
-    for label, over in (("config substeps", []), ("substeps = 1", ["sweep.substeps=1"])):
-        c = cfg.with_overrides(over)
-        r = run_sweep(c, plants=a.plants, duration=a.duration, workers=a.workers)
-        s = r.summary
-        rates[label] = s["plant_steps_per_second"]
-        print(f"  {label:16s} (substeps {s['substeps']}): {s['plant_steps_per_second'] / 1e6:6.2f}"
-              f" M plant-steps/s, wall {s['wall_seconds']:.2f} s, chunk {s['chunk']}, "
-              f"engine {s['engine']}, worst ratio {s['worst_margin_ratio']:.6f}")
+    subs = a.substeps or sorted({int(cfg.number("plant.substeps", 4)), 1}, reverse=True)
+    fused_n = a.fused_plants if a.fused_plants is not None else a.plants
+    ticks = round(a.duration / d.Ts)
+    print(f"sweep bench: {a.duration:g} s at {1 / d.Ts:g} Hz ({ticks} ticks), sensor noise "
+          f"{'on' if cfg.flag('sweep.noise', True) else 'off'}, {a.workers} workers, "
+          f"{os.cpu_count()} CPUs, load average {os.getloadavg()[0]:.2f}")
+    if not a.no_cold:
+        cold = cold_compile(a.config)
+        print(f"numba compile of the sweep kernel, empty cache: "
+              f"{'failed' if cold is None else f'{cold:.1f} s'} (excluded from every rate)")
     ivp, worst = ivp_rate(cfg, a.ivp_plants, a.ivp_duration)
     print(f"solve_ivp RK45 per plant ({a.ivp_plants} plants x {a.ivp_duration:g} s): "
           f"{ivp:,.0f} plant-steps/s (worst ratio {worst:.4f})")
-    for label, rate in rates.items():
-        print(f"ratio sweep/solve_ivp ({label}): {rate / ivp:,.0f}x")
+    ratio_by: dict[tuple[int, int], np.ndarray] = {}
+    outcome_by: dict[tuple[int, int], np.ndarray] = {}
+    print(f"{'plants':>7} {'substeps':>8} {'engine':>9} {'M steps/s':>10} {'wall s':>7} "
+          f"{'compile s':>9} {'x solve_ivp':>11} {'worst ratio':>12}")
+    for n in a.plants:
+        for sub in subs:
+            c = cfg.with_overrides([f"sweep.substeps={sub}"])
+            engines = ["compiled"] + (["fused"] if n in fused_n else [])
+            for eng in engines:
+                r = run_sweep(c, plants=n, duration=a.duration, workers=a.workers, engine=eng)
+                s = r.summary
+                rate = s["plant_steps_per_second"]
+                print(f"{n:7d} {sub:8d} {eng:>9} {rate / 1e6:10.2f} {s['wall_seconds']:7.2f} "
+                      f"{s.get('compile_seconds', 0.0):9.2f} {rate / ivp:11,.0f} "
+                      f"{s['worst_margin_ratio']:12.6f}", flush=True)
+                if eng == "compiled":
+                    ratio_by[n, sub] = r.per_plant["max_ratio"]
+                    outcome_by[n, sub] = r.per_plant["outcome"]
+    if len(subs) > 1:
+        ref = subs[0]
+        print(f"substeps vs {ref} (compiled, same plants and noise): per-plant worst margin "
+              f"ratio and outcome")
+        for n in a.plants:
+            for sub in subs[1:]:
+                r0, r1 = ratio_by[n, ref], ratio_by[n, sub]
+                fin = np.isfinite(r0) & np.isfinite(r1)
+                diff = np.abs(r1[fin] - r0[fin])
+                same = np.mean(outcome_by[n, ref] == outcome_by[n, sub])
+                print(f"  {n} plants, {sub} substep(s): max |d ratio| {diff.max():.2e} "
+                      f"(median {np.median(diff):.1e}), max relative "
+                      f"{np.max(diff / np.maximum(r0[fin], 1e-12)):.2e}, same outcome "
+                      f"{100 * same:.2f} %, worst {r0.max():.6f} vs {r1.max():.6f}")
     print("goals: >= 5 M plant-steps/s on 2 cores, >= 100x solve_ivp")
 
 

@@ -25,7 +25,9 @@ QUIET = ["sweep.noise=false", "plant.sensors.angle_noise=0", "plant.sensors.rate
 
 @pytest.fixture(scope="module")
 def cfg():
-    return load_config(DEMO, QUIET)
+    # the sweep's plant integrates like the dry run's, so the two agree to rounding
+    c = load_config(DEMO, QUIET)
+    return c.with_overrides([f"sweep.substeps={int(c.number('plant.substeps', 4))}"])
 
 
 @pytest.fixture(scope="module")
@@ -276,3 +278,21 @@ def test_auto_picks_compiled_and_falls_back_for_the_fused_only_cases(cfg):
                                       "basis.rbf_span=[0.6]", "basis.rbf_width=[0.3]",
                                       "adaptation.gamma=1.0"]),
                   plants=2, duration=0.1, workers=1, engine="fused")
+
+
+def test_default_substeps_keep_steps_at_most_one_millisecond_and_agree_with_four():
+    # RK4's global error is O(h^4) (Butcher, Numerical Methods for ODEs): at 1 kHz one
+    # substep already resolves this plant, so the worst ratio barely moves.
+    from runtime.sweep import default_substeps
+
+    demo = load_config(DEMO, QUIET)
+    assert SweepSettings.from_config(demo, plants=1).substeps == 1  # demo: 1 kHz
+    assert default_substeps(demo.with_overrides(["loop.period=0.0025"])) == 3
+    one = run_sweep(demo, plants=6, seed=1, duration=2.0, workers=2)
+    four = run_sweep(demo.with_overrides(["sweep.substeps=4"]), plants=6, seed=1, duration=2.0,
+                     workers=2)
+    assert one.summary["substeps"] == 1 and four.summary["substeps"] == 4
+    np.testing.assert_allclose(one.per_plant["max_ratio"], four.per_plant["max_ratio"],
+                               rtol=1e-6)
+    assert not np.array_equal(one.per_plant["max_ratio"], four.per_plant["max_ratio"])
+    np.testing.assert_array_equal(one.per_plant["outcome"], four.per_plant["outcome"])
