@@ -23,7 +23,7 @@ from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.containers import Grid, Horizontal, Vertical
 from textual.reactive import reactive
-from textual.screen import ModalScreen
+from textual.screen import ModalScreen, Screen
 from textual.widgets import Button, DataTable, Footer, Header, Label, Static
 
 from runtime import panels
@@ -279,17 +279,21 @@ class Dashboard(App[None]):
             return
         self._dirty = False
         tel, hello = self.latest, self.hello
-        self.query_one(MarginPanel).show(panels.margin_view(hello, tel),
+        # Query the main screen, not the active one: a confirmation may be on top,
+        # and the values behind it keep updating.
+        main = self.screen_stack[0]
+        main.query_one(MarginPanel).show(panels.margin_view(hello, tel),
                                          list(self.ratio_trace), self.paused)
-        self.query_one(LearningPanel).show(panels.learning_view(tel), panels.weight_view(tel),
+        main.query_one(LearningPanel).show(panels.learning_view(tel), panels.weight_view(tel),
                                            list(self.rate_trace))
-        self.query_one(SupervisorPanel).show(panels.supervisor_view(tel))
-        self._fill("#tracking", panels.tracking_rows(hello, tel))
-        self._fill("#inputs", panels.input_rows(hello, tel))
-        self._fill("#health", panels.health_rows(tel))
+        main.query_one(SupervisorPanel).show(panels.supervisor_view(tel))
+        self._fill(main, "#tracking", panels.tracking_rows(hello, tel))
+        self._fill(main, "#inputs", panels.input_rows(hello, tel))
+        self._fill(main, "#health", panels.health_rows(tel))
 
-    def _fill(self, selector: str, rows: list[tuple[str, ...]]) -> None:
-        table = self.query_one(selector, DataTable)
+    @staticmethod
+    def _fill(main: Screen, selector: str, rows: list[tuple[str, ...]]) -> None:
+        table = main.query_one(selector, DataTable)
         table.clear()
         for row in rows:
             table.add_row(*row)

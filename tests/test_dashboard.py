@@ -120,6 +120,24 @@ def test_arm_on_hardware_asks_first_and_shows_the_cautions():
     asyncio.run(run())
 
 
+def test_values_keep_updating_behind_the_arm_confirmation():
+    async def run():
+        recs = recording(with_trip=False)
+        app = Dashboard(RecordedSource(records=[], speed=0))
+        async with app.run_test(size=(140, 48)) as pilot:
+            app.ingest(recs[0])
+            app.ingest(recs[1])
+            await pilot.press("a")
+            await pilot.pause(0.1)
+            assert isinstance(app.screen, ConfirmArm)
+            app.ingest(recs[-1])
+            app.redraw()  # must not look for the panels on the confirmation screen
+            margin = str(app.screen_stack[0].query_one(MarginPanel).render())
+            assert f"{recs[-1]['ratio']:.3f}" in margin
+            await pilot.press("n")
+    asyncio.run(run())
+
+
 def test_stop_is_one_key_and_reaches_the_source():
     async def run():
         source = RecordedSource(records=recording(with_trip=False), speed=0)
