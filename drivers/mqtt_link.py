@@ -312,9 +312,24 @@ class Topics:
 # --------------------------------------------------------------------------- shared helpers
 
 
+class _PackedProperties(Properties):
+    """Properties packed once: paho packs a publish's properties on every send."""
+
+    _packed: bytes | None = None
+
+    def pack(self) -> bytes:
+        if self._packed is None:
+            object.__setattr__(self, "_packed", super().pack())
+        assert self._packed is not None
+        return self._packed
+
+
 def expiry(seconds: int | float, packet: int = PacketTypes.PUBLISH) -> Properties:
-    """MQTT 5 properties with a message expiry interval (whole seconds, at least 1)."""
-    props = Properties(packet)
+    """MQTT 5 properties with a message expiry interval (whole seconds, at least 1).
+
+    Packed on first use and then reused as is: set nothing on it afterwards.
+    """
+    props = _PackedProperties(packet)
     props.MessageExpiryInterval = max(1, int(math.ceil(seconds)))
     return props
 
