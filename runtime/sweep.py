@@ -850,11 +850,14 @@ def _sweep_compiled(setup: _Setup, truth: dict[str, Array], progress: Progress |
         compile_s = time.perf_counter() - t0  # compiling, or loading numba's cache
         cs = min(settings.chunk, max(4 * threads, -(-N // 20)))
         wall0 = time.perf_counter()
-        for s in range(0, N, cs):
-            ids = np.arange(s, min(N, s + cs), dtype=np.int64)
-            results[s] = _run_compiled(setup, {k: v[ids] for k, v in truth.items()}, ids)
-            if progress:
-                progress(int(ids[-1]) + 1, N)
+        # dynamic scheduling, one group of plants at a time: on a shared machine a thread
+        # that loses its core does not hold the others up at the end of a slice
+        with numba.parallel_chunksize(1):
+            for s in range(0, N, cs):
+                ids = np.arange(s, min(N, s + cs), dtype=np.int64)
+                results[s] = _run_compiled(setup, {k: v[ids] for k, v in truth.items()}, ids)
+                if progress:
+                    progress(int(ids[-1]) + 1, N)
         wall = time.perf_counter() - wall0
     finally:
         numba.set_num_threads(before)
