@@ -845,6 +845,13 @@ def _finite(v: float) -> float | None:
     return v if math.isfinite(v) else None
 
 
+def _preflight_job(cfg: Config, plants: int) -> dict[str, Any]:
+    """`run_preflight` in a child process (picklable entry point)."""
+    from runtime.preflight import run_preflight
+
+    return run_preflight(cfg, plants=plants, write=True)
+
+
 # ------------------------------------------------------------------ the runner
 class Runner:
     """Builds a run from a config and drives it: tasks, clock, shutdown."""
@@ -955,24 +962,22 @@ class Runner:
         a NO-GO makes every arm request refused with its reasons. The verdict goes into
         the trip log as a ``preflight`` event (with the whole verdict under ``preflight``)
         and into the run summary."""
-        from runtime.preflight import run_preflight
-
         core = self.core
         plants = int(self.cfg.number("preflight.plants", 50, minimum=1))
         out = core.console()
         print(f"corral: preflight: sweeping {plants} simulated plants before arming "
               "(--no-preflight skips this)", file=out, flush=True)
-        last = [0.0]
-
-        def progress(done: int, total: int) -> None:
-            now = time.monotonic()
-            if now - last[0] > 2.0 or done == total:
-                last[0] = now
-                print(f"corral: preflight: {done}/{total}", file=out, flush=True)
+        # In a child process: the sweep's compiled kernels, worker threads and large arrays
+        # stay out of the loop's process (run in-process, the rig-clocked loop that followed
+        # stalled for milliseconds and tripped stale in about a third of the runs tried).
+        import concurrent.futures
+        import multiprocessing
 
         try:
-            res = run_preflight(self.cfg, plants=plants, progress=progress, write=True)
-        except (ConfigError, ValueError) as exc:
+            ctx = multiprocessing.get_context("spawn")
+            with concurrent.futures.ProcessPoolExecutor(1, mp_context=ctx) as pool:
+                res = pool.submit(_preflight_job, self.cfg, plants).result()
+        except Exception as exc:  # noqa: BLE001 - no verdict means no arming
             res = {"go": False, "predicted_trip_rate": None, "record": None,
                    "reasons": [f"preflight could not run: {exc}"]}
         verdict = {key: res.get(key) for key in ("go", "predicted_trip_rate", "max_trip_rate",
