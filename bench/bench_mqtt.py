@@ -15,15 +15,20 @@ sample with an `MqttLink` at once. Reports, in microseconds:
   machinery as the link (`publish_now`, paho's direct message callbacks,
   TCP_NODELAY): the floor the closed loop can reach.
 
-Usage: python bench/bench_mqtt.py [SECONDS] [--broker-nodelay]   (default 20 s).
+Usage: python bench/bench_mqtt.py [SECONDS] [--broker-nodelay] [--realtime]   (default 20 s).
 ``--broker-nodelay`` starts mosquitto with ``set_tcp_nodelay true``; by
-default it runs with the Debian package's defaults (Nagle on). Prints figures only.
+default it runs with the Debian package's defaults (Nagle on). ``--realtime``
+runs this process, the broker and the served device at SCHED_FIFO (root or
+CAP_SYS_NICE), as `chrt -f 30` would: what a lab gets by giving the host loop
+and the broker real-time priority. The device's own threads ask for SCHED_FIFO
+in every case. Prints figures only.
 """
 
 from __future__ import annotations
 
 import asyncio
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -113,6 +118,13 @@ async def closed_loop(settings: MqttSettings, seconds: float) -> tuple[MqttLink,
 def main() -> None:
     args = [a for a in sys.argv[1:] if not a.startswith("--")]
     nodelay = "--broker-nodelay" in sys.argv[1:]
+    realtime = "--realtime" in sys.argv[1:]
+    if realtime:
+        try:  # inherited by the broker and the device started below
+            os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(30))
+        except (PermissionError, OSError) as exc:
+            print(f"--realtime: SCHED_FIFO not permitted ({exc}); running at normal priority")
+            realtime = False
     seconds = float(args[0]) if args else 20.0
     sys.setswitchinterval(100e-6)  # as the runtime's loop does
     root = Path(__file__).resolve().parents[1]
@@ -138,7 +150,8 @@ def main() -> None:
     host = np.asarray(link.stats.latencies_us)
     st = link.stats.as_dict()
     print(f"MQTT closed loop at {RATE_HZ:g} Hz for {seconds:g} s through mosquitto (loopback, "
-          f"set_tcp_nodelay {'true' if nodelay else 'false'})")
+          f"set_tcp_nodelay {'true' if nodelay else 'false'}"
+          f"{', all at SCHED_FIFO' if realtime else ''})")
     print(f"  host  sample->command (us):        {pct(host)}")
     print(f"  device sample->command back (us):  p50 {rep['round_trip_p50_us']:7.0f}  "
           f"p99 {rep['round_trip_p99_us']:7.0f}  max {rep['round_trip_max_us']:7.0f}")
