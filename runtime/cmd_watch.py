@@ -29,6 +29,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--password-env", metavar="VAR",
                         help="environment variable holding the broker password")
     parser.add_argument("--tls", action="store_true", help="use TLS to the broker")
+    parser.add_argument("--prefix", default="corral",
+                        help="first topic level on the broker (the rig's [link.mqtt] prefix)")
     parser.add_argument("--replay", type=Path, metavar="FILE",
                         help="show a recorded telemetry file instead of a live rig")
     parser.add_argument("--speed", type=float, default=1.0,
@@ -52,7 +54,8 @@ def make_source(args: argparse.Namespace):  # noqa: ANN201 - returns a Telemetry
         if not host or not port.isdigit():
             raise UserError(f"--mqtt {args.mqtt!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
         password = os.environ.get(args.password_env) if args.password_env else None
-        return MqttSource(host, int(port), args.rig, args.username, password, args.tls)
+        return MqttSource(host, int(port), args.rig, args.username, password, args.tls,
+                          prefix=args.prefix)
     path = args.socket
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)

@@ -134,15 +134,18 @@ class RecordedSource(TelemetrySource):
 class MqttSource(TelemetrySource):
     """A remote rig's telemetry through an MQTT broker.
 
-    Topics: ``corral/<rig>/telemetry`` (msgpack telemetry maps),
-    ``corral/<rig>/telemetry/hello`` (retained hello map), ``corral/<rig>/trip``,
-    ``corral/<rig>/reply``; requests go to ``corral/<rig>/request``.
+    Topics (``drivers.mqtt_link.Topics``, prefix ``corral`` unless the rig's
+    config says otherwise): ``<prefix>/<rig>/telemetry`` (msgpack telemetry maps),
+    ``<prefix>/<rig>/telemetry/hello`` (retained hello map), ``.../trip``,
+    ``.../reply``; requests go to ``<prefix>/<rig>/request``.
     """
 
     def __init__(self, host: str, port: int, rig: str, username: str | None = None,
-                 password: str | None = None, tls: bool = False) -> None:
+                 password: str | None = None, tls: bool = False,
+                 prefix: str = "corral") -> None:
         self.host, self.port, self.rig = host, port, rig
         self.username, self.password, self.tls = username, password, tls
+        self.prefix = prefix
         self.description = f"mqtt://{host}:{port}/{rig}"
         self._client: Any = None
         self._stack: Any = None
@@ -158,8 +161,8 @@ class MqttSource(TelemetrySource):
         self._client = await self._stack.enter_async_context(aiomqtt.Client(
             self.host, self.port, username=self.username, password=self.password,
             tls_context=tls_context, max_queued_incoming_messages=1000))
-        base = f"corral/{self.rig}"
-        for topic in ("telemetry", "telemetry/hello", "trip", "reply", "mode"):
+        base = f"{self.prefix}/{self.rig}"
+        for topic in ("telemetry", "telemetry/hello", "trip", "reply"):
             await self._client.subscribe(f"{base}/{topic}")
 
     async def close(self) -> None:
@@ -192,5 +195,5 @@ class MqttSource(TelemetrySource):
             yield item
 
     async def request(self, op: str) -> None:
-        await self._client.publish(f"corral/{self.rig}/request",
+        await self._client.publish(f"{self.prefix}/{self.rig}/request",
                                    msgpack.packb({"type": "request", "op": op}), qos=1)
