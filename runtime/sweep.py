@@ -711,7 +711,11 @@ def _compiled_threads(workers: int) -> int:
 
 def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: dict[str, Array],
               chunk_index: int) -> dict[str, Array]:
-    """Simulate one chunk of plants (runs in a worker process); per-plant result arrays."""
+    """Simulate one chunk of plants (in this process); per-plant result arrays.
+
+    The compiled engine numbers the chunk's plants 0.. for their noise streams;
+    `run_sweep` numbers them across the whole sweep instead.
+    """
     setup = _setup(raw, settings)
     rng = np.random.default_rng([settings.seed, chunk_index])
     prm = {k: np.ascontiguousarray(v, dtype=float) for k, v in prm.items()}
