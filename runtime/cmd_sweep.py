@@ -31,11 +31,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--duration", type=float, default=None,
                         help="simulated seconds per plant (default commands.duration)")
     parser.add_argument("--workers", type=int, default=None,
-                        help="processes (default: one per core)")
+                        help="threads for the compiled engine, processes for the others "
+                             "(default: one per core)")
     parser.add_argument("--chunk", type=int, default=None,
                         help="plants per batch array (default sweep.chunk or 8000)")
     parser.add_argument("--engine", choices=ENGINES, default=None,
-                        help="fused (fast numpy), reference (AdaptiveLaw + Pedestal), auto")
+                        help="compiled (numba, parallel), fused (batched numpy), reference "
+                             "(AdaptiveLaw + Pedestal), or auto (the fastest that can run "
+                             "the config)")
     parser.add_argument("--out", type=Path, default=None,
                         help="folder for the PNG plots and the JSON report "
                              "(default log.dir/sweeps)")
