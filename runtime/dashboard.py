@@ -262,6 +262,8 @@ class Dashboard(App[None]):
         elif kind == "telemetry":
             self.latest = rec
             self.records_seen += 1
+            if self.records_seen == 1 and self.status == "waiting for telemetry":
+                self.status = f"live: {self.source.description}"
             if not self.paused:
                 self.ratio_trace.append(float(rec.get("ratio", float("nan"))))
                 self.rate_trace.append(float(rec.get("eff_rate", 0.0) or 0.0))
