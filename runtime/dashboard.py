@@ -231,7 +231,7 @@ class Dashboard(App[None]):
         """Set up tables, start reading, refresh at a fixed rate."""
         self.sub_title = self.source.description
         self.query_one("#tracking", DataTable).add_columns(
-            "state", "command", "reference", "measured", "error", "envelope")
+            "state [unit]", "command", "reference", "measured", "error", "envelope")
         self.query_one("#inputs", DataTable).add_columns(
             "input", "applied", "limit", "saturated for", "")
         self.query_one("#health", DataTable).add_columns("loop and link", "value")

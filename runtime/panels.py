@@ -110,12 +110,13 @@ class LearningView:
 
 
 def learning_view(tel: Record) -> LearningView:
-    """gamma*phi_d, phi_d and g_k / cap."""
+    """gamma*phi_d, phi_d and g_k / cap (marked frozen while the adaptive law is off)."""
     g = _num(tel.get("step_gain"))
     cap = _num(tel.get("step_gain_cap"), 1.0)
     frac = g / cap if cap > 0 and not math.isnan(g) else math.nan
+    frozen = tel.get("mode", "engaged") != "engaged"
     return LearningView(
-        eff_rate_text=fmt(tel.get("eff_rate")),
+        eff_rate_text=fmt(tel.get("eff_rate")) + (" (adaptation frozen)" if frozen else ""),
         phi_d_text=fmt(tel.get("phi_d")),
         step_gain_text=fmt(g, 3),
         cap_text=fmt(cap, 3),
@@ -124,7 +125,10 @@ def learning_view(tel: Record) -> LearningView:
 
 
 def tracking_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
-    """Per tracked axis: name, command, reference, measured, error, envelope (with units)."""
+    """Per state: "name [unit]", command, reference, measured, error, envelope.
+
+    The unit goes with the name, once, so the numbers stay narrow enough for the panel.
+    """
     states: Sequence[str] = hello.get("states") or []
     units: Sequence[str] = hello.get("state_units") or [""] * len(states)
     envelope: Sequence[float] = hello.get("envelope") or []
@@ -138,13 +142,14 @@ def tracking_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
         cmd = "-"
         if name in tracked:
             j = list(tracked).index(name)
-            cmd = fmt(c[j] if j < len(c) else None, 4, unit)
+            cmd = fmt(c[j] if j < len(c) else None, 4)
         xi = x[i] if i < len(x) else None
         ri = xr[i] if i < len(xr) else None
         err = _num(xi) - _num(ri)
         env = envelope[i] if i < len(envelope) else None
-        rows.append((name, cmd, fmt(ri, 4, unit), fmt(xi, 4, unit), fmt(err, 3, unit),
-                     "+-" + fmt(env, 3, unit) if env is not None else "-"))
+        label = f"{name} [{unit}]" if unit else name
+        rows.append((label, cmd, fmt(ri, 4), fmt(xi, 4), fmt(err, 3),
+                     "+-" + fmt(env, 3) if env is not None else "-"))
     return rows
 
 

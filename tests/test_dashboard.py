@@ -73,9 +73,9 @@ def test_values_shown_match_the_telemetry_they_came_from():
             last = app.latest
             assert app.records_seen == 100
             tracking = cells(app, "#tracking")
-            assert tracking[0][:4] == ["az", "0.5 rad", "0.5 rad", "0.4987 rad"]
-            assert tracking[1][3] == "0.2511 rad"
-            assert tracking[0][5] == "+-0.0199 rad"
+            assert tracking[0][:4] == ["az [rad]", "0.5", "0.5", "0.4987"]
+            assert tracking[1][3] == "0.2511"
+            assert tracking[0][5] == "+-0.0199"
             inputs = cells(app, "#inputs")
             assert inputs[1][:4] == ["V_el", "12 V", "+-12 V", "0.35 s"]
             assert inputs[1][4] == "SATURATED" and inputs[0][4] == ""
@@ -206,6 +206,11 @@ def test_trace_lines_scale_and_mark_levels():
     assert rows[0][2] == panels.BLOCKS[-1]
     assert rows[0][0] == "┄" and rows[0][1] == "┄"
     assert rows[3][1] == panels.BLOCKS[-1] and rows[1][1] == " "
+
+
+def test_learning_rate_is_marked_frozen_outside_engaged():
+    view = panels.learning_view({"mode": "fallback", "eff_rate": 160.0})
+    assert view.eff_rate_text == "160 (adaptation frozen)"
 
 
 def test_learning_view_reports_gain_against_cap():

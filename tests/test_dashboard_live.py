@@ -83,7 +83,7 @@ def test_keys_reach_the_supervisor_through_a_live_runtime(live_run):
                 shown = app.latest
                 table = app.query_one("#tracking", DataTable)
                 az_row = [str(c) for c in table.get_row_at(0)]
-                assert az_row[3] == f"{shown['x'][0]:.4g} rad"
+                assert az_row[0] == "az [rad]" and az_row[3] == f"{shown['x'][0]:.4g}"
 
                 # Arm while latched: the confirmation, then a refusal from the supervisor.
                 await pilot.press("a")
