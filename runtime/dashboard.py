@@ -230,8 +230,10 @@ class Dashboard(App[None]):
     def on_mount(self) -> None:
         """Set up tables, start reading, refresh at a fixed rate."""
         self.sub_title = self.source.description
+        # Text, not str: DataTable reads plain strings as markup, and "[rad]" is a tag.
         self.query_one("#tracking", DataTable).add_columns(
-            "state [unit]", "command", "reference", "measured", "error", "envelope")
+            *(Text(h) for h in ("state [unit]", "command", "reference", "measured", "error",
+                                "envelope")))
         self.query_one("#inputs", DataTable).add_columns(
             "input", "applied", "limit", "saturated for", "")
         self.query_one("#health", DataTable).add_columns("loop and link", "value")
@@ -298,7 +300,7 @@ class Dashboard(App[None]):
         table = main.query_one(selector, DataTable)
         table.clear()
         for row in rows:
-            table.add_row(*row)
+            table.add_row(*(Text(cell) for cell in row))
 
     def watch_status(self, value: str) -> None:
         """Show the status line."""

@@ -62,7 +62,8 @@ async def settle(app: Dashboard, pilot) -> None:
 
 def cells(app: Dashboard, selector: str) -> list[list[str]]:
     table = app.query_one(selector, DataTable)
-    return [[str(c) for c in table.get_row_at(i)] for i in range(table.row_count)]
+    return [[getattr(c, "plain", str(c)) for c in table.get_row_at(i)]
+            for i in range(table.row_count)]
 
 
 def test_values_shown_match_the_telemetry_they_came_from():

@@ -82,7 +82,7 @@ def test_keys_reach_the_supervisor_through_a_live_runtime(live_run):
                 app.redraw()
                 shown = app.latest
                 table = app.query_one("#tracking", DataTable)
-                az_row = [str(c) for c in table.get_row_at(0)]
+                az_row = [getattr(c, "plain", str(c)) for c in table.get_row_at(0)]
                 assert az_row[0] == "az [rad]" and az_row[3] == f"{shown['x'][0]:.4g}"
 
                 # Arm while latched: the confirmation, then a refusal from the supervisor.
