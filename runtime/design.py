@@ -449,20 +449,19 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
 def format_design(d: Design) -> str:
     """A human-readable design report with units."""
     rig = d.rig
-    np.set_printoptions(precision=4, suppress=True, linewidth=100)
     lines = [
         f"corral design: rig {rig.name!r}" + (f" (simulated {rig.sim})" if rig.sim else ""),
         "  states  " + _named(rig.states, rig.state_units),
         "  inputs  " + _named(rig.inputs, rig.input_units),
         "",
         "Baseline (LQR) gain K1 [input units per state unit]:",
-        _indent(str(d.K1)),
+        _indent(_mat(d.K1)),
         "Tracking gain K2 (unit DC gain on the tracked outputs):",
-        _indent(str(d.K2)),
+        _indent(_mat(d.K2)),
         "Closed-loop poles of A_r = A - B K1 [rad/s]:",
         _indent(", ".join(_fmt_pole(p) for p in sorted(d.poles, key=lambda z: z.real))),
         "Lyapunov matrix P (A_r' P + P A_r + R = 0):",
-        _indent(str(d.P)),
+        _indent(_mat(d.P)),
         "",
         "Error bound:",
         f"  eps = {d.eps:.5g} (in ||e||_P)"
@@ -524,6 +523,11 @@ def _fmt_pole(p: complex) -> str:
     if abs(p.imag) < 1e-9:
         return f"{p.real:.4g}"
     return f"{p.real:.4g}{p.imag:+.4g}j"
+
+
+def _mat(M: Array) -> str:
+    """A matrix for the report (no change to numpy's global print options)."""
+    return np.array2string(np.asarray(M), precision=4, suppress_small=True, max_line_width=100)
 
 
 def _indent(text: str) -> str:
