@@ -12,6 +12,7 @@ import time
 from pathlib import Path
 
 import pytest
+from mqtt_broker import mosquitto  # noqa: F401  (fixture: a real mosquitto broker)
 from textual.widgets import DataTable
 
 from runtime.dashboard import ConfirmArm, Dashboard, SupervisorPanel
@@ -118,3 +119,36 @@ def test_watch_refuses_a_missing_socket_in_one_line(tmp_path):
         env={**os.environ, "TERM": "dumb"})
     assert proc.returncode == 2
     assert "no runtime socket" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_dashboard_follows_a_rig_over_mqtt(tmp_path, mosquitto):  # noqa: F811
+    """`corral watch --mqtt` in the pilot: a run publishing telemetry through a real
+    mosquitto broker shows up, and the stop key reaches it through the broker."""
+    from runtime.watch_sources import MqttSource
+
+    cmd = [sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--headless", "--arm",
+           "--duration", "40", "--telemetry-mqtt", mosquitto.url, "--set", f"log.dir={tmp_path}",
+           "--set", "watchdog.overrun_misses=100000", "--set", "watchdog.stale_periods=50"]
+    proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    try:
+        async def run():
+            async with MqttSource(mosquitto.host, mosquitto.port, "pedestal-sim") as source:
+                app = Dashboard(source)
+                async with app.run_test(size=(140, 48)) as pilot:
+                    assert await wait_for(pilot, lambda: app.latest.get("mode") == "engaged",
+                                          timeout=60), app.latest
+                    assert app.hello.get("rig") == "pedestal-sim"
+                    assert "pedestal-sim" in app.title
+                    await pilot.press("s")
+                    assert await wait_for(pilot, lambda: last_reply(app, "stop") is not None)
+                    assert last_reply(app, "stop")["ok"] is True
+                    assert await wait_for(pilot, lambda: app.latest.get("mode") == "stopped")
+        asyncio.run(run())
+    finally:
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGINT)
+            try:
+                proc.wait(10)
+            except subprocess.TimeoutExpired:
+                proc.kill()
