@@ -23,7 +23,16 @@ from collections.abc import Callable
 import serial
 import serial_asyncio_fast
 
-from drivers.base import Command, Hello, Link, LinkClosed, LinkStats, Sample
+from drivers.base import (
+    Command,
+    Hello,
+    LatencyRing,
+    Link,
+    LinkClosed,
+    LinkStats,
+    Sample,
+    SampleInbox,
+)
 from drivers.wire import (
     PROTOCOL_VERSION,
     CommandGuard,
@@ -38,8 +47,6 @@ from drivers.wire import (
 
 DEFAULT_BAUD = 115200
 HOST_HELLO_RIG_ID = "host"
-_LAT_KEEP = 200_000
-_RING = 256
 
 
 class HandshakeError(LinkClosed):
@@ -135,17 +142,13 @@ class SerialLink(Link):
         self._clock = clock
         self._decoder = FrameDecoder(self.stats, synced=False)
         self._tracker = SeqTracker(self.stats)
-        self._samples: collections.deque[Sample] = collections.deque()
-        self._queue_size = queue_size
-        self._waiter: asyncio.Future[None] | None = None
+        self._samples = SampleInbox(self.stats, queue_size, reason="not open")
         self._hello_waiter: asyncio.Future[Hello] | None = None
         self._transport: asyncio.Transport | None = None
         self._protocol: _Protocol | None = None
-        self._lost_reason: str | None = "not open"
         self._host_seq = 0
-        # seq -> (t_device, t_host) of recent samples, for latency and the command's t echo.
-        self._ring_seq = [-1] * _RING
-        self._ring_t = [(0.0, 0.0)] * _RING
+        # Recent samples' (t_device, t_host), for latency and the command's t echo.
+        self._ring = LatencyRing(self.stats)
 
     @classmethod
     def from_url(cls, url: str, **kwargs: object) -> SerialLink:
@@ -171,14 +174,8 @@ class SerialLink(Link):
                 msg.t_host = now
                 self.stats.last_sample_host_s = now
                 self.device_status = msg.status
-                i = msg.seq % _RING
-                self._ring_seq[i] = msg.seq
-                self._ring_t[i] = (msg.t_device, now)
-                if len(self._samples) >= self._queue_size:
-                    self._samples.popleft()
-                    self.stats.late_frames += 1
-                self._samples.append(msg)
-                self._wake()
+                self._ring.note_received(msg.seq, msg.t_device, now)
+                self._samples.put(msg)
             elif type(msg) is Hello:
                 self._on_hello(msg)
             elif type(msg) is Heartbeat:
@@ -201,17 +198,12 @@ class SerialLink(Link):
     def _on_lost(self, protocol: _Protocol, exc: Exception | None) -> None:
         if protocol is not self._protocol:
             return
-        self._lost_reason = f"serial port {self.path} lost: {exc}" if exc else "link closed"
+        reason = f"serial port {self.path} lost: {exc}" if exc else "link closed"
         self.stats.connected = False
         self._transport = None
-        self._wake()
+        self._samples.fail(reason)
         if self._hello_waiter is not None and not self._hello_waiter.done():
-            self._hello_waiter.set_exception(LinkClosed(self._lost_reason))
-
-    def _wake(self) -> None:
-        w = self._waiter
-        if w is not None and not w.done():
-            w.set_result(None)
+            self._hello_waiter.set_exception(LinkClosed(reason))
 
     # ------------------------------------------------------------ Link API
 
@@ -236,7 +228,7 @@ class SerialLink(Link):
             raise LinkClosed(f"cannot open serial port {self.path}: {exc}") from exc
         self._transport = transport  # type: ignore[assignment]
         self._protocol = protocol  # type: ignore[assignment]
-        self._lost_reason = None
+        self._samples.reset()
         self.stats.connected = True
         transport.write(b"\x00")  # a leading delimiter: the device starts on a clean frame
         try:
@@ -274,51 +266,28 @@ class SerialLink(Link):
 
     async def receive(self) -> Sample:
         """Next sample (oldest first; at most `queue_size` are kept, older ones dropped)."""
-        samples = self._samples
-        while True:
-            if samples:
-                return samples.popleft()
-            if self._lost_reason is not None:
-                raise LinkClosed(self._lost_reason)
-            self._waiter = asyncio.get_running_loop().create_future()
-            try:
-                await self._waiter
-            finally:
-                self._waiter = None
+        return await self._samples.get()
 
     async def receive_latest(self) -> Sample:
         """Newest sample; older queued ones are dropped (counted in `stats.late_frames`)."""
-        sample = await self.receive()
-        while self._samples:
-            self.stats.late_frames += 1
-            sample = self._samples.popleft()
-        return sample
+        return await self._samples.get_latest()
 
     async def send(self, command: Command) -> None:
         """Write one command; records latency when it answers a recent sample."""
         if self._transport is None:
-            raise LinkClosed(self._lost_reason or "link closed")
-        i = command.seq % _RING
-        if self._ring_seq[i] == command.seq:
-            t_device, t_rx = self._ring_t[i]
-        else:
-            t_device, t_rx = 0.0, 0.0
-        frame = encode_message(command, t=t_device)
+            raise LinkClosed(self._samples.closed_reason or "link closed")
+        frame = encode_message(command, t=self._ring.device_time(command.seq))
         if self._transport.get_write_buffer_size() > self.max_write_buffer:
             self.send_drops += 1  # the device is not reading; do not pile up stale commands
             return
         self._transport.write(frame)
         self.stats.frames_out += 1
-        if t_rx:
-            lat = self.stats.latencies_us
-            lat.append((self._clock() - t_rx) * 1e6)
-            if len(lat) > _LAT_KEEP:
-                del lat[: _LAT_KEEP // 2]
+        self._ring.note_sent(command.seq, self._clock())
 
     async def send_message(self, msg: Message) -> None:
         """Send a heartbeat, stop or other message with the host's own sequence number."""
         if self._transport is None:
-            raise LinkClosed(self._lost_reason or "link closed")
+            raise LinkClosed(self._samples.closed_reason or "link closed")
         self._write(encode_message(msg, seq=self._next_seq()))
 
     async def close(self) -> None:
@@ -328,7 +297,7 @@ class SerialLink(Link):
                 self._write(encode_message(Stop(self._next_seq(), 0.0, 0)))
         with contextlib.suppress(Exception):
             await self._disconnect()
-        self._lost_reason = "link closed"
+        self._samples.fail("link closed")
 
     async def reconnect(
         self, timeout_s: float = 10.0, *, first_delay_s: float = 0.05, max_delay_s: float = 1.0
@@ -370,9 +339,7 @@ class SerialLink(Link):
         transport, protocol = self._transport, self._protocol
         self._transport = None
         self.stats.connected = False
-        if self._lost_reason is None:
-            self._lost_reason = "link closed"
-        self._wake()
+        self._samples.fail("link closed", replace=False)
         if transport is not None:
             transport.close()
         if protocol is not None:
