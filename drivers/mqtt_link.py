@@ -37,7 +37,16 @@ import msgpack
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
-from drivers.base import Command, Hello, Link, LinkClosed, LinkStats, Sample
+from drivers.base import (
+    Command,
+    Hello,
+    LatencyRing,
+    Link,
+    LinkClosed,
+    LinkStats,
+    Sample,
+    SampleInbox,
+)
 from drivers.wire import (
     PROTOCOL_VERSION,
     DecodeError,
@@ -56,8 +65,6 @@ DEFAULT_PORT = 1883
 DEFAULT_TLS_PORT = 8883
 HOST_HELLO_RIG_ID = "host"
 REQUEST_OPS = ("arm", "disarm", "reset", "stop")
-_LAT_KEEP = 200_000
-_RING = 256
 
 
 # --------------------------------------------------------------------------- settings
@@ -531,17 +538,14 @@ class MqttLink(Link):
         self.retained_dropped = 0
         self._clock = clock
         self._tracker = SeqTracker(self.stats)
-        self._samples: collections.deque[Sample] = collections.deque()
-        self._queue_size = queue_size
-        self._waiter: asyncio.Future[None] | None = None
+        self._samples = SampleInbox(self.stats, queue_size, reason="not open")
         self._hello_waiter: asyncio.Future[Hello] | None = None
         self._client: aiomqtt.Client | None = None
         self._reader: asyncio.Task[None] | None = None
-        self._lost_reason: str | None = "not open"
         self._host_seq = 0
         self._offset: float | None = None  # min(t_host - t_device) this session
-        self._ring_seq = [-1] * _RING
-        self._ring_t = [(0.0, 0.0)] * _RING
+        # Recent samples' (t_device, t_host), for latency and the command's t echo.
+        self._ring = LatencyRing(self.stats)
         self._expiry = expiry(settings.sample_expiry_s)
 
     @classmethod
@@ -578,10 +582,8 @@ class MqttLink(Link):
             self._set_lost(f"MQTT reader failed: {exc!r}")
 
     def _set_lost(self, reason: str) -> None:
-        if self._lost_reason is None:
-            self._lost_reason = reason
+        self._samples.fail(reason, replace=False)
         self.stats.connected = False
-        self._wake()
         w = self._hello_waiter
         if w is not None and not w.done():
             w.set_exception(LinkClosed(reason))
@@ -675,19 +677,8 @@ class MqttLink(Link):
         s.t_host = now
         self.stats.last_sample_host_s = now
         self.device_status = s.status
-        i = s.seq % _RING
-        self._ring_seq[i] = s.seq
-        self._ring_t[i] = (s.t_device, now)
-        if len(self._samples) >= self._queue_size:
-            self._samples.popleft()
-            self.stats.late_frames += 1
-        self._samples.append(s)
-        self._wake()
-
-    def _wake(self) -> None:
-        w = self._waiter
-        if w is not None and not w.done():
-            w.set_result(None)
+        self._ring.note_received(s.seq, s.t_device, now)
+        self._samples.put(s)
 
     # ------------------------------------------------------------ Link API
 
@@ -706,7 +697,7 @@ class MqttLink(Link):
         client = make_client(self.settings, identifier=_client_id("host", self.settings.rig))
         await connect_client(client, self.settings)
         self._client = client
-        self._lost_reason = None
+        self._samples.reset()
         self.stats.connected = True
         loop = asyncio.get_running_loop()
         self._hello_waiter = loop.create_future()
@@ -753,46 +744,24 @@ class MqttLink(Link):
 
     async def receive(self) -> Sample:
         """Next sample (oldest first; at most `queue_size` kept, older ones dropped)."""
-        samples = self._samples
-        while True:
-            if samples:
-                return samples.popleft()
-            if self._lost_reason is not None:
-                raise LinkClosed(self._lost_reason)
-            self._waiter = asyncio.get_running_loop().create_future()
-            try:
-                await self._waiter
-            finally:
-                self._waiter = None
+        return await self._samples.get()
 
     async def receive_latest(self) -> Sample:
         """Newest sample; older queued ones are dropped (counted in `stats.late_frames`)."""
-        sample = await self.receive()
-        while self._samples:
-            self.stats.late_frames += 1
-            sample = self._samples.popleft()
-        return sample
+        return await self._samples.get_latest()
 
     async def send(self, command: Command) -> None:
         """Publish one command (QoS 0, with expiry); records sample-to-command latency."""
-        if self._client is None or self._lost_reason is not None:
-            raise LinkClosed(self._lost_reason or "link closed")
-        i = command.seq % _RING
-        if self._ring_seq[i] == command.seq:
-            t_device, t_rx = self._ring_t[i]
-        else:
-            t_device, t_rx = 0.0, 0.0
-        await self._publish(encode_body(command, t=t_device))
-        if t_rx:
-            lat = self.stats.latencies_us
-            lat.append((self._clock() - t_rx) * 1e6)
-            if len(lat) > _LAT_KEEP:
-                del lat[: _LAT_KEEP // 2]
+        lost = self._samples.closed_reason
+        if self._client is None or lost is not None:
+            raise LinkClosed(lost or "link closed")
+        await self._publish(encode_body(command, t=self._ring.device_time(command.seq)))
+        self._ring.note_sent(command.seq, self._clock())
 
     async def send_message(self, msg: Message) -> None:
         """Publish a heartbeat, stop or other message with the host's own sequence number."""
         if self._client is None:
-            raise LinkClosed(self._lost_reason or "link closed")
+            raise LinkClosed(self._samples.closed_reason or "link closed")
         await self._publish_msg(msg)
 
     async def _publish_msg(self, msg: Message) -> None:
@@ -802,22 +771,22 @@ class MqttLink(Link):
     async def _publish(self, body: bytes) -> None:
         client = self._client
         if client is None:
-            raise LinkClosed(self._lost_reason or "link closed")
+            raise LinkClosed(self._samples.closed_reason or "link closed")
         try:
             publish_now(client, self.topics.command, body, self._expiry)
         except aiomqtt.MqttError as exc:
             self._set_lost(f"MQTT publish failed: {exc}")
-            raise LinkClosed(self._lost_reason or str(exc)) from None
+            raise LinkClosed(self._samples.closed_reason or str(exc)) from None
         self.stats.frames_out += 1
 
     async def close(self) -> None:
         """Publish a stop (outputs off), then disconnect. Never raises."""
-        if self._client is not None and self._lost_reason is None:
+        if self._client is not None and self._samples.closed_reason is None:
             with contextlib.suppress(Exception):
                 await asyncio.wait_for(self._publish_msg(Stop(0, 0.0, 0)), 1.0)
         with contextlib.suppress(Exception):
             await self._disconnect()
-        self._lost_reason = "link closed"
+        self._samples.fail("link closed")
 
     async def reconnect(
         self, timeout_s: float = 10.0, *, first_delay_s: float = 0.1, max_delay_s: float = 2.0
@@ -849,10 +818,8 @@ class MqttLink(Link):
         client, reader = self._client, self._reader
         self._client = None
         self._reader = None
-        if self._lost_reason is None:
-            self._lost_reason = "link closed"
+        self._samples.fail("link closed", replace=False)
         self.stats.connected = False
-        self._wake()
         if reader is not None:
             reader.cancel()
             with contextlib.suppress(BaseException):
