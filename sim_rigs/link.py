@@ -46,6 +46,7 @@ from drivers.base import (
     LinkClosed,
     LinkStats,
     Sample,
+    SampleInbox,
 )
 from sim_rigs.faults import FaultInjector, FaultSchedule
 
@@ -149,7 +150,7 @@ class SimLink(Link):
         self._last_command_rig_t = -math.inf
         self._status = STATUS_OK
         self._open = False
-        self._queue: asyncio.Queue[Sample] | None = None
+        self._inbox: SampleInbox | None = None  # free-running mode only
         self._thread: threading.Thread | None = None
         self._stop = threading.Event()
         self._lock = threading.Lock()
@@ -235,7 +236,7 @@ class SimLink(Link):
         self.stats.connected = True
         if self.free_running:
             loop = asyncio.get_running_loop()
-            self._queue = asyncio.Queue(maxsize=64)
+            self._inbox = SampleInbox(self.stats, 64)
             self._stop.clear()
             self._thread = threading.Thread(target=self._run_free, args=(loop,),
                                             name="corral-simrig", daemon=True)
@@ -247,6 +248,8 @@ class SimLink(Link):
         self.outputs_on = False
         self.stats.connected = False
         self._stop.set()
+        if self._inbox is not None:
+            self._inbox.fail("simulated rig closed")
         if self._thread is not None:
             await asyncio.to_thread(self._thread.join, 1.0)
             self._thread = None
@@ -255,29 +258,26 @@ class SimLink(Link):
         """Free-running mode: the next sample (stepped mode: measure now)."""
         if not self._open:
             raise LinkClosed("simulated rig closed")
-        if self._queue is None:
+        if self._inbox is None:
             sample = self.sample_now(time.monotonic())
             while sample is None:
                 await asyncio.sleep(self.period)
                 sample = self.sample_now(time.monotonic())
             return sample
-        return await self._queue.get()
+        return await self._inbox.get()
 
     async def send(self, command: Command) -> None:
         """Hand a command to the rig (free-running: applied at its next period)."""
-        if self._queue is None:
+        if self._inbox is None:
             self.apply(command)
             return
         with self._lock:
             self._pending = command
 
     def _push(self, sample: Sample) -> None:
-        assert self._queue is not None
+        assert self._inbox is not None
         sample.t_host = time.monotonic()
-        if self._queue.full():
-            self._queue.get_nowait()
-            self.stats.late_frames += 1
-        self._queue.put_nowait(sample)
+        self._inbox.put(sample)
 
     def _run_free(self, loop: asyncio.AbstractEventLoop) -> None:
         t0 = time.monotonic()
