@@ -35,9 +35,12 @@ def _progress(k: int, total: int) -> None:
 def main(args: argparse.Namespace) -> int:
     """Run, record, plot, summarise. Exit 0 when the bound held, 1 when it broke."""
     cfg = load_config(args.config, args.overrides)
+    if sys.stderr.isatty() and args.engine == "fast":
+        print("  preparing the compiled kernels (compiled once per machine, then cached) ...",
+              end="", file=sys.stderr, flush=True)
     result = dry_run(cfg, progress=_progress, engine=args.engine)
     if sys.stderr.isatty():
-        print("\r" + " " * 60 + "\r", end="", file=sys.stderr)
+        print("\r" + " " * 90 + "\r", end="", file=sys.stderr)
     stamp = time.strftime("%Y%m%d-%H%M%S")
     out = args.out or Path(str(cfg.get("log.dir", "runs"))) / "dry-runs"
     stem = f"{result.design.rig.name}-{result.design.law}-{stamp}"
