@@ -28,8 +28,8 @@ def _progress(k: int, total: int) -> None:
     if sys.stderr.isatty():
         width = 30
         done = int(width * k / max(total, 1))
-        print(f"\r  simulating [{'#' * done}{'.' * (width - done)}] {100 * k // total:3d} %",
-              end="", file=sys.stderr, flush=True)
+        line = f"  simulating [{'#' * done}{'.' * (width - done)}] {100 * k // total:3d} %"
+        print("\r" + line.ljust(88), end="", file=sys.stderr, flush=True)
 
 
 def main(args: argparse.Namespace) -> int:
