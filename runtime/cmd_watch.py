@@ -14,6 +14,7 @@ from pathlib import Path
 
 from runtime.cli import UserError
 from runtime.config import load_config
+from runtime.watch_sources import MqttSource, RecordedSource, SocketSource, TelemetrySource
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -39,9 +40,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="wait up to S seconds for the runtime's socket to appear")
 
 
-def make_source(args: argparse.Namespace):  # noqa: ANN201 - returns a TelemetrySource
+def make_source(args: argparse.Namespace) -> TelemetrySource:
     """The telemetry source the arguments name."""
-    from runtime.watch_sources import MqttSource, RecordedSource, SocketSource
 
     if args.replay:
         if not args.replay.is_file():
