@@ -29,6 +29,7 @@ import asyncio
 import collections
 import contextlib
 import ctypes
+import gc
 import math
 import os
 import random
@@ -553,6 +554,11 @@ class PedestalDevice:
         # the hand-over of every sample) wait whole periods.
         old_switch = sys.getswitchinterval()
         sys.setswitchinterval(SWITCH_INTERVAL_S)
+        # The start-up heap (numpy, scipy, the design) to the permanent generation: a
+        # full collection then scans only what serving allocates (measured: one full
+        # collection of the unfrozen heap took 25 ms, 25 periods at 1 kHz).
+        gc.collect()
+        gc.freeze()
         period = self.period
         t0 = time.monotonic()
         k = 0
@@ -574,6 +580,7 @@ class PedestalDevice:
                     self._lateness[self.ticks] = late * 1e6
                 self._tick(tr, k * period, now)
         finally:
+            gc.unfreeze()
             sys.setswitchinterval(old_switch)
             if self.granted_realtime:
                 with contextlib.suppress(OSError):
