@@ -1,23 +1,44 @@
-"""Tick timing of the real-time loop: the host clock thread vs a naive asyncio.sleep loop.
+"""Tick timing of the real-time loop: host-clocked (clock thread vs naive asyncio.sleep) and
+rig-clocked against the served rig.
 
-Runs the simulated pedestal in real time at the config's rate (1 kHz for the
-demo) through the real tick (estimator, supervisor, law, watchdog, records,
-telemetry socket), with a spike fault half-way to measure detection-to-action,
-then the same tick work paced by asyncio.sleep in the same process. Prints
-figures only.
+Default (``--link sim``): runs the simulated pedestal in real time at the
+config's rate (1 kHz for the demo) through the real tick (estimator,
+supervisor, law, watchdog, records, telemetry socket), with a spike fault
+half-way to measure detection-to-action, then the same tick work paced by
+asyncio.sleep in the same process.
 
-    python bench/bench_loop.py                # 10 s each
-    python bench/bench_loop.py --seconds 60   # the README figures
+``--link serial``: starts ``corral rig serve CONFIG --serial`` (the pedestal on
+its own real-time clock in another process), closes the loop over the
+pseudo-terminal with the real rig-clocked runner (default watchdog unless
+``--set`` says otherwise), arms it, and reports sample-to-command latency,
+lateness against each sample's expected arrival, deadline misses (samples
+handled more than ``loop.miss_after_periods`` late, plus sequence skips),
+ticks with no sample, trips, and the device's own figures. Beside it, the
+platform floor measured in the same run: a bare pseudo-terminal one-way delay
+and a bare real-time sleeper (no corral code). Prints figures only.
+
+    python bench/bench_loop.py                           # 10 s each
+    python bench/bench_loop.py --seconds 60              # the README figures
+    python bench/bench_loop.py --link serial --seconds 20
 """
 
 from __future__ import annotations
 
 import argparse
 import asyncio
+import json
+import os
+import select
+import struct
+import subprocess
 import sys
 import tempfile
 import time
+import tty
 from pathlib import Path
+from typing import Any
+
+import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -31,7 +52,20 @@ def main() -> int:
     ap.add_argument("--seconds", type=float, default=10.0)
     ap.add_argument("--config", default=str(ROOT / "configs" / "pedestal-sim.toml"))
     ap.add_argument("--law", choices=("reference", "fast"), default="reference")
+    ap.add_argument("--link", choices=("sim", "serial"), default="sim",
+                    help="sim: host-clocked in-process; serial: rig-clocked against "
+                         "`corral rig serve --serial`")
+    ap.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                    help="config override (--link serial; repeatable)")
+    ap.add_argument("--floor-seconds", type=float, default=5.0,
+                    help="--link serial: seconds of each platform-floor measurement (0: skip)")
+    ap.add_argument("--floor-child", choices=("pty", "sleep"), help=argparse.SUPPRESS)
     args = ap.parse_args()
+    if args.floor_child:
+        print(json.dumps(_floor_child(args.floor_child, args.floor_seconds)))
+        return 0
+    if args.link == "serial":
+        return bench_serial(args)
     tmp = tempfile.mkdtemp(prefix="corral-bench-")
     sets = [f"log.dir={tmp}", f"loop.law={args.law}", "watchdog.overrun_misses=1000000"]
     cfg = load_config(args.config, sets)
@@ -80,6 +114,146 @@ def main() -> int:
           f"deadline misses {misses}")
     if s["lateness_p99_us"]:
         print(f"  p99 ratio naive / clock thread: {p99 / s['lateness_p99_us']:.1f}x")
+    return 0
+
+
+# ------------------------------------------------------------------ --link serial
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
+
+
+def _pct(a: Any) -> str:
+    a = np.asarray(a, dtype=float)
+    if a.size == 0:
+        return "n/a"
+    return (f"p50 {np.percentile(a, 50):.0f} us, p99 {np.percentile(a, 99):.0f} us, "
+            f"p99.9 {np.percentile(a, 99.9):.0f} us, max {a.max():.0f} us")
+
+
+def _floor_child(kind: str, seconds: float) -> dict[str, Any]:
+    """No corral code: a SCHED_FIFO thread sleeping to 1 ms deadlines ("sleep"), or a
+    pseudo-terminal one-way delay with both ends at SCHED_FIFO ("pty"); delays in us."""
+    from runtime.clock import try_realtime
+
+    if kind == "sleep":
+        try_realtime(40)
+        t0 = time.monotonic()
+        late = []
+        for k in range(1, int(seconds * 1000) + 1):
+            d = t0 + k * 1e-3
+            while (left := d - time.monotonic()) > 0:
+                time.sleep(left)
+            late.append((time.monotonic() - d) * 1e6)
+        return {"delays_us": late}
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    pid = os.fork()
+    if pid == 0:  # the writer: one 32-byte frame per ms carrying its send time
+        try_realtime(40)
+        t0 = time.monotonic()
+        for k in range(1, int(seconds * 1000) + 1):
+            d = t0 + k * 1e-3
+            while (left := d - time.monotonic()) > 0:
+                time.sleep(left)
+            os.write(master, struct.pack("d", time.monotonic()) + bytes(24))
+        os._exit(0)
+    try_realtime(50)
+    delays, buf = [], b""
+    end = time.monotonic() + seconds + 0.5
+    while time.monotonic() < end:
+        r, _, _ = select.select([slave], [], [], 0.1)
+        if r:
+            now = time.monotonic()
+            buf += os.read(slave, 4096)
+            while len(buf) >= 32:
+                delays.append((now - struct.unpack("d", buf[:8])[0]) * 1e6)
+                buf = buf[32:]
+    os.waitpid(pid, 0)
+    return {"delays_us": delays}
+
+
+def _floor(kind: str, seconds: float) -> list[float]:
+    out = subprocess.run([sys.executable, __file__, "--floor-child", kind, "--floor-seconds",
+                          str(seconds)], capture_output=True, text=True, cwd=ROOT,
+                         timeout=seconds + 60)
+    return json.loads(out.stdout)["delays_us"] if out.returncode == 0 else []
+
+
+def bench_serial(args: argparse.Namespace) -> int:
+    """Rig-clocked run against `corral rig serve --serial`; prints the figures."""
+    from runtime.config import load_config
+    from runtime.loop import Runner, RunSettings
+
+    tmp = tempfile.mkdtemp(prefix="corral-bench-")
+    serve = subprocess.Popen([*CORRAL, "rig", "serve", args.config, "--serial", "--json",
+                              "--duration", str(args.seconds + 60), *sum(
+                                  (["--set", kv] for kv in args.set), [])],
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+    path = serve.stdout.readline().strip() if serve.stdout is not None else ""
+    if not path:
+        print("rig serve printed no path:", serve.communicate()[1], file=sys.stderr)
+        return 1
+    cfg = load_config(args.config, [f"log.dir={tmp}", f"loop.law={args.law}", *args.set])
+    r = Runner(cfg, RunSettings(duration=args.seconds, link=f"serial:{path}", preflight=False,
+                                echo_trips=False))
+    none_ticks = [0]
+    step = r.core.step
+
+    def counting_step(sample: Any, now: float) -> Any:
+        if sample is None:
+            none_ticks[0] += 1
+        return step(sample, now)
+
+    r.core.step = counting_step  # type: ignore[method-assign]
+
+    async def run() -> dict[str, Any]:
+        async def arm() -> None:
+            while not r.ready.is_set():
+                await asyncio.sleep(0.01)
+            r.core.submit("arm", lambda ok, msg: None)
+
+        arming = asyncio.ensure_future(arm())
+        try:
+            return await r.run()
+        finally:
+            arming.cancel()
+
+    try:
+        s = asyncio.run(run())
+    finally:
+        serve.terminate()
+        out, _ = serve.communicate(timeout=30)
+    dev: dict[str, Any] = {}
+    for line in reversed(out.splitlines()):
+        try:
+            dev = json.loads(line)
+            break
+        except ValueError:
+            continue
+    period = r.design.Ts
+    lat = r.link.stats.latencies_us
+    print(f"corral loop bench: {r.design.rig.name}, rig-clocked over a pseudo-terminal at "
+          f"{1 / period:.0f} Hz, {args.seconds:g} s, law {args.law}, python "
+          f"{sys.version.split()[0]}, overrides {args.set or 'none'}")
+    print(f"  priority: {s['clock']}")
+    print(f"  ticks {s['ticks']} ({none_ticks[0]} with no sample within 2 periods)")
+    print(f"  sample-to-command (host receipt to command written): {_pct(lat)}")
+    print(f"  lateness (handled minus expected arrival): p50 {s['lateness_p50_us']:.0f} us, "
+          f"p99 {s['lateness_p99_us']:.0f} us, max {s['lateness_max_us']:.0f} us")
+    print(f"  deadline misses {s['deadline_misses']} (later than "
+          f"{r.miss_after:g} period(s), or skipped), link gaps {r.link.stats.gaps}, "
+          f"late frames {r.link.stats.late_frames}")
+    print(f"  trips: {[(t['rule'], round(t['t'], 3)) for t in s['trips']] or 'none'}")
+    if dev:
+        print(f"  device: lateness p99 {dev['lateness_p99_us']:.0f} us, max "
+              f"{dev['lateness_max_us']:.0f} us, deadline misses {dev['deadline_misses']}, "
+              f"round trip p50 {dev['round_trip_p50_us']:.0f} us, p99 "
+              f"{dev['round_trip_p99_us']:.0f} us, timeouts {dev['timeouts']}")
+    if args.floor_seconds > 0:
+        print(f"  platform floor, no corral code, {args.floor_seconds:g} s each:")
+        print(f"    bare pty one-way delay (both ends SCHED_FIFO): "
+              f"{_pct(_floor('pty', args.floor_seconds))}")
+        print(f"    bare SCHED_FIFO sleeper lateness at 1 kHz: "
+              f"{_pct(_floor('sleep', args.floor_seconds))}")
     return 0
 
 
