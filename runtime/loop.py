@@ -1133,7 +1133,9 @@ class Runner:
         if self.clock.realtime:
             self.clock.granted = "event-loop thread: " + try_realtime(self.clock.priority)
             if "SCHED_FIFO" in self.clock.granted:
-                helpers = raise_helper_threads(max(1, self.clock.priority - 10))
+                # Lowest real-time priority: above every normal process, below the tick
+                # and below a served device (40) sharing the machine.
+                helpers = raise_helper_threads(1)
         try:
             while not self.stop_event.is_set() and mono() < end:
                 # asyncio.timeout, not wait_for: no task per sample (wait_for wraps
