@@ -345,3 +345,48 @@ def test_no_preflight_for_the_simulated_rig(tmp_path):
     r = _runner(DEMO, tmp_path)
     summary = _unpaced(r, 0.3)
     assert summary["preflight"] is None and r.core.arm_refusal is None
+
+
+# ------------------------------------------------------------------ rig-clocked lateness
+def test_arrival_tracker_worked_example():
+    """`runtime.clock.ArrivalTracker` against its rule, worked by hand (our own rule,
+    docs/operating.md "Rig-clocked timing"): expected arrival = device time + the
+    smallest transit seen; a miss is a sample handled over one period after it, plus
+    one per sample the sequence skipped."""
+    from runtime.clock import ArrivalTracker
+
+    T = 0.001
+    tr = ArrivalTracker(T, creep=0.0)
+    # seq 1: device t=1.000, received 1.0002 (transit 0.2 ms), handled 1.00025.
+    late, missed = tr.handle(1, 1.000, 1.0002, 1.00025)
+    assert late == pytest.approx(50e-6) and missed == 0
+    # seq 2: 1.5 periods late (a stall after receipt): one miss.
+    late, missed = tr.handle(2, 1.001, 1.0012, 1.0027)
+    assert late == pytest.approx(1.5e-3) and missed == 1
+    # seq 3: on time, faster transit (0.1 ms) lowers the floor; not a miss.
+    late, missed = tr.handle(3, 1.002, 1.0021, 1.0021)
+    assert late == pytest.approx(0.0, abs=1e-12) and missed == 0
+    # seq 6: seq 4 and 5 never came; on time itself: two misses.
+    late, missed = tr.handle(6, 1.005, 1.0051, 1.0052)
+    assert missed == 2
+    # Just under one period late: not a miss.
+    late, missed = tr.handle(7, 1.006, 1.0061, 1.0061 + 0.9e-3)
+    assert missed == 0
+
+
+def test_arrival_tracker_creep_absorbs_a_slow_device_clock_but_not_a_stall():
+    from runtime.clock import ArrivalTracker
+
+    T = 0.001
+    tr = ArrivalTracker(T)  # default creep 500 ppm
+    lates = []
+    for k in range(10_000):  # 10 s; the device clock 100 ppm slow: transit grows 1 ms
+        t_dev = k * T
+        t_host = t_dev * (1 + 100e-6) + 2e-4
+        lates.append(tr.handle(k, t_dev, t_host, t_host)[0])
+    assert max(lates) < 0.5 * T  # without the creep the last would read ~1 ms (a miss)
+    # A 5 ms stall right after: still five periods late, a miss.
+    t_dev = 10_000 * T
+    late, missed = tr.handle(10_000, t_dev, t_dev * (1 + 100e-6) + 2e-4 + 5e-3,
+                             t_dev * (1 + 100e-6) + 2e-4 + 5e-3)
+    assert late > 4.9e-3 and missed == 1

@@ -36,14 +36,15 @@ ROOT = Path(__file__).resolve().parents[1]
 # The `corral` console script, run by this interpreter.
 CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
 CONFIG = ROOT / "configs" / "pedestal-sim.toml"
+SERVED = ROOT / "configs" / "pedestal-served.toml"
 
 
 class Serve:
     """`corral rig serve CONFIG ...` in a subprocess; `.first` is its first output line."""
 
-    def __init__(self, *args: str) -> None:
+    def __init__(self, *args: str, config: Path = CONFIG) -> None:
         self.proc = subprocess.Popen(
-            [*CORRAL, "rig", "serve", str(CONFIG), *args],
+            [*CORRAL, "rig", "serve", str(config), *args],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT,
         )
         self.first = self.proc.stdout.readline().strip()
@@ -213,9 +214,10 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
 
     `corral run --arm` arms only the in-process simulated rig, so the served rig is
     armed the way an operator would: an "arm" request on the run's operator socket.
-    The stale-sample rule is widened to 20 periods: two Python processes ticking on
-    a shared 2-core machine see multi-millisecond stalls, which would (correctly)
-    trip it and end the test before the loop engages.
+    Serial runs the served-rig recipe (configs/pedestal-served.toml, 500 Hz) with the
+    default watchdog and the preflight on: it must pass preflight to arm. MQTT keeps
+    the 1 kHz demo slowed to 250 Hz with the stale rule widened to 20 periods and no
+    preflight (that design is NO-GO at 250 Hz; the test is about the link).
     """
     import json as _json
     import socket
@@ -224,18 +226,18 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
     import msgpack
 
     if transport == "serial":
-        serve_args, extra = ["--serial"], []
+        config, serve_args, extra = SERVED, ["--serial"], []
     else:
         # The preflight (run before the first arm on a real link) judges the design
         # slowed to 250 Hz NO-GO (most sampled plants trip); this test is about the
         # link closing the loop, so it arms without it, as an operator may on a sim.
-        serve_args, extra = ["--mqtt", mosquitto.url, *E2E_SLOW], [*E2E_SLOW, "--no-preflight"]
-    with Serve(*serve_args, "--duration", "25") as serve:
+        config, serve_args = CONFIG, ["--mqtt", mosquitto.url, *E2E_SLOW]
+        extra = [*E2E_SLOW, "--no-preflight", "--set", "watchdog.stale_periods=20"]
+    with Serve(*serve_args, "--duration", "25", config=config) as serve:
         spec = f"serial:{serve.first}" if transport == "serial" else serve.first
         run = subprocess.Popen(
-            [*CORRAL, "run", str(CONFIG), "--link", spec, "--headless", "--duration", "4",
-             "--json", "--set", f"log.dir={tmp_path}", "--set", "watchdog.stale_periods=20",
-             *extra],
+            [*CORRAL, "run", str(config), "--link", spec, "--headless", "--duration", "4",
+             "--json", "--set", f"log.dir={tmp_path}", *extra],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
         try:
             sock_path = tmp_path / "pedestal-sim.sock"
@@ -268,7 +270,32 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
     for key in ("frames_in", "frames_out", "crc_errors", "gaps", "duplicates", "late_frames",
                 "latency_p50_us", "latency_p99_us"):
         assert key in link
-    rate = 1000 if transport == "serial" else 250
+    if transport == "serial":
+        assert summary["preflight"]["go"] is True, summary["preflight"]
+    rate = 500 if transport == "serial" else 250
     assert link["frames_in"] > 2 * rate and link["frames_out"] > 2 * rate  # ~4 s of samples
     assert link["crc_errors"] == 0 and link["decode_errors"] == 0
     assert link["latency_p50_us"] > 0
+
+
+def test_rig_clocked_overrun_counts_late_samples(tmp_path):
+    """A served rig whose samples arrive 3 periods late (a `link_delay` fault) makes every
+    rig-clocked tick a deadline miss (handled over one period after its expected
+    arrival, runtime.clock.ArrivalTracker), so the overrun rule (25 misses in 1000
+    ticks, the default) trips with its reaction. The stale rule is turned off here:
+    it would trip on the same delay and take the first-out place."""
+    from runtime.config import load_config
+    from runtime.loop import Runner, RunSettings
+
+    with InProcess(tmp_path, ["link_delay@1.2:seconds=0.006"]) as rig:
+        assert rig.device.period == 0.002  # the served config's period
+        cfg = load_config(SERVED, [f"log.dir={tmp_path}",
+                                   "watchdog.rules.stale.enabled=false"])
+        r = Runner(cfg, RunSettings(duration=2.5, auto_arm=True, link=f"serial:{rig.path}",
+                                    preflight=False, echo_trips=False))
+        summary = asyncio.run(r.run())
+    trips = summary["trips"]
+    assert trips and trips[0]["rule"] == "overrun", trips
+    assert trips[0]["action"] == "baseline"  # the rule's default reaction (docs/operating.md)
+    assert trips[0]["value"] >= 25
+    assert summary["deadline_misses"] >= 25
