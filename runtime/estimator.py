@@ -60,6 +60,7 @@ class Estimator:
         self.x: Array = np.zeros(self.n)
         self.valid = False
         self.offset = math.inf
+        self._offset_t: float | None = None
         self.last_seq: int | None = None
         self.seq_gap = 0
         """Samples missed just before this one (sequence gap)."""
@@ -105,8 +106,21 @@ class Estimator:
         self.frozen_age = now - self.change_t if self.change_t > -math.inf else 0.0
         return self.x
 
+    OFFSET_CREEP = 5e-4
+    """How fast (s per s of device time) the smallest host-minus-device offset may rise.
+
+    The smallest offset seen maps device time to host time without the transit
+    jitter. A device clock that runs slow makes the true offset grow; without
+    creep the mapped time would fall behind and the data age would grow until
+    the stale rule trips on a healthy link. 500 ppm covers any crystal clock
+    (common practice: tens of ppm) and still lets a real stall show at once.
+    """
+
     def _host_time(self, s: Sample) -> float:
         off = s.t_host - s.t_device
+        if self._offset_t is not None and self.offset < math.inf:
+            self.offset += self.OFFSET_CREEP * max(0.0, s.t_device - self._offset_t)
+        self._offset_t = s.t_device
         if off < self.offset:
             self.offset = off
         return s.t_device + self.offset
