@@ -254,6 +254,11 @@ class LatencyRing:
         self._seq = [-1] * size
         self._t = [(0.0, 0.0)] * size
 
+    def forget(self) -> None:
+        """Drop every remembered sample (a new session: sequence numbers start again)."""
+        self._seq = [-1] * self.size
+        self._t = [(0.0, 0.0)] * self.size
+
     def note_received(self, seq: int, t_device: float, t_host: float) -> None:
         """Remember when sample `seq` (device time `t_device`) arrived (host time `t_host`)."""
         i = seq % self.size

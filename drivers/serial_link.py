@@ -257,7 +257,10 @@ class SerialLink(Link):
                     break
         finally:
             self._hello_waiter = None
-        self._samples.clear()  # anything before the hello belongs to an earlier session
+        # Anything before the hello belongs to an earlier session, receipt times included
+        # (a command answering a reused sequence number must not count an old receipt).
+        self._samples.clear()
+        self._ring.forget()
         if hello.protocol != PROTOCOL_VERSION:
             raise HandshakeError(
                 f"device {hello.rig_id!r} on {self.url} speaks wire protocol v{hello.protocol}, "

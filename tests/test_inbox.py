@@ -264,3 +264,12 @@ def test_free_running_sim_link_queues_through_the_inbox_and_fails_on_close():
             await link.receive()
 
     run(main())
+
+
+def test_latency_ring_forgets_a_previous_session():
+    stats = LinkStats()
+    ring = LatencyRing(stats)
+    ring.note_received(5, t_device=1.0, t_host=100.0)
+    ring.forget()
+    assert ring.note_sent(5, now=100.5) is None
+    assert stats.latencies_us == []
