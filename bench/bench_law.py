@@ -1,8 +1,10 @@
 """Law tick speed: numpy reference `AdaptiveLaw.step` (one plant) vs compiled `FastLaw.step`.
 
 Prints median and p99 microseconds per tick for N_bar = 8 and N_bar = 50
-regressors, both measured in the same run on the same measurements, and the
-ratio. Figures only, no pass/fail. Run: `python bench/bench_law.py [--ticks 20000]`.
+named-term regressors and for a 50-term Gaussian radial basis (bias plus a 7 x 7
+grid on the two angles, with the augmented regressor: N_bar = 52), all measured
+in the same run on the same measurements, and the ratio. Figures only, no
+pass/fail. Run: `python bench/bench_law.py [--ticks 20000]`.
 
 What does not live here: correctness (tests/test_fast.py checks the two agree).
 """
@@ -40,6 +42,14 @@ def design_with(n_reg: int) -> Design:
     return design_from_config(cfg)
 
 
+def design_rbf() -> Design:
+    """The demo design with a 50-term radial basis: bias plus 7 x 7 centres over (az, el)."""
+    cfg = load_config(DEMO, ['basis.kind="rbf"', 'basis.terms=["bias"]',
+                             'basis.rbf_states=["az","el"]', "basis.rbf_per_axis=7",
+                             "basis.rbf_span=[1.0,1.0]"])
+    return design_from_config(cfg)
+
+
 def time_calls(fn: object, xs: np.ndarray, cs: np.ndarray) -> np.ndarray:
     """Per-call nanoseconds of fn(x, c) over the given measurements (gc off while timing)."""
     out = np.empty(len(xs))
@@ -64,9 +74,11 @@ def main() -> None:
     compile_s = warm_up()
     rng = np.random.default_rng(0)
     print(f"kernel load/compile: {compile_s:.2f} s (cached after the first run)")
-    print(f"{'N_bar':>5} {'law':>22} {'median us':>10} {'p99 us':>8}")
-    for n_reg in (8, 50):
-        d = design_with(n_reg)
+    print(f"{'N_bar':>5} {'law':>22} {'median us':>10} {'p99 us':>8}   (rbf52: 50-term radial "
+          "basis + 2 augmented)")
+    for label, d in (("8", design_with(8)), ("50", design_with(50)),
+                     ("rbf52", design_rbf())):
+        n_reg = label
         xs = rng.normal(size=(args.ticks, 4)) * 0.3 * d.limits
         cs = rng.normal(size=(args.ticks, 2)) * 0.1
         ref = AdaptiveLaw(d)
