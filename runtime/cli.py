@@ -12,6 +12,7 @@ import argparse
 import importlib
 import sys
 from collections.abc import Sequence
+from pathlib import Path
 
 # name -> (module, one-line help). Modules are imported lazily so a slow or
 # missing optional part never breaks the others.
@@ -34,6 +35,20 @@ def common_config_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--set", dest="overrides", action="append", default=[],
                         metavar="KEY=VALUE",
                         help="override a config key, e.g. --set adaptation.gamma=8 (repeatable)")
+
+
+def output_folder(path: Path, what: str) -> Path:
+    """Create the output folder `path` (named in messages as `what`, e.g. '--out') or raise
+    UserError with the reason: a file in the way, no permission, a missing parent."""
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except FileExistsError:
+        raise UserError(f"{what} '{path}' is a file, not a folder. Fix: give a folder path "
+                        f"(it is created if missing).") from None
+    except OSError as exc:
+        raise UserError(f"{what} '{path}': cannot create the folder ({exc.strerror}). Fix: "
+                        f"give a folder you can write to.") from None
+    return path
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -8,7 +8,7 @@ import sys
 import time
 from pathlib import Path
 
-from runtime.cli import common_config_args
+from runtime.cli import common_config_args, output_folder
 from runtime.config import load_config
 from runtime.dryrun import dry_run, plot_report, write_run_file
 
@@ -42,7 +42,8 @@ def main(args: argparse.Namespace) -> int:
     if sys.stderr.isatty():
         print("\r" + " " * 90 + "\r", end="", file=sys.stderr)
     stamp = time.strftime("%Y%m%d-%H%M%S")
-    out = args.out or Path(str(cfg.get("log.dir", "runs"))) / "dry-runs"
+    out = output_folder(args.out or Path(str(cfg.get("log.dir", "runs"))) / "dry-runs",
+                        "--out" if args.out else "log.dir")
     stem = f"{result.design.rig.name}-{result.design.law}-{stamp}"
     run_file = write_run_file(result, out / f"{stem}.run", cfg)
     summary = dict(result.summary)

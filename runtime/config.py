@@ -260,11 +260,21 @@ def apply_override(raw: dict[str, Any], item: str) -> None:
 def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
     """Read a TOML config and apply overrides. Raises ConfigError on any problem."""
     p = Path(path)
+    if p.is_dir():
+        raise ConfigError(str(path), "is a folder, not a config file.",
+                          "give the path of a TOML file, e.g. configs/pedestal-sim.toml")
     if not p.is_file():
         raise ConfigError(str(path), "no such config file.",
                           "give the path of a TOML file, e.g. configs/pedestal-sim.toml")
     try:
-        raw = tomllib.loads(p.read_text())
+        raw = tomllib.loads(p.read_text(encoding="utf-8"))
+    except UnicodeDecodeError as exc:
+        # TOML is UTF-8 by definition; a binary or Latin-1 file is not a config.
+        raise ConfigError(str(path), f"is not UTF-8 text (byte {exc.start}), so not TOML.",
+                          "give a TOML config file saved as UTF-8.") from None
+    except OSError as exc:
+        raise ConfigError(str(path), f"cannot be read ({exc.strerror}).",
+                          "check the path and its permissions.") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(str(path), f"is not valid TOML ({exc}).",
                           "fix the syntax at the line named.") from None
@@ -278,15 +288,31 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
     return cfg
 
 
+# Nested tables the modules read with dict access; a scalar there (`--set plant.truth=1`)
+# must be refused here, not crash the reader.
+SUBTABLES = ("plant.truth", "plant.ranges", "plant.sensors", "adaptation.bound")
+
+
 def check_sections(raw: dict[str, Any], where: str) -> None:
     """Refuse top-level tables corral does not know (a misspelt section is silently ignored
-    otherwise)."""
+    otherwise), and a known section or sub-table given as a plain value."""
     for key in raw:
         if key not in SECTIONS:
             close = difflib.get_close_matches(key, SECTIONS, n=1)
             hint = f"did you mean [{close[0]}]?" if close else (
                 f"known sections: {', '.join(SECTIONS)}.")
             raise ConfigError(key, f"is not a section corral knows (in {where}).", hint)
+    for key in (*SECTIONS, *SUBTABLES):
+        node: Any = raw
+        for part in key.split("."):
+            if not isinstance(node, dict) or part not in node:
+                node = None
+                break
+            node = node[part]
+        if node is not None and not isinstance(node, dict):
+            raise ConfigError(key, f"must be a table of keys, got {node!r} (in {where}).",
+                              f"write [{key}] with its keys, or set one key: "
+                              f"--set {key}.KEY=VALUE")
 
 
 def _note_new_keys(raw: dict[str, Any], overrides: Sequence[str]) -> None:

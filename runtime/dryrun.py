@@ -72,6 +72,7 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
 
 
 ENGINES = ("fast", "reference")
+MAX_TICKS = 3_000_000  # 50 min at 1 kHz
 
 
 def eps_schedule(cfg: Config, design: Design, t: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -105,6 +106,13 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
     schedule = schedule_from_config(cfg, tracked)
     Ts = design.Ts
     ticks = int(round(schedule.duration / Ts))
+    # Every tick is recorded (about 40 floats); refuse a run that cannot fit in memory
+    # with the two fields that set its length, instead of failing inside numpy.
+    if ticks > MAX_TICKS:
+        raise ConfigError("commands.duration",
+                          f"{schedule.duration:g} s at loop.period = {Ts:g} s is {ticks:,} "
+                          f"ticks; a dry run records at most {MAX_TICKS:,} (about 1 GB).",
+                          "shorten commands.duration or lengthen loop.period.")
     t = np.arange(ticks) * Ts
     cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
     eps_t = eps_schedule(cfg, design, t)

@@ -1,0 +1,61 @@
+"""Acceptance checks of bad input to `corral design`, `dry-run`, `sweep`, `preflight`, `replay`
+and `trips`: each case a user can hit ends with one clear stderr line naming the field or file
+and the fix, exit status 2, and no traceback. Run as real processes (`python -m runtime.cli`).
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = "configs/pedestal-sim.toml"
+
+
+def corral(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=cwd,
+                          capture_output=True, text=True, timeout=120)
+
+
+def refused(res: subprocess.CompletedProcess[str], *words: str) -> str:
+    """Exit 2, one stderr line starting 'corral:' that holds every word, no traceback."""
+    assert "Traceback" not in res.stderr, res.stderr
+    lines = res.stderr.strip().splitlines()
+    assert res.returncode == 2, (res.returncode, res.stderr)
+    assert len(lines) == 1 and lines[0].startswith("corral: "), res.stderr
+    for w in words:
+        assert w in lines[0], (w, lines[0])
+    return lines[0]
+
+
+def test_config_that_is_not_utf8_is_refused(tmp_path):
+    bad = tmp_path / "latin1.toml"
+    bad.write_bytes(b"\xff\xfe name = 1\n")
+    refused(corral("design", str(bad)), "latin1.toml", "UTF-8")
+
+
+def test_config_path_that_is_a_folder_says_so(tmp_path):
+    refused(corral("design", str(tmp_path)), str(tmp_path), "folder")
+
+
+@pytest.mark.parametrize("override", ["plant.truth=1", "commands=[]", "design=1"])
+def test_a_table_overridden_by_a_value_is_refused(tmp_path, override):
+    key = override.partition("=")[0]
+    refused(corral("dry-run", DEMO, "--no-plot", "--set", f"log.dir={tmp_path}",
+                   "--set", override), f"'{key}'", "table")
+
+
+@pytest.mark.parametrize("override", ["commands.duration=1e9", "loop.period=1e-9"])
+def test_dry_run_too_long_to_record_names_duration_and_period(tmp_path, override):
+    refused(corral("dry-run", DEMO, "--no-plot", "--set", f"log.dir={tmp_path}",
+                   "--set", override), "commands.duration", "loop.period")
+
+
+def test_dry_run_output_folder_that_is_a_file(tmp_path):
+    blocker = tmp_path / "afile"
+    blocker.write_text("x")
+    refused(corral("dry-run", DEMO, "--no-plot", "--out", str(blocker)), "--out", "afile")
+    refused(corral("dry-run", DEMO, "--no-plot", "--set", f"log.dir={blocker}"), "log.dir")
