@@ -62,7 +62,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from runtime.commands import schedule_from_config, tracked_names
-from runtime.config import Config, ConfigError
+from runtime.config import Config, ConfigError, check_sections
 from runtime.design import Design, design_from_config
 
 Array = NDArray[np.float64]
@@ -72,6 +72,8 @@ RULES = ("margin", "clamp", "nonfinite", "saturation")
 """Rules the sweep evaluates offline, contract ids, in first-out tie order."""
 OUTCOMES = ("inside", "tripped", "diverged")
 ENGINES = ("auto", "compiled", "fused", "reference")
+MAX_PLANTS = 1_000_000  # parameters and results of every plant are held at once
+MAX_TICKS = 3_000_000  # per plant: 50 min at 1 kHz
 BLOCK = 64
 """Ticks between rule bookkeeping passes (buffers hold one block)."""
 FUSED_PARAMS = frozenset((
@@ -117,6 +119,18 @@ class SweepSettings:
         if not dur > 0:
             raise ConfigError("commands.duration", f"the sweep duration must be positive, got "
                               f"{dur}.", "give --duration S with S > 0.")
+        if s < 0:
+            raise ConfigError("sweep.seed", f"must be zero or more, got {s}.",
+                              "give --seed 0 or another non-negative integer.")
+        if n > MAX_PLANTS:
+            raise ConfigError("sweep.plants", f"{n:,} plants is more than a sweep draws at "
+                              f"once ({MAX_PLANTS:,}).",
+                              f"give --plants {MAX_PLANTS:,} or fewer (run several seeds).")
+        Ts = cfg.number("loop.period", SUBSTEP_MAX, positive=True, unit="s")
+        if not dur / Ts <= MAX_TICKS:  # also catches an infinite duration
+            raise ConfigError("commands.duration", f"{dur:g} s at loop.period = {Ts:g} s is "
+                              f"more than {MAX_TICKS:,} ticks per plant.",
+                              "give a shorter --duration (or commands.duration).")
         w = workers if workers is not None else int(cfg.number(
             "sweep.workers", os.cpu_count() or 1, minimum=1))
         ch = chunk if chunk is not None else int(cfg.number("sweep.chunk", 8000, minimum=1))
@@ -924,6 +938,26 @@ def run_sweep(cfg: Config, plants: int | None = None, seed: int | None = None,
 
 
 # ------------------------------------------------------------------ grids
+def check_grid_keys(cfg: Config, axes: Sequence[tuple[str, list[Any]]]) -> None:
+    """Refuse a grid key the config does not set: a misspelt or unknown key would otherwise
+    be ignored by every module and the grid would show the same result in every cell."""
+    import difflib
+
+    from runtime.config import _tables, walk
+
+    existing = [k for k, _ in walk(cfg.raw)]
+    tables = set(_tables(cfg.raw))
+    for key, _vals in axes:
+        if key in existing or key in tables:
+            continue
+        close = difflib.get_close_matches(key, existing, n=1, cutoff=0.8)
+        hint = f"did you mean {close[0]}? " if close else ""
+        raise ConfigError(f"--grid {key}", "is not a key of this config, so the grid would "
+                          "not change anything.",
+                          f"{hint}grid a key the config sets (add it with --set {key}=VALUE "
+                          "first if corral reads it with a default).")
+
+
 def parse_grid(items: Sequence[str]) -> list[tuple[str, list[Any]]]:
     """`KEY=v1,v2,...` items into (key, values); values parsed like --set values."""
     from runtime.config import parse_value
@@ -958,11 +992,13 @@ def run_grid(cfg: Config, axes: Sequence[tuple[str, list[Any]]], progress: Progr
     """
     import itertools
 
+    check_grid_keys(cfg, axes)
     entries: list[dict[str, Any]] = []
     combos = list(itertools.product(*[vals for _k, vals in axes]))
     for combo in combos:
         setting = {k: v for (k, _vals), v in zip(axes, combo, strict=True)}
         sub = cfg.with_overrides([f"{k}={_fmt(v)}" for k, v in setting.items()])
+        check_sections(sub.raw, "--grid")  # a table replaced by a value: refuse the grid
         entry: dict[str, Any] = {"setting": setting}
         try:
             design = design_from_config(sub)

@@ -59,3 +59,31 @@ def test_dry_run_output_folder_that_is_a_file(tmp_path):
     blocker.write_text("x")
     refused(corral("dry-run", DEMO, "--no-plot", "--out", str(blocker)), "--out", "afile")
     refused(corral("dry-run", DEMO, "--no-plot", "--set", f"log.dir={blocker}"), "log.dir")
+
+
+@pytest.mark.parametrize("grid, words", [
+    ("nosuch.key=1,2", ("nosuch.key", "--set")),
+    ("adaptation.gama=1,2", ("adaptation.gama", "did you mean adaptation.gamma")),
+    ("plant.truth=1,2", ("'plant.truth'", "table")),
+])
+def test_sweep_refuses_a_grid_key_that_changes_nothing(tmp_path, grid, words):
+    refused(corral("sweep", DEMO, "--plants", "2", "--duration", "0.1", "--no-plot",
+                   "--set", f"log.dir={tmp_path}", "--grid", grid), *words)
+
+
+@pytest.mark.parametrize("args, field", [
+    (("--seed", "-1"), "sweep.seed"),
+    (("--plants", "100000000000"), "sweep.plants"),
+    (("--duration", "inf"), "commands.duration"),
+    (("--duration", "1e9"), "commands.duration"),
+])
+def test_sweep_bad_numbers_name_their_field(tmp_path, args, field):
+    refused(corral("sweep", DEMO, "--plants", "2", "--duration", "0.1", "--no-plot",
+                   "--set", f"log.dir={tmp_path}", *args), field)
+
+
+def test_sweep_output_folder_that_is_a_file(tmp_path):
+    blocker = tmp_path / "afile"
+    blocker.write_text("x")
+    refused(corral("sweep", DEMO, "--plants", "2", "--duration", "0.1", "--no-plot",
+                   "--out", str(blocker)), "--out", "afile")
