@@ -37,7 +37,8 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
     """
     max_rate = cfg.number("preflight.max_trip_rate", 0.05, minimum=0.0, maximum=1.0)
     n = plants if plants is not None else int(cfg.number("preflight.plants", 200, minimum=1))
-    duration = cfg.get("preflight.duration", None)
+    duration = (cfg.number("preflight.duration", positive=True, unit="s")
+                if cfg.has("preflight.duration") else None)
     out: dict[str, Any] = {
         "go": False, "predicted_trip_rate": None, "max_trip_rate": max_rate, "reasons": [],
         "plants": n, "config_hash": cfg.hash(), "rig": str(cfg.get("rig.name", "rig")),
@@ -98,7 +99,14 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
 def _finish(cfg: Config, out: dict[str, Any], write: bool) -> dict[str, Any]:
     if write:
         folder = Path(str(cfg.get("log.dir", "runs")))
-        folder.mkdir(parents=True, exist_ok=True)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:  # a file in the way, no permission: name the field
+            why = ("a file is in the way" if isinstance(exc, FileExistsError | NotADirectoryError)
+                   else exc.strerror or str(exc))
+            raise ConfigError("log.dir", f"cannot create the folder '{folder}' for the "
+                              f"preflight record ({why}).",
+                              "set log.dir to a folder you can write to.") from None
         stamp = time.strftime("%Y%m%d-%H%M%S")
         path = folder / f"preflight-{stamp}.json"
         k = 1

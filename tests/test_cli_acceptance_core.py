@@ -87,3 +87,15 @@ def test_sweep_output_folder_that_is_a_file(tmp_path):
     blocker.write_text("x")
     refused(corral("sweep", DEMO, "--plants", "2", "--duration", "0.1", "--no-plot",
                    "--out", str(blocker)), "--out", "afile")
+
+
+def test_preflight_record_folder_blocked_by_a_file(tmp_path):
+    blocker = tmp_path / "afile"
+    blocker.write_text("x")
+    refused(corral("preflight", DEMO, "--plants", "2", "--set", "preflight.duration=0.1",
+                   "--set", f"log.dir={blocker}"), "log.dir", "file is in the way")
+
+
+def test_preflight_duration_that_is_not_a_number(tmp_path):
+    refused(corral("preflight", DEMO, "--plants", "2", "--set", "preflight.duration=abc",
+                   "--set", f"log.dir={tmp_path}"), "preflight.duration")
