@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from runtime.config import Config, ConfigError
+from runtime.config import Config, ConfigError, check_sections
 
 Array = NDArray[np.float64]
 
@@ -221,7 +221,9 @@ def config_with_overrides(rec: Recording, overrides: list[str]) -> tuple[Config,
         key = KEY_ALIASES.get(key.strip(), key.strip())
         items.append(f"{key}{sep}{value}")
     base = Config(raw=copy.deepcopy(rec.config), path=None)
-    return base.with_overrides(items), items
+    merged = base.with_overrides(items)
+    check_sections(merged.raw, "--set")  # unknown section, or a table replaced by a value
+    return merged, items
 
 
 # ---------------------------------------------------------------------------

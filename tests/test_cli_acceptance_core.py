@@ -99,3 +99,28 @@ def test_preflight_record_folder_blocked_by_a_file(tmp_path):
 def test_preflight_duration_that_is_not_a_number(tmp_path):
     refused(corral("preflight", DEMO, "--plants", "2", "--set", "preflight.duration=abc",
                    "--set", f"log.dir={tmp_path}"), "preflight.duration")
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory) -> Path:
+    """A short dry run of the demo: a real run file to replay and to cut."""
+    out = tmp_path_factory.mktemp("run")
+    res = corral("dry-run", DEMO, "--no-plot", "--out", str(out), "--set", "commands.duration=3")
+    assert res.returncode == 0, res.stderr
+    return next(out.glob("*.run"))
+
+
+@pytest.mark.parametrize("override, words", [
+    ("nosuch.x=1", ("'nosuch'", "section")),
+    ("plant.truth=1", ("'plant.truth'", "table")),
+])
+def test_replay_refuses_overrides_that_no_module_can_use(tmp_path, demo_run, override, words):
+    refused(corral("replay", str(demo_run), "--no-plot", "--out", str(tmp_path),
+                   "--set", override), *words)
+
+
+def test_replay_of_a_run_file_cut_in_the_header_is_refused(tmp_path, demo_run):
+    cut = tmp_path / "cut.run"
+    cut.write_bytes(demo_run.read_bytes()[:300])  # like `head -c 300`
+    refused(corral("replay", str(cut), "--no-plot", "--out", str(tmp_path)), "cut.run",
+            "not a corral run file")
