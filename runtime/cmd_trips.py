@@ -16,6 +16,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
 import time
 from pathlib import Path
 from typing import Any
@@ -57,6 +58,11 @@ def _load(paths: list[str]) -> tuple[list[Path], list[Trip], dict[Path, bool]]:
     except LogReadError as exc:
         raise UserError(f"{exc}. Give trip logs (*.trips) or the folder log.dir names.") \
             from exc
+    if not logs:
+        # `corral run` always writes a .trips file, so none means the wrong folder.
+        raise UserError(f"no trip logs (*.trips) in {', '.join(paths)}. Fix: give the folder "
+                        "log.dir names ('corral run' writes RIG-STAMP.trips there; dry runs "
+                        "and sweeps write none).")
     trips: list[Trip] = []
     torn: dict[Path, bool] = {}
     for path in logs:
@@ -65,7 +71,11 @@ def _load(paths: list[str]) -> tuple[list[Path], list[Trip], dict[Path, bool]]:
         except LogReadError as exc:
             if len(logs) == 1:
                 raise UserError(str(exc)) from exc
-            torn[path] = True
+            if "cut short" in str(exc) or "empty log" in str(exc):
+                torn[path] = True  # a crash before the header was complete: list it as cut
+                continue
+            # Not a trip log at all: say so on stderr, do not list it as cut short.
+            print(f"corral: note: skipped {exc}", file=sys.stderr)
             continue
         torn[path] = cut
         trips.extend(found)
@@ -305,6 +315,27 @@ def _default_out(trip: Trip, suffix: str) -> Path:
     return Path(f"{trip.source.stem}-trip{trip.id}{suffix}")
 
 
+PLOT_SUFFIXES = (".png", ".pdf", ".svg")
+
+
+def _out_path(out: Path | None, trip: Trip, suffix: str) -> Path:
+    """Where an export goes: --out as given, inside --out when it is a folder, else the
+    default name in the working folder. A plot without a suffix gets .png."""
+    if out is None:
+        return _default_out(trip, suffix)
+    out = Path(out)
+    if out.is_dir():
+        return out / _default_out(trip, suffix)
+    if suffix == ".png":
+        if not out.suffix:
+            return out.with_suffix(".png")
+        if out.suffix.lower() not in PLOT_SUFFIXES:
+            raise UserError(f"--out '{out}': a trip plot cannot be saved as "
+                            f"'{out.suffix}'. Fix: end the name with "
+                            f"{', '.join(PLOT_SUFFIXES)}.")
+    return out
+
+
 def main(args: argparse.Namespace) -> int:
     """List, show, plot or export."""
     logs, trips, torn = _load(args.logs)
@@ -325,19 +356,26 @@ def main(args: argparse.Namespace) -> int:
     if not trip.capture_fields or len(trip.capture()) == 0:
         raise UserError(f"trip {trip.key} has no captured ticks (capture_fields or pre rows "
                         "missing), so there is nothing to plot or export.")
-    if args.plot:
-        from runtime.triplot import plot_trip
+    suffix = ".png" if args.plot else ".csv" if args.csv else ""
+    out = _out_path(args.out, trip, suffix)
+    try:
+        if args.plot:
+            from runtime.triplot import plot_trip
 
-        path = plot_trip(trip, args.out or _default_out(trip, ".png"))
-        written = [path]
-    elif args.csv:
-        from runtime.comtrade_export import export_csv
+            written = [plot_trip(trip, out)]
+        elif args.csv:
+            from runtime.comtrade_export import export_csv
 
-        written = [export_csv(trip, args.out or _default_out(trip, ".csv"))]
-    else:
-        from runtime.comtrade_export import export_comtrade
+            written = [export_csv(trip, out)]
+        else:
+            from runtime.comtrade_export import export_comtrade
 
-        written = list(export_comtrade(trip, args.out or _default_out(trip, "")))
+            written = list(export_comtrade(trip, out))
+    except OSError as exc:
+        why = ("a file is in the way" if isinstance(exc, FileExistsError | NotADirectoryError)
+               else exc.strerror or str(exc))
+        raise UserError(f"--out: cannot write '{exc.filename or out}' ({why}). Fix: give "
+                        "--out a path in a folder you can write to.") from None
     if args.json:
         print(json.dumps({"trip": trip.key, "written": [str(p) for p in written]}))
     else:

@@ -124,3 +124,47 @@ def test_replay_of_a_run_file_cut_in_the_header_is_refused(tmp_path, demo_run):
     cut.write_bytes(demo_run.read_bytes()[:300])  # like `head -c 300`
     refused(corral("replay", str(cut), "--no-plot", "--out", str(tmp_path)), "cut.run",
             "not a corral run file")
+
+
+@pytest.fixture(scope="module")
+def trip_log(tmp_path_factory) -> Path:
+    """A real trip log: the simulated rig in real time with a rehearsed jump at 1 s."""
+    logs = tmp_path_factory.mktemp("trips")
+    res = corral("run", DEMO, "--arm", "--headless", "--duration", "2",
+                 "--fault", "spike@1:axis=az,size=0.2", "--set", f"log.dir={logs}")
+    assert "Traceback" not in res.stderr, res.stderr
+    path = next(logs.glob("*.trips"))
+    assert corral("trips", str(path), "--show", "1").returncode == 0
+    return path
+
+
+def test_trips_in_an_empty_folder_is_an_error(tmp_path):
+    refused(corral("trips", str(tmp_path)), str(tmp_path), "*.trips")
+
+
+def test_trips_folder_listing_skips_files_that_are_not_trip_logs(tmp_path, trip_log):
+    (tmp_path / "good.trips").write_bytes(trip_log.read_bytes())
+    (tmp_path / "latin1.trips").write_bytes(b"\xff\xfe\x00 garbage")
+    res = corral("trips", str(tmp_path))
+    assert res.returncode == 0 and "Traceback" not in res.stderr
+    assert "skipped" in res.stderr and "latin1.trips" in res.stderr
+    assert "good.trips:1" in res.stdout
+    assert "latin1" not in res.stdout  # not listed as a log cut short
+
+
+def test_trips_export_into_a_folder_uses_the_default_name(tmp_path, trip_log):
+    for flag, suffix in (("--plot", ".png"), ("--csv", ".csv"), ("--comtrade", ".cfg")):
+        res = corral("trips", str(trip_log), flag, "1", "--out", str(tmp_path))
+        assert res.returncode == 0, res.stderr
+        assert (tmp_path / f"{trip_log.stem}-trip1{suffix}").is_file()
+
+
+def test_trips_export_to_a_bad_place_is_one_line(tmp_path, trip_log):
+    blocker = tmp_path / "afile"
+    blocker.write_text("x")
+    refused(corral("trips", str(trip_log), "--csv", "1", "--out", str(blocker / "t.csv")),
+            "--out", "file is in the way")
+    refused(corral("trips", str(trip_log), "--comtrade", "1", "--out", str(blocker / "t")),
+            "--out", "file is in the way")
+    refused(corral("trips", str(trip_log), "--plot", "1", "--out", str(tmp_path / "t.txt")),
+            "--out", ".txt", ".png")
