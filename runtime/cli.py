@@ -102,6 +102,34 @@ def main(argv: Sequence[str] | None = None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 0
+    except Exception as exc:  # noqa: BLE001 - the last line of defence, see below
+        # A bug of ours, not a mistake of the user's: keep the screen to one line and
+        # the details in a file the user can attach to a report. CORRAL_DEBUG=1 re-raises.
+        import os
+
+        if os.environ.get("CORRAL_DEBUG"):
+            raise
+        report = _write_crash_report(exc)
+        print(f"corral: unexpected error ({type(exc).__name__}: {exc}). This is a bug in "
+              f"corral, not in your input; the details are in {report}.", file=sys.stderr)
+        return 70
+
+
+def _write_crash_report(exc: BaseException) -> str:
+    """Write the traceback to a temporary file and return its path."""
+    import tempfile
+    import time
+    import traceback
+
+    from runtime import __version__
+
+    text = (f"corral {__version__}, python {sys.version.split()[0]}\n"
+            f"argv: {sys.argv}\n\n" + "".join(traceback.format_exception(exc)))
+    fd, path = tempfile.mkstemp(prefix=f"corral-crash-{time.strftime('%Y%m%d-%H%M%S')}-",
+                                suffix=".txt")
+    with open(fd, "w") as fh:
+        fh.write(text)
+    return path
 
 
 class UserError(Exception):
