@@ -41,6 +41,20 @@ class DryRunResult:
     summary: dict[str, Any] = field(default_factory=dict)
 
 
+def check_effectiveness(where: str, value: Any) -> None:
+    """Motor effectiveness (`lam_*`) must be positive: the method
+    assumes the sign of the input gain is known (Lambda positive diagonal), so zero or a
+    negative value is a config mistake, not a plant to simulate."""
+    if not where.rsplit(".", 1)[-1].startswith("lam_"):
+        return
+    vals = value if isinstance(value, list) else [value]
+    for v in vals:
+        if isinstance(v, int | float) and not isinstance(v, bool) and not v > 0:
+            raise ConfigError(where, f"motor effectiveness must be positive, got {value!r}.",
+                              "give a value greater than zero (1 = as nominal, 0.6 = 40 % "
+                              "weaker).")
+
+
 def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                       truth: dict[str, Any] | None = None) -> Any:
     """The simulated plant a config describes (its `[plant]` truth and sensors)."""
@@ -57,6 +71,7 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
         if key not in spec.truth_defaults:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
                               f"use one of: {', '.join(spec.truth_defaults)}.")
+        check_effectiveness(f"plant.truth.{key}", truth[key])
     sensors = SensorModel(
         angle_resolution=cfg.number("plant.sensors.angle_resolution", 2 * np.pi / 2**16,
                                     minimum=0.0, unit="rad"),

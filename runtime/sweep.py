@@ -183,6 +183,9 @@ def _ranges(cfg: Config, truth_names: Sequence[str]) -> dict[str, tuple[float, f
         if not ok or val[0] > val[1]:
             raise ConfigError(where, f"must be [lo, hi] with lo <= hi, got {val!r}.",
                               f"write {key} = [lo, hi].")
+        from runtime.dryrun import check_effectiveness
+
+        check_effectiveness(where, val)
         out[key] = (float(val[0]), float(val[1]))
     return out
 
@@ -202,6 +205,9 @@ def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
         if key not in spec.truth_defaults:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
                               f"use one of: {', '.join(spec.truth_defaults)}.")
+        from runtime.dryrun import check_effectiveness
+
+        check_effectiveness(f"plant.truth.{key}", truth[key])
     ranges = _ranges(cfg, tuple(spec.truth_defaults))
     return draw_truth(ranges, truth, plants, np.random.default_rng(seed))
 

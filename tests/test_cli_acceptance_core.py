@@ -168,3 +168,16 @@ def test_trips_export_to_a_bad_place_is_one_line(tmp_path, trip_log):
             "--out", "file is in the way")
     refused(corral("trips", str(trip_log), "--plot", "1", "--out", str(tmp_path / "t.txt")),
             "--out", ".txt", ".png")
+
+
+@pytest.mark.parametrize("cmd, override, field", [
+    ("dry-run", "plant.truth.lam_az=0", "plant.truth.lam_az"),
+    ("dry-run", "plant.truth.lam_el=-1", "plant.truth.lam_el"),
+    ("sweep", "plant.ranges.lam_az=[-1,0]", "plant.ranges.lam_az"),
+])
+def test_non_positive_motor_effectiveness_is_refused(tmp_path, cmd, override, field):
+    # The method assumes the input gain's sign is known (Lambda positive diagonal; Lavretsky
+    # and Wise, Robust and Adaptive Control, 2013, ch. 9 (from memory)).
+    extra = ["--plants", "2", "--duration", "0.1"] if cmd == "sweep" else []
+    refused(corral(cmd, DEMO, "--no-plot", *extra, "--set", f"log.dir={tmp_path}",
+                   "--set", override), field, "positive")
