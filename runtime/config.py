@@ -322,7 +322,13 @@ def _note_new_keys(raw: dict[str, Any], overrides: Sequence[str]) -> None:
         key = item.partition("=")[0].strip()
         if key in existing:
             continue
-        close = difflib.get_close_matches(key, existing, n=1, cutoff=0.8)
+        # Compare the last part among the keys of the same table: on whole dotted keys the
+        # shared prefix makes a real key read with a default (adaptation.leakage) look like
+        # a misspelling of another (adaptation.law).
+        parent, _, leaf = key.rpartition(".")
+        siblings = {k.rpartition(".")[2]: k for k in existing if k.rpartition(".")[0] == parent}
+        near = difflib.get_close_matches(leaf, list(siblings), n=1, cutoff=0.8)
+        close = [siblings[near[0]]] if near else []
         if close:
             print(f"corral: note: --set {key} is not in the config file; did you mean "
                   f"{close[0]}? (using it as given)", file=sys.stderr)

@@ -181,3 +181,13 @@ def test_non_positive_motor_effectiveness_is_refused(tmp_path, cmd, override, fi
     extra = ["--plants", "2", "--duration", "0.1"] if cmd == "sweep" else []
     refused(corral(cmd, DEMO, "--no-plot", *extra, "--set", f"log.dir={tmp_path}",
                    "--set", override), field, "positive")
+
+
+def test_a_real_key_read_with_a_default_gets_no_misspelling_note(tmp_path):
+    # adaptation.leakage is a documented key the demo file leaves at its default; the note
+    # used to call it a misspelling of adaptation.law and then the real error followed.
+    res = corral("dry-run", DEMO, "--no-plot", "--set", f"log.dir={tmp_path}",
+                 "--set", "adaptation.leakage=foo")
+    refused(res, "adaptation.leakage", "sigma")
+    res = corral("design", DEMO, "--set", "adaptation.clamp_margn=0.1")
+    assert "did you mean adaptation.clamp_margin?" in res.stderr  # a real typo still noted
