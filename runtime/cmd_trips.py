@@ -339,7 +339,9 @@ def _out_path(out: Path | None, trip: Trip, suffix: str) -> Path:
 def main(args: argparse.Namespace) -> int:
     """List, show, plot or export."""
     logs, trips, torn = _load(args.logs)
-    ident = args.show or args.plot or args.csv or args.comtrade
+    # `is not None`: an empty id (`--show ""`) is a bad id, not a request for the list.
+    ident = next((v for v in (args.show, args.plot, args.csv, args.comtrade) if v is not None),
+                 None)
     if ident is None:
         if args.json:
             print(json.dumps([t.summary() for t in trips], indent=2, default=str))
@@ -347,7 +349,7 @@ def main(args: argparse.Namespace) -> int:
             print(list_text(logs, trips, torn))
         return 0
     trip = resolve(trips, str(ident))
-    if args.show:
+    if args.show is not None:
         if args.json:
             print(json.dumps(show_json(trip), indent=2, default=str))
         else:

@@ -191,3 +191,8 @@ def test_a_real_key_read_with_a_default_gets_no_misspelling_note(tmp_path):
     refused(res, "adaptation.leakage", "sigma")
     res = corral("design", DEMO, "--set", "adaptation.clamp_margn=0.1")
     assert "did you mean adaptation.clamp_margin?" in res.stderr  # a real typo still noted
+
+
+@pytest.mark.parametrize("flag", ["--show", "--plot"])
+def test_trips_empty_id_is_a_bad_id_not_the_list(trip_log, flag):
+    refused(corral("trips", str(trip_log), flag, ""), "trip id ''", "available")
