@@ -78,6 +78,9 @@ def _print_text(out: dict[str, Any]) -> None:
     verdict = ("would trip" if out["would_trip"] else "would not trip")
     if out["trip_avoided"]:
         verdict += " (the recorded trip is avoided)"
+    elif out["trip_avoided"] is None:
+        verdict += (f" on the rules it can check; the recorded {out['recorded']['trip']['rule']}"
+                    " trip is not re-checked (no signal for it in the record)")
     print(f"  with these settings the run {verdict}.")
     fit = out.get("fit")
     if fit:

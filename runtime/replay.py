@@ -562,7 +562,11 @@ class ReplayResult:
             "recorded_rechecked": self.rechecked.to_json(),
             "replayed": self.replayed.to_json(),
             "would_trip": self.would_trip,
-            "trip_avoided": rec["trip"] is not None and not self.would_trip,
+            # None (unknown) when the recorded first-out is a rule the record holds no
+            # signal for: the replay cannot show such a trip, so it cannot claim it avoided.
+            "trip_avoided": (None if rec["trip"] is not None
+                             and rec["trip"].get("rule") in UNRECORDED_RULES
+                             else rec["trip"] is not None and not self.would_trip),
             "watchdog": {"implementation": "runtime.watchdog.Watchdog, signals rebuilt from "
                                            "the recorded columns",
                          "not_evaluated": UNRECORDED_RULES},

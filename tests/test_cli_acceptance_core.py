@@ -5,6 +5,7 @@ and the fix, exit status 2, and no traceback. Run as real processes (`python -m 
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 from pathlib import Path
@@ -128,10 +129,11 @@ def test_replay_of_a_run_file_cut_in_the_header_is_refused(tmp_path, demo_run):
 
 @pytest.fixture(scope="module")
 def trip_log(tmp_path_factory) -> Path:
-    """A real trip log: the simulated rig in real time with a rehearsed jump at 1 s."""
+    """A real trip log: the simulated rig in real time with a rehearsed jump at 2.5 s (the
+    law engages after about 1.2 s of settling, so the run log has engaged ticks to replay)."""
     logs = tmp_path_factory.mktemp("trips")
-    res = corral("run", DEMO, "--arm", "--headless", "--duration", "2",
-                 "--fault", "spike@1:axis=az,size=0.2", "--set", f"log.dir={logs}")
+    res = corral("run", DEMO, "--arm", "--headless", "--duration", "3.5",
+                 "--fault", "spike@2.5:axis=az,size=0.2", "--set", f"log.dir={logs}")
     assert "Traceback" not in res.stderr, res.stderr
     path = next(logs.glob("*.trips"))
     assert corral("trips", str(path), "--show", "1").returncode == 0
@@ -196,3 +198,16 @@ def test_a_real_key_read_with_a_default_gets_no_misspelling_note(tmp_path):
 @pytest.mark.parametrize("flag", ["--show", "--plot"])
 def test_trips_empty_id_is_a_bad_id_not_the_list(trip_log, flag):
     refused(corral("trips", str(trip_log), flag, ""), "trip id ''", "available")
+
+
+def test_replay_does_not_claim_a_trip_it_cannot_see_was_avoided(tmp_path, trip_log):
+    # The rehearsed spike trips the jump rule, whose signal (the estimator's innovation) a
+    # run log does not hold; an unchanged replay must not report that trip as avoided.
+    run = trip_log.with_suffix(".run")
+    res = corral("replay", str(run), "--no-plot", "--json", "--out", str(tmp_path))
+    assert "Traceback" not in res.stderr, res.stderr
+    out = json.loads(res.stdout)
+    assert out["recorded"]["trip"]["rule"] == "jump"
+    assert out["trip_avoided"] is None
+    text = corral("replay", str(run), "--no-plot", "--out", str(tmp_path)).stdout
+    assert "avoided" not in text and "jump trip is not re-checked" in text
