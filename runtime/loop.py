@@ -907,10 +907,11 @@ class Runner:
                 self.design.reasons), "run `corral design CONFIG` and fix what it names.")
         try:
             self.faults = FaultSchedule.from_config(cfg, settings.faults)
+            # The link resolves each fault's axis against its channels: a bad axis fails here.
+            self.link = make_link(cfg, settings.link, self.design, self.faults)
         except FaultError as exc:
             raise ConfigError("faults", str(exc), "see docs/operating.md for fault syntax.") \
                 from None
-        self.link = make_link(cfg, settings.link, self.design, self.faults)
         self.simulated = is_simulated(self.link)
         if self.faults.faults and not self.simulated:
             raise ConfigError("faults", "fault injection needs the simulated rig.",

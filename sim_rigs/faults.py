@@ -56,6 +56,10 @@ DEFAULTS: dict[str, dict[str, Any]] = {
 }
 
 
+_COUNTS = ("ticks", "every", "count")
+_NUMBERS = ("size", "scale", "seconds")
+
+
 class FaultError(ValueError):
     """A fault text or table is unusable; the message says what to write instead."""
 
@@ -107,8 +111,8 @@ def _make(kind: str, at: Any, params: dict[str, Any], where: str) -> Fault:
     except (TypeError, ValueError):
         raise FaultError(f"{where}: the time {at!r} is not a number of seconds "
                          f"(write e.g. {kind}@5).") from None
-    if not at_s >= 0.0:
-        raise FaultError(f"{where}: the time must be >= 0 s.")
+    if not 0.0 <= at_s < math.inf:
+        raise FaultError(f"{where}: the time must be a finite number of seconds >= 0.")
     params = dict(params)
     duration = params.pop("duration", math.inf)
     try:
@@ -122,6 +126,16 @@ def _make(kind: str, at: Any, params: dict[str, Any], where: str) -> Fault:
         allowed = ", ".join(sorted(DEFAULTS[kind])) or "none"
         raise FaultError(f"{where}: {kind} takes no parameter {', '.join(sorted(unknown))} "
                          f"(allowed: {allowed}, duration).")
+    # Check the values here, not when the fault fires mid-run.
+    for key, val in params.items():
+        if key in _COUNTS and not (isinstance(val, int) and not isinstance(val, bool)
+                                   and val >= 1):
+            raise FaultError(f"{where}: {key} must be a whole number >= 1, not {val!r}.")
+        if key in _NUMBERS and not (isinstance(val, (int, float)) and not isinstance(val, bool)
+                                    and math.isfinite(val)):
+            raise FaultError(f"{where}: {key} must be a finite number, not {val!r}.")
+        if key == "axis" and not isinstance(val, (int, str)):
+            raise FaultError(f"{where}: axis must be a channel name, an index or all.")
     return Fault(kind, at_s, duration, params)
 
 
