@@ -20,6 +20,7 @@ import asyncio
 import contextlib
 import importlib.util
 import json
+import math
 import os
 import shlex
 import signal
@@ -90,10 +91,12 @@ def dashboard_command(socket_path: str) -> list[str] | None:
 
 def main(args: argparse.Namespace) -> int:
     """Run; exit 0 when the run ended normally (trips included), 2 on a user error."""
+    from drivers.base import LinkClosed
     from runtime.loop import Runner, RunSettings
 
-    if args.duration is not None and not args.duration > 0:
-        raise UserError("--duration must be a positive number of seconds, e.g. --duration 10")
+    if args.duration is not None and not 0 < args.duration < math.inf:
+        raise UserError("--duration must be a positive number of seconds, e.g. --duration 10 "
+                        "(leave it out to run until stopped)")
     cfg = load_config(args.config, args.overrides)
     settings = RunSettings(duration=args.duration, auto_arm=False, faults=list(args.fault),
                            link=args.link, telemetry_mqtt=args.telemetry_mqtt,
@@ -149,6 +152,11 @@ def main(args: argparse.Namespace) -> int:
 
     try:
         summary = asyncio.run(go())
+    except LinkClosed as exc:
+        # The link never opened (no such port, broker down): the run did not start.
+        raise UserError(f"{exc}; start the device or broker first (or `corral rig serve "
+                        f"CONFIG --serial | --mqtt HOST:PORT` to rehearse) and check "
+                        f"--link / rig.link") from None
     finally:
         if dash is not None and dash.poll() is None:
             dash.terminate()
