@@ -85,10 +85,16 @@ def main(args: argparse.Namespace) -> int:
 
     import asyncio
 
+    from aiomqtt import MqttError
+
     try:
         asyncio.run(run())
-    except (ConnectionError, OSError) as exc:
-        raise UserError(f"cannot reach the telemetry source ({exc})") from None
+    except (ConnectionError, OSError, MqttError) as exc:
+        # MqttError: broker down or refusing us (aiomqtt wraps the socket error).
+        fix = ("is the broker running there, and is the rig publishing telemetry "
+               "(`corral run ... --telemetry-mqtt HOST:PORT`)?" if args.mqtt else
+               "is `corral run` still running?")
+        raise UserError(f"cannot reach the telemetry source ({exc}); {fix}") from None
     return 0
 
 
