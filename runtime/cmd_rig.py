@@ -73,6 +73,9 @@ def main(args: argparse.Namespace) -> int:
     from sim_rigs.device import PedestalDevice
     from sim_rigs.faults import FaultError, FaultSchedule
 
+    if not 0 < args.duration <= math.inf:
+        raise UserError("--duration must be a positive number of seconds, e.g. --duration 60 "
+                        "(leave it out to serve until interrupted)")
     cfg = load_config(args.config, args.overrides)
     design = design_from_config(cfg)
     plant = plant_from_config(cfg, design)
@@ -90,12 +93,21 @@ def main(args: argparse.Namespace) -> int:
     except FaultError as exc:
         raise UserError(str(exc)) from None
     seed = int(cfg.number("plant.seed", 0, minimum=0))
-    device = PedestalDevice(plant, period=design.Ts, rig_id=rig, command_timeout_s=timeout,
-                            faults=schedule, output_limits=design.rig.input_limits, seed=seed)
+    try:
+        # Each fault's axis is resolved against the device's channels here.
+        device = PedestalDevice(plant, period=design.Ts, rig_id=rig, command_timeout_s=timeout,
+                                faults=schedule, output_limits=design.rig.input_limits,
+                                seed=seed)
+    except FaultError as exc:
+        raise UserError(f"--fault / [[faults]]: {exc}") from None
     if args.serial:
         link_path = args.pty_link or os.path.join(
             tempfile.gettempdir(), f"corral-{rig}-{os.getpid()}.tty")
-        where = device.serve_pty(link_path)
+        try:
+            where = device.serve_pty(link_path)
+        except OSError as exc:
+            raise UserError(f"cannot create the pseudo-terminal link {link_path} ({exc}); "
+                            "give --pty-link a path in a folder you can write") from None
     else:
         settings = _mqtt_settings(cfg, args.mqtt, rig)
         try:
