@@ -917,6 +917,12 @@ class Runner:
             raise ConfigError("faults", "fault injection needs the simulated rig.",
                               "drop --fault and [[faults]] for a real rig.")
         self.log_dir = Path(str(cfg.get("log.dir", "runs")))
+        try:
+            self.log_dir.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise ConfigError("log.dir", f"cannot create the log folder {self.log_dir} "
+                              f"({exc.strerror})", "name a folder you can write, e.g. "
+                              "--set log.dir=runs") from None
         self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
                              self.simulated, self.faults)
         self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"

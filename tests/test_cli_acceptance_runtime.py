@@ -104,6 +104,15 @@ def test_run_with_broker_down_ends_in_one_line(tmp_path: Path) -> None:
     assert_one_clear_line(res, f"127.0.0.1:{port}", "broker")
 
 
+def test_run_with_an_unwritable_log_dir_names_the_field(tmp_path: Path) -> None:
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a folder")
+    res = corral("run", SIM, "--headless", "--duration", "1",
+                 "--set", f"log.dir={blocker / 'logs'}", *CALM)
+    assert_one_clear_line(res, "log.dir")
+    assert res.returncode == 2  # a user error, not the crash handler's status
+
+
 def test_watch_with_broker_down_ends_in_one_line() -> None:
     res = corral("watch", "--mqtt", f"127.0.0.1:{free_port()}", "--rig", "pedestal-sim")
     assert_one_clear_line(res, "broker")
