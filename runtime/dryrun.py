@@ -55,6 +55,14 @@ def check_effectiveness(where: str, value: Any) -> None:
                               "weaker).")
 
 
+def check_truth_value(where: str, value: Any) -> None:
+    """One `plant.truth` entry: a finite number (and a positive one for effectiveness)."""
+    if isinstance(value, bool) or not isinstance(value, int | float) or not np.isfinite(value):
+        raise ConfigError(where, f"must be a finite number, got {value!r}.",
+                          f"write e.g. {where.rsplit('.', 1)[-1]} = 0.5 under [plant.truth].")
+    check_effectiveness(where, value)
+
+
 def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                       truth: dict[str, Any] | None = None) -> Any:
     """The simulated plant a config describes (its `[plant]` truth and sensors)."""
@@ -66,12 +74,14 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
         raise ConfigError("rig.sim", "a dry run needs a simulated rig.",
                           'set rig.sim = "pedestal" (the only simulated rig so far).')
     spec = RIGS[sim]
+    from_config = truth is None
     truth = dict(cfg.get("plant.truth", {})) if truth is None else truth
     for key in truth:
         if key not in spec.truth_defaults:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
                               f"use one of: {', '.join(spec.truth_defaults)}.")
-        check_effectiveness(f"plant.truth.{key}", truth[key])
+        if from_config:  # a caller's truth (a fitted plant, say) is not the user's input
+            check_truth_value(f"plant.truth.{key}", truth[key])
     sensors = SensorModel(
         angle_resolution=cfg.number("plant.sensors.angle_resolution", 2 * np.pi / 2**16,
                                     minimum=0.0, unit="rad"),

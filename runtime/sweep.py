@@ -205,9 +205,9 @@ def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
         if key not in spec.truth_defaults:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
                               f"use one of: {', '.join(spec.truth_defaults)}.")
-        from runtime.dryrun import check_effectiveness
+        from runtime.dryrun import check_truth_value
 
-        check_effectiveness(f"plant.truth.{key}", truth[key])
+        check_truth_value(f"plant.truth.{key}", truth[key])
     ranges = _ranges(cfg, tuple(spec.truth_defaults))
     return draw_truth(ranges, truth, plants, np.random.default_rng(seed))
 

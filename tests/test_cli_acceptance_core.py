@@ -211,3 +211,12 @@ def test_replay_does_not_claim_a_trip_it_cannot_see_was_avoided(tmp_path, trip_l
     assert out["trip_avoided"] is None
     text = corral("replay", str(run), "--no-plot", "--out", str(tmp_path)).stdout
     assert "avoided" not in text and "jump trip is not re-checked" in text
+
+
+@pytest.mark.parametrize("cmd", ["dry-run", "sweep"])
+@pytest.mark.parametrize("value", ["abc", "[1,2]", "nan", "true"])
+def test_plant_truth_that_is_not_a_finite_number_is_a_config_error(tmp_path, cmd, value):
+    extra = ["--plants", "2", "--duration", "0.1"] if cmd == "sweep" else []
+    refused(corral(cmd, DEMO, "--no-plot", *extra, "--set", f"log.dir={tmp_path}",
+                   "--set", f"plant.truth.visc_az={value}"), "plant.truth.visc_az",
+            "finite number")
