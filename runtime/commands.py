@@ -119,6 +119,9 @@ def schedule_from_config(cfg: Config, tracked: Sequence[str]) -> CommandSchedule
                 raise ConfigError(f"{where}.kind", f"unknown kind {kind!r}.",
                                   f"use one of {', '.join(KINDS)}.")
             at = _seg_number(item, "at", where)
+            if at < 0:  # time starts at 0: a negative start is a typo, not a schedule
+                raise ConfigError(f"{where}.at", f"must be zero or later, got {at:g} s.",
+                                  "give the start time in seconds from the run's start, >= 0.")
             if kind == "step":
                 segs.append(Segment(at, kind, to=_seg_number(item, "to", where)))
             elif kind == "slew":

@@ -220,3 +220,8 @@ def test_plant_truth_that_is_not_a_finite_number_is_a_config_error(tmp_path, cmd
     refused(corral(cmd, DEMO, "--no-plot", *extra, "--set", f"log.dir={tmp_path}",
                    "--set", f"plant.truth.visc_az={value}"), "plant.truth.visc_az",
             "finite number")
+
+
+def test_a_command_segment_starting_before_zero_is_refused(tmp_path):
+    refused(corral("dry-run", DEMO, "--no-plot", "--set", f"log.dir={tmp_path}", "--set",
+                   'commands.az=[{at=-1,kind="step",to=0.1}]'), "commands.az[0].at", ">= 0")
