@@ -20,6 +20,11 @@ def main(args: argparse.Namespace) -> int:
     """Print the design; exit 1 when the verdict is a refusal."""
     cfg = load_config(args.config, args.overrides)
     d = design_from_config(cfg)
+    # The weight modifiers are read by the law, not the design; check them here too so a
+    # bad adaptation.leakage is refused before a run, not at its start.
+    from runtime.modifiers import modifiers_from_config
+
+    modifiers_from_config(cfg, d)
     if args.json:
         print(json.dumps(d.to_json(), indent=2))
     else:
