@@ -291,6 +291,8 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
 # Nested tables the modules read with dict access; a scalar there (`--set plant.truth=1`)
 # must be refused here, not crash the reader.
 SUBTABLES = ("plant.truth", "plant.ranges", "plant.sensors", "adaptation.bound")
+# Sections that are arrays of tables ([[faults]]), not tables.
+LIST_SECTIONS = ("faults",)
 
 
 def check_sections(raw: dict[str, Any], where: str) -> None:
@@ -303,6 +305,13 @@ def check_sections(raw: dict[str, Any], where: str) -> None:
                 f"known sections: {', '.join(SECTIONS)}.")
             raise ConfigError(key, f"is not a section corral knows (in {where}).", hint)
     for key in (*SECTIONS, *SUBTABLES):
+        if key in LIST_SECTIONS:
+            node_list = raw.get(key)
+            if node_list is not None and not (isinstance(node_list, list) and all(
+                    isinstance(item, dict) for item in node_list)):
+                raise ConfigError(key, f"must be a list of tables, got {node_list!r} "
+                                  f"(in {where}).", f"write [[{key}]] tables with their keys.")
+            continue
         node: Any = raw
         for part in key.split("."):
             if not isinstance(node, dict) or part not in node:

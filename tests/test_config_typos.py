@@ -35,3 +35,15 @@ def test_override_of_an_existing_key_is_silent():
         capture_output=True, text=True, timeout=120)
     assert proc.stderr == ""
     assert proc.returncode == 0
+
+
+def test_faults_are_a_list_of_tables_and_load(tmp_path):
+    good = tmp_path / "faulty.toml"
+    good.write_text(DEMO.read_text() + '\n[[faults]]\nkind = "spike"\nat = 1.2\n')
+    cfg = load_config(good)
+    assert cfg.get("faults") == [{"kind": "spike", "at": 1.2}]
+    bad = tmp_path / "bad.toml"
+    bad.write_text(DEMO.read_text() + '\nfaults = 3\n')
+    with pytest.raises(ConfigError) as err:
+        load_config(bad)
+    assert err.value.field == "faults" and "list of tables" in str(err.value)
