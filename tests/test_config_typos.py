@@ -43,7 +43,7 @@ def test_faults_are_a_list_of_tables_and_load(tmp_path):
     cfg = load_config(good)
     assert cfg.get("faults") == [{"kind": "spike", "at": 1.2}]
     bad = tmp_path / "bad.toml"
-    bad.write_text(DEMO.read_text() + '\nfaults = 3\n')
+    bad.write_text('faults = 3\n' + DEMO.read_text())  # top level, before any [table]
     with pytest.raises(ConfigError) as err:
         load_config(bad)
     assert err.value.field == "faults" and "list of tables" in str(err.value)
