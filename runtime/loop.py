@@ -939,7 +939,9 @@ class Runner:
         if self.mqtt_settings is not None:
             self.mqtt = MqttBridge(self.mqtt_settings, self.core.hello(), self.core.submit,
                                    rate_hz=cfg.number("telemetry.mqtt_rate_hz", 10.0,
-                                                      positive=True, unit="Hz"))
+                                                      positive=True, unit="Hz"),
+                                   notify=lambda line: print(line, file=self.core.console(),
+                                                             flush=True))
             self.telemetry.listeners.append(self.mqtt.on_record)
         self.core.tel_every = max(1, int(round(1.0 / (self.telemetry.rate_hz * self.design.Ts))))
         self.clock = DeadlineClock(self.design.Ts,

@@ -240,8 +240,13 @@ class MqttBridge:
 
     def __init__(self, settings: Any, hello: dict[str, Any], on_request: RequestHandler,
                  rate_hz: float = 10.0, hello_refresh_s: float = 5.0,
-                 hello_expiry_s: float = 30.0, reply_timeout_s: float = 2.0) -> None:
+                 hello_expiry_s: float = 30.0, reply_timeout_s: float = 2.0,
+                 notify: Callable[[str], None] | None = None,
+                 connect_warn_s: float = 3.0) -> None:
         self.settings = settings
+        self.notify = notify
+        """Where a one-line warning goes when the broker is not reachable at start."""
+        self.connect_warn_s = float(connect_warn_s)
         self.hello = {"type": "hello", **hello}
         self.on_request = on_request
         self.rate_hz = float(rate_hz)
@@ -305,6 +310,7 @@ class MqttBridge:
         async with MqttPublisher(self.settings, on_request=self._remote,
                                  telemetry_hz=self.rate_hz) as pub:
             self.publisher = pub
+            warn = asyncio.ensure_future(self._warn_if_unreachable(pub))
             try:
                 while True:
                     # No public call publishes a retained map on an arbitrary topic yet.
@@ -312,9 +318,16 @@ class MqttBridge:
                                  int(math.ceil(self.hello_expiry_s)))
                     await asyncio.sleep(self.hello_refresh_s)
             finally:
+                warn.cancel()
                 pub.publish_mode("ended", online=False)
                 self.publisher = None
                 self._pub = pub
+
+    async def _warn_if_unreachable(self, pub: Any) -> None:
+        """Tell the operator once when the broker does not answer (the run goes on)."""
+        if not await pub.wait_connected(self.connect_warn_s) and self.notify is not None:
+            self.notify(f"corral: telemetry broker {self.settings.host}:{self.settings.port} "
+                        f"is not reachable; the run goes on and keeps trying to publish")
 
     @property
     def summary(self) -> dict[str, Any]:

@@ -189,3 +189,14 @@ def test_sigint_ends_the_run_with_a_readable_trip_log(tmp_path: Path) -> None:
     listed = corral("trips", str(tmp_path))
     assert listed.returncode == 0, listed.stderr
     assert "jump" in listed.stdout
+
+
+def test_telemetry_broker_down_is_a_warning_and_the_run_goes_on(tmp_path: Path) -> None:
+    port = free_port()  # nothing listens here
+    res = corral("run", SIM, "--headless", "--arm", "--duration", "4", "--json",
+                 "--telemetry-mqtt", f"127.0.0.1:{port}", "--set", f"log.dir={tmp_path}",
+                 "--set", "watchdog.overrun_misses=100000")
+    assert res.returncode == 0, res.stderr
+    assert f"telemetry broker 127.0.0.1:{port} is not reachable" in res.stderr
+    assert "Traceback" not in res.stderr
+    assert strict_json(res.stdout)["ticks"] >= 3000
