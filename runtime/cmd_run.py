@@ -89,6 +89,22 @@ def dashboard_command(socket_path: str) -> list[str] | None:
     return [sys.executable, "-m", "runtime.cmd_watch", "--socket", socket_path, "--wait", "10"]
 
 
+def _check_serial_port_exists(spec: str) -> None:
+    """Fail fast on a serial port that is not there (before a preflight sweep runs)."""
+    if not spec.startswith("serial:"):
+        return
+    from drivers.serial_link import parse_serial_url
+
+    try:
+        path, _ = parse_serial_url(spec)
+    except ValueError:
+        return  # the link builder reports a malformed spec with its own message
+    if not os.path.exists(path):
+        raise UserError(f"no serial port at {path}: plug in or start the device, check the path "
+                        "(ls /dev/serial/by-id/), or serve the simulated rig with "
+                        "`corral rig serve CONFIG --serial`")
+
+
 def main(args: argparse.Namespace) -> int:
     """Run; exit 0 when the run ended normally (trips included), 2 on a user error."""
     from drivers.base import LinkClosed
@@ -98,6 +114,7 @@ def main(args: argparse.Namespace) -> int:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10 "
                         "(leave it out to run until stopped)")
     cfg = load_config(args.config, args.overrides)
+    _check_serial_port_exists(args.link or str(cfg.get("rig.link", "sim")))
     settings = RunSettings(duration=args.duration, auto_arm=False, faults=list(args.fault),
                            link=args.link, telemetry_mqtt=args.telemetry_mqtt,
                            preflight=not args.no_preflight)

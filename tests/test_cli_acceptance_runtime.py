@@ -200,3 +200,12 @@ def test_telemetry_broker_down_is_a_warning_and_the_run_goes_on(tmp_path: Path) 
     assert f"telemetry broker 127.0.0.1:{port} is not reachable" in res.stderr
     assert "Traceback" not in res.stderr
     assert strict_json(res.stdout)["ticks"] >= 3000
+
+
+def test_missing_serial_port_fails_before_the_preflight(tmp_path: Path) -> None:
+    res = corral("run", SIM, "--link", "serial:/nonexistent/tty0", "--headless",
+                 "--set", f"log.dir={tmp_path}")
+    assert res.returncode == 2
+    assert_one_clear_line(res, "/nonexistent/tty0", "corral rig serve")
+    # No preflight sweep ran: no preflight record was written.
+    assert not list(tmp_path.glob("preflight-*.json"))
