@@ -448,6 +448,22 @@ def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
             np.rint(out[:2], out=out[:2])
             np.multiply(out[:2], res, out=out[:2])
 
+    def friction(w: Array, coulomb: Array, stribeck_gain: Array) -> None:
+        """t1 = (C + S exp(-(w/ss)^2)) tanh(w/vs), or C tanh(w/vs) without stick-slip."""
+        nonlocal t1, t2  # in-place updates of the shared scratch buffers
+        np.divide(w, vs, out=t1)
+        np.tanh(t1, out=t1)
+        if stribeck:
+            np.divide(w, ss, out=t2)
+            t2 *= t2
+            np.negative(t2, out=t2)
+            np.exp(t2, out=t2)
+            t2 *= stribeck_gain
+            t2 += coulomb
+            t1 *= t2
+        else:
+            t1 *= coulomb
+
     def deriv(xv: Array, c0: Array, s0: Array, el0: Array | None, out: Array) -> None:
         """out[2:] = accelerations at stage state xv (out[:2] are xv's rates)."""
         nonlocal t1, t2, cd, sd
@@ -484,19 +500,8 @@ def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
         aa, ae = out[2], out[3]
         out[0] = wa
         out[1] = we
-        # az: Fa - Da wa - Ca tanh(wa/vs) - Sa az - Cp wa we
-        np.divide(wa, vs, out=t1)
-        np.tanh(t1, out=t1)
-        if stribeck:  # (C + S exp(-(w/ss)^2)) tanh(w/vs)
-            np.divide(wa, ss, out=t2)
-            t2 *= t2
-            np.negative(t2, out=t2)
-            np.exp(t2, out=t2)
-            t2 *= Sta
-            t2 += Ca
-            t1 *= t2
-        else:
-            t1 *= Ca
+        # az: Fa - Da wa - friction(wa) - Sa az - Cp wa we
+        friction(wa, Ca, Sta)
         np.multiply(Da, wa, out=aa)
         np.subtract(Fa, aa, out=aa)
         aa -= t1
@@ -505,19 +510,8 @@ def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
         np.multiply(wa, we, out=t1)
         t1 *= Cp
         aa -= t1
-        # el: Fe - De we - Ce tanh(we/vs) - G cos(el) + coupling wa^2 sin(el) cos(el)
-        np.divide(we, vs, out=t1)
-        np.tanh(t1, out=t1)
-        if stribeck:
-            np.divide(we, ss, out=t2)
-            t2 *= t2
-            np.negative(t2, out=t2)
-            np.exp(t2, out=t2)
-            t2 *= Ste
-            t2 += Ce
-            t1 *= t2
-        else:
-            t1 *= Ce
+        # el: Fe - De we - friction(we) - G cos(el) + coupling wa^2 sin(el) cos(el)
+        friction(we, Ce, Ste)
         np.multiply(De, we, out=ae)
         np.subtract(Fe, ae, out=ae)
         ae -= t1
