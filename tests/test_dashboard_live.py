@@ -22,6 +22,16 @@ ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "configs" / "pedestal-sim.toml"
 
 
+def stop_run(proc: subprocess.Popen) -> None:
+    """End a `corral run` subprocess as an operator would (Ctrl-C), killing it if it hangs."""
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGINT)
+        try:
+            proc.wait(10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+
+
 @pytest.fixture
 def live_run(tmp_path):
     """A simulated real-time run, armed at start, with a spike at 2 s (a `jump` trip)."""
@@ -39,12 +49,7 @@ def live_run(tmp_path):
             pytest.fail(f"corral run did not start: {proc.stderr.read()}")
         time.sleep(0.05)
     yield sock
-    if proc.poll() is None:
-        proc.send_signal(signal.SIGINT)
-        try:
-            proc.wait(10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+    stop_run(proc)
 
 
 async def wait_for(pilot, predicate, timeout=20.0):
@@ -146,9 +151,4 @@ def test_dashboard_follows_a_rig_over_mqtt(tmp_path, mosquitto):  # noqa: F811
                     assert await wait_for(pilot, lambda: app.latest.get("mode") == "stopped")
         asyncio.run(run())
     finally:
-        if proc.poll() is None:
-            proc.send_signal(signal.SIGINT)
-            try:
-                proc.wait(10)
-            except subprocess.TimeoutExpired:
-                proc.kill()
+        stop_run(proc)
