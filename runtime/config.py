@@ -209,6 +209,7 @@ class Config:
         raw = copy.deepcopy(self.raw)
         for item in overrides:
             apply_override(raw, item)
+        apply_aliases(raw)
         return Config(raw=raw, path=self.path, overrides=[*self.overrides, *overrides])
 
 
@@ -226,6 +227,34 @@ def _as_float_array(key: str, value: Any) -> NDArray[np.float64]:
     if not np.all(np.isfinite(arr)):
         raise ConfigError(key, "contains a non-finite number.", "use finite numbers only.")
     return arr
+
+
+KEY_ALIASES = {"watchdog.saturation_time": "watchdog.saturation_s"}
+"""Other names a key is accepted under (old or brief spellings) -> the name every module reads."""
+
+
+def apply_aliases(raw: dict[str, Any]) -> None:
+    """Move values given under an alias to the key the modules read, in place.
+
+    Done once here so the live watchdog, the sweep and the replay all see the same
+    value whichever spelling the user wrote. Both spellings at once is refused.
+    """
+    for alias, key in KEY_ALIASES.items():
+        *a_path, a_leaf = alias.split(".")
+        node = raw
+        for part in a_path:
+            node = node.get(part) if isinstance(node, dict) else None
+            if node is None:
+                break
+        if not isinstance(node, dict) or a_leaf not in node:
+            continue
+        *k_path, k_leaf = key.split(".")
+        if a_path != k_path:
+            raise NotImplementedError("aliases move keys within one table")
+        if k_leaf in node and node[k_leaf] != node[a_leaf]:
+            raise ConfigError(alias, f"and {key} are the same setting with different values.",
+                              f"keep only {key}.")
+        node[k_leaf] = node.pop(a_leaf)
 
 
 def parse_value(text: str) -> Any:
@@ -279,6 +308,7 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
         raise ConfigError(str(path), f"is not valid TOML ({exc}).",
                           "fix the syntax at the line named.") from None
     check_sections(raw, str(path))
+    apply_aliases(raw)
     cfg = Config(raw=raw, path=p)
     if overrides:
         merged = cfg.with_overrides(overrides)

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from runtime.config import Config, ConfigError, check_sections
+from runtime.config import KEY_ALIASES, Config, ConfigError, check_sections
 
 Array = NDArray[np.float64]
 
@@ -39,7 +39,6 @@ MODES = ("idle", "settling", "engaged", "fallback", "stopped")  # runtime.superv
 ENGAGED = MODES.index("engaged")
 
 #: Override keys accepted under another name (the first is what the watchdog reads).
-KEY_ALIASES = {"watchdog.saturation_time": "watchdog.saturation_s"}
 
 #: Rules a recording has no signal for: they depend on the link and the host
 #: clock, which neither the run file nor the simulated replay carries.
@@ -214,7 +213,8 @@ def read_recording(path: str | Path) -> Recording:
 
 
 def config_with_overrides(rec: Recording, overrides: list[str]) -> tuple[Config, list[str]]:
-    """The recorded config with `key=value` overrides applied (aliases resolved)."""
+    """The recorded config with `key=value` overrides applied, and the overrides as
+    applied (aliases written under the key the modules read, `runtime.config.KEY_ALIASES`)."""
     items = []
     for item in overrides:
         key, sep, value = item.partition("=")

@@ -7,7 +7,7 @@ watchdog rules a simulation can see (contract rule ids): ``margin``
 (ratio >= watchdog.margin_trip), ``clamp`` (phi_d clamp engaged, ratio >=
 1 - clamp_margin; ratio >= 1 for the standard law), ``nonfinite`` and
 ``saturation`` (an input beyond its limit longer than watchdog.saturation_s,
-the live watchdog's key; watchdog.saturation_time is read as an alias),
+the live watchdog's key; runtime.config maps watchdog.saturation_time onto it),
 plus ``diverged`` (true state beyond sweep.divergence_factor x
 design.state_range, or non-finite). Each plant ends *inside* (no rule fired),
 *tripped* (first rule by time) or *diverged*. `run_grid` repeats the sweep
@@ -143,9 +143,7 @@ class SweepSettings:
             substeps=int(cfg.number("sweep.substeps", default_substeps(cfg), minimum=1,
                                     maximum=100)),
             margin_trip=cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0),
-            saturation_time=cfg.number("watchdog.saturation_s", cfg.number(
-                "watchdog.saturation_time", 0.5, positive=True, unit="s"), positive=True,
-                unit="s"),
+            saturation_time=cfg.number("watchdog.saturation_s", 0.5, positive=True, unit="s"),
             divergence_factor=cfg.number("sweep.divergence_factor", 10.0, minimum=1.0),
             engine=eng,
         )

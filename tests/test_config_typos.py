@@ -47,3 +47,19 @@ def test_faults_are_a_list_of_tables_and_load(tmp_path):
     with pytest.raises(ConfigError) as err:
         load_config(bad)
     assert err.value.field == "faults" and "list of tables" in str(err.value)
+
+
+def test_an_alias_reaches_every_reader_under_the_one_key():
+    """watchdog.saturation_time (the brief's spelling) lands on watchdog.saturation_s,
+    which the live watchdog, the sweep and the replay all read."""
+    cfg = load_config(DEMO, ["watchdog.saturation_time=0.2"])
+    assert cfg.get("watchdog.saturation_s") == 0.2
+    assert cfg.get("watchdog.saturation_time", None) is None
+    from runtime.watchdog import Watchdog
+
+    wd = Watchdog.from_config(cfg, 0.001, 0.02)
+    rules = {r["rule"]: r for r in wd.settings()}
+    assert rules["saturation"]["threshold"] == 0.2
+    with pytest.raises(ConfigError) as err:
+        load_config(DEMO, ["watchdog.saturation_time=0.2", "watchdog.saturation_s=0.3"])
+    assert err.value.field == "watchdog.saturation_time"
