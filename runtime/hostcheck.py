@@ -515,7 +515,8 @@ def explain_trip(rule: str, value: Any, threshold: Any, period: float | None,
     elif rule == "overrun":
         if v is None or thr is None:
             return None
-        text = (f"{v:.0f} deadlines missed in the last {window or '?'} ticks; limit "
+        text = (f"{v:.0f} deadline{'' if v == 1 else 's'} missed in the last {window or '?'} "
+                f"ticks; limit "
                 f"{math.ceil(thr - 1e-9):d}")
     elif rule == "link_loss":
         if thr is None:
@@ -542,7 +543,8 @@ def _cause(rule: str, host: Mapping[str, Any] | None, loop: Mapping[str, Any] | 
             bits.append(f"this run: lateness p99 {p99:.0f} us"
                         + (f", max {mx / 1e3:.2f} ms" if mx is not None and math.isfinite(mx)
                            else "")
-                        + (f", {miss} deadline misses" if miss is not None else ""))
+                        + (f", {miss} deadline miss{'' if miss == 1 else 'es'}"
+                           if miss is not None else ""))
     host_fine = False
     if host:
         stall = _num(host.get("worst_stall_ms")) or 0.0
