@@ -29,6 +29,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     common_config_args(parser)
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, metavar="S",
                         help=f"how long to measure (default {DEFAULT_SECONDS:g} s)")
+    parser.add_argument("--link", default=None, metavar="SPEC",
+                        help="judge for this link instead of rig.link (a real link is "
+                             "rig-clocked: host stalls age its samples and the stale rule "
+                             "counts)")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.epilog = "exit status: 0 the host can hold the period, 1 it cannot, 2 bad input"
 
@@ -66,7 +70,7 @@ def main(args: argparse.Namespace) -> int:
     print(f"corral hostcheck: measuring this computer's timing for {args.seconds:g} s at "
           f"{period * 1e3:g} ms ({1 / period:g} Hz) ...", file=sys.stderr, flush=True)
     t0 = time.monotonic()
-    res = run_hostcheck(cfg, args.seconds, progress=Progress())
+    res = run_hostcheck(cfg, args.seconds, progress=Progress(), link=args.link)
     res["wall_seconds"] = time.monotonic() - t0
     if args.json:
         print(json.dumps(res, indent=2))

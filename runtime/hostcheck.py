@@ -260,8 +260,8 @@ def _nice_period(seconds: float) -> float:
     return 10.0 ** (exp + 1)
 
 
-def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True
-            ) -> dict[str, Any]:
+def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
+            rig_clocked: bool = True) -> dict[str, Any]:
     """Can this host hold the period with these thresholds? A pure function of the figures.
 
     `fig` holds the measured ``lateness_p50_us``, ``lateness_p99_us``,
@@ -270,6 +270,9 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True
     (``sched_fifo_possible``, ``rlimit_rtprio``, ``cap_sys_nice``, ``root``),
     ``memlock`` (``mlockall_possible``, ``rlimit_bytes``), ``governor`` (cpu -> name),
     ``load_1min`` and ``cpus``. `loop_realtime` is the config's ``loop.realtime``.
+    `rig_clocked` is False for the in-process simulated rig: its samples carry the
+    loop's own nominal time, so a host stall does not age them and only the overrun
+    rule judges the host (the stale budget is then a note for a real rig).
 
     Returns ``ok``, ``problems`` (why not, empty when ok), ``advice`` (what to change,
     and notes that do not decide the verdict), ``predicted_misses_per_window``,
@@ -287,8 +290,10 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True
     limit = th.overrun_misses
     problems: list[str] = []
     advice: list[str] = []
-    stall_bad = p99_s > budget or stall_s > budget
-    if p99_s > budget:
+    stall_bad = rig_clocked and (p99_s > budget or stall_s > budget)
+    if not rig_clocked:
+        pass
+    elif p99_s > budget:
         problems.append(
             f"timer lateness p99 {_ms(p99_s)} exceeds the stall budget of the stale rule, "
             f"{_ms(budget)} ({th.stale_periods:g} - 0.5 periods of {_ms(P)}; the rule trips "
@@ -310,6 +315,11 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True
             f"overrun rule trips at {limit:g} in {th.overrun_window} ticks")
     ok = not problems
 
+    if not rig_clocked and max(p99_s, stall_s) > budget:
+        advice.append(
+            f"on a real rig at this period the stale rule would see the {_ms(max(p99_s, stall_s))}"
+            f" stall (budget {_ms(budget)}): the simulated rig does not age its samples, a "
+            "device does")
     rights = fig.get("realtime_rights") or {}
     realtime = bool(fig.get("realtime"))
     if not ok:
@@ -382,18 +392,23 @@ def _lim(v: Any, unit: str = "") -> str:
 # ---------------------------------------------------------------------------
 
 def run_hostcheck(cfg: Any, seconds: float | None = None,
-                  progress: Callable[[float, float], None] | None = None) -> dict[str, Any]:
-    """Measure at the config's period, read the host's facts, judge: one result map."""
+                  progress: Callable[[float, float], None] | None = None,
+                  link: str | None = None) -> dict[str, Any]:
+    """Measure at the config's period, read the host's facts, judge: one result map.
+
+    `link` is the run's link spec when it differs from ``rig.link`` (``--link``)."""
     th = thresholds_from_config(cfg)
     secs = float(seconds if seconds is not None else DEFAULT_SECONDS)
     loop_rt = bool(cfg.flag("loop.realtime", True))
+    rig_clocked = str(link or cfg.get("rig.link", "sim")).split(":", 1)[0] != "sim"
     facts = host_facts()
     fig = measure(th.period_s, secs, spin_us=float(cfg.number("loop.spin_us", 200.0,
                                                                  minimum=0.0)),
                   realtime=loop_rt, progress=progress)
     fig.update(facts)
-    v = verdict(fig, th, loop_realtime=loop_rt)
+    v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked)
     return {"ok": v["ok"], "period_s": th.period_s, "seconds": secs,
+            "link": "rig-clocked" if rig_clocked else "simulated (in-process)",
             "lateness_p50_us": fig["lateness_p50_us"], "lateness_p99_us": fig["lateness_p99_us"],
             "lateness_max_us": fig["lateness_max_us"], "worst_stall_ms": fig["worst_stall_ms"],
             "misses": fig["misses"], "ticks": fig["ticks"],
@@ -422,14 +437,16 @@ def report_lines(res: Mapping[str, Any], name: str = "") -> list[str]:
         f"{res['lateness_p50_us']:.0f} us, p99 {res['lateness_p99_us']:.0f} us; worst stall "
         f"{res['worst_stall_ms']:.2f} ms; {res['misses']} deadline "
         + ("miss" if res["misses"] == 1 else "misses"))
-    if th:
+    if th and not str(res.get("link", "")).startswith("simulated"):
         lines.append(
             f"  stale rule: trips at a sample {th['stale_limit_ms']:.2f} ms old "
             f"({th['stale_periods']:g} + 0.5 periods), so stalls up to "
             f"{th['stall_budget_ms']:.2f} ms pass")
+    if th:
         lines.append(
             f"  overrun rule: trips at {th['overrun_misses']:g} misses in "
             f"{th['overrun_window']} ticks; predicted {res['predicted_misses_per_window']:.1f}")
+    lines.append(f"  link: {res.get('link', '?')}")
     lines.append(f"  real-time: {res.get('clock') or 'not asked (loop.realtime = false)'}")
     gov = res.get("governor")
     gov_text = (", ".join(sorted(set(gov.values()))) if gov else "not exposed by this kernel")
@@ -458,7 +475,7 @@ def summary_line(res: Mapping[str, Any]) -> str:
     return text
 
 
-def pre_arm_check(cfg: Any, out: Any) -> dict[str, Any] | None:
+def pre_arm_check(cfg: Any, out: Any, link: str | None = None) -> dict[str, Any] | None:
     """The host check `corral run` does before a real rig may be armed (``loop.hostcheck_s``
     seconds, default `DEFAULT_SECONDS`; 0 skips it). Progress and the verdict go to `out`.
     The verdict informs; it does not refuse the arm."""
@@ -467,7 +484,7 @@ def pre_arm_check(cfg: Any, out: Any) -> dict[str, Any] | None:
         return None
     print(f"corral: host check: measuring this computer's timing for {secs:g} s "
           "(loop.hostcheck_s; 0 skips it)", file=out, flush=True)
-    res = run_hostcheck(cfg, secs)
+    res = run_hostcheck(cfg, secs, link=link)
     print(f"corral: {summary_line(res)}", file=out, flush=True)
     for a in res["problems"]:
         print(f"corral:   problem: {a}", file=out, flush=True)

@@ -929,7 +929,8 @@ class Runner:
                               "drop --fault and [[faults]] for a real rig.")
         if settings.preflight and not self.simulated and settings.hostcheck is None:
             # Before the logs open, so the result goes into their headers.
-            settings.hostcheck = pre_arm_check(cfg, settings.console or sys.stderr)
+            settings.hostcheck = pre_arm_check(cfg, settings.console or sys.stderr,
+                                               settings.link)
         self.log_dir = Path(str(cfg.get("log.dir", "runs")))
         try:
             self.log_dir.mkdir(parents=True, exist_ok=True)

@@ -120,6 +120,16 @@ def test_no_realtime_rights_is_named_in_the_advice():
     assert any("loop.realtime = false" in a for a in off["advice"])
 
 
+def test_the_simulated_rig_is_judged_on_the_overrun_rule_only():
+    # The in-process rig's samples carry the loop's nominal time: a 4 ms stall does not
+    # age them (stale cannot trip), and 4 misses at once stay under the overrun limit.
+    fig = {**QUIET, "worst_stall_ms": 4.0}
+    assert verdict(fig, TH_1KHZ)["ok"] is False
+    sim = verdict(fig, TH_1KHZ, rig_clocked=False)
+    assert sim["ok"] is True
+    assert any("a device does" in a for a in sim["advice"])
+
+
 def test_a_busy_host_governor_and_memory_locking_are_advice():
     fig = {**QUIET, "load_1min": 5.5, "cpus": 2, "governor": {"cpu0": "powersave"},
            "memlock": {"mlockall_possible": False, "rlimit_bytes": 8 * 1024 * 1024}}
@@ -211,10 +221,14 @@ def test_hostcheck_json_keys_and_types(corral, tmp_path):
 
 
 def test_hostcheck_text_report(corral):
-    res = corral("hostcheck", DEMO, "--seconds", "0.3", "--set", "loop.period=0.002")
+    res = corral("hostcheck", DEMO, "--seconds", "0.3", "--set", "loop.period=0.002",
+                 "--link", "serial:/dev/ttyUSB0")
     assert res.code in (0, 1), res.stderr
     assert "period 2.0 ms (500 Hz)" in res.stdout
+    assert "link: rig-clocked" in res.stdout
     assert "stale rule: trips at a sample 7.00 ms old" in res.stdout  # (3 + 0.5) x 2 ms
+    sim = corral("hostcheck", DEMO, "--seconds", "0.3")
+    assert "link: simulated" in sim.stdout and "stale rule" not in sim.stdout
 
 
 @pytest.mark.parametrize("args, field", [
