@@ -91,7 +91,7 @@ def main() -> int:
     base = rows[0][1]["lateness_p99_us"]
     if base > 0:
         print("p99 against the no-hog SCHED_FIFO case (same run): " + ", ".join(
-            f"{case}: {fig['lateness_p99_us'] / base:.1f}x" for case, fig, _ in rows[1:]))
+            f"{case}: {fig['lateness_p99_us'] / base:.2g}x" for case, fig, _ in rows[1:]))
     return 0
 
 
