@@ -552,35 +552,37 @@ def explain_trip(rule: str, value: Any, threshold: Any, period: float | None,
 
 def _cause(rule: str, host: Mapping[str, Any] | None, loop: Mapping[str, Any] | None,
            P: float | None, thr: float | None) -> str:
+    """'Likely cause: ... . This run: ... . Host check: ... . <what to do>.'"""
     bits = []
     if loop:
         p99, mx = _num(loop.get("lateness_p99_us")), _num(loop.get("lateness_max_us"))
         miss = loop.get("deadline_misses")
         if p99 is not None and math.isfinite(p99):
-            bits.append(f"this run: lateness p99 {p99:.0f} us"
+            bits.append(f"This run: lateness p99 {p99:.0f} us"
                         + (f", max {mx / 1e3:.2f} ms" if mx is not None and math.isfinite(mx)
                            else "")
                         + (f", {miss} deadline miss{'' if miss == 1 else 'es'}"
-                           if miss is not None else ""))
+                           if miss is not None else "") + ".")
     host_fine = False
     if host:
         stall = _num(host.get("worst_stall_ms")) or 0.0
         p99h = _num(host.get("lateness_p99_us")) or 0.0
-        bits.append(f"host check: lateness p99 {p99h:.0f} us, worst stall {stall:.2f} ms, "
+        bits.append(f"Host check before arming: lateness p99 {p99h:.0f} us, worst stall "
+                    f"{stall:.2f} ms, "
                     + ("SCHED_FIFO" if host.get("realtime") else "normal priority")
-                    + ("" if host.get("ok") else ", NOT OK"))
+                    + (", OK." if host.get("ok") else ", NOT OK."))
         budget = (host.get("thresholds") or {}).get("stall_budget_ms")
         host_fine = bool(host.get("ok")) and (budget is None or stall < 0.5 * float(budget))
-    figures = f" ({'; '.join(bits)})" if bits else ""
+    figures = "".join(f" {b}" for b in bits)
+    if rule == "stale" and host_fine:
+        return (f"Likely cause: the link or the device; the host check found this computer "
+                f"quiet enough.{figures} If it has got busier since, `corral hostcheck CONFIG` "
+                "tells.")
     if rule in ("stale", "overrun"):
-        if host_fine and rule == "stale":
-            return (f"Likely cause: the link or the device{figures}: the host check found this "
-                    "computer quiet enough; if it has got busier since, `corral hostcheck "
-                    "CONFIG` tells")
         return (f"Likely cause: this computer held the loop off (other busy or real-time "
-                f"processes){figures}; measure it with `corral hostcheck CONFIG`")
-    return (f"Likely cause: the link or the device, or this computer holding the reader off"
-            f"{figures}; `corral hostcheck CONFIG` measures the computer")
+                f"processes).{figures} Measure it with `corral hostcheck CONFIG`.")
+    return (f"Likely cause: the link or the device, or this computer holding the reader off."
+            f"{figures} `corral hostcheck CONFIG` measures the computer.")
 
 
 def explain_from_header(rule: str, value: Any, threshold: Any, header: Mapping[str, Any],

@@ -171,9 +171,9 @@ def test_the_host_check_figures_are_named_in_the_explanation():
             "thresholds": {"stall_budget_ms": 5.0}}
     loop = {"lateness_p99_us": 250.0, "lateness_max_us": 9400.0, "deadline_misses": 39}
     text = explain_trip("stale", 0.0094, 0.007, 0.002, host=host, loop=loop)
-    assert "host check: lateness p99 310 us, worst stall 9.10 ms, normal priority, NOT OK" \
-        in text
-    assert "this run: lateness p99 250 us, max 9.40 ms, 39 deadline misses" in text
+    assert ("Host check before arming: lateness p99 310 us, worst stall 9.10 ms, normal "
+            "priority, NOT OK.") in text
+    assert "This run: lateness p99 250 us, max 9.40 ms, 39 deadline misses." in text
     # A quiet host (stalls far below the budget) points at the link or the device instead.
     quiet = {**host, "ok": True, "worst_stall_ms": 0.5, "realtime": True}
     assert "Likely cause: the link or the device" in explain_trip("stale", 0.0094, 0.007,
