@@ -313,6 +313,9 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
         problems.append(
             f"one stall of {_ms(stall_s)} costs about {burst:.0f} deadline misses at once; the "
             f"overrun rule trips at {limit:g} in {th.overrun_window} ticks")
+    if ticks <= 0:
+        problems.append("no tick was measured: the clock did not run (give --seconds of at "
+                        "least a few periods)")
     ok = not problems
 
     if not rig_clocked and max(p99_s, stall_s) > budget:

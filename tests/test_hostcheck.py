@@ -107,6 +107,10 @@ def test_a_steady_miss_rate_near_the_overrun_limit_is_not_ok():
     assert any("13.3 per 1000 ticks" in p for p in v["problems"])
 
 
+def test_no_measured_tick_is_not_ok():
+    assert verdict({**QUIET, "ticks": 0, "misses": 0}, TH_1KHZ)["ok"] is False
+
+
 def test_no_realtime_rights_is_named_in_the_advice():
     fig = {**QUIET, "realtime": False,
            "realtime_rights": {"sched_fifo_possible": False, "rlimit_rtprio": 0,
