@@ -44,7 +44,11 @@ from numpy.typing import ArrayLike, NDArray
 
 from runtime.design import Design
 from runtime.law import LawState
+from runtime.watchdog import over
 from sim_rigs.kernel import plant_measure, plant_step
+
+_over = numba.njit(cache=True, inline="always")(over)
+"""The watchdog's one rule comparison, compiled for the sweep kernel."""
 
 Array = NDArray[np.float64]
 
@@ -862,11 +866,11 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
                 ratio = o[O_RATIO]
                 if ratio > mr:
                     mr = ratio
-                if fb[R_MARGIN] < 0 and ratio >= levels[0]:
+                if fb[R_MARGIN] < 0 and _over(ratio, levels[0]):
                     fb[R_MARGIN] = k
-                if fb[R_CLAMP] < 0 and ratio >= levels[1]:
+                if fb[R_CLAMP] < 0 and _over(ratio, levels[1]):
                     fb[R_CLAMP] = k
-                if fb[R_BREACH] < 0 and ratio >= levels[2]:
+                if fb[R_BREACH] < 0 and _over(ratio, levels[2]):
                     fb[R_BREACH] = k
                 fin = math.isfinite(ratio)
                 sat = False
@@ -874,8 +878,8 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
                     ur = o[OUT_HEADER + m + j]
                     if not math.isfinite(ur):
                         fin = False
-                    run[j] = run[j] + 1 if abs(ur) >= fc[oU + j] else 0
-                    if run[j] >= sat_ticks:
+                    run[j] = run[j] + 1 if _over(abs(ur), fc[oU + j]) else 0
+                    if _over(run[j] + 1e-9, sat_ticks):
                         sat = True
                     ubuf[us, j] = o[OUT_HEADER + j]
                 if fb[R_NONFINITE] < 0 and not fin:
