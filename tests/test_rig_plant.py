@@ -85,7 +85,8 @@ def test_pitch_stand_matches_solve_ivp():
 
 ALL_KINDS = {
     "name": "every-term",
-    "state": [{"name": "a", "unit": "rad", "limit": 2.0}, {"name": "b", "unit": "rad", "limit": 2.0},
+    "state": [{"name": "a", "unit": "rad", "limit": 2.0},
+              {"name": "b", "unit": "rad", "limit": 2.0},
               {"name": "a_rate", "unit": "rad/s", "limit": 5.0},
               {"name": "b_rate", "unit": "rad/s", "limit": 5.0}],
     "input": [{"name": "u1", "unit": "V", "limit": 5.0, "effectiveness": "lam1"},
