@@ -283,7 +283,8 @@ def _over(value: Any, threshold: Any) -> Any:
     """`runtime.watchdog.over` element by element."""
     from runtime.watchdog import over
 
-    return np.vectorize(over, otypes=[bool])(value, threshold)
+    with np.errstate(invalid="ignore"):
+        return np.vectorize(over, otypes=[bool])(value, threshold)
 
 
 class _Rules:
