@@ -100,6 +100,13 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                            limits=np.asarray(design.rig.input_limits, dtype=float))
 
 
+def weight_norm_limit(cfg: Config) -> float:
+    """||W||_F beyond which a dry run or a sweep calls the weights diverged:
+    `sweep.weight_norm_limit`, default the watchdog's `watchdog.weight_norm_max` (100)."""
+    return float(cfg.number("sweep.weight_norm_limit", cfg.number(
+        "watchdog.weight_norm_max", 100.0, positive=True), positive=True))
+
+
 ENGINES = ("fast", "reference")
 MAX_TICKS = 3_000_000  # 50 min at 1 kHz
 
@@ -174,6 +181,13 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
 
     ratio = cols["ratio"]
     breach = np.flatnonzero(~(ratio < 1.0))
+    # divergence, as the sweep counts it: the true state beyond sweep.divergence_factor x
+    # design.state_range (or non-finite), the weight norm non-finite or beyond
+    # sweep.weight_norm_limit (default: the watchdog's weight_norm_max)
+    w_limit = weight_norm_limit(cfg)
+    bound = cfg.number("sweep.divergence_factor", 10.0, minimum=1.0) * design.state_range
+    x_bad = np.flatnonzero(~np.all(np.abs(cols["x"]) <= bound, axis=1))
+    w_bad = np.flatnonzero(~(cols["w_norm"] <= w_limit))
     last5 = t >= t[-1] - 5.0
     out_idx = np.argmax(rig.C != 0, axis=1)
     pointing = cols["x"][:, out_idx] - cmd
@@ -185,6 +199,11 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
         "breach_time": float(t[breach[0]]) if breach.size else None,
         "rms_error_final": float(np.sqrt(np.mean(np.sum(pointing[last5] ** 2, axis=1)))),
         "weight_norm": float(cols["w_norm"][-1]),
+        "max_weight_norm": float(np.max(cols["w_norm"])),
+        "weight_norm_limit": w_limit,
+        "weights_diverged_time": float(t[w_bad[0]]) if w_bad.size else None,
+        "states_diverged_time": float(t[x_bad[0]]) if x_bad.size else None,
+        "diverged": bool(w_bad.size or x_bad.size),
         "ticks": ticks,
         "sim_seconds": float(ticks * Ts),
         "wall_seconds": wall,

@@ -60,6 +60,7 @@ from numpy.typing import NDArray
 from runtime.commands import schedule_from_config, tracked_names
 from runtime.config import Config, ConfigError, check_sections
 from runtime.design import Design, design_from_config
+from runtime.dryrun import weight_norm_limit
 
 Array = NDArray[np.float64]
 Progress = Callable[[int, int], None]
@@ -135,8 +136,7 @@ class SweepSettings:
             margin_trip=cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0),
             saturation_time=cfg.number("watchdog.saturation_s", 0.5, positive=True, unit="s"),
             divergence_factor=cfg.number("sweep.divergence_factor", 10.0, minimum=1.0),
-            weight_norm_limit=cfg.number("sweep.weight_norm_limit", cfg.number(
-                "watchdog.weight_norm_max", 100.0, positive=True), positive=True),
+            weight_norm_limit=weight_norm_limit(cfg),
             engine=eng,
         )
 
