@@ -388,3 +388,23 @@ th = { noise = "th_noise" }
 [log]
 dir = "LOGDIR"
 """
+
+
+def test_dry_run_and_sweep_flag_weights_past_the_limit():
+    # The demo's weights grow to a norm of about 3; a limit of 0.5 must be flagged by both,
+    # counted as diverged by the sweep, while the states stay well inside their range.
+    from runtime.sweep import run_sweep
+
+    cfg = load_config(ROOT / "configs" / "pedestal-sim.toml",
+                      ["commands.duration=3.0", "sweep.weight_norm_limit=0.5"])
+    res = dry_run(cfg)
+    s = res.summary
+    assert s["diverged"] and s["states_diverged_time"] is None
+    first = float(res.t[np.argmax(res.columns["w_norm"] > 0.5)])
+    assert s["weights_diverged_time"] == pytest.approx(first)
+    sw = run_sweep(cfg, plants=4, duration=3.0, workers=1).summary
+    assert sw["diverged_weights_fraction"] == 1.0 and sw["diverged_states_fraction"] == 0.0
+    assert sw["diverged_fraction"] == 1.0
+    ok = run_sweep(load_config(ROOT / "configs" / "pedestal-sim.toml"), plants=4, duration=3.0,
+                   workers=1).summary
+    assert ok["diverged_weights_fraction"] == 0.0
