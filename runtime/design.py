@@ -19,7 +19,7 @@ import scipy.linalg as sla
 from numpy.typing import NDArray
 
 from runtime.basis import Basis, basis_from_config
-from runtime.config import Config, ConfigError
+from runtime.config import Config, ConfigError, rig_name
 
 Array = NDArray[np.float64]
 
@@ -129,8 +129,8 @@ class RigModel:
 
 def rig_model(cfg: Config) -> RigModel:
     """The nominal model from `[rig]`: a named simulated rig or explicit A, B, C."""
-    sim = cfg.get("rig.sim", None)
-    name = str(cfg.get("rig.name", sim or "rig"))
+    sim = cfg.get("rig.sim")
+    name = rig_name(cfg)
     if sim is not None:
         from sim_rigs import RIGS
 
@@ -153,7 +153,7 @@ def rig_model(cfg: Config) -> RigModel:
     units = tuple(cfg.strings("rig.state_units", n, ["1"] * n))
     inputs = tuple(cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)]))
     in_units = tuple(cfg.strings("rig.input_units", m, ["1"] * m))
-    limits = cfg.vector("rig.input_limits", m, positive=True)
+    limits = cfg.vector("rig.input_limits", m)
     return RigModel(name, None, A, B, C, states, units, inputs, in_units, limits)
 
 
@@ -275,8 +275,8 @@ def design_from_config(cfg: Config) -> Design:
             "check that every state is reachable from some input (B and A's coupling).",
         )
     Q = cfg.weight_matrix("design.Q", n)
-    R_u = cfg.weight_matrix("design.R_u", m, 1.0)
-    R = cfg.weight_matrix("design.R", n, 1.0)
+    R_u = cfg.weight_matrix("design.R_u", m)
+    R = cfg.weight_matrix("design.R", n)
     K1, _X, poles = lqr(A, B, Q, R_u)
     A_r = A - B @ K1
     if np.max(np.linalg.eigvals(A_r).real) >= 0:
@@ -293,9 +293,9 @@ def design_from_config(cfg: Config) -> Design:
                           "be held at a command.", "track outputs the inputs can move.") from None
     B_r = B @ K2
     P = lyapunov(A_r, R)
-    limits = cfg.vector("design.limits", n, positive=True)
+    limits = cfg.vector("design.limits", n)
     eps_lim, bind, _env = eps_from_limits(P, limits)
-    eps_cfg = cfg.get("adaptation.eps", "from_limits")
+    eps_cfg = cfg.get("adaptation.eps")
     if eps_cfg == "from_limits":
         eps = eps_lim
     else:
@@ -303,21 +303,21 @@ def design_from_config(cfg: Config) -> Design:
     envelope = eps * np.sqrt(np.diag(np.linalg.inv(P)))
     c_bar = float(np.min(np.linalg.eigvalsh(R)) / np.max(np.linalg.eigvalsh(P)))
 
-    Ts = cfg.number("loop.period", positive=True, maximum=1.0, unit="s")
+    Ts = cfg.number("loop.period")
     A_d, B_d = zoh(A_r, B_r, Ts)
 
     basis = basis_from_config(cfg, rig.states)
-    law = cfg.choice("adaptation.law", ("barrier", "standard"), "barrier")
+    law = cfg.choice("adaptation.law")
     from runtime.barrier import BARRIERS
 
-    barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS), "rational")
-    augment = cfg.flag("adaptation.unknown_effectiveness", False)
+    barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS))
+    augment = cfg.flag("adaptation.unknown_effectiveness")
     n_reg = basis.size + (m if augment else 0)
-    gamma = cfg.vector("adaptation.gamma", n_reg, positive=True)
-    clamp_margin = cfg.number("adaptation.clamp_margin", 0.02, minimum=1e-6, maximum=0.5)
-    cap = cfg.number("adaptation.step_gain_cap", 1.0, positive=True)
+    gamma = cfg.vector("adaptation.gamma", n_reg)
+    clamp_margin = cfg.number("adaptation.clamp_margin")
+    cap = cfg.number("adaptation.step_gain_cap")
 
-    state_range = cfg.vector("design.state_range", n, positive=True)
+    state_range = cfg.vector("design.state_range", n)
     pts = _sample_box(state_range, 2000, np.random.default_rng(1))
     sig = basis.evaluate(pts)
     sq = np.sum(sig * sig, axis=-1)
@@ -329,7 +329,7 @@ def design_from_config(cfg: Config) -> Design:
     from runtime.barrier import get_barrier
 
     bar = get_barrier(barrier)
-    trip_level = cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0)
+    trip_level = cfg.number("watchdog.margin_trip")
     phi_d_trip = float(bar.phi_d(trip_level * eps, eps)) if law == "barrier" else 1.0
     g0 = Ts * float(np.max(gamma)) * phi_d0 * regressor_bound**2 * lam_bpb
     g_trip = g0 * phi_d_trip / phi_d0
@@ -391,7 +391,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
     warnings = list(d.warnings)
     extras = dict(d.extras)
     eps_min = eps_max = d.eps
-    if cfg.get("adaptation.bound", None) is not None:
+    if cfg.has("adaptation.bound"):
         sched = schedule_from_config(cfg, d)
         eps_min = sched.minimum
         eps_max = max(sched.eps0, float(np.max(sched.values)) if sched.values else sched.eps0)
@@ -413,7 +413,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 "fits design.limits: while it is that wide the guaranteed envelope exceeds "
                 "the limits.")
     if d.basis.rbf_centres is not None and d.basis.rbf_widths is not None:
-        min_act = cfg.number("basis.rbf_min_activation", 0.3, positive=True, maximum=1.0)
+        min_act = cfg.number("basis.rbf_min_activation")
         pts = envelope_points(d, cfg, eps_max)
         cov = coverage(d.basis.rbf_centres, d.basis.rbf_widths, d.basis.rbf_scale
                        if d.basis.rbf_scale is not None else np.ones(d.rig.n), pts, min_act)
@@ -427,7 +427,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 f"{min_act:g}); worst at {worst} (activation {cov['worst_activation']:.2g}). "
                 "Widen basis.rbf_span, move basis.rbf_centre, add centres (basis.rbf_per_axis) "
                 "or widen basis.rbf_width.")
-    d_max = cfg.number("adaptation.d_max", 0.0, minimum=0.0, unit="input units")
+    d_max = cfg.number("adaptation.d_max")
     if d_max > 0:
         need = residual_eps(d.P, d.rig.B, d.c_bar, d_max)
         ok = eps_min > need

@@ -75,7 +75,7 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                           'set rig.sim = "pedestal" (the only simulated rig so far).')
     spec = RIGS[sim]
     from_config = truth is None
-    truth = dict(cfg.get("plant.truth", {})) if truth is None else truth
+    truth = dict(cfg.get("plant.truth") or {}) if truth is None else truth
     for key in truth:
         if key not in spec.truth_defaults:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
@@ -83,15 +83,14 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
         if from_config:  # a caller's truth (a fitted plant, say) is not the user's input
             check_truth_value(f"plant.truth.{key}", truth[key])
     sensors = SensorModel(
-        angle_resolution=cfg.number("plant.sensors.angle_resolution", 2 * np.pi / 2**16,
-                                    minimum=0.0, unit="rad"),
-        angle_noise=cfg.number("plant.sensors.angle_noise", 2e-5, minimum=0.0, unit="rad"),
-        rate_noise=cfg.number("plant.sensors.rate_noise", 2e-3, minimum=0.0, unit="rad/s"),
-        delay_ticks=int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0)),
+        angle_resolution=cfg.number("plant.sensors.angle_resolution"),
+        angle_noise=cfg.number("plant.sensors.angle_noise"),
+        rate_noise=cfg.number("plant.sensors.rate_noise"),
+        delay_ticks=int(cfg.number("plant.sensors.delay_ticks")),
     )
-    x0 = cfg.vector("plant.x0", design.rig.n, [0.0] * design.rig.n)
-    seed = int(cfg.number("plant.seed", 0, minimum=0))
-    substeps = int(cfg.number("plant.substeps", 4, minimum=1, maximum=100))
+    x0 = cfg.vector("plant.x0", design.rig.n)
+    seed = int(cfg.number("plant.seed"))
+    substeps = int(cfg.number("plant.substeps"))
     return Pedestal.create(truth, batch=batch, x0=x0, sensors=sensors, substeps=substeps,
                            rng=np.random.default_rng(seed))
 

@@ -289,13 +289,13 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
     """
     from sim_rigs.pedestal import TRUTH_DEFAULTS, Pedestal
 
-    sim = cfg.get("rig.sim", None)
+    sim = cfg.get("rig.sim")
     if sim != "pedestal":
         raise ConfigError("rig.sim", f"--plant fitted knows the pedestal model only (got {sim!r}).",
                           'use --plant config, or set rig.sim = "pedestal".')
     truth = {k: float(v) for k, v in TRUTH_DEFAULTS.items()}
-    truth.update({k: float(v) for k, v in dict(cfg.get("plant.truth", {})).items()})
-    ranges = dict(cfg.get("plant.ranges", {}) or {})
+    truth.update({k: float(v) for k, v in dict(cfg.get("plant.truth") or {}).items()})
+    ranges = dict(cfg.get("plant.ranges") or {})
     if names is None:
         names = [k for k in TRUTH_DEFAULTS if k in ranges] or [
             k for k in TRUTH_DEFAULTS if k not in ("a_az", "b_az", "a_el", "b_el")]
@@ -305,7 +305,7 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
                           f"use names from: {', '.join(TRUTH_DEFAULTS)}.")
 
     lo = 0
-    delay = int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0))
+    delay = int(cfg.number("plant.sensors.delay_ticks"))
     span = max(1, int(round(window_s / rec.period)))
     y = rec.y
     k = np.arange(max(lo, delay), rec.ticks - 1)
@@ -699,7 +699,7 @@ def replay(rec: Recording, overrides: list[str] | None = None,
         notes.append(f"commands after the recorded engaged stretch come from the config's "
                      f"schedule ({counts['scheduled_commands']} ticks)")
 
-    faults = rec.header.get("faults") or cfg.get("faults", None)
+    faults = rec.header.get("faults") or cfg.get("faults")
     if faults:
         notes.append("the recorded run had injected faults; the replay does not inject them, "
                      "so a trip they caused will not recur")
