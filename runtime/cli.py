@@ -26,6 +26,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "sweep": ("runtime.cmd_sweep", "run many uncertain plants, report the bound statistics"),
     "preflight": ("runtime.cmd_preflight", "go / no-go checks before arming hardware"),
     "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
+    "config": ("runtime.cmd_config", "print the resolved config: every key, its unit and source"),
 }
 
 

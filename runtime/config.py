@@ -564,3 +564,51 @@ def walk(raw: dict[str, Any], prefix: str = "") -> Iterator[tuple[str, Any]]:
             yield from walk(v, key)
         else:
             yield key, v
+
+
+def resolved(cfg: Config) -> list[dict[str, Any]]:
+    """Every declared key with the value a reader gets and where it comes from.
+
+    One dict per key, in declaration order: ``key``, ``value`` (None when unset or
+    derived), ``unit``, ``source`` ("file", "--set", "default", "derived" or "unset"),
+    ``default`` (the declared default as text) and ``doc``. Open tables list their
+    present entries; ``[plant.truth]`` also lists the simulated rig's parameters the
+    config leaves at their rig default.
+    """
+    rows: list[dict[str, Any]] = []
+
+    def row(path: str, spec: schema.Key, value: Any, source: str) -> None:
+        rows.append({"key": path, "value": value, "unit": spec.unit, "source": source,
+                     "default": spec.default_text(), "doc": spec.doc})
+
+    def one(path: str, spec: schema.Key) -> None:
+        if cfg.has(path):
+            row(path, spec, cfg.get(path), cfg.source(path))
+        elif isinstance(spec.default, schema.Derived):
+            row(path, spec, None, "derived")
+        elif spec.has_value_default:
+            row(path, spec, copy.deepcopy(spec.default), "default")
+        else:
+            row(path, spec, None, "unset")
+
+    for spec in schema.iter_keys():
+        if spec.kind == schema.TABLE:
+            continue
+        if "*" not in spec.path:
+            one(spec.path, spec)
+            continue
+        table, _, rest = spec.path.partition(".*")
+        present = cfg.get(table, {}) or {}
+        names = [n for n in present if schema.pattern_of(f"{table}.{n}") == f"{table}.*"]
+        for name in names:
+            one(f"{table}.{name}{rest}", spec)
+        rig = schema.rig_spec(cfg.raw) if table.startswith("plant.") else None
+        if rig is not None:  # parameters of the simulated rig carry their units there
+            for r in rows[len(rows) - len(names):]:
+                r["unit"] = rig.param_units.get(r["key"].rpartition(".")[2], r["unit"])
+            if table == "plant.truth":
+                for name, value in rig.truth_defaults.items():
+                    if name not in names:
+                        row(f"{table}.{name}", spec, value, "default")
+                        rows[-1]["unit"] = rig.param_units.get(name, spec.unit)
+    return rows

@@ -301,6 +301,19 @@ def design_from_config(cfg: Config) -> Design:
     else:
         eps = cfg.number("adaptation.eps", positive=True)
     envelope = eps * np.sqrt(np.diag(np.linalg.inv(P)))
+    if eps_cfg != "from_limits" and eps > eps_lim * (1 + 1e-9):
+        # The guarantee is the ellipsoid e'Pe <= eps^2; its extent on state i is
+        # eps sqrt((P^-1)_ii). Beyond design.limits the bound promises nothing the limits
+        # ask for, so the design is refused rather than run with a warning.
+        worst = int(np.argmax(envelope / limits))
+        unit = rig.state_units[worst]
+        raise ConfigError(
+            "adaptation.eps",
+            f"{eps:.4g} gives a guaranteed envelope of +-{envelope[worst]:.3g} {unit} on "
+            f"{rig.states[worst]}, beyond its limit {limits[worst]:.3g} {unit} "
+            "(design.limits).",
+            f"lower adaptation.eps to {eps_lim:.4g} or less (or \"from_limits\"), or widen "
+            f"design.limits for {rig.states[worst]}.")
     c_bar = float(np.min(np.linalg.eigvalsh(R)) / np.max(np.linalg.eigvalsh(P)))
 
     Ts = cfg.number("loop.period")
@@ -349,12 +362,6 @@ def design_from_config(cfg: Config) -> Design:
             f"near the trip level ({trip_level:.2f} eps) the per-step gain would reach "
             f"{g_trip:.3g}; the live cap {cap:.3g} limits it there, so learning stiffens "
             "less than the continuous law would."
-        )
-    if eps_cfg != "from_limits" and eps > eps_lim * (1 + 1e-9):
-        warnings.append(
-            f"adaptation.eps = {eps:.4g} is larger than the {eps_lim:.4g} that fits the "
-            f"limits; the guaranteed envelope exceeds design.limits on "
-            f"{rig.states[bind]}."
         )
     fastest = float(np.max(np.abs(poles)))
     if fastest * Ts > 0.2:

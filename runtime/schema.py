@@ -27,6 +27,7 @@ which imports this one.
 from __future__ import annotations
 
 import importlib
+import json
 import math
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -125,7 +126,7 @@ class Key:
             return f"derived: {d.how}"
         if d is OPTIONAL:
             return "not set (off)"
-        return repr(d)
+        return json.dumps(d)
 
 
 @dataclass(frozen=True)
@@ -146,7 +147,8 @@ def key(path: str, kind: str, default: Any, unit: str = "", doc: str = "",
 
 
 # ----------------------------------------------------------------- open-table names
-def _rig_spec(raw: dict[str, Any]) -> Any:
+def rig_spec(raw: dict[str, Any]) -> Any:
+    """The `sim_rigs.RigSpec` that ``rig.sim`` names, or None."""
     rig = raw.get("rig")
     sim = rig.get("sim") if isinstance(rig, dict) else None
     if not isinstance(sim, str):
@@ -158,7 +160,7 @@ def _rig_spec(raw: dict[str, Any]) -> Any:
 def _truth_names(raw: dict[str, Any]) -> tuple[str, ...] | None:
     """The truth parameters of the simulated rig `rig.sim` names (None: not resolvable here;
     the rig's own checks run when the plant is built)."""
-    spec = _rig_spec(raw)
+    spec = rig_spec(raw)
     return tuple(spec.truth_defaults) if spec is not None else None
 
 
@@ -198,7 +200,7 @@ KEYS: tuple[Key, ...] = (
     key("basis.rbf_states", NAMES, Derived("every state"), doc="states the radial grid spans"),
     key("basis.rbf_centres", MATRIX, OPTIONAL, _STATE, "explicit centres (else a grid)"),
     key("basis.rbf_per_axis", VECTOR, 5, "centres", "grid points per axis", positive=True),
-    key("basis.rbf_span", VECTOR, Required("for a grid (no rbf_centres)"), _STATE,
+    key("basis.rbf_span", VECTOR, Required("for a grid without rbf_centres"), _STATE,
         "half-width of the grid around rbf_centre", positive=True),
     key("basis.rbf_centre", VECTOR, 0.0, _STATE, "centre of the grid"),
     key("basis.rbf_width", VECTOR, Derived("the grid spacing"), _STATE, "Gaussian widths",
