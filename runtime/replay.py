@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from runtime.config import KEY_ALIASES, Config, ConfigError, check_sections
+from runtime.config import KEY_ALIASES, Config, ConfigError, check_config
 
 Array = NDArray[np.float64]
 
@@ -222,7 +222,8 @@ def config_with_overrides(rec: Recording, overrides: list[str]) -> tuple[Config,
         items.append(f"{key}{sep}{value}")
     base = Config(raw=copy.deepcopy(rec.config), path=None)
     merged = base.with_overrides(items)
-    check_sections(merged.raw, "--set")  # unknown section, or a table replaced by a value
+    # Only what the overrides touch: the recorded config was accepted when it ran.
+    check_config(merged.raw, "--set", keys=[i.partition("=")[0].strip() for i in items])
     return merged, items
 
 

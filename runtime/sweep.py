@@ -62,7 +62,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from runtime.commands import schedule_from_config, tracked_names
-from runtime.config import Config, ConfigError, check_sections
+from runtime.config import Config, ConfigError, check_config
 from runtime.design import Design, design_from_config
 
 Array = NDArray[np.float64]
@@ -934,23 +934,9 @@ def run_sweep(cfg: Config, plants: int | None = None, seed: int | None = None,
 
 # ------------------------------------------------------------------ grids
 def check_grid_keys(cfg: Config, axes: Sequence[tuple[str, list[Any]]]) -> None:
-    """Refuse a grid key the config does not set: a misspelt or unknown key would otherwise
-    be ignored by every module and the grid would show the same result in every cell."""
-    import difflib
-
-    from runtime.config import _tables, walk
-
-    existing = [k for k, _ in walk(cfg.raw)]
-    tables = set(_tables(cfg.raw))
-    for key, _vals in axes:
-        if key in existing or key in tables:
-            continue
-        close = difflib.get_close_matches(key, existing, n=1, cutoff=0.8)
-        hint = f"did you mean {close[0]}? " if close else ""
-        raise ConfigError(f"--grid {key}", "is not a key of this config, so the grid would "
-                          "not change anything.",
-                          f"{hint}grid a key the config sets (add it with --set {key}=VALUE "
-                          "first if corral reads it with a default).")
+    """Refuse a grid key the schema does not declare: a misspelt key would otherwise be
+    ignored by every module and the grid would show the same result in every cell."""
+    check_config(cfg.raw, "--grid", keys=[key for key, _vals in axes])
 
 
 def parse_grid(items: Sequence[str]) -> list[tuple[str, list[Any]]]:
@@ -993,7 +979,7 @@ def run_grid(cfg: Config, axes: Sequence[tuple[str, list[Any]]], progress: Progr
     for combo in combos:
         setting = {k: v for (k, _vals), v in zip(axes, combo, strict=True)}
         sub = cfg.with_overrides([f"{k}={_fmt(v)}" for k, v in setting.items()])
-        check_sections(sub.raw, "--grid")  # a table replaced by a value: refuse the grid
+        check_config(sub.raw, "--grid", keys=list(setting))  # a value of the wrong kind
         entry: dict[str, Any] = {"setting": setting}
         try:
             design = design_from_config(sub)
