@@ -25,7 +25,6 @@ from typing import Any
 
 from runtime.cli import UserError, common_config_args
 from runtime.config import ConfigError, load_config
-from runtime.loop import command_timeout
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -71,6 +70,7 @@ def main(args: argparse.Namespace) -> int:
     from drivers.base import LinkClosed
     from runtime.design import design_from_config
     from runtime.dryrun import plant_from_config
+    from runtime.loop import command_timeout
     from sim_rigs.device import PedestalDevice
     from sim_rigs.faults import FaultError, FaultSchedule
 

@@ -138,7 +138,7 @@ class Config:
         unit_txt = f" {unit}" if unit else ""
         if isinstance(value, bool) or not isinstance(value, int | float):
             raise ConfigError(
-                key, f"must be a number{unit_txt}, got {value!r}.", f"write e.g. {key} = 1.0"
+                key, f"must be a finite number{unit_txt}, got {value!r}.", f"write e.g. {key} = 1.0"
             )
         value = float(value)
         if not np.isfinite(value):
@@ -407,7 +407,8 @@ def check_config(raw: dict[str, Any], where: str, keys: Sequence[str] | None = N
             continue
         spec = schema.spec_for(path)
         if spec is None:
-            _refuse_unknown(raw, path, where)
+            given = [k for k in keys or () if k == path or k.startswith(path + ".")]
+            _refuse_unknown(raw, given[0] if given else path, where)
         assert spec is not None
         _check_value(cfg, path, spec, value, where)
     if keys is not None:  # an override into a value: `--set plant.truth.x.y=1`
@@ -440,6 +441,8 @@ def _candidates(raw: dict[str, Any], parent: str) -> list[str]:
 
 def _refuse_unknown(raw: dict[str, Any], path: str, where: str) -> None:
     # Report the outermost undeclared part: under a misspelt table every key is unknown.
+    # An override or grid key is named as typed, so the user sees which one was refused.
+    given = path
     parts = path.split(".")
     for i in range(1, len(parts) + 1):
         if schema.spec_for(".".join(parts[:i])) is None:
@@ -451,6 +454,9 @@ def _refuse_unknown(raw: dict[str, Any], path: str, where: str) -> None:
     if not parent:
         fix = f"did you mean [{close[0]}]?" if close else (
             f"known sections: {', '.join(SECTIONS)}.")
+        if given != path:
+            raise ConfigError(given, f"[{path}] is not a section corral knows (in {where}).",
+                              fix)
         raise ConfigError(path, f"is not a section corral knows (in {where}).", fix)
     table = schema.open_table(parent)
     what = table.what if table is not None else "key"

@@ -63,7 +63,7 @@ def test_dry_run_output_folder_that_is_a_file(tmp_path):
 
 
 @pytest.mark.parametrize("grid, words", [
-    ("nosuch.key=1,2", ("nosuch.key", "--set")),
+    ("nosuch.key=1,2", ("nosuch.key", "not a section")),
     ("adaptation.gama=1,2", ("adaptation.gama", "did you mean adaptation.gamma")),
     ("plant.truth=1,2", ("'plant.truth'", "table")),
 ])

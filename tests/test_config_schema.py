@@ -115,7 +115,7 @@ def test_a_wrong_kind_is_refused_at_load_even_if_no_command_reads_it_yet(tmp_pat
 # ---------------------------------------------------------------- typos in --set
 @pytest.mark.parametrize(("item", "field", "right"), [
     ("adaptation.gama=4", "adaptation.gama", "adaptation.gamma"),
-    ("adaptaton.gamma=4", "adaptaton", "[adaptation]"),
+    ("adaptaton.gamma=4", "adaptaton.gamma", "[adaptation]"),
     ("plant.sensors.rate_nosie=0.01", "plant.sensors.rate_nosie", "plant.sensors.rate_noise"),
     ("watchdog.rules.stale.on_delay=0.1", "watchdog.rules.stale.on_delay",
      "watchdog.rules.stale.on_delay_s"),
