@@ -466,7 +466,8 @@ def _refuse_unknown(raw: dict[str, Any], path: str, where: str) -> None:
         problem = f"is not a key corral knows (in {where})."
     if close:
         right = f"{parent}.{close[0]}"
-        fix = (f"did you mean {right}? Write --{where.lstrip('-')} {right}=VALUE." if set_fix
+        fix = (f"did you mean {right}? Write --{where.lstrip('-')} "
+               f"{right}{given[len(path):]}=VALUE." if set_fix
                else f"did you mean {right}? Rename {leaf} to {close[0]} in [{parent}].")
     else:
         known = _candidates(raw, parent)

@@ -112,7 +112,7 @@ def demo_run(tmp_path_factory) -> Path:
 
 
 @pytest.mark.parametrize("override, words", [
-    ("nosuch.x=1", ("'nosuch'", "section")),
+    ("nosuch.x=1", ("'nosuch.x'", "section")),
     ("plant.truth=1", ("'plant.truth'", "table")),
 ])
 def test_replay_refuses_overrides_that_no_module_can_use(tmp_path, demo_run, override, words):
