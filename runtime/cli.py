@@ -25,6 +25,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "watch": ("runtime.cmd_watch", "open the live dashboard on a running rig"),
     "sweep": ("runtime.cmd_sweep", "run many uncertain plants, report the bound statistics"),
     "preflight": ("runtime.cmd_preflight", "go / no-go checks before arming hardware"),
+    "hostcheck": ("runtime.cmd_hostcheck", "can this computer hold the loop's period?"),
     "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
     "config": ("runtime.cmd_config", "print the resolved config: every key, its unit and source"),
 }

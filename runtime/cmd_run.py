@@ -30,6 +30,7 @@ from pathlib import Path
 
 from runtime.cli import UserError, common_config_args
 from runtime.config import load_config
+from runtime.hostcheck import explain_from_header
 
 HARDWARE_CAUTIONS = """\
 corral: HARDWARE CAUTIONS before you arm a real rig:
@@ -194,9 +195,17 @@ def main(args: argparse.Namespace) -> int:
               f"{_us(summary['lateness_p50_us'])}, p99 {_us(summary['lateness_p99_us'])}, "
               f"{summary['deadline_misses']} deadline misses; max margin ratio "
               f"{summary['max_margin_ratio']:.3f}; {len(summary['trips'])} trip(s)")
+        header = {"period": runner.design.Ts, "config": cfg.raw,
+                  "hostcheck": summary.get("hostcheck")}
+        run_loop = {"lateness_p99_us": summary["lateness_p99_us"],
+                    "lateness_max_us": summary["lateness_max_us"],
+                    "deadline_misses": summary["deadline_misses"]}
         for t in summary["trips"]:
             print(f"  trip {t['id']}: {t['rule']} at tick {t['tick']} -> {t['action']} "
                   f"({t['detect_to_action_us']:.0f} us detect to action)")
+            why = explain_from_header(t["rule"], t["value"], t["threshold"], header, run_loop)
+            if why:
+                print(f"    {why}")
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
         if console_path is not None:
             print(f"  console:  {console_path}")

@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from runtime.cli import UserError
+from runtime.hostcheck import explain_from_header
 from runtime.records import LogReadError, Trip, find_logs, read_trip_log
 
 #: Config sections `--show` prints (when present), in this order.
@@ -254,6 +255,12 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
         + (f", t_mono {trip.t_mono:.6f} s" if isinstance(trip.t_mono, (int, float)) else ""),
         f"  first out: {trip.rule}  {fo.get('signal', '?')} = {_num(trip.value)} "
         f"vs threshold {_num(trip.threshold)}",
+    ]
+    why = explain_from_header(trip.rule, trip.value, trip.threshold, trip.header,
+                              trip.snapshot.get("loop"))
+    if why:
+        out.append(f"  why: {why}")
+    out += [
         f"  action: {trip.action}, detection to action "
         f"{_num(trip.detect_to_action_us, 3)} us",
     ]
@@ -303,7 +310,10 @@ def show_json(trip: Trip) -> dict[str, Any]:
     d = trip.summary()
     d.update({"first_out": trip.first_out, "later_rules": trip.later, "snapshot": trip.snapshot,
               "events": trip.events, "software_version": trip.software_version,
-              "capture_fields": trip.capture_fields, "capture_ticks": len(trip.capture())})
+              "capture_fields": trip.capture_fields, "capture_ticks": len(trip.capture()),
+              "explanation": explain_from_header(trip.rule, trip.value, trip.threshold,
+                                                 trip.header, trip.snapshot.get("loop")),
+              "hostcheck": trip.header.get("hostcheck")})
     return d
 
 

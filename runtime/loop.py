@@ -60,6 +60,7 @@ from runtime.config import Config, ConfigError
 from runtime.design import Design, design_from_config
 from runtime.estimator import Estimator, rate_pairs
 from runtime.fallback import make_fallback, settings_from_config
+from runtime.hostcheck import explain_from_header, pre_arm_check
 from runtime.records import RunLogWriter, TripLog, log_paths
 from runtime.supervisor import MODE_CODE, Supervisor
 from runtime.telemetry import MqttBridge, TelemetryServer
@@ -233,6 +234,9 @@ class RunSettings:
     preflight: bool = True
     """Run `runtime.preflight.run_preflight` before accepting an arm on a non-simulated
     link (``--no-preflight`` turns it off)."""
+    hostcheck: dict[str, Any] | None = None
+    """The host check's result (`runtime.hostcheck.pre_arm_check`) when one ran before the
+    run: it goes into the log headers, the telemetry hello and the summary."""
     console: Any = None
     """Where progress and trip lines go (a text file while a dashboard owns the terminal);
     None = stderr."""
@@ -363,6 +367,7 @@ class TickCore:
                   "input_limits": self.u_max.tolist(), "tracked": list(self.tracked),
                   "eps": self.eps0, "bound": self.bound.to_json(),
                   "levels": self.levels(), "simulated": simulated,
+                  "hostcheck": settings.hostcheck,
                   # Injected faults as `KIND@SECONDS:...` labels, by where they were set.
                   "faults": (faults.describe() if faults is not None
                              else {"config": [], "command_line": []})}
@@ -442,7 +447,7 @@ class TickCore:
                 "envelope": np.asarray(d.envelope).tolist(), "eps": self.eps0,
                 "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
-                "tracked": list(self.tracked)}
+                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck}
 
     def _start_fallback(self, kind: str) -> None:
         self.law.frozen = True
@@ -792,6 +797,12 @@ class TickCore:
                     print(f"corral: trip {rec['id']} ({rec['first_out']['rule']}, action "
                           f"{rec['action']}) logged to {self.trip_path}", file=self.console(),
                           flush=True)
+                    fo = rec["first_out"]
+                    why = explain_from_header(fo["rule"], fo["value"], fo["threshold"],
+                                              self.trip_log.header,
+                                              rec["snapshot"].get("loop"))
+                    if why:
+                        print(f"corral:   {why}", file=self.console(), flush=True)
 
     def console(self) -> Any:
         """Where progress lines go: `RunSettings.console` (a file beside the logs while a
@@ -910,6 +921,10 @@ class Runner:
         if self.faults.faults and not self.simulated:
             raise ConfigError("faults", "fault injection needs the simulated rig.",
                               "drop --fault and [[faults]] for a real rig.")
+        if settings.preflight and not self.simulated and settings.hostcheck is None:
+            # Before the logs open, so the result goes into their headers.
+            settings.hostcheck = pre_arm_check(cfg, settings.console or sys.stderr,
+                                               settings.link)
         self.log_dir = Path(str(cfg.get("log.dir")))
         try:
             self.log_dir.mkdir(parents=True, exist_ok=True)
@@ -1181,5 +1196,5 @@ class Runner:
             "simulated": self.simulated, "rig": self.design.rig.name,
             "config_hash": core.config_hash,
             "mqtt": self.mqtt.summary if self.mqtt is not None else None,
-            "preflight": self.preflight,
+            "preflight": self.preflight, "hostcheck": self.settings.hostcheck,
         }

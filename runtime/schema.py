@@ -278,6 +278,8 @@ KEYS: tuple[Key, ...] = (
         "rig-clocked: a sample this late is a deadline miss", positive=True),
     key("loop.switch_interval_us", NUMBER, 100.0, "us", "interpreter thread switch interval",
         positive=True),
+    key("loop.hostcheck_s", NUMBER, 3.0, "s",
+        "host timing check before arming a real rig (0 skips it)", minimum=0.0),
     # [commands]
     key("commands", TABLE, OPTIONAL, doc="command profiles, one list per tracked output"),
     key("commands.duration", NUMBER, 30.0, "s", "run length", positive=True),
@@ -314,7 +316,7 @@ KEYS: tuple[Key, ...] = (
     key("watchdog.predicted_horizon_s", NUMBER, 0.01, "s", "look-ahead of predicted_crossing",
         minimum=0.0),
     key("watchdog.stale_periods", NUMBER, 3, "periods", "sample age that trips stale",
-        minimum=0.0),
+        positive=True),
     key("watchdog.seq_gap_max", NUMBER, 0, "samples", "missed samples tolerated", minimum=0.0),
     key("watchdog.link_timeout_s", NUMBER, 0.1, "s", "silence that trips link_loss",
         positive=True),

@@ -289,7 +289,9 @@ class _Serve:
 
 # Stale/overrun widened as in tests/test_rig_serve.py: two Python processes ticking on a
 # shared 2-core machine see multi-millisecond stalls; this test is about the gate.
-SERVED = ["watchdog.stale_periods=20", "preflight.plants=4", "preflight.duration=5"]
+# A short host check: it runs before the preflight on a real link, inside the device's 60 s.
+SERVED = ["watchdog.stale_periods=20", "preflight.plants=4", "preflight.duration=5",
+          "loop.hostcheck_s=0.5"]
 
 
 @pytest.mark.parametrize("gamma_ok", [True, False])
@@ -327,6 +329,7 @@ def test_preflight_gates_the_first_arm_on_a_served_rig(tmp_path, gamma_ok):
     verdict = r.preflight
     assert verdict is not None and verdict["go"] is gamma_ok
     assert hello["preflight"]["go"] is gamma_ok
+    assert isinstance(hello["hostcheck"]["ok"], bool)  # the host check ran before arming
     assert Path(verdict["record"]).is_file()
     if gamma_ok:
         assert reply["ok"], reply

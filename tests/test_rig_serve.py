@@ -230,7 +230,9 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
     import msgpack
 
     if transport == "serial":
-        config, serve_args, extra = SERVED, ["--serial"], ["--set", "watchdog.stale_periods=20"]
+        # A short host check before arming (it runs with the preflight on a real link).
+        config, serve_args, extra = SERVED, ["--serial"], ["--set", "watchdog.stale_periods=20",
+                                                           "--set", "loop.hostcheck_s=0.5"]
     else:
         # The preflight (run before the first arm on a real link) judges the design
         # slowed to 250 Hz NO-GO (most sampled plants trip); this test is about the
