@@ -70,6 +70,13 @@ REQUEST_OPS = ("arm", "disarm", "reset", "stop")
 # --------------------------------------------------------------------------- settings
 
 
+TABLE_KEYS = ("host", "port", "prefix", "tls", "ca_file", "username", "password_env",
+              "password", "keepalive_s", "sample_expiry_s", "max_sample_age_s",
+              "remote_requests", "connect_timeout_s", "rig")
+"""Keys of the ``[link.mqtt]`` table (runtime/schema.py declares each; a test holds the two
+together, since drivers/ does not import runtime/)."""
+
+
 class MqttConfigError(ValueError):
     """A ``[link.mqtt]`` value is unusable; names the field and the fix."""
 
@@ -130,11 +137,7 @@ class MqttSettings:
         """
         t = dict(table or {})
         env = os.environ if env is None else env
-        known = {
-            "host", "port", "prefix", "tls", "ca_file", "username", "password_env", "password",
-            "keepalive_s", "sample_expiry_s", "max_sample_age_s", "remote_requests",
-            "connect_timeout_s", "rig",
-        }
+        known = set(TABLE_KEYS)
         for k in t:
             if k not in known:
                 raise MqttConfigError(f"{key}.{k}", "is not a known MQTT setting.",

@@ -117,12 +117,12 @@ def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
     With `[basis] kind = "rbf"` a Gaussian radial-basis block (`runtime.rbf`)
     follows the named terms, which then default to ["bias"].
     """
-    kind = cfg.choice("basis.kind", ("terms", "rbf"), "terms")
+    kind = cfg.choice("basis.kind")
     if kind == "rbf":
         from runtime.rbf import rbf_from_config
 
         names = cfg.strings("basis.terms", None, ["bias"])
-        width = cfg.number("basis.tanh_width", 0.05, positive=True, unit="state units")
+        width = cfg.number("basis.tanh_width")
         parsed = [_parse_term(n, states, width, "basis.terms") for n in names]
         block = rbf_from_config(cfg, states)
         rbf_names = tuple(f"rbf:{k}" for k in range(block.size))
@@ -133,7 +133,7 @@ def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
     names = cfg.strings("basis.terms")
     if not names:
         raise ConfigError("basis.terms", "is empty.", 'list at least one term, e.g. ["bias"].')
-    width = cfg.number("basis.tanh_width", 0.05, positive=True, unit="state units")
+    width = cfg.number("basis.tanh_width")
     parsed = [_parse_term(n, states, width, "basis.terms") for n in names]
     return Basis(names=tuple(names), terms=tuple(p[0] for p in parsed),
                  codes=tuple(p[1] for p in parsed), tanh_width=width)

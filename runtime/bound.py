@@ -206,19 +206,18 @@ def schedule_from_config(cfg: Config, design: Any) -> BoundSchedule:
     """
     c_bar = float(design.c_bar)
     alpha_max = c_bar / 2.0
-    if cfg.get("adaptation.bound", None) is None:
+    if not cfg.has("adaptation.bound"):
         return BoundSchedule("constant", float(design.eps), float(design.eps),
                              alpha_max=alpha_max)
-    kind = cfg.choice("adaptation.bound.kind", KINDS, "constant")
-    on_violation = cfg.choice("adaptation.bound.on_violation", ON_VIOLATION, "refuse")
-    eps0 = cfg.number("adaptation.bound.eps0", float(design.eps), positive=True,
-                      unit="||e||_P")
+    kind = cfg.choice("adaptation.bound.kind")
+    on_violation = cfg.choice("adaptation.bound.on_violation")
+    eps0 = cfg.number("adaptation.bound.eps0", float(design.eps))
     notes: list[str] = []
     if kind == "constant":
         return BoundSchedule("constant", eps0, eps0, alpha_max=alpha_max)
     if kind == "piecewise":
         times = cfg.vector("adaptation.bound.times")
-        values = cfg.vector("adaptation.bound.values", times.size, positive=True)
+        values = cfg.vector("adaptation.bound.values", times.size)
         if times.size < 1 or times[0] != 0.0 or np.any(np.diff(times) <= 0):
             raise ConfigError("adaptation.bound.times", "must start at 0 and increase strictly.",
                               "write e.g. times = [0.0, 10.0, 20.0].")
@@ -240,8 +239,8 @@ def schedule_from_config(cfg: Config, design: Any) -> BoundSchedule:
         return BoundSchedule("piecewise", float(values[0]), float(values[-1]),
                              times=tuple(t_new), values=tuple(values.tolist()),
                              alpha_max=alpha_max, notes=tuple(notes))
-    eps_inf = cfg.number("adaptation.bound.eps_inf", positive=True, unit="||e||_P")
-    alpha = cfg.number("adaptation.bound.alpha", positive=True, unit="1/s")
+    eps_inf = cfg.number("adaptation.bound.eps_inf")
+    alpha = cfg.number("adaptation.bound.alpha")
     if alpha > alpha_max * (1 + 1e-12) and eps_inf < eps0:
         _violation("adaptation.bound.alpha", on_violation,
                    f"alpha = {alpha:.4g} 1/s narrows the bound", alpha_max,
@@ -254,8 +253,8 @@ def schedule_from_config(cfg: Config, design: Any) -> BoundSchedule:
     if kind == "exponential":
         return BoundSchedule("exponential", eps0, eps_inf, alpha=alpha, alpha_max=alpha_max,
                              notes=tuple(notes))
-    change = cfg.number("adaptation.bound.change", positive=True, unit="command units")
-    widen = cfg.number("adaptation.bound.widen_time", 0.1, positive=True, unit="s")
+    change = cfg.number("adaptation.bound.change")
+    widen = cfg.number("adaptation.bound.widen_time")
     events = _command_events(cfg, design, change)
     return BoundSchedule("widen_on_command", eps0, eps_inf, alpha=alpha, events=tuple(events),
                          widen_time=widen, alpha_max=alpha_max, notes=tuple(notes))

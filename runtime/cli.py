@@ -27,6 +27,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "preflight": ("runtime.cmd_preflight", "go / no-go checks before arming hardware"),
     "hostcheck": ("runtime.cmd_hostcheck", "can this computer hold the loop's period?"),
     "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
+    "config": ("runtime.cmd_config", "print the resolved config: every key, its unit and source"),
 }
 
 

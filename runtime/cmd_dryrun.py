@@ -42,7 +42,7 @@ def main(args: argparse.Namespace) -> int:
     if sys.stderr.isatty():
         print("\r" + " " * 90 + "\r", end="", file=sys.stderr)
     stamp = time.strftime("%Y%m%d-%H%M%S")
-    out = output_folder(args.out or Path(str(cfg.get("log.dir", "runs"))) / "dry-runs",
+    out = output_folder(args.out or Path(str(cfg.get("log.dir"))) / "dry-runs",
                         "--out" if args.out else "log.dir")
     stem = f"{result.design.rig.name}-{result.design.law}-{stamp}"
     run_file = write_run_file(result, out / f"{stem}.run", cfg)

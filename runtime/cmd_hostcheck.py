@@ -20,7 +20,7 @@ import sys
 import time
 
 from runtime.cli import UserError, common_config_args
-from runtime.config import load_config
+from runtime.config import load_config, rig_name
 from runtime.hostcheck import DEFAULT_SECONDS, report_lines, run_hostcheck
 
 
@@ -75,6 +75,6 @@ def main(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(res, indent=2))
     else:
-        rig = str(cfg.get("rig.name", "") or "")
+        rig = rig_name(cfg)
         print("\n".join(report_lines(res, rig)))
     return 0 if res["ok"] else 1

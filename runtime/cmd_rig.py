@@ -58,7 +58,7 @@ def _mqtt_settings(cfg: Any, where: str, rig: str) -> Any:
     except ValueError as exc:
         raise UserError(f"--mqtt: {exc}") from None
     try:
-        return MqttSettings.from_table(cfg.get("link.mqtt", {}), host=host, port=port, rig=rig)
+        return MqttSettings.from_table(cfg.get("link.mqtt") or {}, host=host, port=port, rig=rig)
     except MqttConfigError as exc:
         raise ConfigError(exc.field, exc.problem, exc.fix) from None
 
@@ -70,6 +70,7 @@ def main(args: argparse.Namespace) -> int:
     from drivers.base import LinkClosed
     from runtime.design import design_from_config
     from runtime.dryrun import plant_from_config
+    from runtime.loop import command_timeout
     from sim_rigs.device import RigDevice
     from sim_rigs.faults import FaultError, FaultSchedule
 
@@ -79,11 +80,8 @@ def main(args: argparse.Namespace) -> int:
     cfg = load_config(args.config, args.overrides)
     design = design_from_config(cfg)
     plant = plant_from_config(cfg, design)
-    rig = str(cfg.get("rig.name", design.rig.name or "rig"))
-    # link.command_timeout (s); rig.command_timeout_s is the in-process SimLink's name for it.
-    timeout = cfg.number("link.command_timeout",
-                         cfg.number("rig.command_timeout_s", 0.05, positive=True, unit="s"),
-                         positive=True, unit="s")
+    rig = design.rig.name
+    timeout = command_timeout(cfg)
     try:
         FaultSchedule.from_config(cfg)
     except FaultError as exc:
@@ -92,7 +90,7 @@ def main(args: argparse.Namespace) -> int:
         schedule = FaultSchedule.from_config(cfg, args.fault)
     except FaultError as exc:
         raise UserError(str(exc)) from None
-    seed = int(cfg.number("plant.seed", 0, minimum=0))
+    seed = int(cfg.number("plant.seed"))
     try:
         # Each fault's axis is resolved against the device's channels here.
         device = RigDevice(plant, period=design.Ts, rig_id=rig, command_timeout_s=timeout,

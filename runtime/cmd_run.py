@@ -115,7 +115,7 @@ def main(args: argparse.Namespace) -> int:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10 "
                         "(leave it out to run until stopped)")
     cfg = load_config(args.config, args.overrides)
-    _check_serial_port_exists(args.link or str(cfg.get("rig.link", "sim")))
+    _check_serial_port_exists(args.link or str(cfg.get("rig.link")))
     settings = RunSettings(duration=args.duration, auto_arm=False, faults=list(args.fault),
                            link=args.link, telemetry_mqtt=args.telemetry_mqtt,
                            preflight=not args.no_preflight)

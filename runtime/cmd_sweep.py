@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from runtime.cli import common_config_args, output_folder
-from runtime.config import load_config
+from runtime.config import load_config, rig_name
 from runtime.sweep import ENGINES, parse_grid, plot_grid, plot_sweep, run_grid, run_sweep
 
 
@@ -104,10 +104,10 @@ def main(args: argparse.Namespace) -> int:
     cfg = load_config(args.config, args.overrides)
     kwargs = dict(plants=args.plants, seed=args.seed, duration=args.duration,
                   workers=args.workers, chunk=args.chunk, engine=args.engine)
-    out = output_folder(args.out or Path(str(cfg.get("log.dir", "runs"))) / "sweeps",
+    out = output_folder(args.out or Path(str(cfg.get("log.dir"))) / "sweeps",
                         "--out" if args.out else "log.dir")
     stamp = time.strftime("%Y%m%d-%H%M%S")
-    name = str(cfg.get("rig.name", "rig"))
+    name = rig_name(cfg)
     bar = ProgressBar()
     if args.grid:
         axes = parse_grid(args.grid)

@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 
 from runtime.cli import UserError
-from runtime.config import load_config
+from runtime.config import load_config, rig_name
 from runtime.watch_sources import MqttSource, RecordedSource, SocketSource, TelemetrySource
 
 
@@ -59,8 +59,8 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
     path = args.socket
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)
-        rig = str(cfg.get("rig.name", cfg.get("rig.sim", "rig")))
-        path = Path(str(cfg.get("log.dir", "runs"))) / f"{rig}.sock"
+        rig = rig_name(cfg)
+        path = Path(str(cfg.get("log.dir"))) / f"{rig}.sock"
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
                         "--rig NAME, or --replay FILE")

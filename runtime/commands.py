@@ -95,16 +95,16 @@ def _seg_number(item: dict, key: str, where: str, *, positive: bool = False) -> 
 
 def schedule_from_config(cfg: Config, tracked: Sequence[str]) -> CommandSchedule:
     """Parse `[commands]` for the tracked outputs (names of the states C selects)."""
-    duration = cfg.number("commands.duration", 30.0, positive=True, unit="s")
+    duration = cfg.number("commands.duration")
     known = set(tracked) | {"duration", "initial"}
-    for key in cfg.get("commands", {}):
+    for key in cfg.get("commands") or {}:
         if key not in known:
             raise ConfigError(f"commands.{key}", "is not a tracked output.",
                               f"name segments after a tracked output: {', '.join(tracked)}.")
-    initial = cfg.vector("commands.initial", len(tracked), [0.0] * len(tracked))
+    initial = cfg.vector("commands.initial", len(tracked))
     axes = []
     for j, name in enumerate(tracked):
-        items = cfg.get(f"commands.{name}", [])
+        items = cfg.get(f"commands.{name}") or []
         if not isinstance(items, list):
             raise ConfigError(f"commands.{name}", "must be a list of segments.",
                               f'write {name} = [{{ at = 1.0, kind = "step", to = 0.1 }}]')

@@ -160,7 +160,7 @@ def rig_model(cfg: Config) -> RigModel:
     units = tuple(cfg.strings("rig.state_units", n, ["1"] * n))
     inputs = tuple(cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)]))
     in_units = tuple(cfg.strings("rig.input_units", m, ["1"] * m))
-    limits = cfg.vector("rig.input_limits", m, positive=True)
+    limits = cfg.vector("rig.input_limits", m)
     return RigModel(name, INLINE if spec is not None else None, A, B, C, states, units, inputs,
                     in_units, limits, spec)
 
@@ -283,8 +283,8 @@ def design_from_config(cfg: Config) -> Design:
             "check that every state is reachable from some input (B and A's coupling).",
         )
     Q = cfg.weight_matrix("design.Q", n)
-    R_u = cfg.weight_matrix("design.R_u", m, 1.0)
-    R = cfg.weight_matrix("design.R", n, 1.0)
+    R_u = cfg.weight_matrix("design.R_u", m)
+    R = cfg.weight_matrix("design.R", n)
     K1, _X, poles = lqr(A, B, Q, R_u)
     A_r = A - B @ K1
     if np.max(np.linalg.eigvals(A_r).real) >= 0:
@@ -301,31 +301,44 @@ def design_from_config(cfg: Config) -> Design:
                           "be held at a command.", "track outputs the inputs can move.") from None
     B_r = B @ K2
     P = lyapunov(A_r, R)
-    limits = cfg.vector("design.limits", n, positive=True)
+    limits = cfg.vector("design.limits", n)
     eps_lim, bind, _env = eps_from_limits(P, limits)
-    eps_cfg = cfg.get("adaptation.eps", "from_limits")
+    eps_cfg = cfg.get("adaptation.eps")
     if eps_cfg == "from_limits":
         eps = eps_lim
     else:
         eps = cfg.number("adaptation.eps", positive=True)
     envelope = eps * np.sqrt(np.diag(np.linalg.inv(P)))
+    if eps_cfg != "from_limits" and eps > eps_lim * (1 + 1e-9):
+        # The guarantee is the ellipsoid e'Pe <= eps^2; its extent on state i is
+        # eps sqrt((P^-1)_ii). Beyond design.limits the bound promises nothing the limits
+        # ask for, so the design is refused rather than run with a warning.
+        worst = int(np.argmax(envelope / limits))
+        unit = rig.state_units[worst]
+        raise ConfigError(
+            "adaptation.eps",
+            f"{eps:.4g} gives a guaranteed envelope of +-{envelope[worst]:.3g} {unit} on "
+            f"{rig.states[worst]}, beyond its limit {limits[worst]:.3g} {unit} "
+            "(design.limits).",
+            f"lower adaptation.eps to {eps_lim:.4g} or less (or \"from_limits\"), or widen "
+            f"design.limits for {rig.states[worst]}.")
     c_bar = float(np.min(np.linalg.eigvalsh(R)) / np.max(np.linalg.eigvalsh(P)))
 
-    Ts = cfg.number("loop.period", positive=True, maximum=1.0, unit="s")
+    Ts = cfg.number("loop.period")
     A_d, B_d = zoh(A_r, B_r, Ts)
 
     basis = basis_from_config(cfg, rig.states)
-    law = cfg.choice("adaptation.law", ("barrier", "standard"), "barrier")
+    law = cfg.choice("adaptation.law")
     from runtime.barrier import BARRIERS
 
-    barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS), "rational")
-    augment = cfg.flag("adaptation.unknown_effectiveness", False)
+    barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS))
+    augment = cfg.flag("adaptation.unknown_effectiveness")
     n_reg = basis.size + (m if augment else 0)
-    gamma = cfg.vector("adaptation.gamma", n_reg, positive=True)
-    clamp_margin = cfg.number("adaptation.clamp_margin", 0.02, minimum=1e-6, maximum=0.5)
-    cap = cfg.number("adaptation.step_gain_cap", 1.0, positive=True)
+    gamma = cfg.vector("adaptation.gamma", n_reg)
+    clamp_margin = cfg.number("adaptation.clamp_margin")
+    cap = cfg.number("adaptation.step_gain_cap")
 
-    state_range = (cfg.vector("design.state_range", n, positive=True)
+    state_range = (cfg.vector("design.state_range", n)
                    if cfg.has("design.state_range") or rig.spec is None
                    else np.array(rig.spec.state_limits, dtype=float))
     pts = _sample_box(state_range, 2000, np.random.default_rng(1))
@@ -339,7 +352,7 @@ def design_from_config(cfg: Config) -> Design:
     from runtime.barrier import get_barrier
 
     bar = get_barrier(barrier)
-    trip_level = cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0)
+    trip_level = cfg.number("watchdog.margin_trip")
     phi_d_trip = float(bar.phi_d(trip_level * eps, eps)) if law == "barrier" else 1.0
     g0 = Ts * float(np.max(gamma)) * phi_d0 * regressor_bound**2 * lam_bpb
     g_trip = g0 * phi_d_trip / phi_d0
@@ -359,12 +372,6 @@ def design_from_config(cfg: Config) -> Design:
             f"near the trip level ({trip_level:.2f} eps) the per-step gain would reach "
             f"{g_trip:.3g}; the live cap {cap:.3g} limits it there, so learning stiffens "
             "less than the continuous law would."
-        )
-    if eps_cfg != "from_limits" and eps > eps_lim * (1 + 1e-9):
-        warnings.append(
-            f"adaptation.eps = {eps:.4g} is larger than the {eps_lim:.4g} that fits the "
-            f"limits; the guaranteed envelope exceeds design.limits on "
-            f"{rig.states[bind]}."
         )
     fastest = float(np.max(np.abs(poles)))
     if fastest * Ts > 0.2:
@@ -401,7 +408,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
     warnings = list(d.warnings)
     extras = dict(d.extras)
     eps_min = eps_max = d.eps
-    if cfg.get("adaptation.bound", None) is not None:
+    if cfg.has("adaptation.bound"):
         sched = schedule_from_config(cfg, d)
         eps_min = sched.minimum
         eps_max = max(sched.eps0, float(np.max(sched.values)) if sched.values else sched.eps0)
@@ -423,7 +430,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 "fits design.limits: while it is that wide the guaranteed envelope exceeds "
                 "the limits.")
     if d.basis.rbf_centres is not None and d.basis.rbf_widths is not None:
-        min_act = cfg.number("basis.rbf_min_activation", 0.3, positive=True, maximum=1.0)
+        min_act = cfg.number("basis.rbf_min_activation")
         pts = envelope_points(d, cfg, eps_max)
         cov = coverage(d.basis.rbf_centres, d.basis.rbf_widths, d.basis.rbf_scale
                        if d.basis.rbf_scale is not None else np.ones(d.rig.n), pts, min_act)
@@ -437,7 +444,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 f"{min_act:g}); worst at {worst} (activation {cov['worst_activation']:.2g}). "
                 "Widen basis.rbf_span, move basis.rbf_centre, add centres (basis.rbf_per_axis) "
                 "or widen basis.rbf_width.")
-    d_max = cfg.number("adaptation.d_max", 0.0, minimum=0.0, unit="input units")
+    d_max = cfg.number("adaptation.d_max")
     if d_max > 0:
         need = residual_eps(d.P, d.rig.B, d.c_bar, d_max)
         ok = eps_min > need

@@ -81,7 +81,7 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                           f"set rig.sim to a built-in rig ({', '.join(builtin_names())}) or "
                           "a rig file (see README, 'Your own rig'), or give [plant] terms.")
     from_config = truth is None
-    truth = dict(cfg.get("plant.truth", {})) if truth is None else truth
+    truth = dict(cfg.get("plant.truth") or {}) if truth is None else truth
     for key in truth:
         if key not in spec.params:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
@@ -92,9 +92,9 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
         sensors = SensorModel.for_rig(spec, sensor_overrides(cfg))
     except RigFileError as exc:
         raise as_config_error(exc) from None
-    x0 = cfg.vector("plant.x0", design.rig.n, [0.0] * design.rig.n)
-    seed = int(cfg.number("plant.seed", 0, minimum=0))
-    substeps = int(cfg.number("plant.substeps", 4, minimum=1, maximum=100))
+    x0 = cfg.vector("plant.x0", design.rig.n)
+    seed = int(cfg.number("plant.seed"))
+    substeps = int(cfg.number("plant.substeps"))
     return RigPlant.create(spec, truth, batch=batch, x0=x0, sensors=sensors, substeps=substeps,
                            rng=np.random.default_rng(seed),
                            limits=np.asarray(design.rig.input_limits, dtype=float))
@@ -103,8 +103,7 @@ def plant_from_config(cfg: Config, design: Design, batch: int = 1,
 def weight_norm_limit(cfg: Config) -> float:
     """||W||_F beyond which a dry run or a sweep calls the weights diverged:
     `sweep.weight_norm_limit`, default the watchdog's `watchdog.weight_norm_max` (100)."""
-    return float(cfg.number("sweep.weight_norm_limit", cfg.number(
-        "watchdog.weight_norm_max", 100.0, positive=True), positive=True))
+    return float(cfg.number("sweep.weight_norm_limit", cfg.number("watchdog.weight_norm_max")))
 
 
 ENGINES = ("fast", "reference")
@@ -185,7 +184,7 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
     # design.state_range (or non-finite), the weight norm non-finite or beyond
     # sweep.weight_norm_limit (default: the watchdog's weight_norm_max)
     w_limit = weight_norm_limit(cfg)
-    bound = cfg.number("sweep.divergence_factor", 10.0, minimum=1.0) * design.state_range
+    bound = cfg.number("sweep.divergence_factor") * design.state_range
     x_bad = np.flatnonzero(~np.all(np.abs(cols["x"]) <= bound, axis=1))
     w_bad = np.flatnonzero(~(cols["w_norm"] <= w_limit))
     last5 = t >= t[-1] - 5.0

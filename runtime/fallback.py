@@ -24,10 +24,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime import schema
+
 Array = NDArray[np.float64]
 
-DEFAULTS = {"rate_limit": 200.0, "park_rate": 0.5, "park_tolerance": 0.01,
-            "stop_timeout_s": 10.0}
+DEFAULTS: dict[str, Any] = schema.defaults_of("fallback")
+"""The ``[fallback]`` settings' defaults, as declared in `runtime.schema`."""
 
 
 class Baseline:
@@ -128,7 +130,7 @@ def make_fallback(kind: str, design: Any, settings: dict[str, Any], u_applied: A
 def settings_from_config(cfg: Any, p: int) -> dict[str, Any]:
     """``[fallback]`` settings with defaults (park pose: zeros of the tracked outputs)."""
     out: dict[str, Any] = {}
-    for key, default in DEFAULTS.items():
-        out[key] = float(cfg.number(f"fallback.{key}", default, positive=True))
-    out["park"] = np.asarray(cfg.vector("fallback.park", p, [0.0] * p), dtype=float)
+    for key in ("rate_limit", "park_rate", "park_tolerance", "stop_timeout_s"):
+        out[key] = float(cfg.number(f"fallback.{key}"))
+    out["park"] = np.asarray(cfg.vector("fallback.park", p), dtype=float)
     return out

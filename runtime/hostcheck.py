@@ -47,11 +47,13 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from runtime import schema
 from runtime.clock import DeadlineClock
 from runtime.watchdog import DEFAULTS
 
-DEFAULT_SECONDS = 3.0
-"""How long `corral hostcheck` measures when ``--seconds`` is not given."""
+DEFAULT_SECONDS = float(schema.default_of("loop.hostcheck_s"))
+"""How long `corral hostcheck` measures when ``--seconds`` is not given (the same as the
+pre-arm check's default, ``loop.hostcheck_s``)."""
 
 CAP_IPC_LOCK = 14
 CAP_SYS_NICE = 23
@@ -81,15 +83,12 @@ class Thresholds:
 
 def thresholds_from_config(cfg: Any) -> Thresholds:
     """`Thresholds` from ``loop.period`` and ``[watchdog]`` (defaults as the watchdog's)."""
-    period = float(cfg.number("loop.period", positive=True, maximum=1.0, unit="s"))
+    period = float(cfg.number("loop.period"))
     return Thresholds(
         period_s=period,
-        stale_periods=float(cfg.number("watchdog.stale_periods", DEFAULTS["stale_periods"],
-                                       positive=True)),
-        overrun_misses=float(cfg.number("watchdog.overrun_misses", DEFAULTS["overrun_misses"],
-                                        positive=True)),
-        overrun_window=int(cfg.number("watchdog.overrun_window", DEFAULTS["overrun_window"],
-                                      minimum=1)),
+        stale_periods=float(cfg.number("watchdog.stale_periods")),
+        overrun_misses=float(cfg.number("watchdog.overrun_misses")),
+        overrun_window=int(cfg.number("watchdog.overrun_window")),
     )
 
 
@@ -402,11 +401,10 @@ def run_hostcheck(cfg: Any, seconds: float | None = None,
     `link` is the run's link spec when it differs from ``rig.link`` (``--link``)."""
     th = thresholds_from_config(cfg)
     secs = float(seconds if seconds is not None else DEFAULT_SECONDS)
-    loop_rt = bool(cfg.flag("loop.realtime", True))
-    rig_clocked = str(link or cfg.get("rig.link", "sim")).split(":", 1)[0] != "sim"
+    loop_rt = bool(cfg.flag("loop.realtime"))
+    rig_clocked = str(link or cfg.get("rig.link")).split(":", 1)[0] != "sim"
     facts = host_facts()
-    fig = measure(th.period_s, secs, spin_us=float(cfg.number("loop.spin_us", 200.0,
-                                                                 minimum=0.0)),
+    fig = measure(th.period_s, secs, spin_us=float(cfg.number("loop.spin_us")),
                   realtime=loop_rt, progress=progress)
     fig.update(facts)
     v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked)
@@ -482,7 +480,7 @@ def pre_arm_check(cfg: Any, out: Any, link: str | None = None) -> dict[str, Any]
     """The host check `corral run` does before a real rig may be armed (``loop.hostcheck_s``
     seconds, default `DEFAULT_SECONDS`; 0 skips it). Progress and the verdict go to `out`.
     The verdict informs; it does not refuse the arm."""
-    secs = float(cfg.number("loop.hostcheck_s", DEFAULT_SECONDS, minimum=0.0, unit="s"))
+    secs = float(cfg.number("loop.hostcheck_s"))
     if secs <= 0:
         return None
     print(f"corral: host check: measuring this computer's timing for {secs:g} s "

@@ -158,19 +158,17 @@ def command_timeout(cfg: Config) -> float:
     ``rig.command_timeout_s`` (the older name) is still accepted; giving both
     with different values is refused.
     """
-    new = cfg.get("link.command_timeout", None)
-    old = cfg.get("rig.command_timeout_s", None)
-    if new is not None and old is not None:
-        a = cfg.number("link.command_timeout", positive=True, unit="s")
-        b = cfg.number("rig.command_timeout_s", positive=True, unit="s")
+    if cfg.has("link.command_timeout") and cfg.has("rig.command_timeout_s"):
+        a = cfg.number("link.command_timeout")
+        b = cfg.number("rig.command_timeout_s")
         if a != b:
             raise ConfigError("link.command_timeout",
                               f"is {a:g} s but its old name rig.command_timeout_s says {b:g} s.",
                               "keep link.command_timeout only.")
         return a
-    if old is not None:
-        return cfg.number("rig.command_timeout_s", positive=True, unit="s")
-    return cfg.number("link.command_timeout", 0.05, positive=True, unit="s")
+    if cfg.has("rig.command_timeout_s"):
+        return cfg.number("rig.command_timeout_s")
+    return cfg.number("link.command_timeout")
 
 
 def make_link(cfg: Config, spec: str | None, design: Design | None = None,
@@ -180,7 +178,7 @@ def make_link(cfg: Config, spec: str | None, design: Design | None = None,
     ``sim``: the simulated rig in-process (`sim_rigs.link.SimLink`), stepped
     by the loop. Other transports are added here.
     """
-    kind = (spec or str(cfg.get("rig.link", "sim"))).split(":", 1)[0]
+    kind = (spec or str(cfg.get("rig.link"))).split(":", 1)[0]
     if kind == "sim":
         from runtime.dryrun import plant_from_config
         from sim_rigs.link import SimLink
@@ -190,9 +188,9 @@ def make_link(cfg: Config, spec: str | None, design: Design | None = None,
         return SimLink(plant, design.Ts, faults, rig_id=design.rig.name,
                        states=design.rig.states, units=design.rig.state_units,
                        inputs=design.rig.inputs,
-                       seed=int(cfg.number("plant.seed", 0, minimum=0)),
+                       seed=int(cfg.number("plant.seed")),
                        command_timeout_s=command_timeout(cfg))
-    full = spec or str(cfg.get("rig.link", "sim"))
+    full = spec or str(cfg.get("rig.link"))
     if kind == "serial":  # serial:PATH[@BAUD] (drivers.serial_link)
         from drivers.serial_link import SerialLink
 
@@ -204,7 +202,7 @@ def make_link(cfg: Config, spec: str | None, design: Design | None = None,
         from drivers.mqtt_link import MqttConfigError, MqttLink
 
         try:
-            return MqttLink.from_url(full, cfg.get("link.mqtt", {}))
+            return MqttLink.from_url(full, cfg.get("link.mqtt") or {})
         except MqttConfigError as exc:
             raise ConfigError(exc.field, exc.problem, exc.fix) from None
         except ValueError as exc:
@@ -257,8 +255,8 @@ def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: 
 
     from drivers.mqtt_link import MqttConfigError, MqttSettings, parse_host_port, parse_mqtt_url
 
-    table = cfg.get("link.mqtt", {}) or {}
-    spec = link_spec or str(cfg.get("rig.link", "sim"))
+    table = cfg.get("link.mqtt") or {}
+    spec = link_spec or str(cfg.get("rig.link"))
     try:
         if spec.startswith(("mqtt://", "mqtts://")):
             try:
@@ -268,7 +266,7 @@ def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: 
             out = MqttSettings.from_table(table, host=host, port=port, rig=url_rig)
             return replace(out, tls=True) if spec.startswith("mqtts://") else out
         where = "--telemetry-mqtt" if telemetry_mqtt else "telemetry.mqtt"
-        text = telemetry_mqtt or cfg.get("telemetry.mqtt", None)
+        text = telemetry_mqtt or cfg.get("telemetry.mqtt")
         if not text:
             return None
         try:
@@ -315,7 +313,7 @@ class TickCore:
         schedule = schedule_from_config(cfg, self.tracked)
         n_cmd = int(round(schedule.duration / Ts)) + 1
         self.cmd_table = np.ascontiguousarray(schedule.evaluate(np.arange(n_cmd) * Ts))
-        self.law = LawAdapter(d, str(cfg.choice("loop.law", ("fast", "reference"), "fast")),
+        self.law = LawAdapter(d, str(cfg.choice("loop.law")),
                               cfg)
         # The bound eps(t), t = seconds since the law engaged (constant design.eps when
         # [adaptation.bound] is absent). The law, the margin rules (the ratio is
@@ -328,21 +326,17 @@ class TickCore:
         jump = cfg.vector("watchdog.jump_limit", rig.n, (0.5 * d.limits).tolist(),
                           positive=True)
         self.est = Estimator(rig.A, Ts, jump, channels=channels,
-                             cutoff_hz=cfg.number("estimator.cutoff_hz", 50.0, positive=True,
-                                                  unit="Hz"))
+                             cutoff_hz=cfg.number("estimator.cutoff_hz"))
         self.watchdog = Watchdog.from_config(cfg, Ts, d.clamp_margin)
         self.sup = Supervisor(
-            settle_time=cfg.number("supervisor.settle_time", 0.5, minimum=0.0, unit="s"),
-            settle_rate_tol=cfg.number("supervisor.settle_rate_tol", 0.05, positive=True),
+            settle_time=cfg.number("supervisor.settle_time"),
+            settle_rate_tol=cfg.number("supervisor.settle_rate_tol"),
             rate_states=tuple(j for _, j in rate_pairs(rig.A)),
-            disarm_action=cfg.choice("supervisor.disarm_action",
-                                     ("baseline", "controlled_stop", "outputs_off"),
-                                     "controlled_stop"),
-            stop_action=cfg.choice("supervisor.stop_action", ("controlled_stop", "outputs_off"),
-                                   "outputs_off"),
+            disarm_action=cfg.choice("supervisor.disarm_action"),
+            stop_action=cfg.choice("supervisor.stop_action"),
         )
         self.fb_settings = settings_from_config(cfg, self.p)
-        self.engage_slew = cfg.number("supervisor.engage_slew", 0.1, positive=True)
+        self.engage_slew = cfg.number("supervisor.engage_slew")
         self.c_offset: Array | None = None
         self.fb: Any = None
         self.sig = Signals()
@@ -353,8 +347,8 @@ class TickCore:
         self.row_len = sum(self.widths)
         offs = np.cumsum([0] + self.widths)
         self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
-        pre_s = cfg.number("log.pre_capture_s", 1.0, minimum=0.0, unit="s")
-        post_s = cfg.number("log.post_capture_s", 1.0, minimum=0.0, unit="s")
+        pre_s = cfg.number("log.pre_capture_s")
+        post_s = cfg.number("log.post_capture_s")
         self.pre_n = max(1, int(round(pre_s / Ts)))
         self.post_n = int(round(post_s / Ts))
         self.ring = np.zeros((self.pre_n, self.row_len))
@@ -932,7 +926,7 @@ class Runner:
             # Before the logs open, so the result goes into their headers.
             settings.hostcheck = pre_arm_check(cfg, settings.console or sys.stderr,
                                                settings.link)
-        self.log_dir = Path(str(cfg.get("log.dir", "runs")))
+        self.log_dir = Path(str(cfg.get("log.dir")))
         try:
             self.log_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
@@ -942,34 +936,32 @@ class Runner:
         self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
                              self.simulated, self.faults)
         self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"
-        rate = cfg.number("telemetry.rate_hz", 25.0, positive=True, unit="Hz")
+        rate = cfg.number("telemetry.rate_hz")
         self.telemetry = TelemetryServer(self.socket_path, self.core.hello(), self.core.submit,
                                          rate_hz=rate,
                                          client_buffer=int(cfg.number(
-                                             "telemetry.client_buffer", 256 * 1024,
-                                             positive=True)))
+                                             "telemetry.client_buffer")))
         self.core.telemetry = self.telemetry
         self.mqtt_settings = mqtt_telemetry_settings(cfg, settings.link, settings.telemetry_mqtt,
                                                      self.design.rig.name)
         self.mqtt: MqttBridge | None = None
         if self.mqtt_settings is not None:
             self.mqtt = MqttBridge(self.mqtt_settings, self.core.hello(), self.core.submit,
-                                   rate_hz=cfg.number("telemetry.mqtt_rate_hz", 10.0,
-                                                      positive=True, unit="Hz"),
+                                   rate_hz=cfg.number("telemetry.mqtt_rate_hz"),
                                    notify=lambda line: print(line, file=self.core.console(),
                                                              flush=True))
             self.telemetry.listeners.append(self.mqtt.on_record)
         self.core.tel_every = max(1, int(round(1.0 / (self.telemetry.rate_hz * self.design.Ts))))
         self.clock = DeadlineClock(self.design.Ts,
-                                   spin_us=cfg.number("loop.spin_us", 200.0, minimum=0.0),
-                                   realtime=cfg.flag("loop.realtime", True))
+                                   spin_us=cfg.number("loop.spin_us"),
+                                   realtime=cfg.flag("loop.realtime"))
         self.core.loop_stats = self.clock.stats
-        self.miss_after = cfg.number("loop.miss_after_periods", 1.0, positive=True)
+        self.miss_after = cfg.number("loop.miss_after_periods")
         """Rig-clocked: a sample handled later than this many periods after its expected
         arrival is a deadline miss (`runtime.clock.ArrivalTracker`)."""
         # The tick thread must get the GIL back quickly from the writer and socket
         # threads; the default 5 ms switch interval would make every wake-up wait.
-        self.switch_interval = cfg.number("loop.switch_interval_us", 100.0, positive=True) * 1e-6
+        self.switch_interval = cfg.number("loop.switch_interval_us") * 1e-6
         self.stop_event: asyncio.Event | None = None
         self.preflight: dict[str, Any] | None = None
         """The preflight verdict (go, predicted_trip_rate, reasons, record), when one ran."""
@@ -1026,12 +1018,12 @@ class Runner:
         return self.summary()
 
     def run_preflight(self) -> dict[str, Any]:
-        """Preflight (`runtime.preflight.run_preflight`, ``preflight.plants``, default 50 here);
+        """Preflight (`runtime.preflight.run_preflight`, ``preflight.run_plants`` plants);
         a NO-GO makes every arm request refused with its reasons. The verdict goes into
         the trip log as a ``preflight`` event (with the whole verdict under ``preflight``)
         and into the run summary."""
         core = self.core
-        plants = int(self.cfg.number("preflight.plants", 50, minimum=1))
+        plants = int(self.cfg.number("preflight.run_plants"))
         out = core.console()
         print(f"corral: preflight: sweeping {plants} simulated plants before arming "
               "(--no-preflight skips this)", file=out, flush=True)

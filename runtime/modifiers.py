@@ -147,9 +147,9 @@ def modifiers_from_config(cfg: Config, design: Any) -> list[Any]:
     gamma = np.asarray(design.gamma, dtype=float)
     Ts = float(design.Ts)
     mods: list[Any] = []
-    leakage = cfg.choice("adaptation.leakage", LEAKAGES, "none")
+    leakage = cfg.choice("adaptation.leakage")
     if leakage == "sigma":
-        sigma0 = cfg.number("adaptation.sigma0", positive=True, unit="1/s")
+        sigma0 = cfg.number("adaptation.sigma0")
         if Ts * float(np.max(gamma)) * sigma0 >= 1.0:
             raise ConfigError(
                 "adaptation.sigma0", f"Ts * gamma * sigma0 = {Ts * np.max(gamma) * sigma0:.3g} "
@@ -157,9 +157,9 @@ def modifiers_from_config(cfg: Config, design: Any) -> list[Any]:
                 f"lower sigma0 below {0.5 / (Ts * float(np.max(gamma))):.3g} 1/s.")
         mods.append(SigmaModification(sigma0, gamma))
     elif leakage == "e":
-        mu = cfg.number("adaptation.mu", positive=True)
+        mu = cfg.number("adaptation.mu")
         mods.append(EModification(mu, gamma))
-    dz = cfg.number("adaptation.dead_zone", 0.0, minimum=0.0, unit="||e||_P")
+    dz = cfg.number("adaptation.dead_zone")
     if dz > 0:
         if dz >= design.eps:
             raise ConfigError(
@@ -167,8 +167,8 @@ def modifiers_from_config(cfg: Config, design: Any) -> list[Any]:
                 f"{design.eps:.4g}: the law would never adapt inside the bound.",
                 f"use a dead zone well below eps, e.g. {0.1 * design.eps:.3g}.")
         mods.append(DeadZone(dz))
-    if cfg.flag("adaptation.projection", False):
-        theta = cfg.vector("adaptation.theta_max", m, positive=True)
-        eps_p = cfg.number("adaptation.projection_eps", 0.1, positive=True)
+    if cfg.flag("adaptation.projection"):
+        theta = cfg.vector("adaptation.theta_max", m)
+        eps_p = cfg.number("adaptation.projection_eps")
         mods.append(Projection(theta, eps_p))
     return mods

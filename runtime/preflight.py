@@ -21,7 +21,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from runtime.config import Config, ConfigError
+from runtime.config import Config, ConfigError, rig_name
 from runtime.design import design_from_config
 from runtime.sweep import Progress, run_sweep
 
@@ -35,13 +35,13 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
     design {feasible, reasons, warnings}, sweep (the sweep summary or None),
     worst_cases, record (path of the JSON written into log.dir, or None).
     """
-    max_rate = cfg.number("preflight.max_trip_rate", 0.05, minimum=0.0, maximum=1.0)
-    n = plants if plants is not None else int(cfg.number("preflight.plants", 200, minimum=1))
-    duration = (cfg.number("preflight.duration", positive=True, unit="s")
+    max_rate = cfg.number("preflight.max_trip_rate")
+    n = plants if plants is not None else int(cfg.number("preflight.plants"))
+    duration = (cfg.number("preflight.duration")
                 if cfg.has("preflight.duration") else None)
     out: dict[str, Any] = {
         "go": False, "predicted_trip_rate": None, "max_trip_rate": max_rate, "reasons": [],
-        "plants": n, "config_hash": cfg.hash(), "rig": str(cfg.get("rig.name", "rig")),
+        "plants": n, "config_hash": cfg.hash(), "rig": rig_name(cfg),
         "design": None, "sweep": None, "worst_cases": [], "record": None,
         "created_wall": time.time(),
     }
@@ -100,7 +100,7 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
 
 def _finish(cfg: Config, out: dict[str, Any], write: bool) -> dict[str, Any]:
     if write:
-        folder = Path(str(cfg.get("log.dir", "runs")))
+        folder = Path(str(cfg.get("log.dir")))
         try:
             folder.mkdir(parents=True, exist_ok=True)
         except OSError as exc:  # a file in the way, no permission: name the field

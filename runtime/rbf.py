@@ -98,7 +98,7 @@ def rbf_from_config(cfg: Config, states: Sequence[str]) -> RbfBlock:
             spacing = np.ptp(local, axis=0) / max(round(local.shape[0] ** (1 / g)) - 1, 1)
             spacing = np.where(spacing > 0, spacing, 1.0)
     else:
-        per = cfg.vector("basis.rbf_per_axis", g, [5] * g, positive=True)
+        per = cfg.vector("basis.rbf_per_axis", g)
         if np.any(per != np.round(per)):
             raise ConfigError("basis.rbf_per_axis", "must be whole numbers.",
                               "write e.g. rbf_per_axis = 5.")
@@ -106,13 +106,12 @@ def rbf_from_config(cfg: Config, states: Sequence[str]) -> RbfBlock:
         if int(np.prod(per_i)) > 2000:
             raise ConfigError("basis.rbf_per_axis", f"gives {int(np.prod(per_i))} centres.",
                               "use fewer centres per axis or fewer grid states (<= 2000).")
-        span = cfg.vector("basis.rbf_span", g, positive=True)
-        centre = cfg.vector("basis.rbf_centre", g, [0.0] * g)
+        span = cfg.vector("basis.rbf_span", g)
+        centre = cfg.vector("basis.rbf_centre", g)
         local = grid(centre, span, per_i)
         spacing = np.array([2 * s / (k - 1) if k > 1 else 2 * s
                             for s, k in zip(span, per_i, strict=True)])
-    width_cfg = cfg.get("basis.rbf_width", None)
-    w_state = spacing if width_cfg is None else cfg.vector("basis.rbf_width", g, positive=True)
+    w_state = cfg.vector("basis.rbf_width", g, spacing)
     w_ref = float(w_state[0])
     scale = np.zeros(n)
     scale[dims] = w_ref / w_state
@@ -135,7 +134,7 @@ def envelope_points(design: Any, cfg: Config, eps: float, count: int = 24,
 
     rng = np.random.default_rng(3) if rng is None else rng
     n = design.rig.n
-    if cfg.get("commands", None) is not None:
+    if cfg.has("commands"):
         from runtime.commands import schedule_from_config, tracked_names
 
         rig = design.rig

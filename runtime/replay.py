@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from runtime.config import KEY_ALIASES, Config, ConfigError, check_sections
+from runtime.config import KEY_ALIASES, Config, ConfigError, check_config
 
 Array = NDArray[np.float64]
 
@@ -222,7 +222,8 @@ def config_with_overrides(rec: Recording, overrides: list[str]) -> tuple[Config,
         items.append(f"{key}{sep}{value}")
     base = Config(raw=copy.deepcopy(rec.config), path=None)
     merged = base.with_overrides(items)
-    check_sections(merged.raw, "--set")  # unknown section, or a table replaced by a value
+    # Only what the overrides touch: the recorded config was accepted when it ran.
+    check_config(merged.raw, "--set", keys=[i.partition("=")[0].strip() for i in items])
     return merged, items
 
 
@@ -296,8 +297,8 @@ def fit_plant(rec: Recording, cfg: Config, names: list[str] | None = None,
                           "it fits.", "use --plant config, or set rig.sim to the rig's file.")
     TRUTH_DEFAULTS = spec.truth_defaults  # noqa: N806 - the rig's parameters
     truth = {k: float(v) for k, v in TRUTH_DEFAULTS.items()}
-    truth.update({k: float(v) for k, v in dict(cfg.get("plant.truth", {})).items()})
-    ranges = {**spec.ranges, **dict(cfg.get("plant.ranges", {}) or {})}
+    truth.update({k: float(v) for k, v in dict(cfg.get("plant.truth") or {}).items()})
+    ranges = {**spec.ranges, **dict(cfg.get("plant.ranges") or {})}
     if names is None:
         names = [k for k in TRUTH_DEFAULTS if k in ranges] or list(TRUTH_DEFAULTS)
     unknown = [k for k in names if k not in TRUTH_DEFAULTS]
@@ -309,7 +310,7 @@ def fit_plant(rec: Recording, cfg: Config, names: list[str] | None = None,
     nr = len(rows)
 
     lo = 0
-    delay = int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0))
+    delay = int(cfg.number("plant.sensors.delay_ticks"))
     span = max(1, int(round(window_s / rec.period)))
     y = rec.y
     k = np.arange(max(lo, delay), rec.ticks - 1)
@@ -703,7 +704,7 @@ def replay(rec: Recording, overrides: list[str] | None = None,
         notes.append(f"commands after the recorded engaged stretch come from the config's "
                      f"schedule ({counts['scheduled_commands']} ticks)")
 
-    faults = rec.header.get("faults") or cfg.get("faults", None)
+    faults = rec.header.get("faults") or cfg.get("faults")
     if faults:
         notes.append("the recorded run had injected faults; the replay does not inject them, "
                      "so a trip they caused will not recur")

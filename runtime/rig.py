@@ -31,7 +31,7 @@ def as_config_error(exc: RigFileError) -> ConfigError:
 
 def rig_spec(cfg: Config) -> RigSpec | None:
     """The simulated rig of a config, or None when it has none (a real rig, no terms)."""
-    sim = cfg.get("rig.sim", None)
+    sim = cfg.get("rig.sim")
     try:
         if sim is not None:
             base = cfg.path.parent if cfg.path is not None else None
@@ -53,13 +53,13 @@ def _inline(cfg: Config) -> RigSpec:
     units = cfg.strings("rig.state_units", n, ["1"] * n)
     inputs = cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)])
     in_units = cfg.strings("rig.input_units", m, ["1"] * m)
-    limits = cfg.vector("rig.input_limits", m, positive=True)
-    srange = cfg.vector("design.state_range", n, [1.0] * n, positive=True)
-    eff = cfg.get("plant.effectiveness", [None] * m)
+    limits = cfg.vector("rig.input_limits", m)
+    srange = cfg.vector("design.state_range", n)
+    eff = cfg.get("plant.effectiveness") or [None] * m
     if not isinstance(eff, list) or len(eff) != m:
         raise ConfigError("plant.effectiveness", f"must list {m} parameter names (one per input).",
                           'write e.g. effectiveness = ["lam"] under [plant].')
-    sensors: dict[str, Any] = dict(cfg.get("plant.sensors", {}) or {})
+    sensors: dict[str, Any] = dict(cfg.get("plant.sensors") or {})
     raw: dict[str, Any] = {
         "name": str(cfg.get("rig.name", "rig")),
         "state": [{"name": s, "unit": u, "limit": float(r)}
@@ -68,8 +68,8 @@ def _inline(cfg: Config) -> RigSpec:
                    **({"effectiveness": e} if e is not None else {})}
                   for i, u, lim, e in zip(inputs, in_units, limits, eff, strict=True)],
         "nominal": {"A": A.tolist(), "B": B.tolist(), "C": C.tolist()},
-        "params": dict(cfg.get("plant.params", {}) or {}),
-        "term": list(cfg.get("plant.terms", []) or []),
+        "params": dict(cfg.get("plant.params") or {}),
+        "term": list(cfg.get("plant.terms") or []),
         "sensors": sensors,
     }
     try:
@@ -82,7 +82,7 @@ def _inline(cfg: Config) -> RigSpec:
 
 def sensor_overrides(cfg: Config) -> dict[str, Any]:
     """The config's [plant.sensors] overrides of the rig's named sensor settings."""
-    raw = dict(cfg.get("plant.sensors", {}) or {})
+    raw = dict(cfg.get("plant.sensors") or {})
     raw.pop("channels", None)
     for k, v in raw.items():
         where = f"plant.sensors.{k}"

@@ -58,7 +58,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from runtime.commands import schedule_from_config, tracked_names
-from runtime.config import Config, ConfigError, check_sections
+from runtime.config import Config, ConfigError, check_config
 from runtime.design import Design, design_from_config
 from runtime.dryrun import weight_norm_limit
 
@@ -99,14 +99,12 @@ class SweepSettings:
                     duration: float | None = None, workers: int | None = None,
                     chunk: int | None = None, engine: str | None = None) -> SweepSettings:
         """Sweep settings: arguments win over `[sweep]` keys, which win over defaults."""
-        n = plants if plants is not None else int(cfg.number("sweep.plants", 1000, minimum=1))
+        n = plants if plants is not None else int(cfg.number("sweep.plants"))
         if n < 1:
             raise ConfigError("sweep.plants", f"must be at least 1, got {n}.",
                               "ask for one plant or more, e.g. --plants 500.")
-        s = seed if seed is not None else int(cfg.number("sweep.seed", cfg.number(
-            "plant.seed", 0, minimum=0), minimum=0))
-        dur = duration if duration is not None else cfg.number(
-            "commands.duration", 30.0, positive=True, unit="s")
+        s = seed if seed is not None else int(cfg.number("sweep.seed", cfg.number("plant.seed")))
+        dur = duration if duration is not None else cfg.number("commands.duration")
         if not dur > 0:
             raise ConfigError("commands.duration", f"the sweep duration must be positive, got "
                               f"{dur}.", "give --duration S with S > 0.")
@@ -117,25 +115,24 @@ class SweepSettings:
             raise ConfigError("sweep.plants", f"{n:,} plants is more than a sweep draws at "
                               f"once ({MAX_PLANTS:,}).",
                               f"give --plants {MAX_PLANTS:,} or fewer (run several seeds).")
-        Ts = cfg.number("loop.period", SUBSTEP_MAX, positive=True, unit="s")
+        Ts = cfg.number("loop.period")
         if not dur / Ts <= MAX_TICKS:  # also catches an infinite duration
             raise ConfigError("commands.duration", f"{dur:g} s at loop.period = {Ts:g} s is "
                               f"more than {MAX_TICKS:,} ticks per plant.",
                               "give a shorter --duration (or commands.duration).")
         w = workers if workers is not None else int(cfg.number(
-            "sweep.workers", os.cpu_count() or 1, minimum=1))
-        ch = chunk if chunk is not None else int(cfg.number("sweep.chunk", 8000, minimum=1))
-        eng = engine or cfg.choice("sweep.engine", ENGINES, "auto")
+            "sweep.workers", os.cpu_count() or 1))
+        ch = chunk if chunk is not None else int(cfg.number("sweep.chunk"))
+        eng = engine or cfg.choice("sweep.engine", ENGINES)
         return cls(
             plants=int(n), seed=int(s), duration=float(dur), workers=max(1, int(w)),
             chunk=max(1, int(ch)),
-            latency_ticks=int(cfg.number("sweep.latency_ticks", 0, minimum=0, maximum=1000)),
-            noise=cfg.flag("sweep.noise", True),
-            substeps=int(cfg.number("sweep.substeps", default_substeps(cfg), minimum=1,
-                                    maximum=100)),
-            margin_trip=cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0),
-            saturation_time=cfg.number("watchdog.saturation_s", 0.5, positive=True, unit="s"),
-            divergence_factor=cfg.number("sweep.divergence_factor", 10.0, minimum=1.0),
+            latency_ticks=int(cfg.number("sweep.latency_ticks")),
+            noise=cfg.flag("sweep.noise"),
+            substeps=int(cfg.number("sweep.substeps", default_substeps(cfg))),
+            margin_trip=cfg.number("watchdog.margin_trip"),
+            saturation_time=cfg.number("watchdog.saturation_s"),
+            divergence_factor=cfg.number("sweep.divergence_factor"),
             weight_norm_limit=weight_norm_limit(cfg),
             engine=eng,
         )
@@ -152,13 +149,13 @@ def default_substeps(cfg: Config) -> int:
     gave the same per-plant worst margin ratio to ~3e-9 and the same outcome for every
     plant (`bench/bench_sweep.py`, docs/sweeps.md), at about twice the speed.
     """
-    Ts = cfg.number("loop.period", SUBSTEP_MAX, positive=True, unit="s")
+    Ts = cfg.number("loop.period")
     return max(1, math.ceil(Ts / SUBSTEP_MAX - 1e-9))
 
 
 def _ranges(cfg: Config, truth_names: Sequence[str], spec: Any = None,
             ) -> dict[str, tuple[float, float]]:
-    raw = cfg.get("plant.ranges", {})
+    raw = cfg.get("plant.ranges") or {}
     if not isinstance(raw, dict):
         raise ConfigError("plant.ranges", "must be a table of [lo, hi] pairs.",
                           "write e.g. gravity_el = [1.0, 3.0] under [plant.ranges].")
@@ -192,7 +189,7 @@ def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
         raise ConfigError("rig.sim", "a sweep needs a simulated rig to stand in for the plant.",
                           f"set rig.sim to a built-in rig ({', '.join(RIGS)}) or a rig file "
                           "(see README, 'Your own rig'), or give [plant] terms.")
-    truth = dict(cfg.get("plant.truth", {}))
+    truth = dict(cfg.get("plant.truth") or {})
     for key in truth:
         if key not in spec.params:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
@@ -666,23 +663,9 @@ def run_sweep(cfg: Config, plants: int | None = None, seed: int | None = None,
 
 # ------------------------------------------------------------------ grids
 def check_grid_keys(cfg: Config, axes: Sequence[tuple[str, list[Any]]]) -> None:
-    """Refuse a grid key the config does not set: a misspelt or unknown key would otherwise
-    be ignored by every module and the grid would show the same result in every cell."""
-    import difflib
-
-    from runtime.config import _tables, walk
-
-    existing = [k for k, _ in walk(cfg.raw)]
-    tables = set(_tables(cfg.raw))
-    for key, _vals in axes:
-        if key in existing or key in tables:
-            continue
-        close = difflib.get_close_matches(key, existing, n=1, cutoff=0.8)
-        hint = f"did you mean {close[0]}? " if close else ""
-        raise ConfigError(f"--grid {key}", "is not a key of this config, so the grid would "
-                          "not change anything.",
-                          f"{hint}grid a key the config sets (add it with --set {key}=VALUE "
-                          "first if corral reads it with a default).")
+    """Refuse a grid key the schema does not declare: a misspelt key would otherwise be
+    ignored by every module and the grid would show the same result in every cell."""
+    check_config(cfg.raw, "--grid", keys=[key for key, _vals in axes])
 
 
 def parse_grid(items: Sequence[str]) -> list[tuple[str, list[Any]]]:
@@ -725,7 +708,7 @@ def run_grid(cfg: Config, axes: Sequence[tuple[str, list[Any]]], progress: Progr
     for combo in combos:
         setting = {k: v for (k, _vals), v in zip(axes, combo, strict=True)}
         sub = cfg.with_overrides([f"{k}={_fmt(v)}" for k, v in setting.items()])
-        check_sections(sub.raw, "--grid")  # a table replaced by a value: refuse the grid
+        check_config(sub.raw, "--grid", keys=list(setting))  # a value of the wrong kind
         entry: dict[str, Any] = {"setting": setting}
         try:
             design = design_from_config(sub)

@@ -11,7 +11,7 @@ this tick, first-out first (rule order breaks ties: the most specific data
 faults come before the margin). The loop reacts in the same tick. The
 supervisor asks `Watchdog.clear()` whether a reset may be granted.
 
-Config (all optional, defaults in `DEFAULTS`): ``[watchdog]`` thresholds
+Config (all optional, declared with their defaults in `runtime.schema`): ``[watchdog]`` thresholds
 (``margin_warning``, ``margin_trip``, ``predicted_horizon_s``,
 ``stale_periods``, ``seq_gap_max``, ``link_timeout_s``, ``saturation_s``,
 ``overrun_misses``, ``overrun_window``, ``weight_norm_max``,
@@ -35,6 +35,8 @@ from typing import Any
 
 import numpy as np
 
+from runtime import schema
+
 REACTIONS = ("baseline", "controlled_stop", "outputs_off")
 SEVERITY = {"none": 0, "baseline": 1, "controlled_stop": 2, "outputs_off": 3}
 
@@ -53,19 +55,8 @@ DEFAULT_REACTIONS = {
     "weight_rate": "baseline",
 }
 
-DEFAULTS: dict[str, Any] = {
-    "margin_warning": 0.8,
-    "margin_trip": 0.9,
-    "predicted_horizon_s": 0.01,
-    "stale_periods": 3,
-    "seq_gap_max": 0,
-    "link_timeout_s": 0.1,
-    "saturation_s": 0.5,
-    "overrun_misses": 25,
-    "overrun_window": 1000,
-    "weight_norm_max": 100.0,
-    "weight_rate_max": 1000.0,
-}
+DEFAULTS: dict[str, Any] = schema.defaults_of("watchdog")
+"""The ``[watchdog]`` thresholds' defaults, as declared in `runtime.schema`."""
 
 
 def over(value: float, threshold: float) -> bool:
@@ -166,7 +157,7 @@ def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
     """The rules a config asks for, in first-out tie-break order."""
 
     def num(key: str) -> float:
-        return float(cfg.number(f"watchdog.{key}", DEFAULTS[key]) if cfg is not None
+        return float(cfg.number(f"watchdog.{key}") if cfg is not None
                      else DEFAULTS[key])
 
     stale_s = num("stale_periods") * period
@@ -209,7 +200,7 @@ def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
         rule.on_delay = float(cfg.number(f"{base}.on_delay_s", rule.on_delay, minimum=0.0,
                                          unit="s"))
         rule.deadband = float(cfg.number(f"{base}.deadband", rule.deadband, minimum=0.0))
-        rule.enabled = bool(cfg.flag(f"{base}.enabled", True))
+        rule.enabled = bool(cfg.flag(f"{base}.enabled"))
     return rules
 
 
@@ -226,8 +217,8 @@ class Watchdog:
     @classmethod
     def from_config(cls, cfg: Any, period: float, clamp_margin: float) -> Watchdog:
         """Rules and overrun window from ``[watchdog]``."""
-        window = int(cfg.number("watchdog.overrun_window", DEFAULTS["overrun_window"],
-                                minimum=1)) if cfg is not None else DEFAULTS["overrun_window"]
+        window = (int(cfg.number("watchdog.overrun_window")) if cfg is not None
+                  else DEFAULTS["overrun_window"])
         return cls(build_rules(cfg, period, clamp_margin), window)
 
     def note_miss(self, tick: int, missed: int) -> int:

@@ -177,7 +177,7 @@ class FaultSchedule:
         the caller turns it into one line.
         """
         faults = []
-        tables = cfg.get("faults", []) if hasattr(cfg, "get") else []
+        tables = cfg.get("faults") if hasattr(cfg, "get") else []
         if isinstance(tables, dict):
             tables = [tables]
         for i, table in enumerate(tables or []):

@@ -63,7 +63,7 @@ def test_dry_run_output_folder_that_is_a_file(tmp_path):
 
 
 @pytest.mark.parametrize("grid, words", [
-    ("nosuch.key=1,2", ("nosuch.key", "--set")),
+    ("nosuch.key=1,2", ("nosuch.key", "not a section")),
     ("adaptation.gama=1,2", ("adaptation.gama", "did you mean adaptation.gamma")),
     ("plant.truth=1,2", ("'plant.truth'", "table")),
 ])
@@ -112,7 +112,7 @@ def demo_run(tmp_path_factory) -> Path:
 
 
 @pytest.mark.parametrize("override, words", [
-    ("nosuch.x=1", ("'nosuch'", "section")),
+    ("nosuch.x=1", ("'nosuch.x'", "section")),
     ("plant.truth=1", ("'plant.truth'", "table")),
 ])
 def test_replay_refuses_overrides_that_no_module_can_use(tmp_path, demo_run, override, words):

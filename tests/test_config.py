@@ -143,6 +143,6 @@ def test_typed_readers_name_the_field():
         cfg.weight_matrix("a.q", 2)
     with pytest.raises(ConfigError, match=r"'a\.flag'.*true or false"):
         cfg.flag("a.flag")
-    with pytest.raises(ConfigError, match=r"'a\.missing'.*missing"):
-        cfg.number("a.missing")
+    with pytest.raises(ConfigError, match=r"'loop\.period'.*missing"):
+        cfg.number("loop.period")  # declared, required, absent
     assert np.array_equal(cfg.weight_matrix("a.s", 2), 3.0 * np.eye(2))

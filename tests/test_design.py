@@ -10,7 +10,7 @@ import scipy.signal
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
-from runtime.config import Config
+from runtime.config import Config, ConfigError
 from runtime.design import (
     controllability_rank,
     design_from_config,
@@ -266,11 +266,24 @@ def test_design_from_config_ties_the_pieces_together(small_rig_raw):
     assert d.feasible and d.reasons == ()
 
 
-def test_explicit_eps_overrides_the_limits_and_warns_when_larger(small_rig_raw):
-    small_rig_raw["adaptation"]["eps"] = 10.0
+def test_explicit_eps_within_the_limits_is_used_and_beyond_them_is_refused(small_rig_raw):
+    # The guaranteed envelope on state i is eps sqrt((P^-1)_ii): the support function of
+    # the ellipsoid e'Pe <= eps^2 along axis i (Boyd and Vandenberghe, Convex Optimization,
+    # from memory). An eps whose envelope passes a limit guarantees nothing the limits ask
+    # for, so it is refused, naming the binding state.
+    d0 = design_from_config(Config(raw=small_rig_raw))
+    small_rig_raw["adaptation"]["eps"] = 0.5 * d0.eps_from_limits
     d = design_from_config(Config(raw=small_rig_raw))
-    assert d.eps == 10.0 and d.eps_from_limits < 10.0
-    assert any("larger than" in w for w in d.warnings)
+    assert d.eps == pytest.approx(0.5 * d0.eps_from_limits)
+    small_rig_raw["adaptation"]["eps"] = 10.0
+    with pytest.raises(ConfigError) as err:
+        design_from_config(Config(raw=small_rig_raw))
+    assert err.value.field == "adaptation.eps"
+    env = 10.0 * np.sqrt(np.diag(np.linalg.inv(d0.P)))
+    worst = int(np.argmax(env / d0.limits))
+    assert d0.rig.states[worst] in err.value.problem
+    assert f"{env[worst]:.3g}" in err.value.problem
+    assert "lower adaptation.eps" in err.value.fix and "design.limits" in err.value.fix
 
 
 def test_step_gain_follows_the_brief_formula_and_refuses_above_the_cap(small_rig_raw):
