@@ -371,6 +371,7 @@ def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
     K2c = setup.cmd @ d.K2.T          # (ticks, m)
     Bdc = setup.cmd @ d.B_d.T         # (ticks, n)
     umax = d.rig.input_limits[:, None]
+    uscale = np.asarray(d.regressor_scale, dtype=float)[:, None]
     gamma = np.asarray(d.gamma, dtype=float)[:, None]
     gcoef = Ts * float(np.max(d.gamma)) * d.lam_max_BPB
     cap = d.step_gain_cap
@@ -593,7 +594,7 @@ def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
                 elif op == "mul":
                     np.multiply(y[i], y[j], out=sig[r])
             if nreg > nb:
-                np.divide(un, umax, out=sig[nb:])
+                np.divide(un, uscale, out=sig[nb:])
             sig_sq = np.einsum("ib,ib->b", sig, sig)
             g = sig_sq
             g *= phi_d
