@@ -525,8 +525,8 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                                feasible=not reasons, extras=extras)
 
 
-def format_design(d: Design) -> str:
-    """A human-readable design report with units."""
+def format_design(d: Design, verdict: Any = None) -> str:
+    """A human-readable design report with units; `verdict` a `runtime.verdict.Verdict`."""
     rig = d.rig
     lines = [
         f"corral design: rig {rig.name!r}" + (f" (simulated {rig.sim})" if rig.sim else ""),
@@ -561,12 +561,21 @@ def format_design(d: Design) -> str:
         f"  law {d.law}" + (f" (barrier {d.barrier})" if d.law == "barrier" else "")
         + f", gamma max {float(np.max(d.gamma)):.4g}, regressors: {', '.join(d.regressor_names)}",
         f"  regressor bound ||sigma_bar|| <= {d.regressor_bound:.4g} over the operating range",
-        f"  nominal per-step adaptation gain g = {d.step_gain:.4g} (cap {d.step_gain_cap:.3g});"
-        f" at the trip level {d.step_gain_at_trip:.4g}",
+        f"  sampled loop (update with e_k, then u_k): one-tick map spectral radius "
+        f"{d.sampled_radius:.5f} (stable below 1; Ts * g limit {SAMPLED_LIMIT:g})",
+        f"  nominal per-step adaptation gain g = {d.step_gain:.4g}; runtime guard "
+        f"adaptation.step_gain_cap {d.step_gain_cap:.3g} (at the trip level g = "
+        f"{d.step_gain_at_trip:.4g})",
         "",
-        "Verdict: " + ("FEASIBLE" if d.feasible else "REFUSED"),
     ]
-    lines += [f"  reason: {r}" for r in d.reasons]
+    if verdict is None:
+        lines.append("Verdict (closed form): " + ("not refused" if d.feasible else "REFUSED"))
+        lines += [f"  reason: {r}" for r in d.reasons]
+    else:
+        lines.append(f"Verdict: {verdict.verdict} (by the {verdict.basis})")
+        lines.append(f"  {verdict.reason}")
+        if verdict.fix:
+            lines.append(f"  fix: {verdict.fix}")
     lines += [f"  warning: {w}" for w in d.warnings]
     lines.append("")
     lines.append("The bound is a continuous-time guarantee, not a hardware guarantee: watch the "
