@@ -67,8 +67,10 @@ def test_go_on_a_benign_config_and_the_record_is_written(benign, tmp_path):
 
 
 def test_no_go_when_the_design_refuses_the_gamma(benign):
-    # gamma so large the per-step adaptation gain exceeds the cap: the design refuses it.
-    res = run_preflight(benign.with_overrides(["adaptation.gamma=1e5"]), write=False)
+    # gamma so large, with the runtime guard lifted, that the sampled loop is unstable
+    # (Ts * g past 4, docs/sampled-data.md): the design refuses it.
+    res = run_preflight(benign.with_overrides(["adaptation.gamma=1e7",
+                                               "adaptation.step_gain_cap=1e12"]), write=False)
     assert res["go"] is False and res["predicted_trip_rate"] is None
     assert any(r.startswith("design refused") for r in res["reasons"])
 
