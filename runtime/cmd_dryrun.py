@@ -82,7 +82,8 @@ def main(args: argparse.Namespace) -> int:
               f"{s.get('engine', args.engine)} engine)")
         print(f"  max margin ratio ||e||_P/eps = {s['max_margin_ratio']:.3f}  -> "
               + ("the bound held" if held else f"BOUND BROKEN at t = {s['breach_time']:.3f} s"))
-        print(f"  final pointing error (rms, last 5 s) = {s['rms_error_final'] * 1e3:.3f} mrad")
+        print(f"  rms_error_final = {s['rms_error_final'] * 1e3:.3f} mrad "
+              f"({s['rms_error_final_against']})")
         print(f"  weight norm = {s['weight_norm']:.4g}, peak learning rate gamma*phi_d = "
               f"{s['max_eff_rate']:.4g}, peak step gain = {s['max_step_gain']:.3g}")
         print(f"  run file: {run_file}")
