@@ -82,6 +82,12 @@ def main(args: argparse.Namespace) -> int:
               f"{s.get('engine', args.engine)} engine)")
         print(f"  max margin ratio ||e||_P/eps = {s['max_margin_ratio']:.3f}  -> "
               + ("the bound held" if held else f"BOUND BROKEN at t = {s['breach_time']:.3f} s"))
+        if s.get("weights_diverged_time") is not None:
+            print(f"  WEIGHTS DIVERGED at t = {s['weights_diverged_time']:.3f} s (||W|| beyond "
+                  f"{s['weight_norm_limit']:g} or non-finite; sweep.weight_norm_limit)")
+        if s.get("states_diverged_time") is not None:
+            print(f"  STATES DIVERGED at t = {s['states_diverged_time']:.3f} s (beyond "
+                  "sweep.divergence_factor x design.state_range)")
         print(f"  rms_error_final = {s['rms_error_final'] * 1e3:.3f} mrad "
               f"({s['rms_error_final_against']})")
         print(f"  weight norm = {s['weight_norm']:.4g}, peak learning rate gamma*phi_d = "

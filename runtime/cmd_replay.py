@@ -30,7 +30,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "(repeatable)")
     parser.add_argument("--plant", choices=("config", "fitted"), default="config",
                         help="simulated plant: the config's plant.truth (default) or the "
-                             "pedestal fitted to the recorded data")
+                             "rig fitted to the recorded data")
     parser.add_argument("--out", type=Path, default=None,
                         help="folder for the PNG and the replayed run file "
                              "(default: <run file folder>/replays)")

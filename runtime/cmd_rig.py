@@ -9,7 +9,7 @@ reopen it after a ``disconnect`` fault); ``--mqtt HOST:PORT`` serves as rig
 ``[[faults]]``; ``--set KEY=VALUE`` overrides the config.
 
 What lives here: argument handling and wiring. The device itself is
-`sim_rigs.device.PedestalDevice`; the topics and settings `drivers.mqtt_link`.
+`sim_rigs.device.RigDevice`; the topics and settings `drivers.mqtt_link`.
 """
 
 from __future__ import annotations
@@ -70,7 +70,7 @@ def main(args: argparse.Namespace) -> int:
     from drivers.base import LinkClosed
     from runtime.design import design_from_config
     from runtime.dryrun import plant_from_config
-    from sim_rigs.device import PedestalDevice
+    from sim_rigs.device import RigDevice
     from sim_rigs.faults import FaultError, FaultSchedule
 
     if not 0 < args.duration <= math.inf:
@@ -95,7 +95,7 @@ def main(args: argparse.Namespace) -> int:
     seed = int(cfg.number("plant.seed", 0, minimum=0))
     try:
         # Each fault's axis is resolved against the device's channels here.
-        device = PedestalDevice(plant, period=design.Ts, rig_id=rig, command_timeout_s=timeout,
+        device = RigDevice(plant, period=design.Ts, rig_id=rig, command_timeout_s=timeout,
                                 faults=schedule, output_limits=design.rig.input_limits,
                                 seed=seed)
     except FaultError as exc:

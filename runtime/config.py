@@ -309,6 +309,7 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
                           "fix the syntax at the line named.") from None
     check_sections(raw, str(path))
     apply_aliases(raw)
+    _anchor_rig_file(raw, p)
     cfg = Config(raw=raw, path=p)
     if overrides:
         merged = cfg.with_overrides(overrides)
@@ -316,6 +317,17 @@ def load_config(path: str | Path, overrides: Sequence[str] = ()) -> Config:
         _note_new_keys(raw, overrides)  # only once the overrides are accepted: one message
         cfg = merged
     return cfg
+
+
+def _anchor_rig_file(raw: dict[str, Any], path: Path) -> None:
+    """A rig file named relative to the config (`rig.sim = "my-rig.toml"`) is read relative
+    to the config file, also where the config travels without its path (sweep workers)."""
+    rig = raw.get("rig")
+    sim = rig.get("sim") if isinstance(rig, dict) else None
+    if isinstance(sim, str) and ("/" in sim or sim.endswith(".toml")):
+        q = Path(sim)
+        if not q.is_absolute():
+            rig["sim"] = str((path.parent / q).resolve())
 
 
 # Nested tables the modules read with dict access; a scalar there (`--set plant.truth=1`)

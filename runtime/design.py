@@ -143,6 +143,8 @@ class RigModel:
     inputs: tuple[str, ...]
     input_units: tuple[str, ...]
     input_limits: Array
+    spec: Any = field(default=None, compare=False, repr=False)
+    """The simulated rig (`sim_rigs.rigfile.RigSpec`), None for a real rig without terms."""
 
     @property
     def n(self) -> int:
@@ -156,19 +158,24 @@ class RigModel:
 
 
 def rig_model(cfg: Config) -> RigModel:
-    """The nominal model from `[rig]`: a named simulated rig or explicit A, B, C."""
-    sim = cfg.get("rig.sim", None)
-    name = str(cfg.get("rig.name", sim or "rig"))
-    if sim is not None:
-        from sim_rigs import RIGS
+    """The nominal model: the simulated rig's (`rig.sim`, a built-in name or a rig file), or
+    explicit `rig.A`, `rig.B`, `rig.C`; explicit keys override the rig file's."""
+    from runtime.rig import INLINE, rig_spec
 
-        if sim not in RIGS:
-            raise ConfigError("rig.sim", f"no simulated rig called {sim!r}.",
-                              f"use one of: {', '.join(sorted(RIGS))}.")
-        spec = RIGS[sim]
-        A, B, C = spec.nominal_model()
+    spec = rig_spec(cfg)
+    if spec is not None and cfg.get("rig.sim", None) is not None:
+        sim = spec.name
+        name = str(cfg.get("rig.name", sim))
+        A0, B0, C0 = spec.nominal_model()
+        n, m = A0.shape[0], B0.shape[1]
+        A = cfg.matrix("rig.A", (n, n)) if cfg.has("rig.A") else A0
+        B = cfg.matrix("rig.B", (n, m)) if cfg.has("rig.B") else B0
+        C = cfg.matrix("rig.C", (None, n)) if cfg.has("rig.C") else C0
+        limits = (cfg.vector("rig.input_limits", m, positive=True)
+                  if cfg.has("rig.input_limits") else np.array(spec.input_limits, dtype=float))
         return RigModel(name, sim, A, B, C, spec.states, spec.state_units, spec.inputs,
-                        spec.input_units, np.array(spec.input_limits, dtype=float))
+                        spec.input_units, limits, spec)
+    name = str(cfg.get("rig.name", "rig"))
     A = cfg.matrix("rig.A", (None, None))
     n = A.shape[0]
     if A.shape != (n, n):
@@ -182,7 +189,8 @@ def rig_model(cfg: Config) -> RigModel:
     inputs = tuple(cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)]))
     in_units = tuple(cfg.strings("rig.input_units", m, ["1"] * m))
     limits = cfg.vector("rig.input_limits", m, positive=True)
-    return RigModel(name, None, A, B, C, states, units, inputs, in_units, limits)
+    return RigModel(name, INLINE if spec is not None else None, A, B, C, states, units, inputs,
+                    in_units, limits, spec)
 
 
 INPUT_SCALES = ("u_max", "none")
@@ -380,7 +388,9 @@ def design_from_config(cfg: Config) -> Design:
     clamp_margin = cfg.number("adaptation.clamp_margin", 0.02, minimum=1e-6, maximum=0.5)
     cap = cfg.number("adaptation.step_gain_cap", 1.0, positive=True)
 
-    state_range = cfg.vector("design.state_range", n, positive=True)
+    state_range = (cfg.vector("design.state_range", n, positive=True)
+                   if cfg.has("design.state_range") or rig.spec is None
+                   else np.array(rig.spec.state_limits, dtype=float))
     pts = _sample_box(state_range, 2000, np.random.default_rng(1))
     sig = basis.evaluate(pts)
     sq = np.sum(sig * sig, axis=-1)

@@ -46,11 +46,14 @@ class DryRunResult:
     summary: dict[str, Any] = field(default_factory=dict)
 
 
-def check_effectiveness(where: str, value: Any) -> None:
-    """Motor effectiveness (`lam_*`) must be positive: the method
+def check_effectiveness(where: str, value: Any, spec: Any = None) -> None:
+    """Motor effectiveness (a rig's `effectiveness` parameters) must be positive: the method
     assumes the sign of the input gain is known (Lambda positive diagonal), so zero or a
     negative value is a config mistake, not a plant to simulate."""
-    if not where.rsplit(".", 1)[-1].startswith("lam_"):
+    key = where.rsplit(".", 1)[-1]
+    names = ([e for e in spec.effectiveness if e is not None] if spec is not None
+             else [key] if key.startswith("lam_") else [])
+    if key not in names:
         return
     vals = value if isinstance(value, list) else [value]
     for v in vals:
@@ -60,45 +63,53 @@ def check_effectiveness(where: str, value: Any) -> None:
                               "weaker).")
 
 
-def check_truth_value(where: str, value: Any) -> None:
+def check_truth_value(where: str, value: Any, spec: Any = None) -> None:
     """One `plant.truth` entry: a finite number (and a positive one for effectiveness)."""
     if isinstance(value, bool) or not isinstance(value, int | float) or not np.isfinite(value):
         raise ConfigError(where, f"must be a finite number, got {value!r}.",
                           f"write e.g. {where.rsplit('.', 1)[-1]} = 0.5 under [plant.truth].")
-    check_effectiveness(where, value)
+    check_effectiveness(where, value, spec)
 
 
 def plant_from_config(cfg: Config, design: Design, batch: int = 1,
                       truth: dict[str, Any] | None = None) -> Any:
-    """The simulated plant a config describes (its `[plant]` truth and sensors)."""
-    from sim_rigs import RIGS
-    from sim_rigs.pedestal import Pedestal, SensorModel
+    """The simulated plant a config describes: its rig (`rig.sim` or inline terms) with the
+    config's `[plant]` truth and sensor overrides (`sim_rigs.plant.RigPlant`)."""
+    from runtime.rig import as_config_error, sensor_overrides
+    from sim_rigs import builtin_names
+    from sim_rigs.plant import RigPlant, SensorModel
+    from sim_rigs.rigfile import RigFileError
 
-    sim = design.rig.sim
-    if sim is None:
-        raise ConfigError("rig.sim", "a dry run needs a simulated rig.",
-                          'set rig.sim = "pedestal" (the only simulated rig so far).')
-    spec = RIGS[sim]
+    spec = design.rig.spec
+    if spec is None:
+        raise ConfigError("rig.sim", "this needs a simulated rig to stand in for the plant.",
+                          f"set rig.sim to a built-in rig ({', '.join(builtin_names())}) or "
+                          "a rig file (see README, 'Your own rig'), or give [plant] terms.")
     from_config = truth is None
     truth = dict(cfg.get("plant.truth", {})) if truth is None else truth
     for key in truth:
-        if key not in spec.truth_defaults:
+        if key not in spec.params:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
-                              f"use one of: {', '.join(spec.truth_defaults)}.")
+                              f"use one of: {', '.join(spec.params)}.")
         if from_config:  # a caller's truth (a fitted plant, say) is not the user's input
-            check_truth_value(f"plant.truth.{key}", truth[key])
-    sensors = SensorModel(
-        angle_resolution=cfg.number("plant.sensors.angle_resolution", 2 * np.pi / 2**16,
-                                    minimum=0.0, unit="rad"),
-        angle_noise=cfg.number("plant.sensors.angle_noise", 2e-5, minimum=0.0, unit="rad"),
-        rate_noise=cfg.number("plant.sensors.rate_noise", 2e-3, minimum=0.0, unit="rad/s"),
-        delay_ticks=int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0)),
-    )
+            check_truth_value(f"plant.truth.{key}", truth[key], spec)
+    try:
+        sensors = SensorModel.for_rig(spec, sensor_overrides(cfg))
+    except RigFileError as exc:
+        raise as_config_error(exc) from None
     x0 = cfg.vector("plant.x0", design.rig.n, [0.0] * design.rig.n)
     seed = int(cfg.number("plant.seed", 0, minimum=0))
     substeps = int(cfg.number("plant.substeps", 4, minimum=1, maximum=100))
-    return Pedestal.create(truth, batch=batch, x0=x0, sensors=sensors, substeps=substeps,
-                           rng=np.random.default_rng(seed))
+    return RigPlant.create(spec, truth, batch=batch, x0=x0, sensors=sensors, substeps=substeps,
+                           rng=np.random.default_rng(seed),
+                           limits=np.asarray(design.rig.input_limits, dtype=float))
+
+
+def weight_norm_limit(cfg: Config) -> float:
+    """||W||_F beyond which a dry run or a sweep calls the weights diverged:
+    `sweep.weight_norm_limit`, default the watchdog's `watchdog.weight_norm_max` (100)."""
+    return float(cfg.number("sweep.weight_norm_limit", cfg.number(
+        "watchdog.weight_norm_max", 100.0, positive=True), positive=True))
 
 
 ENGINES = ("fast", "reference")
@@ -163,7 +174,7 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
              "w_norm": "1", "clamped": "1"}
 
     compile_s = 0.0
-    if engine == "fast" and rig.sim == "pedestal":
+    if engine == "fast" and rig.spec is not None:
         settings = ModifierSettings.from_modifiers(modifiers, rig.m)
         wall, compile_s = _run_fast(design, settings, plant, cmd, eps_t, cols, progress)
     else:
@@ -175,6 +186,13 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
 
     ratio = cols["ratio"]
     breach = np.flatnonzero(~(ratio < 1.0))
+    # divergence, as the sweep counts it: the true state beyond sweep.divergence_factor x
+    # design.state_range (or non-finite), the weight norm non-finite or beyond
+    # sweep.weight_norm_limit (default: the watchdog's weight_norm_max)
+    w_limit = weight_norm_limit(cfg)
+    bound = cfg.number("sweep.divergence_factor", 10.0, minimum=1.0) * design.state_range
+    x_bad = np.flatnonzero(~np.all(np.abs(cols["x"]) <= bound, axis=1))
+    w_bad = np.flatnonzero(~(cols["w_norm"] <= w_limit))
     out_idx = np.argmax(rig.C != 0, axis=1)
     summary = {
         "law": design.law,
@@ -185,6 +203,11 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
         "rms_error_final": rms_error_final(t, cols["y"][:, out_idx], cmd),
         "rms_error_final_against": RMS_ERROR_FINAL_AGAINST,
         "weight_norm": float(cols["w_norm"][-1]),
+        "max_weight_norm": float(np.max(cols["w_norm"])),
+        "weight_norm_limit": w_limit,
+        "weights_diverged_time": float(t[w_bad[0]]) if w_bad.size else None,
+        "states_diverged_time": float(t[x_bad[0]]) if x_bad.size else None,
+        "diverged": bool(w_bad.size or x_bad.size),
         "ticks": ticks,
         "sim_seconds": float(ticks * Ts),
         "wall_seconds": wall,
@@ -234,24 +257,16 @@ def _run_reference(law: AdaptiveLaw, plant: Any, cmd: NDArray[np.float64],
 
 
 def _sensor_noise(plant: Any, readings: int) -> NDArray[np.float64]:
-    """Pre-drawn, pre-scaled sensor noise (readings, 4), in the order `Pedestal.measure` draws it.
+    """Pre-drawn, pre-scaled sensor noise (readings, n), in the order `RigPlant.measure` draws it.
 
-    `Generator.normal(0, s)` is s times a standard normal draw, and measure()
-    draws the angle pair then the rate pair each reading, so one
-    standard-normal block reproduces the reference run's noise exactly.
+    measure() draws one block of standard normals (batch, noisy channels) a reading,
+    so one (readings, noisy channels) block reproduces the reference run's noise exactly.
     """
     s = plant.sensors
-    noise = np.zeros((readings, 4))
-    width = 2 * int(s.angle_noise > 0) + 2 * int(s.rate_noise > 0)
-    if width == 0:
-        return noise
-    z = plant.rng.standard_normal((readings, width))
-    col = 0
-    if s.angle_noise > 0:
-        noise[:, :2] = s.angle_noise * z[:, :2]
-        col = 2
-    if s.rate_noise > 0:
-        noise[:, 2:] = s.rate_noise * z[:, col:col + 2]
+    noise = np.zeros((readings, plant.spec.n))
+    idx = s.noisy
+    if idx.size:
+        noise[:, idx] = s.noise[idx] * plant.rng.standard_normal((readings, idx.size))
     return noise
 
 
@@ -260,25 +275,28 @@ def _run_fast(design: Design, settings: Any, plant: Any, cmd: NDArray[np.float64
               progress: Any) -> tuple[float, float]:
     """The compiled loop (`runtime.fast.dry_run_loop`); returns (wall, compile) seconds."""
     from runtime import fast
+    from sim_rigs import kernel
 
     ticks = len(cmd)
     ic, fc = fast.pack_law(design, settings)
     n, m, n_reg = design.rig.n, design.rig.m, design.n_regressors
     st = np.zeros(n + n_reg * m)
     out = np.zeros(fast.out_size(n, m, n_reg))
-    work = np.zeros((6, 4))
-    prm = fast.pack_pedestal(plant.params)
+    spec = plant.spec
+    work = kernel.work_buffer(spec)
+    pcode, pmat = kernel.pack_rig(spec)
+    prm = kernel.pack_params(spec, {k: np.ravel(v)[0] for k, v in plant.params.items()})
     limits = np.ascontiguousarray(plant.limits, dtype=float)
     xp = np.array(plant.x[0], dtype=float)
-    dist = np.zeros((ticks, 2))
+    dist = np.zeros((ticks, m))
     if plant.disturbance is not None:
         dist[:] = plant.disturbance[0]
-    lsc = np.ones((ticks, 2))
+    lsc = np.ones((ticks, m))
     if plant.lam_scale is not None:
         lsc[:] = plant.lam_scale[0]
     noise = _sensor_noise(plant, ticks + 1)
-    meas = np.zeros((ticks + 1, 4))
-    res = float(plant.sensors.angle_resolution)
+    meas = np.zeros((ticks + 1, n))
+    res = np.ascontiguousarray(plant.sensors.resolution, dtype=float)
     delay = int(plant.sensors.delay_ticks)
     substeps = int(plant.substeps)
     rec = (cols["x"], cols["y"], cols["e"], cols["s"], cols["ratio"], cols["phi_d"],
@@ -286,11 +304,11 @@ def _run_fast(design: Design, settings: Any, plant: Any, cmd: NDArray[np.float64
            cols["clamped"])
 
     def run(k0: int, k1: int) -> None:
-        fast.dry_run_loop(k0, k1, cmd, eps_t, dist, lsc, xp, prm, limits, substeps, noise,
-                          res, delay, meas, ic, fc, st, out, work, *rec)
+        fast.dry_run_loop(k0, k1, cmd, eps_t, dist, lsc, xp, pcode, pmat, prm, limits,
+                          substeps, noise, res, delay, meas, ic, fc, st, out, work, *rec)
 
     c0 = time.perf_counter()
-    fast.pedestal_measure(xp, res, noise[0], meas[0])
+    kernel.plant_measure(xp, res, noise[0], meas[0])
     run(0, 0)  # compile or load the cached kernels before the clock starts
     compile_s = time.perf_counter() - c0
     st[:n] = meas[0]

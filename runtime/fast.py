@@ -45,6 +45,11 @@ from numpy.typing import ArrayLike, NDArray
 
 from runtime.design import Design
 from runtime.law import LawState
+from runtime.watchdog import over
+from sim_rigs.kernel import plant_measure, plant_step
+
+_over = numba.njit(cache=True, inline="always")(over)
+"""The watchdog's one rule comparison, compiled for the sweep kernel."""
 
 Array = NDArray[np.float64]
 
@@ -69,17 +74,6 @@ FC_HEADER = 11
 # out: scalar results at the head, vectors after
 O_S, O_RATIO, O_PHI_D, O_EFF_RATE, O_STEP_GAIN, O_CLAMPED, O_CAPPED = range(7)
 OUT_HEADER = 7
-
-# pedestal parameters, in the order the plant kernel reads them
-PEDESTAL_PARAMS = (
-    "a_az", "b_az", "a_el", "b_el", "gravity_el", "visc_az", "visc_el", "coulomb_az",
-    "coulomb_el", "coulomb_speed", "spring_az", "coupling", "bias_az", "bias_el",
-    "lam_az", "lam_el", "stribeck_az", "stribeck_el", "stribeck_speed",
-)
-(P_A_AZ, P_B_AZ, P_A_EL, P_B_EL, P_GRAV, P_VISC_AZ, P_VISC_EL, P_COUL_AZ, P_COUL_EL,
- P_COUL_SPEED, P_SPRING, P_COUPLING, P_BIAS_AZ, P_BIAS_EL, P_LAM_AZ, P_LAM_EL,
- P_STRIB_AZ, P_STRIB_EL, P_STRIB_SPEED) = range(19)
-
 
 def out_size(n: int, m: int, n_reg: int) -> int:
     """Length of the `out` buffer for n states, m inputs and N_bar regressors."""
@@ -306,99 +300,11 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     out[O_CAPPED] = 1.0 if capped else 0.0
 
 
-# ------------------------------------------------------------------ pedestal kernels
-@numba.njit(cache=True)
-def pedestal_deriv(x: Array, v: Array, prm: Array, dist: Array, lsc: Array,
-                   dx: Array) -> None:  # pragma: no cover - jit
-    """dx = f(x, v) for one pedestal: the equations of `Pedestal.accel`."""
-    el = x[1]
-    wa = x[2]
-    we = x[3]
-    lam_a = prm[P_LAM_AZ] * lsc[0]
-    lam_e = prm[P_LAM_EL] * lsc[1]
-    vs = prm[P_COUL_SPEED]
-    acc_az = (
-        -(prm[P_A_AZ] + prm[P_VISC_AZ]) * wa
-        + prm[P_B_AZ] * lam_a * v[0]
-        - prm[P_COUL_AZ] * math.tanh(wa / vs)
-        - prm[P_STRIB_AZ] * math.exp(-(wa / prm[P_STRIB_SPEED]) ** 2) * math.tanh(wa / vs)
-        - prm[P_SPRING] * x[0]
-        - prm[P_COUPLING] * wa * we
-        + prm[P_BIAS_AZ]
-    )
-    acc_el = (
-        -(prm[P_A_EL] + prm[P_VISC_EL]) * we
-        + prm[P_B_EL] * lam_e * v[1]
-        - prm[P_COUL_EL] * math.tanh(we / vs)
-        - prm[P_STRIB_EL] * math.exp(-(we / prm[P_STRIB_SPEED]) ** 2) * math.tanh(we / vs)
-        - prm[P_GRAV] * math.cos(el)
-        + 0.5 * prm[P_COUPLING] * wa * wa * math.sin(2 * el)
-        + prm[P_BIAS_EL]
-    )
-    dx[0] = wa
-    dx[1] = we
-    dx[2] = acc_az + dist[0]
-    dx[3] = acc_el + dist[1]
-
-
-@numba.njit(cache=True)
-def pedestal_step(x: Array, u: Array, prm: Array, limits: Array, dt: float, substeps: int,
-                  dist: Array, lsc: Array, work: Array) -> None:  # pragma: no cover - jit
-    """Advance one pedestal by dt holding u (saturated here); RK4 with substeps.
-
-    `work` is a (6, 4) scratch array; the applied volts end up in work[5, :2].
-    """
-    v = work[5]
-    for j in range(2):
-        uj = u[j]
-        if uj > limits[j]:
-            uj = limits[j]
-        elif uj < -limits[j]:
-            uj = -limits[j]
-        v[j] = uj
-    h = dt / substeps
-    k1 = work[0]
-    k2 = work[1]
-    k3 = work[2]
-    k4 = work[3]
-    tmp = work[4]
-    for _ in range(substeps):
-        pedestal_deriv(x, v, prm, dist, lsc, k1)
-        for i in range(4):
-            tmp[i] = x[i] + 0.5 * h * k1[i]
-        pedestal_deriv(tmp, v, prm, dist, lsc, k2)
-        for i in range(4):
-            tmp[i] = x[i] + 0.5 * h * k2[i]
-        pedestal_deriv(tmp, v, prm, dist, lsc, k3)
-        for i in range(4):
-            tmp[i] = x[i] + h * k3[i]
-        pedestal_deriv(tmp, v, prm, dist, lsc, k4)
-        for i in range(4):
-            x[i] = x[i] + (h / 6.0) * (k1[i] + 2 * k2[i] + 2 * k3[i] + k4[i])
-
-
-@numba.njit(cache=True)
-def pedestal_measure(x: Array, resolution: float, noise: Array,
-                     y: Array) -> None:  # pragma: no cover - jit
-    """Sensor reading: angles plus noise then quantised, rates plus noise.
-
-    `noise` holds this reading's four pre-drawn, pre-scaled normal values
-    (zeros when the sensors are noise-free), so runs are reproducible.
-    """
-    for i in range(2):
-        a = x[i] + noise[i]
-        if resolution > 0.0:
-            a = np.rint(a / resolution) * resolution
-        y[i] = a
-    for i in range(2, 4):
-        y[i] = x[i] + noise[i]
-
-
 # ------------------------------------------------------------------ the dry-run loop
 @numba.njit(cache=True)
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,
-                 xp: Array, prm: Array, limits: Array, substeps: int, noise: Array,
-                 resolution: float, delay: int, meas: Array, ic: Any, fc: Array,
+                 xp: Array, pcode: Any, pmat: Array, prm: Array, limits: Array, substeps: int,
+                 noise: Array, resolution: Array, delay: int, meas: Array, ic: Any, fc: Array,
                  st: Array, out: Array, work: Array, rec_x: Array, rec_y: Array,
                  rec_e: Array, rec_s: Array, rec_ratio: Array, rec_phi_d: Array,
                  rec_eff: Array, rec_gain: Array, rec_u: Array, rec_uraw: Array,
@@ -407,7 +313,8 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
 
     `meas[j]` is the j-th raw sensor reading (meas[0] taken before tick 0);
     the law sees meas[max(0, k - delay)] at tick k. `xp` is the true plant
-    state, advanced in place.
+    state, advanced in place by `sim_rigs.kernel.plant_step` (the rig coded as
+    pcode, pmat, its parameters prm); readings by `sim_rigs.kernel.plant_measure`.
     """
     n = ic[I_N]
     m = ic[I_M]
@@ -436,8 +343,9 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
         for i in range(n, n + nreg * m):
             w2 += st[i] * st[i]
         rec_wnorm[k] = math.sqrt(w2)
-        pedestal_step(xp, out[o_u:o_u + m], prm, limits, dt, substeps, dist[k], lsc[k], work)
-        pedestal_measure(xp, resolution, noise[k + 1], meas[k + 1])
+        plant_step(xp, out[o_u:o_u + m], pcode, pmat, prm, limits, dt, substeps, lsc[k],
+                   dist[k], work)
+        plant_measure(xp, resolution, noise[k + 1], meas[k + 1])
 
 
 # ------------------------------------------------------------------ packing
@@ -586,11 +494,6 @@ def pack_law(design: Design, modifiers: ModifierSettings | None = None,
     return ic, fc
 
 
-def pack_pedestal(params: dict[str, Any]) -> Array:
-    """The pedestal parameter vector in `PEDESTAL_PARAMS` order (first plant of a batch)."""
-    return np.array([float(np.ravel(params[k])[0]) for k in PEDESTAL_PARAMS])
-
-
 # ------------------------------------------------------------------ the wrapper
 class FastTick:
     """One tick's results: live views of the law's output buffer (overwritten next tick).
@@ -726,13 +629,11 @@ def warm_up() -> float:
 # the compiler unrolls, the plant's state in registers, and the elevation trigonometry inside
 # a tick by the angle-addition formula. `tests/test_fast.py` checks each piece against the
 # general kernels above (`law_tick`, `pedestal_step`), which stay the single source of truth.
-SWEEP_RULES = ("margin", "clamp", "nonfinite", "saturation", "breach", "diverged")
+SWEEP_RULES = ("margin", "clamp", "nonfinite", "saturation", "breach", "diverged", "weights")
 """Columns of the sweep kernel's `first` output: first tick of each rule per plant."""
-(R_MARGIN, R_CLAMP, R_NONFINITE, R_SATURATION, R_BREACH, R_DIVERGED) = range(6)
+(R_MARGIN, R_CLAMP, R_NONFINITE, R_SATURATION, R_BREACH, R_DIVERGED, R_WEIGHTS) = range(7)
 DIVERGENCE_EVERY = 64
 """The sweep checks the true state for divergence after ticks 63, 127, ... and the last."""
-TAYLOR_LIMIT = 0.02
-"""Largest in-tick elevation change (rad) the angle-addition series handles (else exact)."""
 NOISE_OFF, NOISE_STREAM, NOISE_GIVEN = 0, 1, 2
 """Sensor noise of the sweep kernel: none, each plant's own stream, or pre-drawn."""
 
@@ -857,30 +758,6 @@ def law_tick_pedestal(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Ar
 
 
 @numba.njit(cache=True, inline="always")
-def fast_tanh(z: float) -> float:  # pragma: no cover - jit
-    """math.tanh(z), skipping the library call where tanh rounds to +-1 in double precision
-    (|z| > 20: 1 - tanh|z| < 1e-17, below half an ulp of 1)."""
-    if z > 20.0:
-        return 1.0
-    if z < -20.0:
-        return -1.0
-    return math.tanh(z)
-
-
-@numba.njit(cache=True, inline="always")
-def _trig(el: float, el0: float, c0: float, s0: float) -> tuple[float, float]:
-    """cos(el), sin(el) from cos(el0), sin(el0): angle addition with a Taylor series in
-    d = el - el0 (truncation < 1e-18 for |d| <= TAYLOR_LIMIT), exact beyond."""  # noqa: D401
-    d = el - el0
-    if abs(d) > TAYLOR_LIMIT:
-        return math.cos(el), math.sin(el)
-    d2 = d * d
-    cd = 1.0 + d2 * (-0.5 + d2 * (1.0 / 24.0 - d2 / 720.0))
-    sd = d * (1.0 + d2 * (-1.0 / 6.0 + d2 * (1.0 / 120.0 - d2 / 5040.0)))
-    return c0 * cd - s0 * sd, s0 * cd + c0 * sd
-
-
-@numba.njit(cache=True, inline="always")
 def _mix64(z: np.uint64) -> np.uint64:  # pragma: no cover - jit
     """The splitmix64 output function (Steele, Lea and Flood, OOPSLA 2014)."""
     z = (z ^ (z >> _S30)) * _MIX1
@@ -919,234 +796,128 @@ def stream_normals(state: Array, out: Array) -> None:  # pragma: no cover - jit
     state[0] = s
 
 
-LANES = 4
-"""Plants one thread steps together: their RK4 chains are independent, so the CPU overlaps
-one plant's tanh latency with the others' arithmetic (one plant alone is latency-bound)."""
-(K_DA, K_DE, K_GA, K_GE, K_IVS, K_IVSS, K_STRIB, K_FA, K_FE, K_EL0, K_C0, K_S0) = range(12)
-
-
-@numba.njit(cache=True)
-def pedestal_lanes_setup(prm: Array, lanes: Any, konst: Array) -> None:  # pragma: no cover - jit
-    """Per-lane constants of `pedestal_step_lanes` for plants prm[lanes[l]]."""
-    for ln in range(konst.shape[0]):
-        p = prm[lanes[ln]]
-        konst[ln, K_DA] = p[P_A_AZ] + p[P_VISC_AZ]
-        konst[ln, K_DE] = p[P_A_EL] + p[P_VISC_EL]
-        konst[ln, K_GA] = p[P_B_AZ] * p[P_LAM_AZ]
-        konst[ln, K_GE] = p[P_B_EL] * p[P_LAM_EL]
-        konst[ln, K_IVS] = 1.0 / p[P_COUL_SPEED]
-        konst[ln, K_IVSS] = 1.0 / p[P_STRIB_SPEED]
-        konst[ln, K_STRIB] = 1.0 if (p[P_STRIB_AZ] != 0.0 or p[P_STRIB_EL] != 0.0) else 0.0
-
-
-@numba.njit(cache=True, inline="always")
-def _accel_lane(p: Array, kn: Array, az: float, wa: float, we: float, el: float,
-                ) -> tuple[float, float]:  # pragma: no cover - jit
-    ce, se = _trig(el, kn[K_EL0], kn[K_C0], kn[K_S0])
-    ta = fast_tanh(wa * kn[K_IVS])
-    te = fast_tanh(we * kn[K_IVS])
-    fa = p[P_COUL_AZ]
-    fe = p[P_COUL_EL]
-    if kn[K_STRIB] != 0.0:
-        q = wa * kn[K_IVSS]
-        fa = fa + p[P_STRIB_AZ] * math.exp(-(q * q))
-        q = we * kn[K_IVSS]
-        fe = fe + p[P_STRIB_EL] * math.exp(-(q * q))
-    acc_az = (kn[K_FA] - kn[K_DA] * wa - fa * ta - p[P_SPRING] * az
-              - p[P_COUPLING] * wa * we)
-    acc_el = (kn[K_FE] - kn[K_DE] * we - fe * te - p[P_GRAV] * ce
-              + p[P_COUPLING] * wa * wa * se * ce)
-    return acc_az, acc_el
-
-
-@numba.njit(cache=True)
-def pedestal_step_lanes(X: Array, U: Array, prm: Array, lanes: Any, konst: Array,
-                        limits: Array, dt: float, substeps: int,
-                        S: Array) -> None:  # pragma: no cover - jit
-    """`pedestal_step` (no faults) for the plants prm[lanes[l]], states X[l], inputs U[l],
-    stage by stage across the lanes. `konst` from `pedestal_lanes_setup`; S is (L, 12)
-    scratch. Division by the Coulomb and Stribeck speeds is a product with their
-    reciprocals; cos / sin of the elevation by `_trig`. Agrees with `pedestal_step` to
-    rounding (tests/test_fast.py).
-    """
-    L = X.shape[0]
-    h = dt / substeps
-    hh = 0.5 * h
-    k6 = h / 6.0
-    for ln in range(L):
-        p = prm[lanes[ln]]
-        kn = konst[ln]
-        u0 = U[ln, 0]
-        u1 = U[ln, 1]
-        v0 = limits[0] if u0 > limits[0] else (-limits[0] if u0 < -limits[0] else u0)
-        v1 = limits[1] if u1 > limits[1] else (-limits[1] if u1 < -limits[1] else u1)
-        kn[K_FA] = kn[K_GA] * v0 + p[P_BIAS_AZ]
-        kn[K_FE] = kn[K_GE] * v1 + p[P_BIAS_EL]
-        kn[K_EL0] = X[ln, 1]
-        kn[K_C0] = math.cos(X[ln, 1])
-        kn[K_S0] = math.sin(X[ln, 1])
-    for _ in range(substeps):
-        for ln in range(L):  # stage 1
-            a1, b1 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0], X[ln, 2], X[ln, 3],
-                                 X[ln, 1])
-            S[ln, 0] = a1
-            S[ln, 1] = b1
-        for ln in range(L):  # stage 2
-            wa2 = X[ln, 2] + hh * S[ln, 0]
-            we2 = X[ln, 3] + hh * S[ln, 1]
-            a2, b2 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0] + hh * X[ln, 2], wa2, we2,
-                                 X[ln, 1] + hh * X[ln, 3])
-            S[ln, 2] = a2
-            S[ln, 3] = b2
-            S[ln, 8] = wa2
-            S[ln, 9] = we2
-        for ln in range(L):  # stage 3
-            wa3 = X[ln, 2] + hh * S[ln, 2]
-            we3 = X[ln, 3] + hh * S[ln, 3]
-            a3, b3 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0] + hh * S[ln, 8], wa3, we3,
-                                 X[ln, 1] + hh * S[ln, 9])
-            S[ln, 4] = a3
-            S[ln, 5] = b3
-            S[ln, 10] = wa3
-            S[ln, 11] = we3
-        for ln in range(L):  # stage 4 and the update
-            wa = X[ln, 2]
-            we = X[ln, 3]
-            wa2 = S[ln, 8]
-            we2 = S[ln, 9]
-            wa3 = S[ln, 10]
-            we3 = S[ln, 11]
-            wa4 = wa + h * S[ln, 4]
-            we4 = we + h * S[ln, 5]
-            a4, b4 = _accel_lane(prm[lanes[ln]], konst[ln], X[ln, 0] + h * wa3, wa4, we4,
-                                 X[ln, 1] + h * we3)
-            X[ln, 0] = X[ln, 0] + k6 * (wa + 2 * wa2 + 2 * wa3 + wa4)
-            X[ln, 1] = X[ln, 1] + k6 * (we + 2 * we2 + 2 * we3 + we4)
-            X[ln, 2] = wa + k6 * (S[ln, 0] + 2 * S[ln, 2] + 2 * S[ln, 4] + a4)
-            X[ln, 3] = we + k6 * (S[ln, 1] + 2 * S[ln, 3] + 2 * S[ln, 5] + b4)
-
-
 @numba.njit(parallel=True, cache=True)
-def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, prm: Array, plant_ids: Any, seed: int,
-                 substeps: int, limits: Array, angle_noise: float, rate_noise: float,
-                 resolution: float, delay: int, latency: int, noise_mode: int, given: Array,
+def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, prm: Array,
+                 plant_ids: Any, seed: int, substeps: int, limits: Array, resolution: Array,
+                 noise_sd: Array, delay: int, latency: int, noise_mode: int, given: Array,
                  ic: Any, fc: Array, special: bool, levels: Array, sat_ticks: float,
-                 bound: Array, first: Any, max_ratio: Array) -> None:  # pragma: no cover - jit
-    """N plants x T ticks of the closed loop, each plant on its own.
+                 bound: Array, w_limit: float, first: Any,
+                 max_ratio: Array) -> None:  # pragma: no cover - jit
+    """N plants x T ticks of the closed loop, each plant on its own (prange over plants).
 
-    prange over groups of `LANES` plants (a short last group repeats its last plant
-    and discards the copies). Per plant b: truth prm[b] (`PEDESTAL_PARAMS` order),
-    start x0, law state x_r = first reading, W = 0; each tick the law
-    (`law_tick_pedestal` when `special`, else `law_tick`) on the reading `delay`
-    ticks old, the saturated input applied `latency` ticks late to
-    `pedestal_step_lanes`, then the next reading. Noise: `noise_mode` NOISE_OFF,
-    NOISE_STREAM (plant_ids[b]'s own splitmix64 stream under `seed`, 4 normals a
-    reading: angles then rates) or NOISE_GIVEN (`given[b, reading, :4]`, standard
-    normals). Nothing is recorded per tick: `first[b, SWEEP_RULES]` gets the first
-    tick each rule fired (-1: never; levels = margin, clamp, breach ratios;
-    saturation: a raw input beyond its limit for more than `sat_ticks` ticks in a
-    row; diverged: |x_i| > bound_i or non-finite after ticks 63, 127, ... and the
-    last) and `max_ratio[b]` the largest finite margin ratio (from 0).
+    Per plant b: the rig coded as (pcode, pmat) (`sim_rigs.kernel.pack_rig`), its
+    parameters prm[b], start x0, law state x_r = first reading, W = 0; each tick the law
+    (`law_tick_pedestal` when `special`, else `law_tick`) on the reading `delay` ticks
+    old, the saturated input applied `latency` ticks late to `sim_rigs.kernel.plant_step`,
+    then the next reading (`plant_measure`). Noise: `noise_mode` NOISE_OFF, NOISE_STREAM
+    (plant_ids[b]'s own splitmix64 stream under `seed`, one normal per noisy channel a
+    reading, in channel order, drawn in pairs) or NOISE_GIVEN (`given[b, reading, :]`,
+    standard normals of the noisy channels). Nothing is recorded per tick:
+    `first[b, SWEEP_RULES]` gets the first tick each rule fired (-1: never; levels =
+    margin, clamp, breach ratios, compared as `runtime.watchdog.RULE_BOOK` says; saturation:
+    a raw input beyond its limit for `sat_ticks` ticks in a row, the live rule's on-delay;
+    diverged: |x_i| > bound_i or non-finite after ticks 63, 127, ... and the last;
+    weights: the weight norm non-finite or beyond `w_limit` at the same ticks) and
+    `max_ratio[b]` the largest finite margin ratio (from 0).
     """
     N = prm.shape[0]
     T = cmd.shape[0]
+    n = ic[I_N]
     m = ic[I_M]
-    nst = 4 + ic[I_NREG] * m
-    nout = OUT_HEADER + 4 * m + 8 + ic[I_NREG]  # out_size(4, m, N_bar)
+    nreg = ic[I_NREG]
+    nst = n + nreg * m
+    nout = OUT_HEADER + 4 * m + 2 * n + nreg
     dt = fc[F_TS]
     oU = ic[I_OUMAX]
-    L = LANES
-    groups = (N + L - 1) // L
-    for g in numba.prange(groups):
-        lanes = np.empty(L, dtype=np.int64)
-        for ln in range(L):
-            lanes[ln] = min(g * L + ln, N - 1)
-        konst = np.zeros((L, 12))
-        pedestal_lanes_setup(prm, lanes, konst)
-        scratch = np.zeros((L, 12))
-        st = np.zeros((L, nst))
-        out = np.zeros((L, nout))
-        X = np.empty((L, 4))
-        U = np.zeros((L, 2))
-        meas = np.empty((L, delay + 1, 4))
-        ubuf = np.zeros((L, latency + 1, 2))
-        z = np.zeros(4)
-        rs = np.zeros((L, 1), dtype=np.uint64)
-        fb = np.full((L, 6), -1, dtype=np.int64)
-        run = np.zeros((L, 2), dtype=np.int64)
-        mr = np.zeros(L)
-        for ln in range(L):
-            X[ln] = x0
-            rs[ln, 0] = stream_key(seed, plant_ids[lanes[ln]])
-        # reading 0, then engage: x_r = first reading, W = 0
+    nz = 0
+    for i in range(n):
+        if noise_sd[i] > 0.0:
+            nz += 1
+    nz2 = nz + (nz % 2)
+    for b in numba.prange(N):
+        work = np.zeros((6, max(n, m)))
+        st = np.zeros(nst)
+        o = np.zeros(nout)
+        X = np.empty(n)
+        U = np.zeros(m)
+        meas = np.empty((delay + 1, n))
+        ubuf = np.zeros((latency + 1, m))
+        z = np.zeros(max(nz2, 2))
+        ns = np.zeros(n)
+        lsc = np.ones(m)
+        dist = np.zeros(m)
+        rs = np.zeros(1, dtype=np.uint64)
+        fb = np.full(len(SWEEP_RULES), -1, dtype=np.int64)
+        run = np.zeros(m, dtype=np.int64)
+        mr = 0.0
+        p = prm[b]
+        for i in range(n):
+            X[i] = x0[i]
+        rs[0] = stream_key(seed, plant_ids[b])
         for r in range(T + 1):
             if r > 0:
                 k = r - 1
-                # ring slots, once a tick for all lanes
                 ys = (k - delay) % (delay + 1) if k >= delay else 0
                 us = k % (latency + 1)
                 ua_s = (k - latency) % (latency + 1)
-                for ln in range(L):
-                    y = meas[ln, ys]
-                    o = out[ln]
-                    if special:
-                        law_tick_pedestal(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
-                    else:
-                        law_tick(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
-                    ratio = o[O_RATIO]
-                    ur0 = o[OUT_HEADER + m]
-                    ur1 = o[OUT_HEADER + m + 1]
-                    f = fb[ln]
-                    if ratio > mr[ln]:
-                        mr[ln] = ratio
-                    if f[R_MARGIN] < 0 and ratio >= levels[0]:
-                        f[R_MARGIN] = k
-                    if f[R_CLAMP] < 0 and ratio >= levels[1]:
-                        f[R_CLAMP] = k
-                    if f[R_BREACH] < 0 and ratio >= levels[2]:
-                        f[R_BREACH] = k
-                    if f[R_NONFINITE] < 0 and not (math.isfinite(ratio) and math.isfinite(ur0)
-                                                   and math.isfinite(ur1)):
-                        f[R_NONFINITE] = k
-                    run[ln, 0] = run[ln, 0] + 1 if abs(ur0) > fc[oU] else 0
-                    run[ln, 1] = run[ln, 1] + 1 if abs(ur1) > fc[oU + 1] else 0
-                    if f[R_SATURATION] < 0 and (run[ln, 0] > sat_ticks
-                                                or run[ln, 1] > sat_ticks):
-                        f[R_SATURATION] = k
-                    ubuf[ln, us, 0] = o[OUT_HEADER]
-                    ubuf[ln, us, 1] = o[OUT_HEADER + 1]
-                    if k >= latency:
-                        ua = ubuf[ln, ua_s]
-                        U[ln, 0] = ua[0]
-                        U[ln, 1] = ua[1]
-                pedestal_step_lanes(X, U, prm, lanes, konst, limits, dt, substeps, scratch)
+                y = meas[ys]
+                if special:
+                    law_tick_pedestal(y, cmd[k], eps_t[k], ic, fc, st, o)
+                else:
+                    law_tick(y, cmd[k], eps_t[k], ic, fc, st, o)
+                ratio = o[O_RATIO]
+                if ratio > mr:
+                    mr = ratio
+                if fb[R_MARGIN] < 0 and _over(ratio, levels[0]):
+                    fb[R_MARGIN] = k
+                if fb[R_CLAMP] < 0 and _over(ratio, levels[1]):
+                    fb[R_CLAMP] = k
+                if fb[R_BREACH] < 0 and _over(ratio, levels[2]):
+                    fb[R_BREACH] = k
+                fin = math.isfinite(ratio)
+                sat = False
+                for j in range(m):
+                    ur = o[OUT_HEADER + m + j]
+                    if not math.isfinite(ur):
+                        fin = False
+                    run[j] = run[j] + 1 if _over(abs(ur), fc[oU + j]) else 0
+                    if _over(run[j] + 1e-9, sat_ticks):
+                        sat = True
+                    ubuf[us, j] = o[OUT_HEADER + j]
+                if fb[R_NONFINITE] < 0 and not fin:
+                    fb[R_NONFINITE] = k
+                if fb[R_SATURATION] < 0 and sat:
+                    fb[R_SATURATION] = k
+                if k >= latency:
+                    for j in range(m):
+                        U[j] = ubuf[ua_s, j]
+                plant_step(X, U, pcode, pmat, p, limits, dt, substeps, lsc, dist, work)
                 if (k + 1) % DIVERGENCE_EVERY == 0 or k == T - 1:
-                    for ln in range(L):
-                        for i in range(4):
-                            if fb[ln, R_DIVERGED] < 0 and not (abs(X[ln, i]) <= bound[i]):
-                                fb[ln, R_DIVERGED] = k
+                    for i in range(n):
+                        if fb[R_DIVERGED] < 0 and not (abs(X[i]) <= bound[i]):
+                            fb[R_DIVERGED] = k
+                    if fb[R_WEIGHTS] < 0:
+                        w2 = 0.0
+                        for i in range(n, nst):
+                            w2 += st[i] * st[i]
+                        if not (math.sqrt(w2) <= w_limit):
+                            fb[R_WEIGHTS] = k
             # the sensors: reading r
-            rslot = r % (delay + 1)
-            for ln in range(L):
-                if noise_mode == NOISE_STREAM:
-                    stream_normals(rs[ln], z)
-                elif noise_mode == NOISE_GIVEN:
-                    for i in range(4):
-                        z[i] = given[lanes[ln], r, i]
-                yr = meas[ln, rslot]
-                for i in range(2):
-                    a = X[ln, i] + angle_noise * z[i] if noise_mode != NOISE_OFF else X[ln, i]
-                    if resolution > 0.0:
-                        a = np.rint(a / resolution) * resolution
-                    yr[i] = a
-                for i in range(2, 4):
-                    yr[i] = X[ln, i] + rate_noise * z[i] if noise_mode != NOISE_OFF else X[ln, i]
-                if r == 0:
-                    for i in range(4):
-                        st[ln, i] = yr[i]
-        for ln in range(L):
-            b = g * L + ln
-            if b < N:
-                for j in range(6):
-                    first[b, j] = fb[ln, j]
-                max_ratio[b] = mr[ln]
+            if noise_mode == NOISE_STREAM:
+                stream_normals(rs, z[:nz2])
+            q = 0
+            for i in range(n):
+                if noise_sd[i] > 0.0 and noise_mode != NOISE_OFF:
+                    zi = z[q] if noise_mode == NOISE_STREAM else given[b, r, q]
+                    ns[i] = noise_sd[i] * zi
+                    q += 1
+                else:
+                    ns[i] = 0.0
+            yr = meas[r % (delay + 1)]
+            plant_measure(X, resolution, ns, yr)
+            if r == 0:
+                for i in range(n):
+                    st[i] = yr[i]
+        for j in range(len(SWEEP_RULES)):
+            first[b, j] = fb[j]
+        max_ratio[b] = mr

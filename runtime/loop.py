@@ -63,7 +63,7 @@ from runtime.fallback import make_fallback, settings_from_config
 from runtime.records import RunLogWriter, TripLog, log_paths
 from runtime.supervisor import MODE_CODE, Supervisor
 from runtime.telemetry import MqttBridge, TelemetryServer
-from runtime.watchdog import Signals, Watchdog
+from runtime.watchdog import Signals, Watchdog, over
 
 Array = NDArray[np.float64]
 
@@ -558,7 +558,8 @@ class TickCore:
         sig.nonfinite = self.est.nonfinite or not finite
         sig.jump = self.est.jump
         if on:
-            sat = np.abs(self.u_cmd) >= self.u_max
+            sat = np.array([over(abs(float(v)), float(lim))  # the saturation rule's signal
+                            for v, lim in zip(self.u_cmd, self.u_max, strict=True)])
             self.sat_time = np.where(sat, self.sat_time + Ts, 0.0)
         else:
             self.sat_time[:] = 0.0

@@ -67,12 +67,14 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
         reasons.append(f"design refused ({verdict.basis}): {verdict.reason}"
                        + (f" Fix: {verdict.fix}" if verdict.fix else ""))
         return _finish(cfg, out, write)
-    if design.rig.sim is None:
-        reasons.append("no simulated stand-in for this rig (rig.sim unset), so the trip rate "
-                       "cannot be predicted; set rig.sim to the rig's simulated model.")
+    if design.rig.spec is None:
+        reasons.append("no simulated stand-in for this rig (rig.sim unset, no [plant] terms), "
+                       "so the trip rate cannot be predicted; set rig.sim to a rig file "
+                       "describing it (README, 'Your own rig').")
         return _finish(cfg, out, write)
-    if not cfg.get("plant.ranges", {}):
-        reasons.append("note: [plant.ranges] is empty, so every plant is the nominal truth; "
+    if not cfg.get("plant.ranges", {}) and not design.rig.spec.ranges:
+        reasons.append("note: no uncertainty ranges (rig file or [plant.ranges]), so every "
+                       "plant is the nominal truth; "
                        "the prediction covers only sensor noise.")
     result = run_sweep(cfg, plants=n, progress=progress,
                        duration=None if duration is None else float(duration))

@@ -5,9 +5,9 @@ Lives here:
   ``corral-run`` file and the real-time loop's ``corral-runlog``), normalised
   to arrays (t, c, y measured, u applied, u_cmd, ratio, mode, ...). A torn
   tail (a crash mid-write) is skipped.
-- `fit_pedestal(rec, cfg)`: least squares of the measured accelerations
+- `fit_plant(rec, cfg)` (formerly `fit_pedestal`): least squares of the measured derivatives
   (finite differences of the measured rates) against the simulated
-  pedestal's own acceleration model, for the parameters it is linear in.
+  rig's own model (`sim_rigs.plant.RigPlant`, any rig), for the parameters it is linear in.
 - `check_watchdog(cfg, series, ...)`: the runtime's own rules
   (`runtime.watchdog.Watchdog`) fed tick by tick from recorded columns.
 - `replay(rec, overrides, plant)`: the recorded commands and initial state
@@ -228,7 +228,7 @@ def config_with_overrides(rec: Recording, overrides: list[str]) -> tuple[Config,
 
 
 # ---------------------------------------------------------------------------
-# Fitting the simulated pedestal to the record
+# Fitting the simulated rig's parameters to the record
 # ---------------------------------------------------------------------------
 
 @dataclass
@@ -267,9 +267,9 @@ class PlantFit:
         }
 
 
-def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
+def fit_plant(rec: Recording, cfg: Config, names: list[str] | None = None,
                  window_s: float = 0.02, _refit: bool = True) -> PlantFit:
-    """Least-squares fit of the pedestal's uncertain parameters to the record.
+    """Least-squares fit of the rig's uncertain parameters (its term parameters) to the record.
 
     Target: the mean measured acceleration over a window of `window_s`
     seconds, (w_end - w_start) / (t_end - t_start), a finite difference of the
@@ -288,22 +288,26 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
     (standard error over half its config range) is held at the config truth
     and the rest are fitted again, once.
     """
-    from sim_rigs.pedestal import TRUTH_DEFAULTS, Pedestal
+    from runtime.rig import rig_spec
+    from sim_rigs.plant import RigPlant
 
-    sim = cfg.get("rig.sim", None)
-    if sim != "pedestal":
-        raise ConfigError("rig.sim", f"--plant fitted knows the pedestal model only (got {sim!r}).",
-                          'use --plant config, or set rig.sim = "pedestal".')
+    spec = rig_spec(cfg)
+    if spec is None:
+        raise ConfigError("rig.sim", "--plant fitted needs a simulated rig whose parameters "
+                          "it fits.", "use --plant config, or set rig.sim to the rig's file.")
+    TRUTH_DEFAULTS = spec.truth_defaults  # noqa: N806 - the rig's parameters
     truth = {k: float(v) for k, v in TRUTH_DEFAULTS.items()}
     truth.update({k: float(v) for k, v in dict(cfg.get("plant.truth", {})).items()})
-    ranges = dict(cfg.get("plant.ranges", {}) or {})
+    ranges = {**spec.ranges, **dict(cfg.get("plant.ranges", {}) or {})}
     if names is None:
-        names = [k for k in TRUTH_DEFAULTS if k in ranges] or [
-            k for k in TRUTH_DEFAULTS if k not in ("a_az", "b_az", "a_el", "b_el")]
+        names = [k for k in TRUTH_DEFAULTS if k in ranges] or list(TRUTH_DEFAULTS)
     unknown = [k for k in names if k not in TRUTH_DEFAULTS]
     if unknown:
-        raise ConfigError("plant.ranges", f"{', '.join(unknown)} is not a pedestal parameter.",
+        raise ConfigError("plant.ranges", f"{', '.join(unknown)} is not a parameter of this rig.",
                           f"use names from: {', '.join(TRUTH_DEFAULTS)}.")
+    # the rows the terms and the inputs act on: their derivative is what the record measures
+    rows = sorted({t.row for t in spec.terms} | set(spec.drives))
+    nr = len(rows)
 
     lo = 0
     delay = int(cfg.number("plant.sensors.delay_ticks", 0, minimum=0))
@@ -330,10 +334,10 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
     batch = k.size
 
     def accel(values: dict[str, float]) -> Array:
-        """Per-block mean of the trapezoid acceleration over each tick: (n_blocks, 2)."""
-        ped = Pedestal.create(values, batch=batch)
-        a = 0.5 * (ped.accel(xa, v) + ped.accel(xb, v))
-        return a.reshape(n_blocks, span, 2).mean(axis=1)
+        """Per-block mean of the trapezoid derivative of the driven rows: (n_blocks, nr)."""
+        plant = RigPlant.create(spec, values, batch=batch)
+        a = 0.5 * (plant.deriv(xa, v) + plant.deriv(xb, v))[:, rows]
+        return a.reshape(n_blocks, span, nr).mean(axis=1)
 
     zero = {**truth, **{n: 0.0 for n in names}}
     base = accel(zero)
@@ -348,7 +352,7 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
         if float(np.max(np.abs(one))) == 0.0:
             skipped[name] = "has no effect on this record"
             continue
-        cols.append(one.reshape(-1))  # both axes stacked: (2 * n_blocks,)
+        cols.append(one.reshape(-1))  # the driven rows stacked: (nr * n_blocks,)
         fitted.append(name)
     if not fitted:
         raise RunFileError(f"{rec.path}: none of {', '.join(names)} can be fitted linearly")
@@ -356,11 +360,11 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
         base = accel({**truth, **{n: 0.0 for n in fitted}})
     first, last = k[::span], k[span - 1::span] + 1
     dt_block = rec.t[last] - rec.t[first]
-    meas = (y[last, 2:4] - y[first, 2:4]) / dt_block[:, None]  # mean measured acceleration
+    meas = (y[last][:, rows] - y[first][:, rows]) / dt_block[:, None]  # mean measured derivative
     target = (meas - base).reshape(-1)
     phi = np.column_stack(cols)
     theta, _, rank, _ = np.linalg.lstsq(phi, target, rcond=None)
-    resid = (target - phi @ theta).reshape(n_blocks, 2)
+    resid = (target - phi @ theta).reshape(n_blocks, nr)
     dof = max(1, target.size - len(fitted))
     sigma2 = float(np.sum(resid**2)) / dof
     try:
@@ -368,7 +372,7 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
         se = np.sqrt(np.maximum(np.diag(cov), 0.0))
     except np.linalg.LinAlgError:
         se = np.full(len(fitted), math.inf)
-    explained = target.reshape(n_blocks, 2)
+    explained = target.reshape(n_blocks, nr)
     rms = np.sqrt(np.mean(resid**2, axis=0))
     rel = rms / np.maximum(np.sqrt(np.mean(explained**2, axis=0)), 1e-300)
     # A parameter the record barely excites (standard error beyond half its
@@ -381,7 +385,7 @@ def fit_pedestal(rec: Recording, cfg: Config, names: list[str] | None = None,
         if not err <= 0.5 * width:
             weak.append(name)
     if weak and len(weak) < len(fitted) and _refit:
-        again = fit_pedestal(rec, cfg, [n for n in names if n not in weak], window_s,
+        again = fit_plant(rec, cfg, [n for n in names if n not in weak], window_s,
                              _refit=False)
         again.skipped.update(skipped)
         for name, value, err in zip(fitted, theta, se, strict=True):
@@ -645,7 +649,7 @@ def simulate(cfg: Config, design: Any, cmd: Array, x0: Array,
              truth: dict[str, float] | None = None) -> tuple[dict[str, Array], str]:
     """The closed loop over the given commands from true state x0; (columns, engine).
 
-    Same machinery as the dry run (compiled kernels for the pedestal, the numpy
+    Same machinery as the dry run (compiled kernels for a simulated rig, the numpy
     law otherwise), same sensor noise seed (`plant.seed`), same bound schedule.
     """
     from runtime import dryrun
@@ -670,7 +674,7 @@ def simulate(cfg: Config, design: Any, cmd: Array, x0: Array,
         "w_norm": np.empty(ticks), "clamped": np.empty(ticks),
     }
     engine = "reference"
-    if rig.sim == "pedestal":
+    if rig.spec is not None:
         from runtime.fast import ModifierSettings
 
         try:
@@ -717,7 +721,7 @@ def replay(rec: Recording, overrides: list[str] | None = None,
     fit = None
     truth = None
     if plant == "fitted":
-        fit = fit_pedestal(rec, cfg)
+        fit = fit_plant(rec, cfg)
         truth = fit.truth()
     if rec.x_true is not None:
         x0 = rec.x_true[start]
@@ -854,3 +858,7 @@ def write_replay_file(result: ReplayResult, path: Path) -> Path:
                       summary=summary)
     write_run_file(dr, path, result.cfg)
     return path
+
+
+fit_pedestal = fit_plant
+"""The older name (it fitted only the pedestal)."""

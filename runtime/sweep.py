@@ -1,7 +1,7 @@
 """Monte Carlo sweeps: many uncertain plants through the closed loop at once.
 
 `run_sweep(cfg)` draws N plants from the config's `[plant.ranges]` (each
-ranged parameter uniform in [lo, hi], `sim_rigs.pedestal.draw_truth`), runs
+ranged parameter uniform in [lo, hi], `sim_rigs.plant.draw_truth`), runs
 them in chunks spread over the machine's cores, and evaluates offline the
 watchdog rules a simulation can see (contract rule ids): ``margin``
 (ratio >= watchdog.margin_trip), ``clamp`` (phi_d clamp engaged, ratio >=
@@ -14,32 +14,28 @@ design.state_range, or non-finite). Each plant ends *inside* (no rule fired),
 over settings (`--grid adaptation.gamma=1,2,4`); `plot_sweep` and
 `plot_grid` draw the PNGs.
 
-Three engines:
+Two engines, over the same plant (`sim_rigs.kernel`, interpreting the rig's term table):
 
 - ``compiled`` (the default of ``auto``): `runtime.fast.sweep_kernel`, a numba
   kernel with a prange over plants on `workers` threads; each plant runs its
   own time loop with its own truth, law state and noise stream, and only the
-  rule bookkeeping is kept (no per-tick arrays). Pedestal rigs; any basis
-  the law kernel packs (named terms, radial-basis block), weight modifiers,
+  rule bookkeeping is kept (no per-tick arrays). Any rig; any basis the law
+  kernel packs (named terms, radial-basis block), weight modifiers,
   time-varying eps, latency, sensor delay. Plants go in slices so the
   progress bar moves.
-- ``fused``: the law of `runtime.law` and the plant of `sim_rigs.pedestal`
-  rewritten as batched numpy for speed (a chunk is one array, the time loop
-  is Python): batch as the LAST axis (contiguous rows), every buffer
-  preallocated, in-place ufuncs, the commands' K2 c and B_d c precomputed,
-  rule bookkeeping once per block of ticks, and the elevation trigonometry
-  inside a tick by the angle-addition formula (exact sin/cos once per tick,
-  then a Taylor series in the small in-tick angle change, truncation < 1e-18
-  for |d| <= 0.02 rad; exact fallback beyond). Pedestal rigs without weight
-  modifiers or radial-basis terms; chunks over `workers` processes.
-- ``reference``: `AdaptiveLaw.step` and `Pedestal.step` themselves over the
-  batch (slow; any design). Tests check the engines against each other and
-  against the single-plant dry run.
+- ``reference``: `AdaptiveLaw.step` and `RigPlant.step` (the numpy reference)
+  over the batch (slow; any design). Tests check the engines against each other
+  and against the single-plant dry run.
+
+Rules: the sweep evaluates the live watchdog's rules (`runtime.watchdog.build_rules`:
+the same thresholds, comparisons and on-delays). Divergence covers the weights too:
+a plant whose weight norm is non-finite or beyond ``sweep.weight_norm_limit``
+(default: the watchdog's ``weight_norm_max``) has diverged.
 
 Runs are reproducible: plant i's parameters depend on (seed, plants) only.
 Sensor noise: in the compiled engine plant i's noise is its own stream keyed
 by (seed, i), so results do not depend on the thread count or the slicing;
-in the fused and reference engines it depends on (seed, chunk layout). With
+in the reference engine it depends on (seed, chunk layout). With
 the noise off a plant's result depends on neither.
 
 What does not live here: the CLI (`runtime.cmd_sweep`), the go / no-go
@@ -64,6 +60,7 @@ from numpy.typing import NDArray
 from runtime.commands import schedule_from_config, tracked_names
 from runtime.config import Config, ConfigError, check_sections
 from runtime.design import Design, design_from_config
+from runtime.dryrun import weight_norm_limit
 
 Array = NDArray[np.float64]
 Progress = Callable[[int, int], None]
@@ -71,18 +68,11 @@ Progress = Callable[[int, int], None]
 RULES = ("margin", "clamp", "nonfinite", "saturation")
 """Rules the sweep evaluates offline, contract ids, in first-out tie order."""
 OUTCOMES = ("inside", "tripped", "diverged")
-ENGINES = ("auto", "compiled", "fused", "reference")
+ENGINES = ("auto", "compiled", "reference")
 MAX_PLANTS = 1_000_000  # parameters and results of every plant are held at once
 MAX_TICKS = 3_000_000  # per plant: 50 min at 1 kHz
 BLOCK = 64
 """Ticks between rule bookkeeping passes (buffers hold one block)."""
-FUSED_PARAMS = frozenset((
-    "gravity_el", "visc_az", "visc_el", "coulomb_az", "coulomb_el", "coulomb_speed", "spring_az",
-    "coupling", "bias_az", "bias_el", "lam_az", "lam_el", "stribeck_az", "stribeck_el",
-    "stribeck_speed", "a_az", "b_az", "a_el", "b_el"))
-"""Pedestal parameters the fused engine models; a rig with others falls back to the reference."""
-TAYLOR_LIMIT = 0.02
-"""Largest in-tick elevation change (rad) the angle-addition series handles."""
 
 
 # ------------------------------------------------------------------ settings
@@ -101,6 +91,7 @@ class SweepSettings:
     margin_trip: float
     saturation_time: float
     divergence_factor: float
+    weight_norm_limit: float
     engine: str
 
     @classmethod
@@ -145,6 +136,7 @@ class SweepSettings:
             margin_trip=cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0),
             saturation_time=cfg.number("watchdog.saturation_s", 0.5, positive=True, unit="s"),
             divergence_factor=cfg.number("sweep.divergence_factor", 10.0, minimum=1.0),
+            weight_norm_limit=weight_norm_limit(cfg),
             engine=eng,
         )
 
@@ -164,7 +156,8 @@ def default_substeps(cfg: Config) -> int:
     return max(1, math.ceil(Ts / SUBSTEP_MAX - 1e-9))
 
 
-def _ranges(cfg: Config, truth_names: Sequence[str]) -> dict[str, tuple[float, float]]:
+def _ranges(cfg: Config, truth_names: Sequence[str], spec: Any = None,
+            ) -> dict[str, tuple[float, float]]:
     raw = cfg.get("plant.ranges", {})
     if not isinstance(raw, dict):
         raise ConfigError("plant.ranges", "must be a table of [lo, hi] pairs.",
@@ -183,31 +176,32 @@ def _ranges(cfg: Config, truth_names: Sequence[str]) -> dict[str, tuple[float, f
                               f"write {key} = [lo, hi].")
         from runtime.dryrun import check_effectiveness
 
-        check_effectiveness(where, val)
+        check_effectiveness(where, val, spec)
         out[key] = (float(val[0]), float(val[1]))
     return out
 
 
 def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
     """The truth of `plants` plants: ranged parameters uniform in [lo, hi], others at truth."""
+    from runtime.rig import rig_spec
     from sim_rigs import RIGS
-    from sim_rigs.pedestal import draw_truth
+    from sim_rigs.plant import draw_truth
 
-    sim = cfg.get("rig.sim", None)
-    if sim not in RIGS:
+    spec = rig_spec(cfg)
+    if spec is None:
         raise ConfigError("rig.sim", "a sweep needs a simulated rig to stand in for the plant.",
-                          'set rig.sim = "pedestal" (the only simulated rig so far).')
-    spec = RIGS[sim]
+                          f"set rig.sim to a built-in rig ({', '.join(RIGS)}) or a rig file "
+                          "(see README, 'Your own rig'), or give [plant] terms.")
     truth = dict(cfg.get("plant.truth", {}))
     for key in truth:
-        if key not in spec.truth_defaults:
+        if key not in spec.params:
             raise ConfigError(f"plant.truth.{key}", "is not a parameter of this rig.",
-                              f"use one of: {', '.join(spec.truth_defaults)}.")
+                              f"use one of: {', '.join(spec.params)}.")
         from runtime.dryrun import check_truth_value
 
-        check_truth_value(f"plant.truth.{key}", truth[key])
-    ranges = _ranges(cfg, tuple(spec.truth_defaults))
-    return draw_truth(ranges, truth, plants, np.random.default_rng(seed))
+        check_truth_value(f"plant.truth.{key}", truth[key], spec)
+    ranges = {**spec.ranges, **_ranges(cfg, tuple(spec.params), spec)}
+    return draw_truth(spec, ranges, truth, plants, np.random.default_rng(seed))
 
 
 # ------------------------------------------------------------------ per-process setup
@@ -223,6 +217,9 @@ class _Setup:
     engine: str
     packed: tuple[Any, Any] | None = None
     """(ic, fc) of `runtime.fast.pack_law` when the compiled engine can run this design."""
+    levels: dict[str, float] = field(default_factory=dict)
+    """From the live rule set (`runtime.watchdog.sweep_levels`): margin, clamp, breach
+    ratios and the saturation threshold in ticks."""
 
 
 _SETUP_CACHE: dict[str, _Setup] = {}
@@ -230,17 +227,13 @@ _SETUP_CACHE: dict[str, _Setup] = {}
 
 def _compiled_packing(design: Design, mods: Sequence[Any]) -> tuple[Any, str]:
     """((ic, fc), "") when the compiled engine can run this design, else (None, why)."""
-    from sim_rigs.pedestal import TRUTH_DEFAULTS
-
     rig = design.rig
-    if rig.sim != "pedestal" or rig.n != 4 or rig.m != 2:
-        return None, "it simulates the pedestal only."
+    if rig.spec is None:
+        return None, "it needs a simulated rig."
     try:
         from runtime import fast
     except ImportError:  # pragma: no cover - numba is a dependency
         return None, "numba is not installed."
-    if set(TRUTH_DEFAULTS) != set(fast.PEDESTAL_PARAMS):
-        return None, "the pedestal has parameters the kernel does not know."
     try:
         return fast.pack_law(design, fast.ModifierSettings.from_modifiers(mods, rig.m)), ""
     except ValueError as exc:
@@ -264,43 +257,49 @@ def _setup(raw: dict[str, Any], settings: SweepSettings) -> _Setup:
     eps_t = eps_schedule(cfg, design, t)
     plant = plant_from_config(cfg, design)
     mods = list(modifiers_from_config(cfg, design))
-    from sim_rigs.pedestal import TRUTH_DEFAULTS
-
-    fusable = (rig.sim == "pedestal" and not mods and set(TRUTH_DEFAULTS) <= FUSED_PARAMS
-               and len(design.basis.codes) == design.basis.size)  # no radial-basis block
     packed, why = _compiled_packing(design, mods)
     engine = settings.engine
     if engine == "auto":
-        engine = "compiled" if packed is not None else ("fused" if fusable else "reference")
-    if engine == "fused" and not fusable:
-        raise ConfigError("sweep.engine", "the fused engine runs pedestal rigs without weight "
-                          "modifiers or radial-basis terms only.",
-                          'use engine "compiled" or "reference" (or "auto").')
+        engine = "compiled" if packed is not None else "reference"
     if engine == "compiled" and packed is None:
         raise ConfigError("sweep.engine", f"the compiled engine cannot run this config: {why}",
                           'use engine "reference" (or "auto", which falls back by itself).')
+    from runtime.watchdog import build_rules, sweep_levels
+
+    lv = sweep_levels(build_rules(cfg, design.Ts, design.clamp_margin), design.Ts)
+    levels = {"margin": lv["margin"],
+              # the standard law's clamp signal is the ratio reaching 1 (runtime.law)
+              "clamp": lv["clamp"] if design.law == "barrier" else 1.0,
+              "breach": 1.0, "saturation_ticks": lv["saturation_ticks"]}
     out = _Setup(design, settings, cmd, eps_t, np.array(plant.x[0]), plant.sensors, mods,
-                 engine, packed)
+                 engine, packed, levels)
     _SETUP_CACHE.clear()
     _SETUP_CACHE[key] = out
     return out
 
 
 # ------------------------------------------------------------------ rule bookkeeping
+def _over(value: Any, threshold: Any) -> Any:
+    """`runtime.watchdog.over` element by element."""
+    from runtime.watchdog import over
+
+    with np.errstate(invalid="ignore"):
+        return np.vectorize(over, otypes=[bool])(value, threshold)
+
+
 class _Rules:
     """First tick of each rule per plant, fed one block of ticks at a time."""
 
-    def __init__(self, B: int, design: Design, settings: SweepSettings) -> None:
+    def __init__(self, B: int, design: Design, settings: SweepSettings,
+                 levels: dict[str, float]) -> None:
         self.B = B
         self.max_ratio = np.zeros(B)
-        self.first = {r: np.full(B, -1, dtype=np.int64) for r in (*RULES, "breach", "diverged")}
-        self.levels = {
-            "margin": settings.margin_trip,
-            "clamp": (1.0 - design.clamp_margin) if design.law == "barrier" else 1.0,
-            "breach": 1.0,
-        }
+        self.first = {r: np.full(B, -1, dtype=np.int64)
+                      for r in (*RULES, "breach", "diverged", "weights")}
+        self.levels = {k: levels[k] for k in ("margin", "clamp", "breach")}
         self.u_max = design.rig.input_limits[:, None]
-        self.sat_ticks = settings.saturation_time / design.Ts
+        self.sat_ticks = levels["saturation_ticks"]
+        self.w_limit = settings.weight_norm_limit
         self.carry = np.zeros((design.rig.m, B))
         self.bound = settings.divergence_factor * design.state_range
 
@@ -310,7 +309,7 @@ class _Rules:
         blockmax = np.max(np.where(np.isfinite(R), R, -np.inf), axis=0)
         np.fmax(self.max_ratio, blockmax, out=self.max_ratio)
         for rule, level in self.levels.items():
-            hit = R >= level
+            hit = _over(R, level)
             first = self.first[rule]
             newly = (first < 0) & hit.any(axis=0)
             if newly.any():
@@ -320,11 +319,11 @@ class _Rules:
         newly = (first < 0) & bad.any(axis=0)
         if newly.any():
             first[newly] = k0 + np.argmax(bad[:, newly], axis=0)
-        sat = np.abs(UR) > self.u_max  # (K, m, B)
+        sat = _over(np.abs(UR), self.u_max)  # (K, m, B)
         idx = np.arange(K)[:, None, None]
         last = np.maximum.accumulate(np.where(sat, -1, idx), axis=0)
         run = np.where(last < 0, idx + 1 + self.carry, idx - last)
-        over = run > self.sat_ticks
+        over = _over(run + 1e-9, self.sat_ticks)
         self.carry = run[-1].astype(float)
         first = self.first["saturation"]
         any_over = over.any(axis=(0, 1))
@@ -333,10 +332,15 @@ class _Rules:
             o = over[:, :, newly].any(axis=1)
             first[newly] = k0 + np.argmax(o, axis=0)
 
-    def state(self, k: int, x: Array) -> None:
-        """Divergence check on the true state x (n, B) after tick k."""
+    def state(self, k: int, x: Array, w_norm: Array) -> None:
+        """Divergence checks after tick k: the true state x (n, B), the weight norms (B,)."""
         bad = ~(np.abs(x) <= self.bound[:, None]).all(axis=0)
         first = self.first["diverged"]
+        newly = (first < 0) & bad
+        if newly.any():
+            first[newly] = k
+        bad = ~(w_norm <= self.w_limit)
+        first = self.first["weights"]
         newly = (first < 0) & bad
         if newly.any():
             first[newly] = k
@@ -349,306 +353,23 @@ class _Rules:
         return out
 
 
-# ------------------------------------------------------------------ the fused engine
-def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
-               ) -> dict[str, Array]:
-    d = setup.design
-    st = setup.settings
-    B = len(next(iter(prm.values())))
-    n, m = d.rig.n, d.rig.m
-    nb = d.basis.size
-    nreg = d.n_regressors
-    Ts = d.Ts
-    ticks = len(setup.cmd)
-    sens = setup.sensors
-    noise = st.noise and (sens.angle_noise > 0 or sens.rate_noise > 0)
-    lat = st.latency_ticks
-    delay = int(sens.delay_ticks)
-    res = float(sens.angle_resolution)
-
-    # law constants
-    P, PBT, K1, Ad = d.P, np.ascontiguousarray(d.PB.T), d.K1, d.A_d
-    K2c = setup.cmd @ d.K2.T          # (ticks, m)
-    Bdc = setup.cmd @ d.B_d.T         # (ticks, n)
-    umax = d.rig.input_limits[:, None]
-    uscale = np.asarray(d.regressor_scale, dtype=float)[:, None]
-    gamma = np.asarray(d.gamma, dtype=float)[:, None]
-    gcoef = Ts * float(np.max(d.gamma)) * d.lam_max_BPB
-    cap = d.step_gain_cap
-    barrier = d.law == "barrier"
-    from runtime.barrier import get_barrier
-
-    bar = get_barrier(d.barrier)
-    smax_f = 1.0 - d.clamp_margin
-
-    # plant constants (rows: az, el, az_rate, el_rate)
-    Da = prm["a_az"] + prm["visc_az"]
-    De = prm["a_el"] + prm["visc_el"]
-    Ga = prm["b_az"] * prm["lam_az"]
-    Ge = prm["b_el"] * prm["lam_el"]
-    Ca, Ce, vs = prm["coulomb_az"], prm["coulomb_el"], prm["coulomb_speed"]
-    Sa, G = prm["spring_az"], prm["gravity_el"]
-    Cp, Cp1 = prm["coupling"], prm["coupling"].copy()  # Cp1 multiplies wa^2 sin(el) cos(el)
-    ba, be = prm["bias_az"], prm["bias_el"]
-    Sta, Ste, ss = prm["stribeck_az"], prm["stribeck_el"], prm["stribeck_speed"]
-    stribeck = bool(np.any(Sta != 0) or np.any(Ste != 0))
-    from sim_rigs.pedestal import INPUT_LIMITS
-
-    plim = np.asarray(INPUT_LIMITS, dtype=float)[:, None]
-
-    # state and buffers
-    x = np.empty((n, B))
-    x[:] = setup.x0[:, None]
-    W = np.zeros((nreg, m, B))
-    tmpW = np.empty((nreg, m, B))
-    sig = np.empty((nreg, B))
-    e = np.empty((n, B))
-    Pe = np.empty((n, B))
-    s = np.empty(B)
-    un = np.empty((m, B))
-    ur = np.empty((m, B))
-    epb = np.empty((m, B))
-    xr_t = np.empty((n, B))
-    gs = np.empty((nreg, B))
-    R = np.empty((BLOCK, B))
-    UR = np.empty((BLOCK, m, B))
-    ubuf = np.zeros((lat + 1, m, B))
-    meas = np.empty((delay + 1, n, B))
-    first_y = np.empty((n, B))
-    rules = _Rules(B, d, st)
-    # plant work
-    xs = np.empty((n, B))
-    acc = np.empty((n, B))
-    ksum = np.empty((n, B))
-    t1 = np.empty(B)
-    t2 = np.empty(B)
-    cd = np.empty(B)
-    sd = np.empty(B)
-    dd = np.empty(B)
-    d2 = np.empty(B)
-    Fa = np.empty(B)
-    Fe = np.empty(B)
-    v = np.empty((m, B))
-
-    codes = d.basis.codes
-    width = d.basis.tanh_width
-    for r, (op, _i, _j) in enumerate(codes):
-        if op == "bias":
-            sig[r] = 1.0
-
-    def measure(out: Array) -> None:
-        out[:] = x
-        if noise:
-            z = rng.standard_normal((n, B))
-            out[:2] += sens.angle_noise * z[:2]
-            out[2:] += sens.rate_noise * z[2:]
-        if res > 0:
-            np.divide(out[:2], res, out=out[:2])
-            np.rint(out[:2], out=out[:2])
-            np.multiply(out[:2], res, out=out[:2])
-
-    def friction(w: Array, coulomb: Array, stribeck_gain: Array) -> None:
-        """t1 = (C + S exp(-(w/ss)^2)) tanh(w/vs), or C tanh(w/vs) without stick-slip."""
-        nonlocal t1, t2  # in-place updates of the shared scratch buffers
-        np.divide(w, vs, out=t1)
-        np.tanh(t1, out=t1)
-        if stribeck:
-            np.divide(w, ss, out=t2)
-            t2 *= t2
-            np.negative(t2, out=t2)
-            np.exp(t2, out=t2)
-            t2 *= stribeck_gain
-            t2 += coulomb
-            t1 *= t2
-        else:
-            t1 *= coulomb
-
-    def deriv(xv: Array, c0: Array, s0: Array, el0: Array | None, out: Array) -> None:
-        """out[2:] = accelerations at stage state xv (out[:2] are xv's rates)."""
-        nonlocal t1, t2, cd, sd
-        az, el, wa, we = xv
-        if el0 is None:
-            np.cos(el, out=cd)
-            np.sin(el, out=sd)
-            ce, se = cd, sd
-        else:
-            np.subtract(el, el0, out=dd)
-            np.multiply(dd, dd, out=d2)
-            # cos d = 1 - d^2/2 + d^4/24 - d^6/720 ; sin d = d (1 - d^2/6 + d^4/120 - d^6/5040)
-            np.multiply(d2, -1.0 / 720.0, out=t1)
-            t1 += 1.0 / 24.0
-            t1 *= d2
-            t1 -= 0.5
-            t1 *= d2
-            t1 += 1.0
-            np.multiply(d2, -1.0 / 5040.0, out=t2)
-            t2 += 1.0 / 120.0
-            t2 *= d2
-            t2 -= 1.0 / 6.0
-            t2 *= d2
-            t2 += 1.0
-            t2 *= dd
-            # cos(el0 + d) = c0 cd - s0 sd ; sin(el0 + d) = s0 cd + c0 sd
-            np.multiply(c0, t1, out=cd)
-            np.multiply(s0, t2, out=sd)
-            cd -= sd
-            np.multiply(s0, t1, out=sd)
-            t2 *= c0
-            sd += t2
-            ce, se = cd, sd
-        aa, ae = out[2], out[3]
-        out[0] = wa
-        out[1] = we
-        # az: Fa - Da wa - friction(wa) - Sa az - Cp wa we
-        friction(wa, Ca, Sta)
-        np.multiply(Da, wa, out=aa)
-        np.subtract(Fa, aa, out=aa)
-        aa -= t1
-        np.multiply(Sa, az, out=t1)
-        aa -= t1
-        np.multiply(wa, we, out=t1)
-        t1 *= Cp
-        aa -= t1
-        # el: Fe - De we - friction(we) - G cos(el) + coupling wa^2 sin(el) cos(el)
-        friction(we, Ce, Ste)
-        np.multiply(De, we, out=ae)
-        np.subtract(Fe, ae, out=ae)
-        ae -= t1
-        np.multiply(G, ce, out=t1)
-        ae -= t1
-        np.multiply(wa, wa, out=t1)
-        t1 *= Cp1
-        t1 *= se
-        t1 *= ce
-        ae += t1
-
-    def plant_step(u: Array) -> None:
-        nonlocal Fa, Fe, x, ksum, xs
-        np.clip(u, -plim, plim, out=v)
-        np.multiply(Ga, v[0], out=Fa)
-        Fa += ba
-        np.multiply(Ge, v[1], out=Fe)
-        Fe += be
-        el0 = x[1].copy()
-        c0 = np.cos(el0)
-        s0 = np.sin(el0)
-        span = float(np.max(np.abs(x[3]))) * Ts * 1.5 if B else 0.0
-        base = el0 if span <= TAYLOR_LIMIT else None
-        h = Ts / st.substeps
-        for _ in range(st.substeps):
-            deriv(x, c0, s0, base, acc)
-            np.copyto(ksum, acc)
-            np.multiply(acc, 0.5 * h, out=xs)
-            xs += x
-            deriv(xs, c0, s0, base, acc)
-            np.multiply(acc, 2.0, out=xs)
-            ksum += xs
-            np.multiply(acc, 0.5 * h, out=xs)
-            xs += x
-            deriv(xs, c0, s0, base, acc)
-            np.multiply(acc, 2.0, out=xs)
-            ksum += xs
-            np.multiply(acc, h, out=xs)
-            xs += x
-            deriv(xs, c0, s0, base, acc)
-            ksum += acc
-            ksum *= h / 6.0
-            x += ksum
-
-    # engage: x_r = first reading, weights zero
-    measure(first_y)
-    meas[0] = first_y
-    xr = first_y.copy()
-    y = first_y
-    blk = 0
-    k_block0 = 0
-    with np.errstate(all="ignore"):
-        for k in range(ticks):
-            eps_k = float(setup.eps_t[k])
-            # --- law tick (runtime.law.AdaptiveLaw.step, batch last)
-            np.subtract(y, xr, out=e)
-            np.matmul(P, e, out=Pe)
-            Pe *= e
-            np.sum(Pe, axis=0, out=s)
-            np.maximum(s, 0.0, out=s)
-            np.sqrt(s, out=s)
-            np.divide(s, eps_k, out=R[blk])
-            if barrier:
-                phi_d = bar.phi_d(np.minimum(s, smax_f * eps_k), eps_k)
-            else:
-                phi_d = np.ones(B)
-            np.matmul(K1, y, out=un)
-            np.subtract(K2c[k][:, None], un, out=un)
-            for r, (op, i, j) in enumerate(codes):
-                if op == "x":
-                    np.copyto(sig[r], y[i])
-                elif op == "tanh":
-                    np.divide(y[i], width, out=sig[r])
-                    np.tanh(sig[r], out=sig[r])
-                elif op == "cos":
-                    np.cos(y[i], out=sig[r])
-                elif op == "sin":
-                    np.sin(y[i], out=sig[r])
-                elif op == "abs":
-                    np.abs(y[i], out=sig[r])
-                elif op == "mul":
-                    np.multiply(y[i], y[j], out=sig[r])
-            if nreg > nb:
-                np.divide(un, uscale, out=sig[nb:])
-            sig_sq = np.einsum("ib,ib->b", sig, sig)
-            g = sig_sq
-            g *= phi_d
-            g *= gcoef
-            np.divide(cap, g, out=g)
-            np.minimum(g, 1.0, out=g)
-            g *= phi_d
-            g *= Ts          # Ts * rate
-            np.matmul(PBT, e, out=epb)
-            epb *= g
-            np.multiply(gamma, sig, out=gs)
-            np.multiply(gs[:, None, :], epb[None, :, :], out=tmpW)
-            W += tmpW
-            np.multiply(W, sig[:, None, :], out=tmpW)
-            np.sum(tmpW, axis=0, out=ur)
-            np.subtract(un, ur, out=UR[blk])
-            np.matmul(Ad, xr, out=xr_t)
-            np.add(xr_t, Bdc[k][:, None], out=xr)
-            # --- actuator: saturate, apply `lat` ticks late
-            u_now = ubuf[k % (lat + 1)]
-            np.clip(UR[blk], -umax, umax, out=u_now)
-            plant_step(ubuf[(k - lat) % (lat + 1)] if k >= lat else np.zeros((m, B)))
-            # --- sensors (reading k+1), delayed `delay` ticks
-            slot = meas[(k + 1) % (delay + 1)]
-            measure(slot)
-            kk = k + 1 - delay
-            y = meas[kk % (delay + 1)] if kk > 0 else first_y
-            blk += 1
-            if blk == BLOCK or k == ticks - 1:
-                rules.block(k_block0, R[:blk], UR[:blk])
-                rules.state(k, x)
-                blk = 0
-                k_block0 = k + 1
-    return rules.result()
-
-
 # ------------------------------------------------------------------ the reference engine
 def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
                    ) -> dict[str, Array]:
     from runtime.law import AdaptiveLaw
-    from sim_rigs.pedestal import Pedestal, SensorModel
+    from sim_rigs.plant import RigPlant
 
     d = setup.design
     st = setup.settings
     B = len(next(iter(prm.values())))
     m = d.rig.m
     sens = setup.sensors
-    sensors = sens if st.noise else SensorModel(
-        angle_resolution=sens.angle_resolution, angle_noise=0.0, rate_noise=0.0,
-        delay_ticks=sens.delay_ticks)
-    plant = Pedestal.create(prm, batch=B, x0=setup.x0, sensors=sensors,
-                            substeps=st.substeps, rng=rng)
+    sensors = sens if st.noise else sens.noiseless()
+    plant = RigPlant.create(d.rig.spec, prm, batch=B, x0=setup.x0, sensors=sensors,
+                            substeps=st.substeps, rng=rng,
+                            limits=np.asarray(d.rig.input_limits, dtype=float))
     law = AdaptiveLaw(d, setup.modifiers)
-    rules = _Rules(B, d, st)
+    rules = _Rules(B, d, st, setup.levels)
     R = np.empty((BLOCK, B))
     UR = np.empty((BLOCK, m, B))
     lat = st.latency_ticks
@@ -669,7 +390,7 @@ def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generato
             blk += 1
             if blk == BLOCK or k == ticks - 1:
                 rules.block(k_block0, R[:blk], UR[:blk])
-                rules.state(k, plant.x.T)
+                rules.state(k, plant.x.T, np.sqrt(np.sum(state.W * state.W, axis=(-2, -1))))
                 blk = 0
                 k_block0 = k + 1
     return rules.result()
@@ -684,32 +405,36 @@ def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.in
     (B, ticks + 1, 4) standard normals (tests use it to replay another engine's draws).
     """
     from runtime import fast
+    from sim_rigs import kernel
 
     d = setup.design
     st = setup.settings
     sens = setup.sensors
+    spec = d.rig.spec
     B = len(plant_ids)
     ic, fc = setup.packed
-    P = np.ascontiguousarray(np.stack([np.asarray(prm[k], dtype=float)
-                                       for k in fast.PEDESTAL_PARAMS], axis=1))
-    noisy = st.noise and (sens.angle_noise > 0 or sens.rate_noise > 0)
+    pcode, pmat = kernel.pack_rig(spec)
+    P = kernel.pack_params(spec, {k: np.broadcast_to(np.asarray(prm[k], dtype=float), (B,))
+                                  for k in spec.params})
+    noisy = st.noise and bool(np.any(sens.noise > 0))
     mode = fast.NOISE_OFF if not noisy else (
         fast.NOISE_STREAM if noise_given is None else fast.NOISE_GIVEN)
-    given = np.zeros((1, 1, 4)) if noise_given is None else np.ascontiguousarray(
+    given = np.zeros((1, 1, 1)) if noise_given is None else np.ascontiguousarray(
         noise_given, dtype=float)
-    levels = np.array([st.margin_trip,
-                       (1.0 - d.clamp_margin) if d.law == "barrier" else 1.0, 1.0])
-    from sim_rigs.pedestal import INPUT_LIMITS
-
+    lv = setup.levels
+    levels = np.array([lv["margin"], lv["clamp"], lv["breach"]])
     first = np.empty((B, len(fast.SWEEP_RULES)), dtype=np.int64)
     max_ratio = np.empty(B)
     fast.sweep_kernel(
-        setup.cmd, setup.eps_t, np.ascontiguousarray(setup.x0, dtype=float), P,
+        setup.cmd, setup.eps_t, np.ascontiguousarray(setup.x0, dtype=float), pcode, pmat, P,
         np.ascontiguousarray(plant_ids, dtype=np.int64), int(st.seed), int(st.substeps),
-        np.asarray(INPUT_LIMITS, dtype=float), float(sens.angle_noise), float(sens.rate_noise),
-        float(sens.angle_resolution), int(sens.delay_ticks), int(st.latency_ticks), mode, given,
-        ic, fc, fast.sweep_law_fits(ic), levels, st.saturation_time / d.Ts,
-        np.asarray(st.divergence_factor * d.state_range, dtype=float), first, max_ratio)
+        np.asarray(d.rig.input_limits, dtype=float),
+        np.ascontiguousarray(sens.resolution, dtype=float),
+        np.ascontiguousarray(sens.noise, dtype=float), int(sens.delay_ticks),
+        int(st.latency_ticks), mode, given, ic, fc, fast.sweep_law_fits(ic), levels,
+        float(lv["saturation_ticks"]), np.asarray(st.divergence_factor * d.state_range,
+                                                  dtype=float),
+        float(st.weight_norm_limit), first, max_ratio)
     out = {f"first_{r}": first[:, j].copy() for j, r in enumerate(fast.SWEEP_RULES)}
     max_ratio[out["first_nonfinite"] >= 0] = np.inf
     out["max_ratio"] = max_ratio
@@ -735,8 +460,6 @@ def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: dict[str, Array
     if setup.engine == "compiled":
         B = len(next(iter(prm.values())))
         return _run_compiled(setup, prm, np.arange(B, dtype=np.int64))
-    if setup.engine == "fused":
-        return _run_fused(setup, prm, rng)
     return _run_reference(setup, prm, rng)
 
 
@@ -777,7 +500,7 @@ def classify(per_plant: dict[str, Array], Ts: float) -> dict[str, Array]:
     first_rule = np.argmin(ticks, axis=0)  # ties: RULES order
     first_tick = ticks[first_rule, np.arange(B)]
     tripped = first_tick < big
-    diverged = per_plant["first_diverged"] >= 0
+    diverged = (per_plant["first_diverged"] >= 0) | (per_plant["first_weights"] >= 0)
     outcome = np.where(diverged, 2, np.where(tripped, 1, 0))
     trip_time = np.where(tripped, first_tick * Ts, np.nan)
     return {"outcome": outcome, "first_rule": np.where(tripped, first_rule, -1),
@@ -813,6 +536,8 @@ def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
             "breach_time": ft * Ts if ft >= 0 else None,
             "diverged_time": (per_plant["first_diverged"][i] * Ts
                               if per_plant["first_diverged"][i] >= 0 else None),
+            "weights_diverged_time": (per_plant["first_weights"][i] * Ts
+                                      if per_plant["first_weights"][i] >= 0 else None),
             "max_margin_ratio": ratio[i],
             "params": {k: float(v[i]) for k, v in truth.items()},
         })
@@ -833,6 +558,9 @@ def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
         "inside_fraction": float(np.mean(out == 0)),
         "trip_fraction": float(np.mean(out == 1)),
         "diverged_fraction": float(np.mean(out == 2)),
+        "diverged_states_fraction": float(np.mean(per_plant["first_diverged"] >= 0)),
+        "diverged_weights_fraction": float(np.mean(per_plant["first_weights"] >= 0)),
+        "weight_norm_limit": settings.weight_norm_limit,
         "bound_held_fraction": float(np.mean(breach < 0)),
         "trips_by_rule": by_rule,
         "rules_fired": fired,
@@ -885,7 +613,7 @@ def run_sweep(cfg: Config, plants: int | None = None, seed: int | None = None,
               duration: float | None = None, workers: int | None = None,
               chunk: int | None = None, engine: str | None = None,
               progress: Progress | None = None) -> SweepResult:
-    """Draw the plants, run them (compiled: `workers` threads; fused / reference: chunks
+    """Draw the plants, run them (compiled: `workers` threads; reference: chunks
     over `workers` processes), summarise."""
     settings = SweepSettings.from_config(cfg, plants, seed, duration, workers, chunk, engine)
     design = design_from_config(cfg)

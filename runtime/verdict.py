@@ -149,8 +149,9 @@ def decide(cfg: Config, design: Design | None = None, *, simulate: bool = True,
     got = _nominal_run(cfg, max_seconds)
     if got is None:
         return Verdict(UNVERIFIED, "closed form", closed + "; there is no simulated rig to "
-                       "ask whether the bound holds (rig.sim unset).",
-                       "give the rig a simulated stand-in (rig.sim) to get a verdict.")
+                       "ask whether the bound holds (rig.sim unset, no [plant] terms).",
+                       "give the rig a simulated stand-in (a rig file in rig.sim) to get a "
+                       "verdict.")
     result, duration = got
     fig = _figures(result, duration)
     trip = cfg.number("watchdog.margin_trip", 0.9, positive=True, maximum=1.0)

@@ -68,6 +68,22 @@ DEFAULTS: dict[str, Any] = {
 }
 
 
+def over(value: float, threshold: float) -> bool:
+    """The one comparison of every rule: the signal is at or past its threshold (NaN counts
+    as over). The live rules call it, the sweep's numpy bookkeeping maps it over arrays and
+    the sweep kernel compiles this very function (`runtime.fast`), so they cannot drift."""
+    return not (value < threshold)
+
+
+def sweep_levels(rules: list[Rule], period: float) -> dict[str, float]:
+    """What the sweep needs of the rules it can evaluate offline, from the live rule set:
+    the margin and clamp thresholds (ratios), the saturation threshold in whole ticks (the
+    live rule accumulates one period per tick at the limit and trips at its threshold)."""
+    by_id = {r.id: r for r in rules}
+    return {"margin": by_id["margin"].threshold, "clamp": by_id["clamp"].threshold,
+            "saturation_ticks": by_id["saturation"].threshold / period}
+
+
 @dataclass
 class Signals:
     """What the watchdog sees on one tick (filled in place by the loop)."""
@@ -122,13 +138,13 @@ class Rule:
             return False
         v = self.value(sig)
         self.last_value = v
-        over = not (v < self.threshold)  # NaN counts as over
+        is_over = over(v, self.threshold)
         if self.active:
             if v < self.threshold - self.deadband:
                 self.active = False
                 self.since = math.nan
             return False
-        if not over:
+        if not is_over:
             self.since = math.nan
             return False
         if math.isnan(self.since):

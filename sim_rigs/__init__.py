@@ -1,49 +1,16 @@
-"""Simulated rigs, in-process and (later) served as devices.
+"""Simulated rigs: rig descriptions as data, one plant, in-process and served as devices.
 
-`RIGS` maps a config name (``rig.sim``) to a `RigSpec`: the rig's state and
-input names, units, limits, nominal linear model and its true-plant
-parameters. The numeric models live in one module per rig (`pedestal`).
+A simulated rig is a rig file (`sim_rigs.rigfile`: states, inputs, units, limits,
+nominal model, truth as a table of named terms, sensors, uncertainty ranges). The
+built-in rigs are files in ``sim_rigs/rigs/``; `RIGS` maps their names to their
+`RigSpec`. `sim_rigs.plant` is the batched numpy reference of plant and sensors,
+`sim_rigs.kernel` the one compiled kernel interpreting the same term table.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from dataclasses import dataclass
+from sim_rigs.rigfile import RigFileError, RigSpec, builtin_names, resolve_rig
 
-import numpy as np
-from numpy.typing import NDArray
+RIGS: dict[str, RigSpec] = {name: resolve_rig(name) for name in builtin_names()}
 
-from sim_rigs import pedestal
-
-
-@dataclass(frozen=True)
-class RigSpec:
-    """What corral needs to know about a simulated rig."""
-
-    name: str
-    description: str
-    states: tuple[str, ...]
-    state_units: tuple[str, ...]
-    inputs: tuple[str, ...]
-    input_units: tuple[str, ...]
-    input_limits: tuple[float, ...]
-    nominal_model: Callable[[], tuple[NDArray[np.float64], NDArray[np.float64],
-                                      NDArray[np.float64]]]
-    truth_defaults: dict[str, float]
-    param_units: dict[str, str]
-
-
-RIGS: dict[str, RigSpec] = {
-    "pedestal": RigSpec(
-        name="pedestal",
-        description="two-axis pan-tilt pointing pedestal (azimuth, elevation), 12 V gearmotors",
-        states=pedestal.STATES,
-        state_units=pedestal.STATE_UNITS,
-        inputs=pedestal.INPUTS,
-        input_units=pedestal.INPUT_UNITS,
-        input_limits=pedestal.INPUT_LIMITS,
-        nominal_model=pedestal.nominal_model,
-        truth_defaults=pedestal.TRUTH_DEFAULTS,
-        param_units=pedestal.PARAM_UNITS,
-    ),
-}
+__all__ = ["RIGS", "RigFileError", "RigSpec", "builtin_names", "resolve_rig"]

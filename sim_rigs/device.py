@@ -1,6 +1,6 @@
-"""The simulated pedestal served as a device: over a pseudo-terminal or through MQTT.
+"""A simulated rig served as a device: over a pseudo-terminal or through MQTT.
 
-`PedestalDevice` runs one plant (a `sim_rigs.pedestal.Pedestal` of batch 1,
+`RigDevice` runs one plant (a `sim_rigs.plant.RigPlant` of batch 1, any rig,
 passed in: this package never imports the runtime) on its own real-time clock:
 a thread that sleeps to absolute deadlines ``t0 + k * period``. Each period
 it applies the held command (zero-order hold, through the device-side
@@ -69,8 +69,7 @@ from drivers.wire import (
     encode_message,
 )
 from sim_rigs.faults import LINK_KINDS, FaultInjector, FaultSchedule
-from sim_rigs.link import PedestalStepper
-from sim_rigs.pedestal import INPUT_UNITS, INPUTS, STATE_UNITS, STATES
+from sim_rigs.kernel import CompiledPlant
 
 _RING = 4096
 REALTIME_PRIORITY = 40
@@ -456,8 +455,8 @@ def _try_fifo(priority: int = REALTIME_PRIORITY) -> bool:
     return True
 
 
-class PedestalDevice:
-    """The pedestal as a device on its own real-time clock (see the module docstring)."""
+class RigDevice:
+    """A simulated rig as a device on its own real-time clock (see the module docstring)."""
 
     def __init__(
         self,
@@ -479,15 +478,17 @@ class PedestalDevice:
         self.plant = plant
         self.period = float(period)
         self.schedule = faults or FaultSchedule()
-        self.injector = FaultInjector(self.schedule, plant)
-        self.stepper = PedestalStepper(plant)
+        spec = plant.spec
+        self.injector = FaultInjector(self.schedule, plant, states=spec.states, axes=spec.inputs)
+        self.stepper = CompiledPlant(plant)
         self.rng = random.Random(seed)
         limits = tuple(float(v) for v in np.ravel(
             plant.limits if output_limits is None else output_limits))
         self.hello = Hello(
-            protocol=PROTOCOL_VERSION, rig_id=rig_id, channels=STATES, units=STATE_UNITS,
-            sample_rate_hz=1.0 / self.period, output_names=INPUTS, output_limits=limits,
-            output_units=INPUT_UNITS, command_timeout_s=float(command_timeout_s),
+            protocol=PROTOCOL_VERSION, rig_id=rig_id, channels=spec.states,
+            units=spec.state_units, sample_rate_hz=1.0 / self.period, output_names=spec.inputs,
+            output_limits=limits, output_units=spec.input_units,
+            command_timeout_s=float(command_timeout_s),
         )
         self.transport: Transport | None = None
         self.seq = 0
@@ -495,7 +496,7 @@ class PedestalDevice:
         self.samples_sent = 0
         self.timeouts = 0
         self.deadline_misses = 0
-        self.applied = (0.0, 0.0)
+        self.applied = (0.0,) * spec.m
         self.status = 0
         self._stop = threading.Event()
         self._lateness = np.zeros(1 << 16)
@@ -666,3 +667,7 @@ class PedestalDevice:
             round_trip_max_us=float(rt.max()) if rt.size else float("nan"),
             missed_commands=self.missed_commands,
         )
+
+
+PedestalDevice = RigDevice
+"""The older name (it served only the pedestal)."""

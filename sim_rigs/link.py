@@ -1,6 +1,6 @@
-"""The simulated pedestal as an in-process `drivers.base.Link`.
+"""A simulated rig as an in-process `drivers.base.Link`.
 
-`SimLink` owns one plant (a `sim_rigs.pedestal.Pedestal` of batch 1) and a
+`SimLink` owns one plant (a `sim_rigs.plant.RigPlant` of batch 1, any rig) and a
 `FaultInjector`, and behaves like a device: it reports `Sample`s with its own
 sequence numbers and device time, applies `Command`s (outputs off unless the
 command says on), and turns its outputs off by itself when commands stop
@@ -15,10 +15,12 @@ Two ways to run it:
   thread steps the physics at its own real-time clock and `receive()` waits
   for the next sample, like a served device.
 
-For speed the one-plant physics are stepped with plain floats (the numpy
-`Pedestal.step` costs ~0.7 ms per call for one plant because of call overhead);
-`tests/test_faults.py` checks the two agree. What does not live here: the
-batched physics and their documentation (`sim_rigs.pedestal`), fault parsing
+For speed the one-plant physics are stepped by the compiled plant kernel
+(`sim_rigs.kernel.CompiledPlant`, the same kernel the dry run and the sweep use;
+the numpy `RigPlant.step` costs ~0.7 ms per call for one plant because of call
+overhead); the readings come from the plant's own sensor model (`RigPlant.measure`).
+`tests/test_rig_plant.py` compares this link with the dry run tick by tick. What
+does not live here: the plant (`sim_rigs.plant`, `sim_rigs.kernel`), fault parsing
 (`sim_rigs.faults`), the wire protocol (`drivers.wire`).
 """
 
@@ -26,7 +28,6 @@ from __future__ import annotations
 
 import asyncio
 import math
-import random
 import threading
 import time
 from collections.abc import Sequence
@@ -53,98 +54,37 @@ from sim_rigs.faults import FaultInjector, FaultSchedule
 PROTOCOL = 1
 
 
-class PedestalStepper:
-    """One pedestal's physics in plain floats: the equations of `Pedestal.accel`, RK4."""
-
-    def __init__(self, plant: Any) -> None:
-        self.plant = plant
-        p = {k: float(np.ravel(v)[0]) for k, v in plant.params.items()}
-        self.p = p
-        self.limits = [float(v) for v in np.ravel(plant.limits)]
-
-    def _acc(self, x0: float, x1: float, wa: float, we: float, va: float, ve: float,
-             la: float, le: float, da: float, de: float) -> tuple[float, float]:
-        p = self.p
-        vs = p["coulomb_speed"]
-        acc_az = (-(p["a_az"] + p["visc_az"]) * wa + p["b_az"] * la * va
-                  - p["coulomb_az"] * math.tanh(wa / vs) - p["spring_az"] * x0
-                  - p["coupling"] * wa * we + p["bias_az"])
-        acc_el = (-(p["a_el"] + p["visc_el"]) * we + p["b_el"] * le * ve
-                  - p["coulomb_el"] * math.tanh(we / vs) - p["gravity_el"] * math.cos(x1)
-                  + 0.5 * p["coupling"] * wa * wa * math.sin(2 * x1) + p["bias_el"])
-        return acc_az + da, acc_el + de
-
-    def step(self, u: Sequence[float], dt: float) -> tuple[float, float]:
-        """Advance the plant by dt holding u (saturated here); returns the volts applied."""
-        plant = self.plant
-        va = min(max(float(u[0]), -self.limits[0]), self.limits[0])
-        ve = min(max(float(u[1]), -self.limits[1]), self.limits[1])
-        la, le = self.p["lam_az"], self.p["lam_el"]
-        if plant.lam_scale is not None:
-            la *= float(plant.lam_scale[0, 0])
-            le *= float(plant.lam_scale[0, 1])
-        da = de = 0.0
-        if plant.disturbance is not None:
-            da, de = float(plant.disturbance[0, 0]), float(plant.disturbance[0, 1])
-        a, e, wa, we = (float(v) for v in plant.x[0])
-        n = plant.substeps
-        h = dt / n
-        acc = self._acc
-        for _ in range(n):
-            k1a, k1e = acc(a, e, wa, we, va, ve, la, le, da, de)
-            k2a, k2e = acc(a + 0.5 * h * wa, e + 0.5 * h * we, wa + 0.5 * h * k1a,
-                           we + 0.5 * h * k1e, va, ve, la, le, da, de)
-            w2a, w2e = wa + 0.5 * h * k1a, we + 0.5 * h * k1e
-            k3a, k3e = acc(a + 0.5 * h * w2a, e + 0.5 * h * w2e, wa + 0.5 * h * k2a,
-                           we + 0.5 * h * k2e, va, ve, la, le, da, de)
-            w3a, w3e = wa + 0.5 * h * k2a, we + 0.5 * h * k2e
-            k4a, k4e = acc(a + h * w3a, e + h * w3e, wa + h * k3a, we + h * k3e,
-                           va, ve, la, le, da, de)
-            w4a, w4e = wa + h * k3a, we + h * k3e
-            a += (h / 6.0) * (wa + 2 * w2a + 2 * w3a + w4a)
-            e += (h / 6.0) * (we + 2 * w2e + 2 * w3e + w4e)
-            wa += (h / 6.0) * (k1a + 2 * k2a + 2 * k3a + k4a)
-            we += (h / 6.0) * (k1e + 2 * k2e + 2 * k3e + k4e)
-        x = plant.x
-        x[0, 0], x[0, 1], x[0, 2], x[0, 3] = a, e, wa, we
-        return va, ve
-
-
 class SimLink(Link):
-    """The simulated pedestal behind the `Link` interface (see the module docstring)."""
+    """A simulated rig behind the `Link` interface (see the module docstring)."""
 
     def __init__(self, plant: Any, period: float, faults: FaultSchedule | None = None, *,
                  rig_id: str = "pedestal-sim", states: Sequence[str] = (),
                  units: Sequence[str] = (), inputs: Sequence[str] = ("V_az", "V_el"),
                  seed: int = 0, command_timeout_s: float = 0.05,
                  free_running: bool = False) -> None:
-        from sim_rigs.pedestal import INPUT_UNITS, STATE_UNITS, STATES
+        from sim_rigs.kernel import CompiledPlant
 
+        spec = plant.spec
         self.plant = plant
         self.period = float(period)
         self.schedule = faults or FaultSchedule()
-        self.injector = FaultInjector(self.schedule, plant)
-        self.stepper = PedestalStepper(plant)
+        self.injector = FaultInjector(self.schedule, plant, states=spec.states,
+                                      axes=spec.inputs)
+        self.stepper = CompiledPlant(plant)
         self.free_running = free_running
         self.stats = LinkStats()
         self.hello = Hello(
             protocol=PROTOCOL, rig_id=rig_id,
-            channels=tuple(states or STATES), units=tuple(units or STATE_UNITS),
+            channels=tuple(states or spec.states), units=tuple(units or spec.state_units),
             sample_rate_hz=1.0 / self.period, output_names=tuple(inputs),
             output_limits=tuple(float(v) for v in np.ravel(plant.limits)),
-            output_units=INPUT_UNITS, command_timeout_s=command_timeout_s,
+            output_units=spec.input_units, command_timeout_s=command_timeout_s,
         )
-        s = plant.sensors
-        self._res = float(s.angle_resolution)
-        self._an = float(s.angle_noise)
-        self._rn = float(s.rate_noise)
-        self._sensor_delay = int(s.delay_ticks)
-        self._rng = random.Random(seed)
-        self._delay_line: list[tuple[float, ...]] = []
         self.tick = 0
         """Periods stepped so far (rig time = tick * period)."""
         self.seq = 0
-        self.u = (0.0, 0.0)
+        self._off = (0.0,) * spec.m
+        self.u = self._off
         """Volts applied now."""
         self.outputs_on = False
         self._last_command_rig_t = -math.inf
@@ -164,25 +104,8 @@ class SimLink(Link):
         return self.tick * self.period
 
     def _read_sensors(self) -> tuple[float, ...]:
-        x = self.plant.x[0]
-        g = self._rng.gauss
-        res = self._res
-        out = []
-        for i in range(2):
-            a = float(x[i]) + (g(0.0, self._an) if self._an > 0 else 0.0)
-            if res > 0:
-                a = round(a / res) * res
-            out.append(a)
-        for i in range(2, 4):
-            out.append(float(x[i]) + (g(0.0, self._rn) if self._rn > 0 else 0.0))
-        y = tuple(out)
-        if self._sensor_delay > 0:
-            self._delay_line.append(y)
-            if len(self._delay_line) > self._sensor_delay:
-                y = self._delay_line.pop(0)
-            else:
-                y = self._delay_line[0]
-        return y
+        """The plant's own sensor model (`RigPlant.measure`: noise, quantum, delay)."""
+        return tuple(float(v) for v in self.plant.measure()[0])
 
     def sample_now(self, t_host: float) -> Sample | None:
         """Stepped mode: the reading the rig reports at this period (None: nothing arrives)."""
@@ -212,7 +135,7 @@ class SimLink(Link):
             self.stats.frames_out += 1
             self._last_command_rig_t = t
             self.outputs_on = bool(command.flags & FLAG_OUTPUTS_ON)
-            u = command.u if self.outputs_on else (0.0, 0.0)
+            u = command.u if self.outputs_on else self._off
         else:
             u = self.u
         status = STATUS_OK
@@ -220,7 +143,7 @@ class SimLink(Link):
             self.outputs_on = False
             status |= STATUS_COMMAND_TIMEOUT
         if not self.outputs_on:
-            u = (0.0, 0.0)
+            u = self._off
             status |= STATUS_OUTPUTS_OFF
         self.injector.apply(t)
         self.u = self.stepper.step(u, self.period)

@@ -9,7 +9,9 @@ import numpy as np
 
 from drivers.base import Sample
 from runtime.estimator import Estimator
-from sim_rigs.pedestal import nominal_model
+from sim_rigs import RIGS
+
+nominal_model = RIGS["pedestal"].nominal_model
 
 
 def run(estimator: Estimator, seconds: float, period: float, drift: float,

@@ -31,12 +31,13 @@ def test_controlled_stop_parks_then_turns_outputs_off():
     cfg = load_config(DEMO, ["fallback.park=[0.05, 0.0]", "fallback.park_rate=1.0"])
     d = design_from_config(cfg)
     st = settings_from_config(cfg, 2)
-    from sim_rigs.link import PedestalStepper
-    from sim_rigs.pedestal import Pedestal
+    from sim_rigs import RIGS
+    from sim_rigs.kernel import CompiledPlant
+    from sim_rigs.plant import RigPlant
 
-    plant = Pedestal.create({"gravity_el": 0.0, "bias_az": 0.0, "bias_el": 0.0},
+    plant = RigPlant.create(RIGS["pedestal"], {"gravity_el": 0.0, "bias_az": 0.0, "bias_el": 0.0},
                             x0=[0.0, 0.0, 0.0, 0.0])
-    stepper = PedestalStepper(plant)
+    stepper = CompiledPlant(plant)
     fb = make_fallback("controlled_stop", d, st, np.zeros(2), plant.x[0])
     done = False
     u_prev = np.zeros(2)

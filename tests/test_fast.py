@@ -1,6 +1,6 @@
 """The compiled fast path agrees with the numpy reference tick by tick.
 
-The reference is `runtime.law.AdaptiveLaw` and `sim_rigs.pedestal.Pedestal`
+The reference is `runtime.law.AdaptiveLaw` and `sim_rigs.plant.RigPlant`
 (the readable source of truth); the weight modifiers are checked against the
 formulas of the design brief section 2a, written out again below in plain
 numpy (projection: Pomet and Praly, IEEE TAC 1992, and Lavretsky and Wise,
@@ -22,7 +22,8 @@ from runtime.config import load_config
 from runtime.design import design_from_config
 from runtime.dryrun import dry_run
 from runtime.law import AdaptiveLaw
-from sim_rigs.pedestal import Pedestal, SensorModel
+from sim_rigs import RIGS
+from sim_rigs.plant import RigPlant, SensorModel
 
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "pedestal-sim.toml"
 NOISE_OFF = ["plant.sensors.angle_noise=0", "plant.sensors.rate_noise=0"]
@@ -67,8 +68,8 @@ def compare_ticks(design, xs, cs, eps_t=None, modifiers=(), settings=None, w0=No
 def closed_loop_states(design, ticks: int, kicks: bool, seed: int = 3):
     """Measurements from the numpy plant under the numpy law, with commands (and kicks)."""
     law = AdaptiveLaw(design)
-    plant = Pedestal.create(batch=1, x0=[0.0, 0.1, 0.0, 0.0],
-                            sensors=SensorModel(0.0, 0.0, 0.0), substeps=2)
+    plant = RigPlant.create(RIGS["pedestal"], batch=1, x0=[0.0, 0.1, 0.0, 0.0],
+                            sensors=SensorModel(np.zeros(4), np.zeros(4)), substeps=2)
     t = np.arange(ticks) * design.Ts
     cs = np.stack((0.3 * np.sin(2 * np.pi * 0.5 * t), 0.2 + 0.1 * np.cos(2 * np.pi * t)), -1)
     xs = np.empty((ticks, 4))
@@ -297,30 +298,7 @@ def test_radial_basis_from_config_matches_reference():
 
 
 # ---------------------------------------------------------------- plant kernels
-def test_pedestal_kernel_matches_reference_with_faults():
-    rng = np.random.default_rng(4)
-    plant = Pedestal.create(batch=1, x0=[0.2, 0.4, -0.5, 0.3], substeps=3)
-    plant.disturbance = np.array([[0.3, -0.7]])
-    plant.lam_scale = np.array([[0.5, 0.8]])
-    prm = fast.pack_pedestal(plant.params)
-    xp = plant.x[0].copy()
-    work = np.zeros((6, 4))
-    for _ in range(500):
-        u = rng.uniform(-15, 15, size=2)  # beyond the 12 V limits too
-        v = plant.step(u, 1e-3)
-        fast.pedestal_step(xp, u, prm, plant.limits, 1e-3, 3, plant.disturbance[0],
-                           plant.lam_scale[0], work)
-        assert close(v[0], work[5, :2], 0.0)
-        assert close(plant.x[0], xp)
-
-
-def test_measurement_kernel_quantises_like_reference():
-    res = 9.5874e-5
-    plant = Pedestal.create(batch=1, x0=[0.123456, -0.5 * res, 0.7, -0.2],
-                            sensors=SensorModel(res, 0.0, 0.0))
-    y = np.zeros(4)
-    fast.pedestal_measure(plant.x[0].copy(), res, np.zeros(4), y)
-    assert np.array_equal(y, plant.measure()[0])
+# The plant kernel (sim_rigs.kernel) against its numpy reference: tests/test_rig_plant.py.
 
 
 # ---------------------------------------------------------------- dry run engines
@@ -422,42 +400,6 @@ def test_specialised_law_tick_with_radial_basis():
 def test_modifiers_send_the_sweep_to_the_general_law_kernel():
     ic, _fc = fast.pack_law(demo_design(), fast.ModifierSettings(leakage="e", mu=1.0))
     assert not fast.sweep_law_fits(ic)
-
-
-@pytest.mark.parametrize("stribeck", [False, True])
-def test_lane_plant_step_matches_pedestal_step(stribeck):
-    # Four different plants, inputs beyond the 12 V limits, fast elevation swings (the exact
-    # trigonometry fallback) and near-standstill rates (tanh off its +-1 shortcut).
-    rng = np.random.default_rng(8)
-    L = fast.LANES
-    prm = np.stack([fast.pack_pedestal(Pedestal.create().params) for _ in range(L)])
-    prm *= rng.uniform(0.7, 1.3, size=prm.shape)
-    if stribeck:
-        prm[:, fast.P_STRIB_AZ] = 0.8
-        prm[:, fast.P_STRIB_EL] = 0.5
-    lanes = np.arange(L)
-    konst = np.zeros((L, 12))
-    fast.pedestal_lanes_setup(prm, lanes, konst)
-    X = rng.normal(size=(L, 4)) * [0.3, 0.3, 0.01, 0.01]
-    X[0, 3] = 40.0  # 0.04 rad a tick: beyond the angle-addition series
-    ref = X.copy()
-    limits = np.array([12.0, 12.0])
-    work, scratch = np.zeros((6, 4)), np.zeros((L, 12))
-    for _ in range(300):
-        U = rng.uniform(-15, 15, size=(L, 2))
-        for ln in range(L):
-            fast.pedestal_step(ref[ln], U[ln], prm[ln], limits, 1e-3, 3, np.zeros(2),
-                               np.ones(2), work)
-        fast.pedestal_step_lanes(X, U, prm, lanes, konst, limits, 1e-3, 3, scratch)
-        assert close(X, ref, 1e-12)
-
-
-def test_fast_tanh_equals_math_tanh():
-    import math
-
-    z = np.concatenate([np.linspace(-30, 30, 20001), [19.9999, 20.0, 20.0001, 1e300, -1e300]])
-    got = np.array([fast.fast_tanh(float(v)) for v in z])
-    assert np.array_equal(got, np.array([math.tanh(float(v)) for v in z]))
 
 
 @numba.njit

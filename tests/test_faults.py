@@ -100,19 +100,22 @@ def test_schedule_from_config_tables_and_command_line(tmp_path):
     assert [f.kind for f in sched.active(3.5)] == ["nan"]
 
 
-def test_plain_float_stepper_matches_the_numpy_pedestal():
-    # Reference: sim_rigs.pedestal.Pedestal.step (batched numpy RK4) is the source of truth.
-    from sim_rigs.link import PedestalStepper
-    from sim_rigs.pedestal import Pedestal
+def test_link_stepper_matches_the_numpy_plant_under_faults():
+    # Reference: sim_rigs.plant.RigPlant.step (batched numpy RK4) is the source of truth; the
+    # links step the compiled kernel, with the fault hooks set by the injector.
+    from sim_rigs import RIGS
+    from sim_rigs.kernel import CompiledPlant
+    from sim_rigs.plant import RigPlant
 
     rng = np.random.default_rng(3)
+    spec = RIGS["pedestal"]
     for _ in range(5):
         x0 = rng.uniform(-1, 1, 4)
         u = rng.uniform(-14, 14, 2)
-        a = Pedestal.create(None, x0=x0)
-        b = Pedestal.create(None, x0=x0)
+        a = RigPlant.create(spec, {"stribeck_az": 1.0, "stribeck_el": 0.5}, x0=x0)
+        b = RigPlant.create(spec, {"stribeck_az": 1.0, "stribeck_el": 0.5}, x0=x0)
         a.disturbance = b.disturbance = np.array([[0.5, -2.0]])
         a.lam_scale = b.lam_scale = np.array([[0.5, 0.8]])
         a.step(u, 1e-3)
-        PedestalStepper(b).step(u, 1e-3)
+        CompiledPlant(b).step(u, 1e-3)
         np.testing.assert_allclose(b.x, a.x, rtol=1e-12, atol=1e-14)

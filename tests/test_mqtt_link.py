@@ -1,6 +1,6 @@
 """MqttLink and MqttPublisher against a real mosquitto broker (tests/mqtt_broker.py).
 
-The device side is the simulated pedestal (`sim_rigs.device.PedestalDevice`)
+The device side is the simulated pedestal (`sim_rigs.device.RigDevice`)
 served through the same broker, in-process (a clock thread plus its own
 asyncio loop) or as a `corral rig serve --mqtt` subprocess where a process
 must die. Behaviour references: MQTT 5.0 (OASIS Standard, 2019) sections
@@ -37,8 +37,9 @@ from drivers.mqtt_link import (
     parse_mqtt_url,
 )
 from drivers.wire import PROTOCOL_VERSION, decode_body, encode_body
-from sim_rigs.device import PedestalDevice
-from sim_rigs.pedestal import Pedestal
+from sim_rigs import RIGS
+from sim_rigs.device import RigDevice
+from sim_rigs.plant import RigPlant
 
 pytestmark = pytest.mark.timeout(60)
 
@@ -62,12 +63,13 @@ def settings_for(broker, rig: str = "bench-1", **kw) -> MqttSettings:
 
 
 class ServedDevice:
-    """A PedestalDevice served through the broker, its clock in a thread."""
+    """A RigDevice served through the broker, its clock in a thread."""
 
     def __init__(self, settings: MqttSettings, period: float = 0.004) -> None:
         import threading
 
-        self.device = PedestalDevice(Pedestal.create(), period=period, rig_id=settings.rig)
+        self.device = RigDevice(RigPlant.create(RIGS["pedestal"]), period=period,
+                                rig_id=settings.rig)
         self.url = self.device.serve_mqtt(settings)
         self.thread = threading.Thread(target=self.device.run, daemon=True)
 

@@ -24,7 +24,7 @@ from runtime.dryrun import dry_run, read_run_file, write_run_file
 from runtime.replay import (
     RunFileError,
     config_with_overrides,
-    fit_pedestal,
+    fit_plant,
     read_recording,
     replay,
 )
@@ -201,7 +201,7 @@ def test_saturation_time_is_reevaluated_on_the_recorded_inputs(runs):
 def test_fit_recovers_a_known_truth_from_a_noise_free_run(runs):
     rec = read_recording(runs["quiet"])
     cfg, _ = config_with_overrides(rec, [])
-    fit = fit_pedestal(rec, cfg)
+    fit = fit_plant(rec, cfg)
     ranges = cfg.get("plant.ranges")
     assert set(fit.params) == set(ranges), fit.skipped  # every uncertain parameter fitted
     for name, value in fit.params.items():
@@ -215,7 +215,7 @@ def test_fit_recovers_a_known_truth_from_a_noise_free_run(runs):
 def test_fit_on_noisy_data_lies_within_its_standard_errors(runs):
     rec = read_recording(runs["barrier"])
     cfg, _ = config_with_overrides(rec, [])
-    fit = fit_pedestal(rec, cfg)
+    fit = fit_plant(rec, cfg)
     truth = cfg.get("plant.truth")
     assert fit.params
     for name, value in fit.params.items():

@@ -26,9 +26,10 @@ from drivers.base import (
 )
 from drivers.mqtt_link import MqttLink, MqttSettings
 from drivers.serial_link import SerialLink
-from sim_rigs.device import PedestalDevice
+from sim_rigs import RIGS
+from sim_rigs.device import RigDevice
 from sim_rigs.faults import FaultSchedule, parse_fault
-from sim_rigs.pedestal import Pedestal
+from sim_rigs.plant import RigPlant
 
 pytestmark = pytest.mark.timeout(60)
 
@@ -130,11 +131,11 @@ def test_serve_refuses_bad_fault_in_one_line():
 
 
 class InProcess:
-    """A PedestalDevice over a pty, its clock in a thread (to read its outputs directly)."""
+    """A RigDevice over a pty, its clock in a thread (to read its outputs directly)."""
 
     def __init__(self, tmp_path: Path, faults: list[str] = ()) -> None:
         schedule = FaultSchedule([parse_fault(f) for f in faults])
-        self.device = PedestalDevice(Pedestal.create(), period=0.002, faults=schedule)
+        self.device = RigDevice(RigPlant.create(RIGS["pedestal"]), period=0.002, faults=schedule)
         self.path = self.device.serve_pty(str(tmp_path / "rig.tty"))
         self.thread = threading.Thread(target=self.device.run, daemon=True)
 

@@ -33,7 +33,7 @@ def cfg():
 @pytest.fixture(scope="module")
 def batch(cfg):
     # 6 plants, 2 s, one process: the batch every comparison below checks against
-    return run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=1, engine="fused")
+    return run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=1, engine="reference")
 
 
 def test_batch_equals_each_plant_alone_through_the_same_code_path(cfg, batch):
@@ -48,16 +48,16 @@ def test_batch_equals_each_plant_alone_through_the_same_code_path(cfg, batch):
             assert one[key][0] == batch.per_plant[key][i], (key, i)
 
 
-def test_fused_engine_matches_the_numpy_reference_law_and_plant(cfg, batch):
-    # Reference: runtime.law.AdaptiveLaw.step + sim_rigs.pedestal.Pedestal.step over the batch.
-    ref = run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=1, engine="reference")
+def test_compiled_engine_matches_the_numpy_reference_law_and_plant(cfg, batch):
+    # Reference: runtime.law.AdaptiveLaw.step + sim_rigs.plant.RigPlant.step over the batch.
+    ref = run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=1, engine="compiled")
     np.testing.assert_allclose(ref.per_plant["max_ratio"], batch.per_plant["max_ratio"],
                                rtol=1e-9)
     np.testing.assert_array_equal(ref.per_plant["outcome"], batch.per_plant["outcome"])
 
 
 def test_worker_count_does_not_change_noise_free_results(cfg, batch):
-    two = run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=2, chunk=3, engine="fused")
+    two = run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=2, chunk=3, engine="reference")
     np.testing.assert_allclose(two.per_plant["max_ratio"], batch.per_plant["max_ratio"],
                                rtol=1e-12)
     np.testing.assert_array_equal(two.per_plant["outcome"], batch.per_plant["outcome"])
@@ -96,28 +96,35 @@ def test_rule_bookkeeping_against_a_plain_loop(cfg):
     UR[50:300, 1, 2] = -12.5        # plant 2 saturated 250 ticks only (0.25 s < 0.5 s)
     R[:, 3] = 0.1
     R[400, 3] = np.nan              # plant 3 goes non-finite at tick 400
-    rules = _Rules(B, design, st)
+    from runtime.sweep import _setup
+    from runtime.watchdog import Signals, build_rules
+
+    rules = _Rules(B, design, st, _setup(cfg.raw, st).levels)
     for k0 in range(0, K, 64):      # fed in blocks, as the engines do
         rules.block(k0, R[k0:k0 + 64], UR[k0:k0 + 64])
     res = rules.result()
-    sat_ticks = st.saturation_time / design.Ts
+    # Reference: the live watchdog's own rules (runtime.watchdog), fed tick by tick the way
+    # the runtime feeds them (runtime.loop: seconds at the limit, |u| >= limit).
+    Ts = design.Ts
     for b in range(B):
+        live = {r.id: r for r in build_rules(cfg, Ts, design.clamp_margin)}
         exp = {r: -1 for r in RULES}
-        run = np.zeros(2)
+        sat_time = np.zeros(2)
         for k in range(K):
             r = R[k, b]
-            if exp["margin"] < 0 and r >= st.margin_trip:
-                exp["margin"] = k
-            if exp["clamp"] < 0 and r >= 1 - design.clamp_margin:
-                exp["clamp"] = k
-            if exp["nonfinite"] < 0 and not np.isfinite(r):
-                exp["nonfinite"] = k
-            run = np.where(np.abs(UR[k, :, b]) > design.rig.input_limits, run + 1, 0)
-            if exp["saturation"] < 0 and np.any(run > sat_ticks):
-                exp["saturation"] = k
+            sat_time = np.where(np.abs(UR[k, :, b]) >= design.rig.input_limits,
+                                sat_time + Ts, 0.0)
+            sig = Signals(t=k * Ts, tick=k, engaged=True, ratio=r,
+                          clamped=not (r <= 1 - design.clamp_margin),  # as runtime.law
+                          nonfinite=not np.isfinite(r), sat_time=float(np.max(sat_time)))
+            for rid in RULES:
+                if live[rid].evaluate(sig) and exp[rid] < 0:
+                    exp[rid] = k
         for r in RULES:
             assert res[f"first_{r}"][b] == exp[r], (r, b)
-    assert res["first_saturation"][1] == 100 + int(sat_ticks)
+    # saturated from tick 100: 0.5 s at the limit is reached on tick 100 + 500 - 1, by the
+    # live rule and the sweep alike (the sweep used to trip one tick later)
+    assert res["first_saturation"][1] == 100 + round(st.saturation_time / Ts) - 1
     assert res["first_saturation"][2] == -1
 
 
@@ -192,9 +199,9 @@ STEP = ['commands.az=[{at=0.3, kind="step", to=1.0}]']
 
 
 @pytest.mark.parametrize("extra", [[], HARD, HARD + STEP])
-def test_compiled_engine_matches_the_fused_engine_noise_off(cfg, extra):
+def test_compiled_engine_matches_the_reference_engine_noise_off(cfg, extra):
     c = cfg.with_overrides(extra)
-    a = run_sweep(c, plants=10, seed=5, duration=1.5, workers=1, engine="fused")
+    a = run_sweep(c, plants=10, seed=5, duration=1.5, workers=1, engine="reference")
     b = run_sweep(c, plants=10, seed=5, duration=1.5, workers=2, engine="compiled")
     assert b.summary["engine"] == "compiled"
     assert_same_plants(a.per_plant, b.per_plant)
@@ -206,18 +213,18 @@ def test_compiled_engine_matches_the_fused_engine_noise_off(cfg, extra):
         assert "saturation" in fired
 
 
-def test_compiled_engine_matches_the_fused_engine_with_the_same_noise():
-    # The fused engine draws rng.standard_normal((4, B)) per reading from
-    # default_rng([seed, chunk]); replaying those draws into the kernel gives the same noise.
+def test_compiled_engine_matches_the_reference_engine_with_the_same_noise():
+    # The reference engine (RigPlant.measure) draws rng.standard_normal((B, 4)) per reading
+    # from default_rng([seed, chunk]); replaying those draws into the kernel gives the same noise.
     from runtime.sweep import _run_compiled, _setup
 
     c = load_config(DEMO, ["sweep.latency_ticks=1"])
-    st = SweepSettings.from_config(c, plants=5, seed=3, duration=1.0, workers=1, engine="fused")
+    st = SweepSettings.from_config(c, plants=5, seed=3, duration=1.0, workers=1, engine="reference")
     prm = draw_plants(c, 5, 3)
     fused = run_chunk(c.raw, st, prm, 0)
     ticks = len(_setup(c.raw, st).cmd)
     rng = np.random.default_rng([3, 0])
-    given = np.stack([rng.standard_normal((4, 5)) for _ in range(ticks + 1)], axis=0)
+    given = np.stack([rng.standard_normal((5, 4)).T for _ in range(ticks + 1)], axis=0)
     st_c = SweepSettings.from_config(c, plants=5, seed=3, duration=1.0, workers=1,
                                      engine="compiled")
     comp = _run_compiled(_setup(c.raw, st_c), prm, np.arange(5),
@@ -228,7 +235,7 @@ def test_compiled_engine_matches_the_fused_engine_with_the_same_noise():
 
 
 def test_compiled_engine_runs_modifiers_and_radial_basis_like_the_reference():
-    # The reference engine: runtime.law.AdaptiveLaw (with runtime.modifiers) + Pedestal.step.
+    # The reference engine: runtime.law.AdaptiveLaw (with runtime.modifiers) + RigPlant.step.
     for extra in (['adaptation.leakage="e"', "adaptation.mu=0.5", "adaptation.projection=true",
                    "adaptation.theta_max=[2.0, 2.0]"],
                   ['basis.kind="rbf"', 'basis.terms=["bias", "cos:el"]',
@@ -252,11 +259,11 @@ def test_compiled_results_do_not_depend_on_threads_or_slicing():
         np.testing.assert_array_equal(one.per_plant[key], two.per_plant[key], err_msg=key)
 
 
-def test_compiled_noise_statistics_match_the_fused_engine():
+def test_compiled_noise_statistics_match_the_reference_engine():
     # Different streams, same distribution: the worst ratio over 60 noisy plants agrees in
     # the mean to within a few standard errors; with the noise off both are identical above.
     c = load_config(DEMO, ["plant.sensors.rate_noise=0.02"])
-    a = run_sweep(c, plants=60, seed=9, duration=1.0, workers=1, engine="fused")
+    a = run_sweep(c, plants=60, seed=9, duration=1.0, workers=1, engine="reference")
     b = run_sweep(c, plants=60, seed=9, duration=1.0, workers=2, engine="compiled")
     q = load_config(DEMO, QUIET)
     z = run_sweep(q, plants=60, seed=9, duration=1.0, workers=2, engine="compiled")
@@ -267,19 +274,11 @@ def test_compiled_noise_statistics_match_the_fused_engine():
     assert abs(np.mean(da) - np.mean(db)) < 4 * se + 1e-12
 
 
-def test_auto_picks_compiled_and_falls_back_for_the_fused_only_cases(cfg):
-    from runtime.config import ConfigError
-
+def test_auto_picks_the_compiled_engine(cfg):
     st = SweepSettings.from_config(cfg, plants=2, duration=0.1, workers=1)
     assert st.engine == "auto"
     r = run_sweep(cfg, plants=2, duration=0.1, workers=1)
     assert r.summary["engine"] == "compiled" and r.summary["compile_seconds"] >= 0
-    with pytest.raises(ConfigError, match="fused"):
-        run_sweep(cfg.with_overrides(['basis.kind="rbf"', 'basis.terms=["bias"]',
-                                      'basis.rbf_states=["el"]', "basis.rbf_per_axis=[3]",
-                                      "basis.rbf_span=[0.6]", "basis.rbf_width=[0.3]",
-                                      "adaptation.gamma=1.0"]),
-                  plants=2, duration=0.1, workers=1, engine="fused")
 
 
 def test_default_substeps_keep_steps_at_most_one_millisecond_and_agree_with_four():

@@ -1,0 +1,218 @@
+"""The compiled plant: ONE numba kernel that interprets a rig's term table.
+
+`pack_rig(spec)` codes a rig (`sim_rigs.rigfile.RigSpec`) into two flat arrays,
+the way `runtime.fast` codes a basis:
+
+- ``code`` (int64): header [n, m, T, F] (states, inputs, terms, factors per term
+  at most), then per term [row, param index (-1: none), factor count, then per
+  factor (kind, state, width parameter index (-1: the literal))], then per input
+  the effectiveness parameter index (-1: 1) and the driven row;
+- ``mat`` (float64): A (n x n) and B (n x m) row-major, then per term
+  [coef, then per factor (k, literal width)].
+
+`pack_params(spec, params)` gives the parameter vector(s) in `spec.params`
+order. `plant_deriv`, `plant_step` (RK4 with substeps, input saturated) and
+`plant_measure` (noise pre-drawn, then quantised) are the equations of
+`sim_rigs.plant.RigPlant`; `tests/test_rig_plant.py` checks them against it with
+every term kind non-zero. The dry run, the sweep, the in-process link and the
+served device all step plants through these functions.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numba
+import numpy as np
+from numpy.typing import NDArray
+
+from sim_rigs.rigfile import FACTOR_KINDS, RigSpec
+
+Array = NDArray[np.float64]
+K_X, K_SIN, K_COS, K_TANH, K_GAUSS, K_ABS = range(6)
+HEADER = 4
+
+
+def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
+    """(code, mat) of a rig: see the module docstring."""
+    n, m, T = spec.n, spec.m, len(spec.terms)
+    F = max([len(t.factors) for t in spec.terms] + [1])
+    names = list(spec.params)
+    code = np.full(HEADER + T * (3 + 3 * F) + 2 * m, -1, dtype=np.int64)
+    code[:HEADER] = (n, m, T, F)
+    mat = np.zeros(n * n + n * m + T * (1 + 2 * F))
+    mat[:n * n] = spec.A.ravel()
+    mat[n * n:n * n + n * m] = spec.B.ravel()
+    oT = n * n + n * m
+    for t, term in enumerate(spec.terms):
+        c = HEADER + t * (3 + 3 * F)
+        code[c] = term.row
+        code[c + 1] = names.index(term.param) if term.param is not None else -1
+        code[c + 2] = len(term.factors)
+        f0 = oT + t * (1 + 2 * F)
+        mat[f0] = term.coef
+        for q, f in enumerate(term.factors):
+            code[c + 3 + 3 * q] = FACTOR_KINDS.index(f.kind)
+            code[c + 4 + 3 * q] = f.state
+            if isinstance(f.width, str):
+                code[c + 5 + 3 * q] = names.index(f.width)
+            else:
+                mat[f0 + 2 + 2 * q] = float(f.width)
+            mat[f0 + 1 + 2 * q] = f.k
+    o = HEADER + T * (3 + 3 * F)
+    for j in range(m):
+        e = spec.effectiveness[j]
+        code[o + j] = names.index(e) if e is not None else -1
+        code[o + m + j] = spec.drives[j]
+    return code, mat
+
+
+def pack_params(spec: RigSpec, params: dict[str, Any]) -> Array:
+    """Parameter values in `spec.params` order: (P,) for scalars, (batch, P) for arrays."""
+    cols = [np.asarray(params[k], dtype=float) for k in spec.params]
+    if all(c.ndim == 0 for c in cols):
+        return np.array([float(c) for c in cols])
+    return np.ascontiguousarray(np.stack([np.ravel(c) for c in cols], axis=1))
+
+
+@numba.njit(cache=True)
+def plant_deriv(x: Array, v: Array, code: Any, mat: Array, prm: Array, lsc: Array,
+                dist: Array, dx: Array) -> None:  # pragma: no cover - jit
+    """dx = f(x, v) for one plant: A x + B (Lambda lsc v) + terms + disturbance."""
+    n = code[0]
+    m = code[1]
+    T = code[2]
+    F = code[3]
+    for i in range(n):
+        a = 0.0
+        for j in range(n):
+            a += mat[i * n + j] * x[j]
+        dx[i] = a
+    oB = n * n
+    o_lam = HEADER + T * (3 + 3 * F)
+    for j in range(m):
+        li = code[o_lam + j]
+        lam = prm[li] if li >= 0 else 1.0
+        vj = lam * lsc[j] * v[j]
+        for i in range(n):
+            dx[i] += mat[oB + i * m + j] * vj
+    for j in range(m):
+        dx[code[o_lam + m + j]] += dist[j]
+    oT = n * n + n * m
+    for t in range(T):
+        c = HEADER + t * (3 + 3 * F)
+        f0 = oT + t * (1 + 2 * F)
+        val = mat[f0]
+        pi = code[c + 1]
+        if pi >= 0:
+            val *= prm[pi]
+        for q in range(code[c + 2]):
+            kind = code[c + 3 + 3 * q]
+            xs = x[code[c + 4 + 3 * q]]
+            if kind == K_X:
+                val *= xs
+            elif kind == K_SIN:
+                val *= math.sin(mat[f0 + 1 + 2 * q] * xs)
+            elif kind == K_COS:
+                val *= math.cos(mat[f0 + 1 + 2 * q] * xs)
+            elif kind == K_ABS:
+                val *= abs(xs)
+            else:
+                wi = code[c + 5 + 3 * q]
+                w = prm[wi] if wi >= 0 else mat[f0 + 2 + 2 * q]
+                z = xs / w
+                if kind == K_TANH:
+                    val *= 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
+                else:
+                    val *= math.exp(-(z * z))
+        dx[code[c]] += val
+
+
+@numba.njit(cache=True)
+def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Array,
+               dt: float, substeps: int, lsc: Array, dist: Array,
+               work: Array) -> None:  # pragma: no cover - jit
+    """Advance one plant by dt holding u (saturated here); RK4 with substeps.
+
+    `work` is (6, max(n, m)) scratch; the applied inputs end up in work[5, :m].
+    """
+    n = code[0]
+    m = code[1]
+    v = work[5]
+    for j in range(m):
+        uj = u[j]
+        if uj > limits[j]:
+            uj = limits[j]
+        elif uj < -limits[j]:
+            uj = -limits[j]
+        v[j] = uj
+    h = dt / substeps
+    k1 = work[0]
+    k2 = work[1]
+    k3 = work[2]
+    k4 = work[3]
+    tmp = work[4]
+    for _ in range(substeps):
+        plant_deriv(x, v, code, mat, prm, lsc, dist, k1)
+        for i in range(n):
+            tmp[i] = x[i] + 0.5 * h * k1[i]
+        plant_deriv(tmp, v, code, mat, prm, lsc, dist, k2)
+        for i in range(n):
+            tmp[i] = x[i] + 0.5 * h * k2[i]
+        plant_deriv(tmp, v, code, mat, prm, lsc, dist, k3)
+        for i in range(n):
+            tmp[i] = x[i] + h * k3[i]
+        plant_deriv(tmp, v, code, mat, prm, lsc, dist, k4)
+        for i in range(n):
+            x[i] = x[i] + (h / 6.0) * (k1[i] + 2 * k2[i] + 2 * k3[i] + k4[i])
+
+
+@numba.njit(cache=True)
+def plant_measure(x: Array, resolution: Array, noise: Array,
+                  y: Array) -> None:  # pragma: no cover - jit
+    """Sensor reading: each state plus its pre-drawn, pre-scaled noise, then quantised."""
+    for i in range(x.shape[0]):
+        a = x[i] + noise[i]
+        if resolution[i] > 0.0:
+            a = np.rint(a / resolution[i]) * resolution[i]
+        y[i] = a
+
+
+def work_buffer(spec: RigSpec) -> Array:
+    """Scratch for `plant_step`."""
+    return np.zeros((6, max(spec.n, spec.m)))
+
+
+class CompiledPlant:
+    """One plant of a `sim_rigs.plant.RigPlant` stepped by the compiled kernel.
+
+    The state lives in ``plant.x[0]`` (the same array the rest of the program reads);
+    the fault hooks ``plant.disturbance`` and ``plant.lam_scale`` are honoured.
+    """
+
+    def __init__(self, plant: Any) -> None:
+        self.plant = plant
+        self.code, self.mat = pack_rig(plant.spec)
+        self.prm = pack_params(plant.spec, {k: np.ravel(v)[0] for k, v in plant.params.items()})
+        self.limits = np.ascontiguousarray(np.ravel(plant.limits), dtype=float)
+        self.work = work_buffer(plant.spec)
+        self._ones = np.ones(plant.spec.m)
+        self._zeros = np.zeros(plant.spec.m)
+        self._u = np.zeros(plant.spec.m)
+
+    def step(self, u: Any, dt: float) -> tuple[float, ...]:
+        """Advance by dt holding u (saturated); returns the inputs applied."""
+        p = self.plant
+        m = p.spec.m
+        for j in range(m):
+            self._u[j] = float(u[j])
+        lsc = self._ones if p.lam_scale is None else np.ascontiguousarray(p.lam_scale[0],
+                                                                         dtype=float)
+        dist = self._zeros if p.disturbance is None else np.ascontiguousarray(
+            p.disturbance[0], dtype=float)
+        x = np.ascontiguousarray(p.x[0], dtype=float)
+        plant_step(x, self._u, self.code, self.mat, self.prm, self.limits, float(dt),
+                   int(p.substeps), lsc, dist, self.work)
+        p.x[0] = x
+        return tuple(float(v) for v in self.work[5, :m])

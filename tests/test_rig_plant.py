@@ -1,0 +1,322 @@
+"""Rigs as data: the rig-file plant, its compiled kernel, the consumers that share them.
+
+Outside references: `scipy.integrate.solve_ivp` on the pedestal's equations written out
+here by hand (not read from the rig file); python-control's `lqr` for the pitch stand's
+baseline; the numpy reference plant for the compiled kernel.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.integrate import solve_ivp
+
+from runtime.config import Config, ConfigError, load_config
+from runtime.design import design_from_config
+from runtime.dryrun import dry_run, plant_from_config
+from sim_rigs import RIGS
+from sim_rigs import kernel as K
+from sim_rigs.plant import RigPlant, SensorModel
+from sim_rigs.rigfile import rig_from_dict
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def pedestal_rhs(p: dict[str, float], v: np.ndarray):
+    """The pedestal's equations, written out independently of the rig file (module docstring
+    of the former sim_rigs/pedestal.py; nominal a_az = 4, b_az = 1.2, a_el = 5, b_el = 1.5)."""
+
+    def f(_t: float, x: np.ndarray) -> np.ndarray:
+        az, el, wa, we = x
+        vs, ss = p["coulomb_speed"], p["stribeck_speed"]
+        acc_az = (-(4.0 + p["visc_az"]) * wa + 1.2 * p["lam_az"] * v[0]
+                  - p["coulomb_az"] * math.tanh(wa / vs)
+                  - p["stribeck_az"] * math.exp(-(wa / ss) ** 2) * math.tanh(wa / vs)
+                  - p["spring_az"] * az - p["coupling"] * wa * we + p["bias_az"])
+        acc_el = (-(5.0 + p["visc_el"]) * we + 1.5 * p["lam_el"] * v[1]
+                  - p["coulomb_el"] * math.tanh(we / vs)
+                  - p["stribeck_el"] * math.exp(-(we / ss) ** 2) * math.tanh(we / vs)
+                  - p["gravity_el"] * math.cos(el)
+                  + 0.5 * p["coupling"] * wa * wa * math.sin(2 * el) + p["bias_el"])
+        return np.array([wa, we, acc_az, acc_el])
+
+    return f
+
+
+def test_pedestal_rig_file_matches_solve_ivp_on_the_written_out_equations():
+    # Reference: scipy.integrate.solve_ivp (RK45, rtol 1e-10) on the equations above.
+    spec = RIGS["pedestal"]
+    truth = {**spec.truth_defaults, "stribeck_az": 1.2, "stribeck_el": 0.9,
+             "stribeck_speed": 0.15}
+    x0 = np.array([0.1, 0.3, 0.2, -0.1])
+    v = np.array([3.0, -2.0])
+    plant = RigPlant.create(spec, truth, x0=x0, substeps=10)
+    for _ in range(200):  # 0.2 s in 1 ms ticks
+        plant.step(v, 1e-3)
+    ref = solve_ivp(pedestal_rhs(truth, v), (0.0, 0.2), x0, rtol=1e-10, atol=1e-12)
+    assert np.allclose(plant.x[0], ref.y[:, -1], atol=1e-7)
+
+
+def test_pitch_stand_matches_solve_ivp():
+    # Reference: solve_ivp on theta'' = -0.6 w + 12 lam T - g sin th - visc w - drag w|w|
+    # - coulomb tanh(w / 0.05) + bias, written from the rig file's comments.
+    spec = RIGS["pitch-stand"]
+    p = spec.truth_defaults
+    T = 0.7
+
+    def f(_t, x):
+        th, w = x
+        return [w, (-0.6 * w + 12.0 * p["lam_thrust"] * T - p["gravity"] * math.sin(th)
+                    - p["visc"] * w - p["drag"] * w * abs(w)
+                    - p["coulomb"] * math.tanh(w / p["coulomb_speed"]) + p["bias"])]
+
+    plant = RigPlant.create(spec, x0=[0.2, 0.0], substeps=10)
+    for _ in range(500):
+        plant.step([T], 1e-3)
+    ref = solve_ivp(f, (0.0, 0.5), [0.2, 0.0], rtol=1e-10, atol=1e-12)
+    assert np.allclose(plant.x[0], ref.y[:, -1], atol=1e-7)
+
+
+ALL_KINDS = {
+    "name": "every-term",
+    "state": [{"name": "a", "unit": "rad", "limit": 2.0},
+              {"name": "b", "unit": "rad", "limit": 2.0},
+              {"name": "a_rate", "unit": "rad/s", "limit": 5.0},
+              {"name": "b_rate", "unit": "rad/s", "limit": 5.0}],
+    "input": [{"name": "u1", "unit": "V", "limit": 5.0, "effectiveness": "lam1"},
+              {"name": "u2", "unit": "V", "limit": 5.0, "effectiveness": "lam2"}],
+    "nominal": {"A": [[0, 0, 1, 0], [0, 0, 0, 1], [-0.5, 0.2, -2, 0.1], [0.1, -0.3, 0.2, -3]],
+                "B": [[0, 0], [0, 0], [1.5, 0.2], [0.1, 2.0]],
+                "C": [[1, 0, 0, 0], [0, 1, 0, 0]]},
+    "params": {"bias": 0.3, "lin": 0.7, "s": 1.1, "c": -0.8, "t": 0.6, "w": 0.07, "g": 0.9,
+               "prod": 0.4, "cross": 0.5, "ab": 0.2, "lam1": 0.8, "lam2": 0.65},
+    "term": [
+        {"row": "a_rate", "param": "bias"},
+        {"row": "a_rate", "param": "lin", "coef": -1.0, "factors": ["a_rate"]},
+        {"row": "b_rate", "param": "s", "factors": [{"kind": "sin", "state": "b", "k": 2.0}]},
+        {"row": "b_rate", "param": "c", "factors": ["cos:a"]},
+        {"row": "a_rate", "param": "t", "coef": -1.0,
+         "factors": [{"kind": "tanh", "state": "a_rate", "width": "w"}]},
+        {"row": "b_rate", "param": "g", "coef": -1.0,
+         "factors": [{"kind": "gauss", "state": "b_rate", "width": 0.3},
+                     {"kind": "tanh", "state": "b_rate", "width": 0.05}]},
+        {"row": "a_rate", "param": "prod", "factors": ["a_rate", "b_rate"]},
+        {"row": "b_rate", "param": "cross", "factors": ["a"]},
+        {"row": "a_rate", "param": "ab", "factors": ["b_rate", "abs:b_rate"]},
+    ],
+    "sensors": {"res": 1e-3, "sd": 1e-3,
+                "channels": {"a": {"resolution": "res", "noise": "sd"}, "b_rate": {"noise": 0.01}}},
+}
+
+
+def test_compiled_kernel_matches_the_numpy_reference_with_every_term_kind_nonzero():
+    # Reference: RigPlant (numpy) on the same term table; every factor kind is present and
+    # every parameter non-zero, with disturbance and effectiveness-loss faults on.
+    spec = rig_from_dict(ALL_KINDS)
+    rng = np.random.default_rng(3)
+    for _ in range(5):
+        x0 = rng.uniform(-1, 1, 4)
+        u = rng.uniform(-6, 6, 2)  # beyond the 5 V limit now and then: saturation in both
+        plant = RigPlant.create(spec, x0=x0, substeps=3)
+        plant.disturbance = rng.normal(size=(1, 2))
+        plant.lam_scale = rng.uniform(0.5, 1.0, size=(1, 2))
+        # the derivative, term by term
+        dx = np.zeros(4)
+        code, mat = K.pack_rig(spec)
+        prm = K.pack_params(spec, spec.truth_defaults)
+        v = np.clip(u, -5, 5)
+        K.plant_deriv(x0, v, code, mat, prm, plant.lam_scale[0], plant.disturbance[0], dx)
+        assert np.allclose(dx, plant.deriv(x0[None, :], v[None, :])[0], rtol=1e-13, atol=1e-13)
+        # a step with saturation
+        cp = K.CompiledPlant(RigPlant.create(spec, x0=x0, substeps=3))
+        cp.plant.disturbance = plant.disturbance
+        cp.plant.lam_scale = plant.lam_scale
+        applied = cp.step(u, 1e-3)
+        plant.step(u, 1e-3)
+        assert np.allclose(applied, v)
+        assert np.allclose(cp.plant.x[0], plant.x[0], rtol=1e-13, atol=1e-14)
+    # the sensors: same pre-scaled noise, same quantum
+    sens = SensorModel.for_rig(spec)
+    x = np.array([0.12345, -0.5, 0.3, 0.7])
+    z = np.array([0.4, 0.0, 0.0, -1.2])
+    y = np.zeros(4)
+    K.plant_measure(x, sens.resolution, sens.noise * z, y)
+    assert y[0] == pytest.approx(round((0.12345 + 1e-3 * 0.4) / 1e-3) * 1e-3)
+    assert y[3] == pytest.approx(0.7 - 0.012)
+    assert y[1] == -0.5 and y[2] == 0.3
+
+
+def test_pitch_stand_lqr_matches_python_control():
+    # Reference: python-control's lqr on the rig file's nominal (A, B) and the config's Q, R_u.
+    control = pytest.importorskip("control")
+    cfg = load_config(ROOT / "configs" / "pitch-stand.toml")
+    d = design_from_config(cfg)
+    A, B, _ = RIGS["pitch-stand"].nominal_model()
+    K_ref, _, _ = control.lqr(A, B, np.diag([100.0, 1.0]), np.diag([1.0]))
+    assert np.allclose(d.K1, K_ref, rtol=1e-8)
+    assert d.rig.states == ("angle", "rate") and d.rig.input_units == ("N",)
+
+
+def test_sim_link_and_dry_run_simulate_the_same_plant_tick_by_tick():
+    # configs/pedestal-rbf.toml has stick-slip friction: the in-process link used to leave
+    # it out. Drive the link's plant with the dry run's own inputs and seed.
+    cfg = load_config(ROOT / "configs" / "pedestal-rbf.toml",
+                      ["commands.duration=3.0"])
+    res = dry_run(cfg)
+    from runtime.loop import make_link
+
+    link = make_link(cfg, None, design=res.design)
+    u = res.columns["u"]
+    x = res.columns["x"]
+    y = res.columns["y"]
+    assert np.allclose(link.plant.x[0], x[0])
+    first = np.array(link._read_sensors())
+    assert np.allclose(first, y[0], atol=1e-12)
+    worst = 0.0
+    for k in range(len(u) - 1):
+        link.stepper.step(u[k], res.design.Ts)
+        worst = max(worst, float(np.max(np.abs(link.plant.x[0] - x[k + 1]))))
+        yk = np.array(link._read_sensors())
+        assert np.allclose(yk, y[k + 1], atol=1e-12), k
+    assert worst < 1e-12
+
+
+MY_RIG = """
+# A one-axis turntable of my own: a stiffer spring, its own friction, no gravity.
+name = "my-turntable"
+[[state]]
+name = "pos"
+unit = "rad"
+limit = 3.0
+[[state]]
+name = "vel"
+unit = "rad/s"
+limit = 8.0
+[[input]]
+name = "V"
+unit = "V"
+limit = 10.0
+effectiveness = "k_motor"
+[nominal]
+A = [[0.0, 1.0], [-2.0, -3.0]]
+B = [[0.0], [4.0]]
+C = [[1.0, 0.0]]
+[params]
+k_motor = { value = 0.75, unit = "1", range = [0.6, 1.0] }
+friction = { value = 0.4, unit = "rad/s^2", range = [0.2, 0.6] }
+spring = { value = 1.5, unit = "1/s^2", range = [1.0, 2.0] }
+offset = { value = 0.2, unit = "rad/s^2", range = [0.0, 0.4] }
+[[term]]
+row = "vel"
+param = "friction"
+coef = -1.0
+factors = [{ kind = "tanh", state = "vel", width = 0.05 }]
+[[term]]
+row = "vel"
+param = "spring"
+coef = -1.0
+factors = ["sin:pos"]
+[[term]]
+row = "vel"
+param = "offset"
+[sensors]
+pos_noise = 1e-4
+[sensors.channels]
+pos = { noise = "pos_noise", resolution = 1e-4 }
+vel = { noise = 1e-3 }
+"""
+
+MY_CONFIG = """
+[rig]
+name = "mine"
+sim = "my-turntable.toml"
+[basis]
+terms = ["bias", "pos", "vel", "sin:pos", "tanh:vel"]
+tanh_width = 0.05
+[design]
+Q = [100.0, 1.0]
+R_u = [1.0]
+R = [20.0, 1.0]
+limits = [0.05, 0.8]
+state_range = [1.0, 2.0]
+[adaptation]
+gamma = 0.5
+unknown_effectiveness = true
+[loop]
+period = 0.001
+[commands]
+duration = 4.0
+pos = [{ at = 0.5, kind = "slew", to = 0.5, duration = 1.0 }]
+[plant]
+seed = 1
+[log]
+dir = "runs"
+"""
+
+
+def _corral(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=cwd,
+                          capture_output=True, text=True, timeout=600,
+                          env={**__import__("os").environ, "PYTHONPATH": str(ROOT)})
+
+
+def test_a_users_own_rig_file_designs_dry_runs_sweeps_and_preflights(tmp_path):
+    (tmp_path / "my-turntable.toml").write_text(MY_RIG)
+    (tmp_path / "mine.toml").write_text(MY_CONFIG.replace('dir = "runs"',
+                                                          f'dir = "{tmp_path / "runs"}"'))
+    cfg = str(tmp_path / "mine.toml")
+    d = _corral("design", cfg, "--json", cwd=ROOT)
+    assert d.returncode == 0, d.stderr
+    assert json.loads(d.stdout)["states"] == ["pos", "vel"]
+    r = _corral("dry-run", cfg, "--json", "--no-plot", cwd=ROOT)
+    assert r.returncode == 0, r.stderr
+    dry = json.loads(r.stdout)
+    assert dry["breach_time"] is None and dry["max_margin_ratio"] < 1.0
+    s = _corral("sweep", cfg, "--plants", "40", "--json", "--no-plot", cwd=ROOT)
+    assert s.returncode == 0, s.stderr
+    sw = json.loads(s.stdout)
+    assert sw["plants"] == 40 and sw["diverged_weights_fraction"] == 0.0
+    # the rig file's ranges are drawn from: the plants differ
+    assert sw["worst_cases"][0]["params"]["k_motor"] != 0.75
+    p = _corral("preflight", cfg, "--plants", "16", cwd=ROOT)
+    assert p.returncode in (0, 1), p.stderr
+    assert "GO" in p.stdout
+
+
+@pytest.mark.parametrize("value,words", [("[1, 2]", "rig.sim"), ('"nope"', "no simulated rig"),
+                                         ('"missing.toml"', "no such rig file")])
+def test_a_bad_rig_sim_is_one_line(tmp_path, value, words):
+    text = (ROOT / "configs" / "pitch-stand.toml").read_text().replace(
+        'sim = "pitch-stand"', f"sim = {value}")
+    (tmp_path / "c.toml").write_text(text)
+    r = _corral("design", str(tmp_path / "c.toml"), cwd=ROOT)
+    assert r.returncode != 0
+    assert "Traceback" not in r.stderr
+    assert words in r.stderr and len(r.stderr.strip().splitlines()) == 1
+
+
+def test_a_rig_file_error_names_the_field(tmp_path):
+    bad = MY_RIG.replace('factors = ["sin:pos"]', 'factors = ["sin:nowhere"]')
+    (tmp_path / "my-turntable.toml").write_text(bad)
+    (tmp_path / "mine.toml").write_text(MY_CONFIG)
+    with pytest.raises(ConfigError) as exc:
+        design_from_config(load_config(tmp_path / "mine.toml"))
+    assert "term[1].factors[0]" in str(exc.value.field) and "pos" in exc.value.fix
+
+
+def test_plant_truth_and_sensor_keys_of_the_configs_still_override_the_rig_file():
+    cfg = load_config(ROOT / "configs" / "pedestal-rbf.toml")
+    plant = plant_from_config(cfg, design_from_config(cfg))
+    assert float(plant.params["stribeck_az"][0]) == 1.5
+    assert float(plant.params["stribeck_speed"][0]) == 0.15
+    cfg2 = cfg.with_overrides(["plant.sensors.rate_noise=0.0"])
+    assert plant_from_config(cfg2, design_from_config(cfg2)).sensors.noise[2] == 0.0
+    with pytest.raises(ConfigError):
+        c = Config(raw={**cfg.raw, "plant": {"truth": {"no_such": 1.0}}}, path=cfg.path)
+        plant_from_config(c, design_from_config(c))
