@@ -103,11 +103,13 @@ def _figures(result: Any, duration: float) -> dict[str, Any]:
         "cap_fraction": float(np.mean(cols["step_gain"] > d.step_gain_cap)),
         "clamp_ticks": int(s["clamp_ticks"]),
         "saturation_fraction": float(s["saturation_fraction"]),
+        "diverged": bool(s.get("diverged", False)),
     }
 
 
 def _held(result: Any) -> bool:
     return bool(result.summary["breach_time"] is None
+                and not result.summary.get("diverged", False)
                 and np.isfinite(result.summary["max_margin_ratio"])
                 and np.all(np.isfinite(result.columns["w_norm"])))
 
@@ -166,6 +168,9 @@ def decide(cfg: Config, design: Design | None = None, *, simulate: bool = True,
     where = ("non-finite" if ratio is None else f"max margin ratio {ratio:.3f}")
     when = (f" at t = {fig['breach_time']:.3f} s" if fig["breach_time"] is not None else "")
     reason = f"the nominal dry run ({duration:g} s) broke the bound{when} ({where})."
+    if fig["diverged"] and result.summary["breach_time"] is None:
+        reason = (f"the nominal dry run ({duration:g} s) diverged (weights or states past "
+                  "their limits) though the ratio stayed below 1.")
     if fig["cap_fraction"] > 0.5:
         reason += (f" The runtime guard adaptation.step_gain_cap limited learning on "
                    f"{100 * fig['cap_fraction']:.0f} % of ticks; the sampled loop's own "
