@@ -1,17 +1,18 @@
 """Sweep throughput: plant-steps per second of `runtime.sweep` engines vs per-plant scipy solve_ivp.
 
 Usage: python bench/bench_sweep.py [--plants 2000,8000] [--duration 5] [--workers 2]
-       [--substeps 4,1] [--fused-plants 2000,8000] [--repeat 2] [--ivp-plants 3]
+       [--substeps 4,1] [--reference-plants 200] [--repeat 2] [--ivp-plants 3]
        [--ivp-duration 0.5] [--no-cold] [--config configs/pedestal-sim.toml]
 
 For each plant count and RK4 substep count (the demo's 4, and 1) the same plants (same
 seed) run through the `compiled` engine (numba threads, `--workers` of them; the default
-engine) and the `fused` engine (batched numpy over `--workers` processes), 5 s at the
+engine) and, for the counts in `--reference-plants`, the `reference` engine (the batched
+numpy law and plant over `--workers` processes), 5 s at the
 config's period (1 kHz in the demo), with the config's sensor noise. The numba compile time
 is reported apart and excluded from the rates: once cold (a fresh cache folder, in a
 subprocess) and once as this process found it (normally a load from the on-disk cache).
 The baseline integrates the same closed loop per plant with scipy `solve_ivp` (RK45,
-rtol 1e-8): the continuous pedestal ODE with the input held over each tick, one
+rtol 1e-8): the rig's continuous ODE with the input held over each tick, one
 solve_ivp call per tick, the law ticking between calls. On a shared machine the wall rate
 depends on what else runs: engines are interleaved, the best of `--repeat` runs is shown,
 and `M/CPU-s` (plant-steps per CPU-second of this process and its workers, compile time
@@ -43,7 +44,7 @@ from runtime.sweep import draw_plants, run_sweep
 def ivp_rate(cfg, plants: int, duration: float) -> tuple[float, float]:
     """Plant-steps per second of per-plant solve_ivp (RK45, ZOH per tick); and worst ratio."""
     from runtime.commands import schedule_from_config, tracked_names
-    from sim_rigs.pedestal import Pedestal
+    from sim_rigs.plant import RigPlant
 
     d = design_from_config(cfg)
     truth = draw_plants(cfg, plants, 1)
@@ -54,14 +55,15 @@ def ivp_rate(cfg, plants: int, duration: float) -> tuple[float, float]:
     worst = 0.0
     t0 = time.perf_counter()
     for i in range(plants):
-        p = Pedestal.create({k: v[i] for k, v in truth.items()}, batch=1, x0=proto.x[0])
+        p = RigPlant.create(d.rig.spec, {k: v[i] for k, v in truth.items()}, batch=1,
+                            x0=proto.x[0])
         law = AdaptiveLaw(d)
         x = p.x[0].copy()
         st = law.init_state(x)
         for k in range(ticks):
             out = law.step(st, x, cmd[k])
             worst = max(worst, float(out.ratio))
-            v = np.clip(out.u, -12.0, 12.0)[None, :]
+            v = np.clip(out.u, -d.rig.input_limits, d.rig.input_limits)[None, :]
             sol = solve_ivp(lambda _t, z, v=v, p=p: p.deriv(z[None, :], v)[0], (0.0, d.Ts), x,
                             method="RK45", rtol=1e-8, atol=1e-10)
             x = sol.y[:, -1]
@@ -105,8 +107,8 @@ def main() -> None:
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--substeps", type=ints, default=None,
                     help="RK4 substeps to measure (default: the config's plant.substeps, then 1)")
-    ap.add_argument("--fused-plants", type=ints, default=None,
-                    help="plant counts to run the fused engine at (default: all of --plants)")
+    ap.add_argument("--reference-plants", type=ints, default=[],
+                    help="plant counts to run the numpy reference engine at too (slow)")
     ap.add_argument("--ivp-plants", type=int, default=3)
     ap.add_argument("--ivp-duration", type=float, default=0.5)
     ap.add_argument("--repeat", type=int, default=2,
@@ -116,7 +118,7 @@ def main() -> None:
     cfg = load_config(a.config, [])
     d = design_from_config(cfg)
     subs = a.substeps or sorted({int(cfg.number("plant.substeps", 4)), 1}, reverse=True)
-    fused_n = a.fused_plants if a.fused_plants is not None else a.plants
+    ref_n = a.reference_plants
     ticks = round(a.duration / d.Ts)
     print(f"sweep bench: {a.duration:g} s at {1 / d.Ts:g} Hz ({ticks} ticks), sensor noise "
           f"{'on' if cfg.flag('sweep.noise', True) else 'off'}, {a.workers} workers, "
@@ -135,7 +137,7 @@ def main() -> None:
     for n in a.plants:
         for sub in subs:
             c = cfg.with_overrides([f"sweep.substeps={sub}"])
-            engines = ["compiled"] + (["fused"] if n in fused_n else [])
+            engines = ["compiled"] + (["reference"] if n in ref_n else [])
             best: dict[str, tuple[float, float, dict]] = {}
             for _rep in range(a.repeat):  # engines interleaved, best of the repeats
                 for eng in engines:

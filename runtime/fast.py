@@ -46,7 +46,7 @@ from numpy.typing import ArrayLike, NDArray
 from runtime.design import Design
 from runtime.law import LawState
 from runtime.watchdog import over
-from sim_rigs.kernel import plant_measure, plant_step
+from sim_rigs.kernel import plant_measure, plant_step, work_width
 
 _over = numba.njit(cache=True, inline="always")(over)
 """The watchdog's one rule comparison, compiled for the sweep kernel."""
@@ -835,7 +835,7 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
             nz += 1
     nz2 = nz + (nz % 2)
     for b in numba.prange(N):
-        work = np.zeros((6, max(n, m)))
+        work = np.zeros((7, work_width(pcode)))
         st = np.zeros(nst)
         o = np.zeros(nout)
         X = np.empty(n)

@@ -3,12 +3,18 @@
 `pack_rig(spec)` codes a rig (`sim_rigs.rigfile.RigSpec`) into two flat arrays,
 the way `runtime.fast` codes a basis:
 
-- ``code`` (int64): header [n, m, T, F] (states, inputs, terms, factors per term
-  at most), then per term [row, param index (-1: none), factor count, then per
-  factor (kind, state, width parameter index (-1: the literal))], then per input
-  the effectiveness parameter index (-1: 1) and the driven row;
-- ``mat`` (float64): A (n x n) and B (n x m) row-major, then per term
-  [coef, then per factor (k, literal width)].
+- ``code`` (int64): header [n, m, T, F, nA, nB, o_terms, o_lam, o_A, o_B] (states,
+  inputs, terms, factors per term at most, non-zeros of A and B, offsets), then per
+  term [row, param index (-1: none), factor count, then per factor (kind, state,
+  width parameter index (-1: the literal))], per input the effectiveness parameter
+  index (-1: 1), per input the driven row, then the (i, j) of A's and B's non-zeros;
+- ``mat`` (float64): A's and B's non-zero values, then per term [coef, then per
+  factor (k, literal width)].
+
+`plant_prepare` turns a plant's parameters into per-term constants once a step
+(coef * param, k or 1 / width, Lambda_j), so the derivative reads no indirection
+and divides nothing; a term whose coefficient is zero (a switched-off friction)
+is skipped.
 
 `pack_params(spec, params)` gives the parameter vector(s) in `spec.params`
 order. `plant_deriv`, `plant_step` (RK4 with substeps, input saturated) and
@@ -31,7 +37,7 @@ from sim_rigs.rigfile import FACTOR_KINDS, RigSpec
 
 Array = NDArray[np.float64]
 K_X, K_SIN, K_COS, K_TANH, K_GAUSS, K_ABS = range(6)
-HEADER = 4
+HEADER = 10
 
 
 def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
@@ -39,14 +45,24 @@ def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
     n, m, T = spec.n, spec.m, len(spec.terms)
     F = max([len(t.factors) for t in spec.terms] + [1])
     names = list(spec.params)
-    code = np.full(HEADER + T * (3 + 3 * F) + 2 * m, -1, dtype=np.int64)
-    code[:HEADER] = (n, m, T, F)
-    mat = np.zeros(n * n + n * m + T * (1 + 2 * F))
-    mat[:n * n] = spec.A.ravel()
-    mat[n * n:n * n + n * m] = spec.B.ravel()
-    oT = n * n + n * m
+    a_nz = [(i, j) for i in range(n) for j in range(n) if spec.A[i, j] != 0.0]
+    b_nz = [(i, j) for i in range(n) for j in range(m) if spec.B[i, j] != 0.0]
+    o_terms = HEADER
+    o_lam = o_terms + T * (3 + 3 * F)
+    o_a = o_lam + 2 * m
+    o_b = o_a + 2 * len(a_nz)
+    code = np.full(o_b + 2 * len(b_nz), -1, dtype=np.int64)
+    code[:HEADER] = (n, m, T, F, len(a_nz), len(b_nz), o_terms, o_lam, o_a, o_b)
+    mat = np.zeros(len(a_nz) + len(b_nz) + T * (1 + 2 * F))
+    for q, (i, j) in enumerate(a_nz):
+        code[o_a + 2 * q:o_a + 2 * q + 2] = (i, j)
+        mat[q] = spec.A[i, j]
+    for q, (i, j) in enumerate(b_nz):
+        code[o_b + 2 * q:o_b + 2 * q + 2] = (i, j)
+        mat[len(a_nz) + q] = spec.B[i, j]
+    oT = len(a_nz) + len(b_nz)
     for t, term in enumerate(spec.terms):
-        c = HEADER + t * (3 + 3 * F)
+        c = o_terms + t * (3 + 3 * F)
         code[c] = term.row
         code[c + 1] = names.index(term.param) if term.param is not None else -1
         code[c + 2] = len(term.factors)
@@ -60,11 +76,10 @@ def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
             else:
                 mat[f0 + 2 + 2 * q] = float(f.width)
             mat[f0 + 1 + 2 * q] = f.k
-    o = HEADER + T * (3 + 3 * F)
     for j in range(m):
         e = spec.effectiveness[j]
-        code[o + j] = names.index(e) if e is not None else -1
-        code[o + m + j] = spec.drives[j]
+        code[o_lam + j] = names.index(e) if e is not None else -1
+        code[o_lam + m + j] = spec.drives[j]
     return code, mat
 
 
@@ -77,55 +92,80 @@ def pack_params(spec: RigSpec, params: dict[str, Any]) -> Array:
 
 
 @numba.njit(cache=True)
-def plant_deriv(x: Array, v: Array, code: Any, mat: Array, prm: Array, lsc: Array,
-                dist: Array, dx: Array) -> None:  # pragma: no cover - jit
-    """dx = f(x, v) for one plant: A x + B (Lambda lsc v) + terms + disturbance."""
+def plant_prepare(code: Any, mat: Array, prm: Array, lsc: Array,
+                  tc: Array) -> None:  # pragma: no cover - jit
+    """The per-plant constants `plant_deriv` reads, into tc: per input Lambda_j lsc_j, per
+    term coef * param, per factor k (sin, cos) or 1 / width (tanh, gauss)."""
+    m = code[1]
+    T = code[2]
+    F = code[3]
+    o_terms = code[6]
+    o_lam = code[7]
+    oT = code[4] + code[5]
+    for j in range(m):
+        li = code[o_lam + j]
+        tc[j] = (prm[li] if li >= 0 else 1.0) * lsc[j]
+    for t in range(T):
+        c = o_terms + t * (3 + 3 * F)
+        f0 = oT + t * (1 + 2 * F)
+        pi = code[c + 1]
+        tc[m + t] = mat[f0] * (prm[pi] if pi >= 0 else 1.0)
+        for q in range(code[c + 2]):
+            kind = code[c + 3 + 3 * q]
+            if kind == K_TANH or kind == K_GAUSS:
+                wi = code[c + 5 + 3 * q]
+                tc[m + T + t * F + q] = 1.0 / (prm[wi] if wi >= 0 else mat[f0 + 2 + 2 * q])
+            else:
+                tc[m + T + t * F + q] = mat[f0 + 1 + 2 * q]
+
+
+@numba.njit(cache=True, inline="always")
+def plant_deriv(x: Array, v: Array, code: Any, mat: Array, tc: Array, dist: Array,
+                dx: Array) -> None:  # pragma: no cover - jit
+    """dx = f(x, v) for one plant: A x + B (Lambda lsc v) + terms + disturbance, with the
+    constants of `plant_prepare` in tc (terms whose coefficient is zero are skipped)."""
     n = code[0]
     m = code[1]
     T = code[2]
     F = code[3]
+    nA = code[4]
+    nB = code[5]
+    o_terms = code[6]
+    o_lam = code[7]
+    o_a = code[8]
+    o_b = code[9]
     for i in range(n):
-        a = 0.0
-        for j in range(n):
-            a += mat[i * n + j] * x[j]
-        dx[i] = a
-    oB = n * n
-    o_lam = HEADER + T * (3 + 3 * F)
-    for j in range(m):
-        li = code[o_lam + j]
-        lam = prm[li] if li >= 0 else 1.0
-        vj = lam * lsc[j] * v[j]
-        for i in range(n):
-            dx[i] += mat[oB + i * m + j] * vj
+        dx[i] = 0.0
+    for q in range(nA):
+        dx[code[o_a + 2 * q]] += mat[q] * x[code[o_a + 2 * q + 1]]
+    for q in range(nB):
+        j = code[o_b + 2 * q + 1]
+        dx[code[o_b + 2 * q]] += mat[nA + q] * (tc[j] * v[j])
     for j in range(m):
         dx[code[o_lam + m + j]] += dist[j]
-    oT = n * n + n * m
     for t in range(T):
-        c = HEADER + t * (3 + 3 * F)
-        f0 = oT + t * (1 + 2 * F)
-        val = mat[f0]
-        pi = code[c + 1]
-        if pi >= 0:
-            val *= prm[pi]
+        val = tc[m + t]
+        if val == 0.0:
+            continue
+        c = o_terms + t * (3 + 3 * F)
+        ok = m + T + t * F
         for q in range(code[c + 2]):
             kind = code[c + 3 + 3 * q]
             xs = x[code[c + 4 + 3 * q]]
             if kind == K_X:
                 val *= xs
-            elif kind == K_SIN:
-                val *= math.sin(mat[f0 + 1 + 2 * q] * xs)
+            elif kind == K_TANH:
+                z = xs * tc[ok + q]
+                val *= 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
             elif kind == K_COS:
-                val *= math.cos(mat[f0 + 1 + 2 * q] * xs)
-            elif kind == K_ABS:
-                val *= abs(xs)
+                val *= math.cos(tc[ok + q] * xs)
+            elif kind == K_SIN:
+                val *= math.sin(tc[ok + q] * xs)
+            elif kind == K_GAUSS:
+                z = xs * tc[ok + q]
+                val *= math.exp(-(z * z))
             else:
-                wi = code[c + 5 + 3 * q]
-                w = prm[wi] if wi >= 0 else mat[f0 + 2 + 2 * q]
-                z = xs / w
-                if kind == K_TANH:
-                    val *= 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
-                else:
-                    val *= math.exp(-(z * z))
+                val *= abs(xs)
         dx[code[c]] += val
 
 
@@ -135,11 +175,13 @@ def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Ar
                work: Array) -> None:  # pragma: no cover - jit
     """Advance one plant by dt holding u (saturated here); RK4 with substeps.
 
-    `work` is (6, max(n, m)) scratch; the applied inputs end up in work[5, :m].
+    `work` is scratch from `work_buffer`; the applied inputs end up in work[5, :m].
     """
     n = code[0]
     m = code[1]
     v = work[5]
+    tc = work[6]
+    plant_prepare(code, mat, prm, lsc, tc)
     for j in range(m):
         uj = u[j]
         if uj > limits[j]:
@@ -154,16 +196,16 @@ def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Ar
     k4 = work[3]
     tmp = work[4]
     for _ in range(substeps):
-        plant_deriv(x, v, code, mat, prm, lsc, dist, k1)
+        plant_deriv(x, v, code, mat, tc, dist, k1)
         for i in range(n):
             tmp[i] = x[i] + 0.5 * h * k1[i]
-        plant_deriv(tmp, v, code, mat, prm, lsc, dist, k2)
+        plant_deriv(tmp, v, code, mat, tc, dist, k2)
         for i in range(n):
             tmp[i] = x[i] + 0.5 * h * k2[i]
-        plant_deriv(tmp, v, code, mat, prm, lsc, dist, k3)
+        plant_deriv(tmp, v, code, mat, tc, dist, k3)
         for i in range(n):
             tmp[i] = x[i] + h * k3[i]
-        plant_deriv(tmp, v, code, mat, prm, lsc, dist, k4)
+        plant_deriv(tmp, v, code, mat, tc, dist, k4)
         for i in range(n):
             x[i] = x[i] + (h / 6.0) * (k1[i] + 2 * k2[i] + 2 * k3[i] + k4[i])
 
@@ -179,9 +221,17 @@ def plant_measure(x: Array, resolution: Array, noise: Array,
         y[i] = a
 
 
+@numba.njit(cache=True)
+def work_width(code: Any) -> int:  # pragma: no cover - jit
+    """Row length of `plant_step`'s scratch for a coded rig."""
+    n, m, T, F = code[0], code[1], code[2], code[3]
+    return max(n, m + T + T * F)
+
+
 def work_buffer(spec: RigSpec) -> Array:
-    """Scratch for `plant_step`."""
-    return np.zeros((6, max(spec.n, spec.m)))
+    """Scratch for `plant_step`: (7, work_width)."""
+    code, _ = pack_rig(spec)
+    return np.zeros((7, int(work_width(code))))
 
 
 class CompiledPlant:

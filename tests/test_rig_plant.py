@@ -131,7 +131,9 @@ def test_compiled_kernel_matches_the_numpy_reference_with_every_term_kind_nonzer
         code, mat = K.pack_rig(spec)
         prm = K.pack_params(spec, spec.truth_defaults)
         v = np.clip(u, -5, 5)
-        K.plant_deriv(x0, v, code, mat, prm, plant.lam_scale[0], plant.disturbance[0], dx)
+        tc = K.work_buffer(spec)[6]
+        K.plant_prepare(code, mat, prm, plant.lam_scale[0], tc)
+        K.plant_deriv(x0, v, code, mat, tc, plant.disturbance[0], dx)
         assert np.allclose(dx, plant.deriv(x0[None, :], v[None, :])[0], rtol=1e-13, atol=1e-13)
         # a step with saturation
         cp = K.CompiledPlant(RigPlant.create(spec, x0=x0, substeps=3))
