@@ -35,6 +35,7 @@ GAMMAS = (0.25, 0.5, 1, 2, 4, 8, 16, 32, 64, 128, 256)
 # The demo rigs the acceptance rule covers: one line per rig.
 VERDICT_CONFIGS = [
     "configs/pedestal-sim.toml",
+    "configs/pitch-stand.toml",
 ]
 
 
