@@ -1,7 +1,7 @@
 """Bench: sample-to-command latency through mosquitto at 250 Hz, and the bare broker round trip.
 
 Starts its own mosquitto on a free loopback port, serves the simulated
-pedestal through it (`sim_rigs.device.PedestalDevice`, its clock in a thread)
+pedestal through it (`sim_rigs.device.RigDevice`, its clock in a thread)
 in its own process (`corral rig serve --mqtt`, as deployed: in one process
 the GIL's 5 ms switch interval adds whole milliseconds) and answers every
 sample with an `MqttLink` at once. Reports, in microseconds:

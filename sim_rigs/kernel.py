@@ -3,18 +3,21 @@
 `pack_rig(spec)` codes a rig (`sim_rigs.rigfile.RigSpec`) into two flat arrays,
 the way `runtime.fast` codes a basis:
 
-- ``code`` (int64): header [n, m, T, F, nA, nB, o_terms, o_lam, o_A, o_B] (states,
-  inputs, terms, factors per term at most, non-zeros of A and B, offsets), then per
-  term [row, param index (-1: none), factor count, then per factor (kind, state,
-  width parameter index (-1: the literal))], per input the effectiveness parameter
-  index (-1: 1), per input the driven row, then the (i, j) of A's and B's non-zeros;
-- ``mat`` (float64): A's and B's non-zero values, then per term [coef, then per
-  factor (k, literal width)].
+- ``code`` (int64): header [n, m, T, F, nA, nB, o_terms, o_lam, o_A, o_B, NU, o_fac]
+  (states, inputs, terms, factors per term at most, non-zeros of A and B, distinct
+  factors, offsets), then per term [row, param index (-1: none), factor count, the
+  indices of its factors among the distinct ones], per input the effectiveness
+  parameter index (-1: 1), per input the driven row, the (i, j) of A's and B's
+  non-zeros, and per distinct factor (kind, state, width parameter index (-1: the
+  literal));
+- ``mat`` (float64): A's and B's non-zero values, per term its coef, per distinct
+  factor (k, literal width).
 
-`plant_prepare` turns a plant's parameters into per-term constants once a step
-(coef * param, k or 1 / width, Lambda_j), so the derivative reads no indirection
-and divides nothing; a term whose coefficient is zero (a switched-off friction)
-is skipped.
+`plant_prepare` turns a plant's parameters into constants once a step (coef *
+param per term, k or 1 / width per distinct factor, Lambda_j), so the derivative
+divides nothing; each distinct factor (tanh of a rate, say, shared by a Coulomb
+and a stick-slip term) is evaluated once, and a term whose coefficient is zero (a
+switched-off friction) costs nothing.
 
 `pack_params(spec, params)` gives the parameter vector(s) in `spec.params`
 order. `plant_deriv`, `plant_step` (RK4 with substeps, input saturated) and
@@ -37,7 +40,7 @@ from sim_rigs.rigfile import FACTOR_KINDS, RigSpec
 
 Array = NDArray[np.float64]
 K_X, K_SIN, K_COS, K_TANH, K_GAUSS, K_ABS = range(6)
-HEADER = 10
+HEADER = 12
 
 
 def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
@@ -47,13 +50,27 @@ def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
     names = list(spec.params)
     a_nz = [(i, j) for i in range(n) for j in range(n) if spec.A[i, j] != 0.0]
     b_nz = [(i, j) for i in range(n) for j in range(m) if spec.B[i, j] != 0.0]
+    unique: list[tuple[int, int, int, float, float]] = []  # kind, state, width param, k, width
+    term_fac: list[list[int]] = []
+    for term in spec.terms:
+        idx = []
+        for f in term.factors:
+            key = (FACTOR_KINDS.index(f.kind), f.state,
+                   names.index(f.width) if isinstance(f.width, str) else -1, float(f.k),
+                   0.0 if isinstance(f.width, str) else float(f.width))
+            if key not in unique:
+                unique.append(key)
+            idx.append(unique.index(key))
+        term_fac.append(idx)
+    NU = len(unique)
     o_terms = HEADER
-    o_lam = o_terms + T * (3 + 3 * F)
+    o_lam = o_terms + T * (3 + F)
     o_a = o_lam + 2 * m
     o_b = o_a + 2 * len(a_nz)
-    code = np.full(o_b + 2 * len(b_nz), -1, dtype=np.int64)
-    code[:HEADER] = (n, m, T, F, len(a_nz), len(b_nz), o_terms, o_lam, o_a, o_b)
-    mat = np.zeros(len(a_nz) + len(b_nz) + T * (1 + 2 * F))
+    o_fac = o_b + 2 * len(b_nz)
+    code = np.full(o_fac + 3 * NU, -1, dtype=np.int64)
+    code[:HEADER] = (n, m, T, F, len(a_nz), len(b_nz), o_terms, o_lam, o_a, o_b, NU, o_fac)
+    mat = np.zeros(len(a_nz) + len(b_nz) + T + 2 * NU)
     for q, (i, j) in enumerate(a_nz):
         code[o_a + 2 * q:o_a + 2 * q + 2] = (i, j)
         mat[q] = spec.A[i, j]
@@ -62,20 +79,16 @@ def pack_rig(spec: RigSpec) -> tuple[NDArray[np.int64], Array]:
         mat[len(a_nz) + q] = spec.B[i, j]
     oT = len(a_nz) + len(b_nz)
     for t, term in enumerate(spec.terms):
-        c = o_terms + t * (3 + 3 * F)
+        c = o_terms + t * (3 + F)
         code[c] = term.row
         code[c + 1] = names.index(term.param) if term.param is not None else -1
         code[c + 2] = len(term.factors)
-        f0 = oT + t * (1 + 2 * F)
-        mat[f0] = term.coef
-        for q, f in enumerate(term.factors):
-            code[c + 3 + 3 * q] = FACTOR_KINDS.index(f.kind)
-            code[c + 4 + 3 * q] = f.state
-            if isinstance(f.width, str):
-                code[c + 5 + 3 * q] = names.index(f.width)
-            else:
-                mat[f0 + 2 + 2 * q] = float(f.width)
-            mat[f0 + 1 + 2 * q] = f.k
+        code[c + 3:c + 3 + len(term_fac[t])] = term_fac[t]
+        mat[oT + t] = term.coef
+    for u, (kind, state, wi, k, w) in enumerate(unique):
+        code[o_fac + 3 * u:o_fac + 3 * u + 3] = (kind, state, wi)
+        mat[oT + T + 2 * u] = k
+        mat[oT + T + 2 * u + 1] = w
     for j in range(m):
         e = spec.effectiveness[j]
         code[o_lam + j] = names.index(e) if e is not None else -1
@@ -95,35 +108,43 @@ def pack_params(spec: RigSpec, params: dict[str, Any]) -> Array:
 def plant_prepare(code: Any, mat: Array, prm: Array, lsc: Array,
                   tc: Array) -> None:  # pragma: no cover - jit
     """The per-plant constants `plant_deriv` reads, into tc: per input Lambda_j lsc_j, per
-    term coef * param, per factor k (sin, cos) or 1 / width (tanh, gauss)."""
+    term coef * param, per distinct factor k (sin, cos) or 1 / width (tanh, gauss) and
+    whether any term with a non-zero coefficient needs it."""
     m = code[1]
     T = code[2]
     F = code[3]
     o_terms = code[6]
     o_lam = code[7]
+    NU = code[10]
+    o_fac = code[11]
     oT = code[4] + code[5]
     for j in range(m):
         li = code[o_lam + j]
         tc[j] = (prm[li] if li >= 0 else 1.0) * lsc[j]
+    for u in range(NU):
+        kind = code[o_fac + 3 * u]
+        if kind == K_TANH or kind == K_GAUSS:
+            wi = code[o_fac + 3 * u + 2]
+            tc[m + T + u] = 1.0 / (prm[wi] if wi >= 0 else mat[oT + T + 2 * u + 1])
+        else:
+            tc[m + T + u] = mat[oT + T + 2 * u]
+        tc[m + T + NU + u] = 0.0
     for t in range(T):
-        c = o_terms + t * (3 + 3 * F)
-        f0 = oT + t * (1 + 2 * F)
+        c = o_terms + t * (3 + F)
         pi = code[c + 1]
-        tc[m + t] = mat[f0] * (prm[pi] if pi >= 0 else 1.0)
-        for q in range(code[c + 2]):
-            kind = code[c + 3 + 3 * q]
-            if kind == K_TANH or kind == K_GAUSS:
-                wi = code[c + 5 + 3 * q]
-                tc[m + T + t * F + q] = 1.0 / (prm[wi] if wi >= 0 else mat[f0 + 2 + 2 * q])
-            else:
-                tc[m + T + t * F + q] = mat[f0 + 1 + 2 * q]
+        val = mat[oT + t] * (prm[pi] if pi >= 0 else 1.0)
+        tc[m + t] = val
+        if val != 0.0:
+            for q in range(code[c + 2]):
+                tc[m + T + NU + code[c + 3 + q]] = 1.0
 
 
 @numba.njit(cache=True, inline="always")
 def plant_deriv(x: Array, v: Array, code: Any, mat: Array, tc: Array, dist: Array,
                 dx: Array) -> None:  # pragma: no cover - jit
     """dx = f(x, v) for one plant: A x + B (Lambda lsc v) + terms + disturbance, with the
-    constants of `plant_prepare` in tc (terms whose coefficient is zero are skipped)."""
+    constants of `plant_prepare` in tc: each distinct factor evaluated once (and only when
+    a term with a non-zero coefficient needs it), then each term a product."""
     n = code[0]
     m = code[1]
     T = code[2]
@@ -134,6 +155,31 @@ def plant_deriv(x: Array, v: Array, code: Any, mat: Array, tc: Array, dist: Arra
     o_lam = code[7]
     o_a = code[8]
     o_b = code[9]
+    NU = code[10]
+    o_fac = code[11]
+    o_k = m + T
+    o_need = o_k + NU
+    o_val = o_need + NU
+    for u in range(NU):
+        if tc[o_need + u] == 0.0:
+            continue
+        kind = code[o_fac + 3 * u]
+        xs = x[code[o_fac + 3 * u + 1]]
+        if kind == K_X:
+            f = xs
+        elif kind == K_TANH:
+            z = xs * tc[o_k + u]
+            f = 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
+        elif kind == K_COS:
+            f = math.cos(tc[o_k + u] * xs)
+        elif kind == K_SIN:
+            f = math.sin(tc[o_k + u] * xs)
+        elif kind == K_GAUSS:
+            z = xs * tc[o_k + u]
+            f = math.exp(-(z * z))
+        else:
+            f = abs(xs)
+        tc[o_val + u] = f
     for i in range(n):
         dx[i] = 0.0
     for q in range(nA):
@@ -147,25 +193,9 @@ def plant_deriv(x: Array, v: Array, code: Any, mat: Array, tc: Array, dist: Arra
         val = tc[m + t]
         if val == 0.0:
             continue
-        c = o_terms + t * (3 + 3 * F)
-        ok = m + T + t * F
+        c = o_terms + t * (3 + F)
         for q in range(code[c + 2]):
-            kind = code[c + 3 + 3 * q]
-            xs = x[code[c + 4 + 3 * q]]
-            if kind == K_X:
-                val *= xs
-            elif kind == K_TANH:
-                z = xs * tc[ok + q]
-                val *= 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
-            elif kind == K_COS:
-                val *= math.cos(tc[ok + q] * xs)
-            elif kind == K_SIN:
-                val *= math.sin(tc[ok + q] * xs)
-            elif kind == K_GAUSS:
-                z = xs * tc[ok + q]
-                val *= math.exp(-(z * z))
-            else:
-                val *= abs(xs)
+            val *= tc[o_val + code[c + 3 + q]]
         dx[code[c]] += val
 
 
@@ -224,8 +254,8 @@ def plant_measure(x: Array, resolution: Array, noise: Array,
 @numba.njit(cache=True)
 def work_width(code: Any) -> int:  # pragma: no cover - jit
     """Row length of `plant_step`'s scratch for a coded rig."""
-    n, m, T, F = code[0], code[1], code[2], code[3]
-    return max(n, m + T + T * F)
+    n, m, T, NU = code[0], code[1], code[2], code[10]
+    return max(n, m + T + 3 * NU)
 
 
 def work_buffer(spec: RigSpec) -> Array:

@@ -322,3 +322,89 @@ def test_plant_truth_and_sensor_keys_of_the_configs_still_override_the_rig_file(
     with pytest.raises(ConfigError):
         c = Config(raw={**cfg.raw, "plant": {"truth": {"no_such": 1.0}}}, path=cfg.path)
         plant_from_config(c, design_from_config(c))
+
+
+def test_inline_nominal_model_with_plant_terms_dry_runs_and_sweeps(tmp_path):
+    # No rig file: rig.A / rig.B / rig.C inline, [plant.params] and [[plant.terms]].
+    from runtime.sweep import run_sweep
+
+    text = INLINE.replace("LOGDIR", str(tmp_path))
+    (tmp_path / "inline.toml").write_text(text)
+    cfg = load_config(tmp_path / "inline.toml")
+    res = dry_run(cfg)
+    assert res.design.rig.sim == "config" and res.summary["breach_time"] is None
+    # the term is there: hanging still at 0.3 rad needs the gravity the term adds
+    plant = plant_from_config(cfg, res.design)
+    plant.x[0] = [0.3, 0.0]
+    dx = plant.deriv(plant.x, np.zeros((1, 1)))
+    assert dx[0, 1] == pytest.approx(-3.0 * math.sin(0.3))
+    sw = run_sweep(cfg, plants=8, duration=1.0, workers=1)
+    assert sw.summary["plants"] == 8
+    assert len(set(np.round(sw.truth["grav"], 9))) == 8  # drawn from the inline range
+
+
+INLINE = """
+[rig]
+name = "inline-arm"
+A = [[0.0, 1.0], [0.0, -1.0]]
+B = [[0.0], [5.0]]
+C = [[1.0, 0.0]]
+states = ["th", "w"]
+state_units = ["rad", "rad/s"]
+inputs = ["V"]
+input_units = ["V"]
+input_limits = [10.0]
+[basis]
+terms = ["bias", "th", "w", "sin:th"]
+[design]
+Q = [100.0, 1.0]
+R_u = [1.0]
+R = [20.0, 1.0]
+limits = [0.05, 0.8]
+state_range = [1.0, 2.0]
+[adaptation]
+gamma = 0.5
+unknown_effectiveness = true
+[loop]
+period = 0.001
+[commands]
+duration = 3.0
+th = [{ at = 0.5, kind = "slew", to = 0.4, duration = 1.0 }]
+[plant]
+effectiveness = ["lam"]
+seed = 2
+[plant.params]
+lam = { value = 0.8, unit = "1", range = [0.6, 1.0] }
+grav = { value = 3.0, unit = "rad/s^2", range = [2.0, 4.0] }
+[[plant.terms]]
+row = "w"
+param = "grav"
+coef = -1.0
+factors = ["sin:th"]
+[plant.sensors]
+th_noise = 1e-4
+[plant.sensors.channels]
+th = { noise = "th_noise" }
+[log]
+dir = "LOGDIR"
+"""
+
+
+def test_dry_run_and_sweep_flag_weights_past_the_limit():
+    # The demo's weights grow to a norm of about 3; a limit of 0.5 must be flagged by both,
+    # counted as diverged by the sweep, while the states stay well inside their range.
+    from runtime.sweep import run_sweep
+
+    cfg = load_config(ROOT / "configs" / "pedestal-sim.toml",
+                      ["commands.duration=3.0", "sweep.weight_norm_limit=0.5"])
+    res = dry_run(cfg)
+    s = res.summary
+    assert s["diverged"] and s["states_diverged_time"] is None
+    first = float(res.t[np.argmax(res.columns["w_norm"] > 0.5)])
+    assert s["weights_diverged_time"] == pytest.approx(first)
+    sw = run_sweep(cfg, plants=4, duration=3.0, workers=1).summary
+    assert sw["diverged_weights_fraction"] == 1.0 and sw["diverged_states_fraction"] == 0.0
+    assert sw["diverged_fraction"] == 1.0
+    ok = run_sweep(load_config(ROOT / "configs" / "pedestal-sim.toml"), plants=4, duration=3.0,
+                   workers=1).summary
+    assert ok["diverged_weights_fraction"] == 0.0
