@@ -13,6 +13,7 @@ import importlib
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 # name -> (module, one-line help). Modules are imported lazily so a slow or
 # missing optional part never breaks the others.
@@ -37,6 +38,25 @@ def common_config_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--set", dest="overrides", action="append", default=[],
                         metavar="KEY=VALUE",
                         help="override a config key, e.g. --set adaptation.gamma=8 (repeatable)")
+
+
+def force_arg(parser: argparse.ArgumentParser) -> None:
+    """--force: run a design the verdict refuses."""
+    parser.add_argument("--force", action="store_true",
+                        help="run even when the design verdict is REFUSED")
+
+
+def verdict_gate(verdict: Any, force: bool, quiet: bool) -> bool:
+    """Print the verdict first (stderr when `quiet`, i.e. stdout carries JSON); False when a
+    refusal stops the command (one line with the reason and the fix)."""
+    if verdict.refused and not force:
+        fix = f" Fix: {verdict.fix}" if verdict.fix else ""
+        print(f"corral: design refused ({verdict.basis}): {verdict.reason}{fix} "
+              "Or add --force to run it anyway.", file=sys.stderr)
+        return False
+    print(verdict.line() + (" (--force: running anyway)" if verdict.refused else ""),
+          file=sys.stderr if quiet else sys.stdout, flush=True)
+    return True
 
 
 def output_folder(path: Path, what: str) -> Path:

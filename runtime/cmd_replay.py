@@ -64,6 +64,8 @@ def _print_text(out: dict[str, Any]) -> None:
          _num(rep["max_margin_ratio"], ".3f")),
         ("rms pointing error [mrad]", _num(rec["rms_pointing_error"] * 1e3, ".3f"),
          "(same ticks)", _num(rep["rms_pointing_error"] * 1e3, ".3f")),
+        ("rms_error_final [mrad]", _num(_milli(rec["rms_error_final"]), ".3f"), "(same ticks)",
+         _num(_milli(rep["rms_error_final"]), ".3f")),
         ("trip / warning level", f"{rec['levels']['trip']:g} / {rec['levels']['warning']:g}",
          f"{chk['levels']['trip']:g} / {chk['levels']['warning']:g}",
          f"{rep['levels']['trip']:g} / {rep['levels']['warning']:g}"),
@@ -98,6 +100,10 @@ def _print_text(out: dict[str, Any]) -> None:
     for key in ("plot", "replay_file"):
         if key in out:
             print(f"  {key.replace('_', ' ')}: {out[key]}")
+
+
+def _milli(x: float | None) -> float | None:
+    return None if x is None else x * 1e3
 
 
 def main(args: argparse.Namespace) -> int:

@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from runtime.cli import common_config_args, output_folder
+from runtime.cli import common_config_args, force_arg, output_folder, verdict_gate
 from runtime.config import load_config, rig_name
 from runtime.sweep import ENGINES, parse_grid, plot_grid, plot_sweep, run_grid, run_sweep
 
@@ -44,6 +44,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "(default log.dir/sweeps)")
     parser.add_argument("--no-plot", action="store_true", help="skip the PNG plots")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
+    force_arg(parser)
 
 
 class ProgressBar:
@@ -100,7 +101,11 @@ def format_summary(s: dict[str, Any]) -> str:
 
 
 def main(args: argparse.Namespace) -> int:
-    """Run the sweep (or the grid); exit 0 when every plant stayed inside, else 1."""
+    """Run the sweep (or the grid); exit 0 when every plant stayed inside, else 1.
+
+    A single sweep prints the design verdict first and refuses a refused design unless
+    --force; a grid runs every setting (it is how one looks for the window) and the
+    refusals it reports are the closed form's."""
     cfg = load_config(args.config, args.overrides)
     kwargs = dict(plants=args.plants, seed=args.seed, duration=args.duration,
                   workers=args.workers, chunk=args.chunk, engine=args.engine)
@@ -134,8 +139,14 @@ def main(args: argparse.Namespace) -> int:
                 print(f"plot: {report['plot']}")
         best = grid["best"]
         return 0 if best and best["inside_fraction"] == 1.0 else 1
+    from runtime.verdict import decide
+
+    verdict = decide(cfg, suggest=not args.force)
+    if not verdict_gate(verdict, args.force, args.json):
+        return 1
     result = run_sweep(cfg, progress=bar, **kwargs)
     summary = dict(result.summary)
+    summary.update(verdict.to_json())
     if not args.no_plot:
         summary["plot"] = str(plot_sweep(result, out / f"{name}-sweep-{stamp}.png"))
     summary["report_file"] = _write(out / f"{name}-sweep-{stamp}.json", summary)

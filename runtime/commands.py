@@ -146,3 +146,26 @@ def tracked_names(C: NDArray[np.float64], states: Sequence[str]) -> list[str]:
         nz = np.flatnonzero(row)
         names.append(states[nz[0]] if nz.size == 1 and row[nz[0]] == 1 else f"y{i}")
     return names
+
+
+RMS_FINAL_WINDOW_S = 5.0
+"""The stretch at the end of a run `rms_error_final` averages over (s)."""
+RMS_ERROR_FINAL_AGAINST = ("command: measured tracked outputs minus the command, rms over the "
+                           "last 5 s")
+"""What `rms_error_final` measures, as every JSON report names it (`rms_error_final_against`)."""
+
+
+def rms_error_final(t: NDArray[np.float64], tracked: NDArray[np.float64],
+                    cmd: NDArray[np.float64]) -> float:
+    """The one definition of `rms_error_final` (dry run, replay; docs/sampled-data.md).
+
+    rms over the last `RMS_FINAL_WINDOW_S` seconds of t (all of it when shorter) of
+    ||y_tracked - c||: what the rig's sensors report against what the operator asked for,
+    the quantity a live record, a dry run and a replay all have. nan when empty.
+    """
+    t = np.asarray(t, dtype=float)
+    if t.size == 0:
+        return float("nan")
+    last = t >= t[-1] - RMS_FINAL_WINDOW_S
+    err = np.asarray(tracked, dtype=float)[last] - np.asarray(cmd, dtype=float)[last]
+    return float(np.sqrt(np.mean(np.sum(err**2, axis=1))))

@@ -95,6 +95,34 @@ def zoh(A: Array, B: Array, T: float) -> tuple[Array, Array]:
     return E[:n, :n], E[:n, n:]
 
 
+SAMPLED_LIMIT = 4.0
+"""Limit of Ts^2 gamma phi_d ||sigma_bar||^2 lambda_max(Lambda B'PB) for the semi-implicit tick
+(symplectic Euler on the adaptive loop's oscillation; docs/sampled-data.md)."""
+
+
+def sampled_spectral_radius(Phi: Array, Gam: Array, K1: Array, PB: Array, kappa: float,
+                            Lam: Array | None = None) -> float:
+    """Spectral radius of the one-tick error map of the semi-implicit sampled law.
+
+    With the regressor frozen over a tick, v = W_tilde' sigma_bar and
+    kappa = Ts gamma phi_d ||sigma_bar||^2, one tick (update the weights with e_k,
+    u_k from the new weights, plant input held: x+ = Phi x + Gam Lam u) maps (e, v) as
+
+        v+ = v + kappa (PB)' e
+        e+ = (Phi - Gam K1) e - Gam Lam v+
+
+    Below 1 the sampled loop is stable near e = 0; at or above 1 it is not. The
+    uncertainty itself (W*' sigma, the ZOH mismatch of the reference model) enters
+    this map as an input, so a radius below 1 says nothing on how far e goes.
+    """
+    n, m = Gam.shape
+    L = np.eye(m) if Lam is None else np.asarray(Lam, dtype=float)
+    GL = Gam @ L
+    top = np.hstack((Phi - Gam @ K1 - kappa * GL @ PB.T, -GL))
+    bottom = np.hstack((kappa * PB.T, np.eye(m)))
+    return float(np.max(np.abs(np.linalg.eigvals(np.vstack((top, bottom))))))
+
+
 def _check_shape(name: str, M: Array, shape: tuple[int, int]) -> None:
     if M.shape != shape:
         raise ValueError(f"{name} has shape {M.shape}, expected {shape}")
@@ -165,6 +193,29 @@ def rig_model(cfg: Config) -> RigModel:
                     in_units, limits, spec)
 
 
+INPUT_SCALES = ("u_max", "none")
+
+
+def input_regressor_scale(cfg: Config, rig: RigModel) -> Array:
+    """`adaptation.input_regressor_scale`: "u_max" (default), "none", a number or one per input.
+
+    The augmented regressor carries u_n / scale. With "u_max" every entry is at most 1,
+    the size of the basis terms over a unit operating range, so one scalar gamma suits
+    them all; the effectiveness weights then learn (u_max / 1)^2 times slower than with
+    "none" at the same gamma (docs/sampled-data.md, "Choices").
+    """
+    key = "adaptation.input_regressor_scale"
+    raw = cfg.get(key)
+    if raw == "u_max":
+        return np.asarray(rig.input_limits, dtype=float)
+    if raw == "none":
+        return np.ones(rig.m)
+    if isinstance(raw, str):
+        raise ConfigError(key, f"unknown scale {raw!r}.",
+                          'use "u_max", "none", a positive number or one per input.')
+    return np.broadcast_to(cfg.vector(key, rig.m, positive=True), (rig.m,)).astype(float)
+
+
 # ---------------------------------------------------------------- the design
 @dataclass(frozen=True)
 class Design:
@@ -206,6 +257,11 @@ class Design:
     reasons: tuple[str, ...]
     warnings: tuple[str, ...]
     extras: dict[str, Any] = field(default_factory=dict)
+    input_scale: Array | None = None
+    """The nominal input enters the augmented regressor as u_n / input_scale (m,);
+    `adaptation.input_regressor_scale`. None: the input limits (the default)."""
+    sampled_radius: float = 0.0
+    """Spectral radius of the one-tick map at the nominal gain (`sampled_spectral_radius`)."""
 
     @property
     def n_regressors(self) -> int:
@@ -241,6 +297,8 @@ class Design:
             "step_gain": self.step_gain,
             "step_gain_at_trip": self.step_gain_at_trip,
             "step_gain_cap": self.step_gain_cap,
+            "sampled_radius": self.sampled_radius,
+            "input_regressor_scale": mat(self.regressor_scale),
             "feasible": self.feasible,
             "reasons": list(self.reasons),
             "warnings": list(self.warnings),
@@ -252,6 +310,11 @@ class Design:
     def A(self) -> Array:
         """Nominal A."""
         return self.rig.A
+
+    @property
+    def regressor_scale(self) -> Array:
+        """Divisor of the nominal input in the augmented regressor (m,)."""
+        return self.rig.input_limits if self.input_scale is None else self.input_scale
 
     @property
     def regressor_names(self) -> tuple[str, ...]:
@@ -344,8 +407,9 @@ def design_from_config(cfg: Config) -> Design:
     pts = _sample_box(state_range, 2000, np.random.default_rng(1))
     sig = basis.evaluate(pts)
     sq = np.sum(sig * sig, axis=-1)
-    if augment:
-        sq = sq + m  # u_n enters normalised by the input limits: |u_n_i / u_max_i| <= 1
+    input_scale = input_regressor_scale(cfg, rig)
+    if augment:  # |u_n_i| <= u_max_i enters as u_n_i / scale_i (the input regressor scale)
+        sq = sq + float(np.sum((rig.input_limits / input_scale) ** 2))
     regressor_bound = float(np.sqrt(np.max(sq)))
     lam_bpb = float(np.max(np.linalg.eigvalsh(B.T @ P @ B)))
     phi_d0 = 1.0 / eps if law == "barrier" else 1.0
@@ -359,20 +423,32 @@ def design_from_config(cfg: Config) -> Design:
 
     reasons: list[str] = []
     warnings: list[str] = []
-    if g0 >= cap:
-        scale = 0.5 * cap / g0
+    # The sampled-data check for the tick order the law runs (update with e_k, then u_k from
+    # the new weights): docs/sampled-data.md. The cap is a runtime guard on g, so the loop
+    # sees at most min(g, cap); the closed form refuses only what is unstable for certain.
+    Phi, Gam = zoh(A, B, Ts)
+    rho0 = sampled_spectral_radius(Phi, Gam, K1, P @ B, min(g0, cap) / lam_bpb)
+    rho_trip = sampled_spectral_radius(Phi, Gam, K1, P @ B, min(g_trip, cap) / lam_bpb)
+    if rho0 >= 1.0:
+        scale = 0.5 * (SAMPLED_LIMIT / Ts) / min(g0, cap)
         reasons.append(
-            f"the nominal per-step adaptation gain is {g0:.3g}, at or above the cap {cap:.3g}: "
-            f"the sampled law overshoots and cannot hold the bound. Lower adaptation.gamma "
-            f"to about {float(np.max(gamma)) * scale:.3g} or loop.period to about "
-            f"{Ts * scale:.3g} s."
-        )
-    if g_trip >= cap and law == "barrier":
+            f"the sampled loop is unstable at this period: with the update before the control "
+            f"the weights feed e_k straight back into u_k, and Ts * g = {Ts * min(g0, cap):.3g} "
+            f"(g = min(per-step gain, step_gain_cap)) reaches the limit {SAMPLED_LIMIT:g} "
+            f"(one-tick map spectral radius {rho0:.4f}). Lower adaptation.gamma to about "
+            f"{float(np.max(gamma)) * scale:.3g} or adaptation.step_gain_cap to "
+            f"{0.5 * SAMPLED_LIMIT / Ts:.3g} or less.")
+    elif rho_trip >= 1.0 and law == "barrier":
         warnings.append(
-            f"near the trip level ({trip_level:.2f} eps) the per-step gain would reach "
-            f"{g_trip:.3g}; the live cap {cap:.3g} limits it there, so learning stiffens "
-            "less than the continuous law would."
-        )
+            f"near the trip level ({trip_level:.2f} eps) the sampled loop's one-tick map "
+            f"becomes unstable (Ts * g = {Ts * min(g_trip, cap):.3g} >= {SAMPLED_LIMIT:g}); "
+            "the watchdog must trip before then. Lower adaptation.step_gain_cap to keep it out.")
+    if g0 >= cap:
+        warnings.append(
+            f"the nominal per-step adaptation gain g = {g0:.3g} is at or above the runtime "
+            f"guard adaptation.step_gain_cap = {cap:.3g}: the guard will slow learning below "
+            "the configured gamma on many ticks (the verdict's dry run shows whether the "
+            "bound still holds).")
     fastest = float(np.max(np.abs(poles)))
     if fastest * Ts > 0.2:
         warnings.append(
@@ -387,6 +463,7 @@ def design_from_config(cfg: Config) -> Design:
         c_bar=c_bar, Ts=Ts, A_d=A_d, B_d=B_d, law=law, barrier=barrier, gamma=gamma,
         clamp_margin=clamp_margin, augment=augment, state_range=state_range,
         regressor_bound=regressor_bound, lam_max_BPB=lam_bpb, step_gain=g0,
+        input_scale=input_scale, sampled_radius=rho0,
         step_gain_at_trip=g_trip, step_gain_cap=cap, feasible=not reasons,
         reasons=tuple(reasons), warnings=tuple(warnings),
     )
@@ -416,13 +493,15 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
         warnings.extend(f"{note} (adaptation.bound.on_violation = \"rate_limit\")"
                         for note in sched.notes)
         if d.law == "barrier" and eps_min < d.eps:
-            g_min = d.step_gain * d.eps / eps_min
-            gamma_ok = float(np.max(d.gamma)) * 0.5 * d.step_gain_cap / g_min
-            if g_min >= d.step_gain_cap:
+            g_min = min(d.step_gain * d.eps / eps_min, d.step_gain_cap)
+            Phi, Gam = zoh(d.rig.A, d.rig.B, d.Ts)
+            rho = sampled_spectral_radius(Phi, Gam, d.K1, d.PB, g_min / d.lam_max_BPB)
+            if rho >= 1.0:
+                gamma_ok = float(np.max(d.gamma)) * 0.5 * (SAMPLED_LIMIT / d.Ts) / g_min
                 reasons.append(
-                    f"at the narrowest bound eps = {eps_min:.4g} the nominal per-step gain is "
-                    f"{g_min:.3g}, at or above the cap {d.step_gain_cap:.3g}. Lower "
-                    f"adaptation.gamma to about {gamma_ok:.3g} "
+                    f"at the narrowest bound eps = {eps_min:.4g} the sampled loop is unstable "
+                    f"(Ts * g = {d.Ts * g_min:.3g} >= {SAMPLED_LIMIT:g}, one-tick map spectral "
+                    f"radius {rho:.4f}). Lower adaptation.gamma to about {gamma_ok:.3g} "
                     "or raise adaptation.bound.eps_inf.")
         if eps_max > d.eps_from_limits * (1 + 1e-9):
             warnings.append(
@@ -463,8 +542,8 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                                feasible=not reasons, extras=extras)
 
 
-def format_design(d: Design) -> str:
-    """A human-readable design report with units."""
+def format_design(d: Design, verdict: Any = None) -> str:
+    """A human-readable design report with units; `verdict` a `runtime.verdict.Verdict`."""
     rig = d.rig
     lines = [
         f"corral design: rig {rig.name!r}" + (f" (simulated {rig.sim})" if rig.sim else ""),
@@ -499,12 +578,21 @@ def format_design(d: Design) -> str:
         f"  law {d.law}" + (f" (barrier {d.barrier})" if d.law == "barrier" else "")
         + f", gamma max {float(np.max(d.gamma)):.4g}, regressors: {', '.join(d.regressor_names)}",
         f"  regressor bound ||sigma_bar|| <= {d.regressor_bound:.4g} over the operating range",
-        f"  nominal per-step adaptation gain g = {d.step_gain:.4g} (cap {d.step_gain_cap:.3g});"
-        f" at the trip level {d.step_gain_at_trip:.4g}",
+        f"  sampled loop (update with e_k, then u_k): one-tick map spectral radius "
+        f"{d.sampled_radius:.5f} (stable below 1; Ts * g limit {SAMPLED_LIMIT:g})",
+        f"  nominal per-step adaptation gain g = {d.step_gain:.4g}; runtime guard "
+        f"adaptation.step_gain_cap {d.step_gain_cap:.3g} (at the trip level g = "
+        f"{d.step_gain_at_trip:.4g})",
         "",
-        "Verdict: " + ("FEASIBLE" if d.feasible else "REFUSED"),
     ]
-    lines += [f"  reason: {r}" for r in d.reasons]
+    if verdict is None:
+        lines.append("Verdict (closed form): " + ("not refused" if d.feasible else "REFUSED"))
+        lines += [f"  reason: {r}" for r in d.reasons]
+    else:
+        lines.append(f"Verdict: {verdict.verdict} (by the {verdict.basis})")
+        lines.append(f"  {verdict.reason}")
+        if verdict.fix:
+            lines.append(f"  fix: {verdict.fix}")
     lines += [f"  warning: {w}" for w in d.warnings]
     lines.append("")
     lines.append("The bound is a continuous-time guarantee, not a hardware guarantee: watch the "

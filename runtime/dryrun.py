@@ -21,7 +21,12 @@ import msgpack
 import numpy as np
 from numpy.typing import NDArray
 
-from runtime.commands import schedule_from_config, tracked_names
+from runtime.commands import (
+    RMS_ERROR_FINAL_AGAINST,
+    rms_error_final,
+    schedule_from_config,
+    tracked_names,
+)
 from runtime.config import Config, ConfigError
 from runtime.design import Design, design_from_config
 from runtime.law import AdaptiveLaw
@@ -187,16 +192,15 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
     bound = cfg.number("sweep.divergence_factor") * design.state_range
     x_bad = np.flatnonzero(~np.all(np.abs(cols["x"]) <= bound, axis=1))
     w_bad = np.flatnonzero(~(cols["w_norm"] <= w_limit))
-    last5 = t >= t[-1] - 5.0
     out_idx = np.argmax(rig.C != 0, axis=1)
-    pointing = cols["x"][:, out_idx] - cmd
     summary = {
         "law": design.law,
         "rig": rig.name,
         "eps": design.eps,
         "max_margin_ratio": float(np.max(ratio)),
         "breach_time": float(t[breach[0]]) if breach.size else None,
-        "rms_error_final": float(np.sqrt(np.mean(np.sum(pointing[last5] ** 2, axis=1)))),
+        "rms_error_final": rms_error_final(t, cols["y"][:, out_idx], cmd),
+        "rms_error_final_against": RMS_ERROR_FINAL_AGAINST,
         "weight_norm": float(cols["w_norm"][-1]),
         "max_weight_norm": float(np.max(cols["w_norm"])),
         "weight_norm_limit": w_limit,

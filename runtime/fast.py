@@ -18,8 +18,9 @@ buffers instead of dozens of arguments:
 - ``ic`` (int64): sizes, switches and offsets (the ``I_*`` indices), then the
   basis op codes as (op, i, j) triples;
 - ``fc`` (float64): scalar settings (the ``F_*`` indices), then the matrices
-  P, PB, K1', K2', A_d', B_d', gamma, u_max, theta_max and the radial-basis
-  centres and widths, each row-major at the offset stored in ``ic``;
+  P, PB, K1', K2', A_d', B_d', gamma, u_max, theta_max, the radial-basis
+  centres, widths and scale, and the input regressor scale, each row-major at
+  the offset stored in ``ic``;
 - ``st`` (float64): the law state, x_r (n) then W (N_bar x m, row-major);
 - ``out`` (float64): the tick's results (the ``O_*`` scalars, then u, u_raw,
   u_n, e, sigma_bar and scratch).
@@ -62,8 +63,8 @@ LEAKAGES = ("none", "sigma", "e")
 # ic: integer layout
 (I_N, I_M, I_P, I_NCODE, I_NRBF, I_NREG, I_LAW, I_BARRIER, I_AUGMENT, I_LEAK,
  I_PROJ, I_FROZEN, I_OP, I_OPB, I_OK1T, I_OK2T, I_OADT, I_OBDT, I_OGAMMA, I_OUMAX,
- I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS, I_OCODES) = range(25)
-IC_HEADER = 25
+ I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS, I_OCODES, I_OUSCALE) = range(26)
+IC_HEADER = 26
 
 # fc: scalar settings at the head
 (F_TS, F_GAMMA_MAX, F_CLAMP, F_LAM_BPB, F_CAP, F_SIGMA0, F_MU, F_DEAD_ZONE, F_EPS_P,
@@ -192,7 +193,7 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     nb = ic[I_NCODE] + ic[I_NRBF]
     if ic[I_AUGMENT] == 1:
         for j in range(m):
-            out[o_sig + nb + j] = out[o_un + j] / fc[oU + j]
+            out[o_sig + nb + j] = out[o_un + j] / fc[ic[I_OUSCALE] + j]
     sig_sq = 0.0
     for i in range(nreg):
         sig_sq += out[o_sig + i] * out[o_sig + i]
@@ -457,7 +458,7 @@ def pack_law(design: Design, modifiers: ModifierSettings | None = None,
               np.asarray(d.rig.input_limits, dtype=float), theta,
               np.zeros((0,)) if centres is None else np.asarray(centres, dtype=float),
               np.zeros((0,)) if widths is None else np.asarray(widths, dtype=float),
-              scale):
+              scale, np.asarray(d.regressor_scale, dtype=float)):
         flat = np.ascontiguousarray(M, dtype=float).ravel()
         offsets.append(pos)
         blocks.append(flat)
@@ -486,7 +487,7 @@ def pack_law(design: Design, modifiers: ModifierSettings | None = None,
     ic[I_PROJ] = int(mods.projection)
     ic[I_FROZEN] = 0
     (ic[I_OP], ic[I_OPB], ic[I_OK1T], ic[I_OK2T], ic[I_OADT], ic[I_OBDT], ic[I_OGAMMA],
-     ic[I_OUMAX], ic[I_OTHETA], ic[I_ORBFC], ic[I_ORBFW], ic[I_ORBFS]) = offsets
+     ic[I_OUMAX], ic[I_OTHETA], ic[I_ORBFC], ic[I_ORBFW], ic[I_ORBFS], ic[I_OUSCALE]) = offsets
     ic[I_OCODES] = IC_HEADER
     for k, (op, i, j) in enumerate(codes):
         ic[IC_HEADER + 3 * k: IC_HEADER + 3 * k + 3] = (BASIS_OPS.index(op), i, j)
@@ -614,7 +615,7 @@ def warm_up() -> float:
     ic[I_NCODE] = ic[I_NREG] = 1
     fc = np.ones(FC_HEADER + 16)
     for k, idx in enumerate((I_OP, I_OPB, I_OK1T, I_OK2T, I_OADT, I_OBDT, I_OGAMMA,
-                             I_OUMAX, I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS)):
+                             I_OUMAX, I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS, I_OUSCALE)):
         ic[idx] = FC_HEADER + k
     ic[I_OCODES] = IC_HEADER
     st = np.zeros(n + nreg * m)
@@ -708,8 +709,9 @@ def law_tick_pedestal(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Ar
     basis_eval(x, ic, fc, out[o_sig:])
     nb = ic[I_NCODE] + ic[I_NRBF]
     if ic[I_AUGMENT] == 1:
-        out[o_sig + nb] = un0 / fc[oU]
-        out[o_sig + nb + 1] = un1 / fc[oU + 1]
+        oS = ic[I_OUSCALE]
+        out[o_sig + nb] = un0 / fc[oS]
+        out[o_sig + nb + 1] = un1 / fc[oS + 1]
     sig_sq = 0.0
     for i in range(nreg):
         sig_sq += out[o_sig + i] * out[o_sig + i]

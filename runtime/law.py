@@ -14,7 +14,8 @@ Tick order (semi-implicit, see DEVELOPERS.md):
 5. x_r,k+1 = A_d x_r,k + B_d c_k (exact zero-order hold).
 
 With unknown control effectiveness the regressor is augmented with the
-nominal input, normalised by the input limits: sigma_bar = [sigma(x); u_n / u_max].
+nominal input, divided by `adaptation.input_regressor_scale` (default the input
+limits): sigma_bar = [sigma(x); u_n / scale] (docs/sampled-data.md, "Choices").
 The standard law is the same step with phi_d = 1.
 
 What does not live here: the fallback laws and the watchdog (runtime),
@@ -104,6 +105,7 @@ class AdaptiveLaw:
         self.clamp_margin = d.clamp_margin
         self.augment = d.augment
         self.u_max = d.rig.input_limits
+        self.u_scale = d.regressor_scale
         self.basis = d.basis
         self.lam_bpb = d.lam_max_BPB
         self.cap = d.step_gain_cap
@@ -119,10 +121,10 @@ class AdaptiveLaw:
         return LawState(xr=x0.copy(), W=np.zeros(x0.shape[:-1] + (self.n_reg, self.m)))
 
     def regressor(self, x: Array, u_n: Array) -> Array:
-        """sigma_bar(x, u_n): basis terms, plus the normalised nominal input when augmented."""
+        """sigma_bar(x, u_n): basis terms, plus the scaled nominal input when augmented."""
         sig = self.basis.evaluate(x)
         if self.augment:
-            sig = np.concatenate((sig, u_n / self.u_max), axis=-1)
+            sig = np.concatenate((sig, u_n / self.u_scale), axis=-1)
         return sig
 
     def nominal_input(self, x: Array, c: Array) -> Array:

@@ -1,7 +1,8 @@
 """Preflight: a go / no-go verdict before arming hardware.
 
-`run_preflight(cfg)` checks the design (a refused design is a no-go with the
-design's reasons), then sweeps the config's uncertainty (`[plant.ranges]`)
+`run_preflight(cfg)` asks for the design verdict (`runtime.verdict`: the closed
+form, then a nominal dry run; a refusal is a no-go with its reason and fix), then
+sweeps the config's uncertainty (`[plant.ranges]`)
 through the simulated stand-in of the rig with the configured sample period,
 sensor noise and command latency (`runtime.sweep`), and compares the
 predicted trip rate (tripped + diverged fraction) with
@@ -57,6 +58,14 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
                      "gamma_max": float(max(design.gamma))}
     if not design.feasible:
         reasons.extend(f"design refused: {r}" for r in design.reasons)
+        return _finish(cfg, out, write)
+    from runtime.verdict import decide
+
+    verdict = decide(cfg, design)
+    out["design"].update(verdict.to_json())
+    if verdict.refused:
+        reasons.append(f"design refused ({verdict.basis}): {verdict.reason}"
+                       + (f" Fix: {verdict.fix}" if verdict.fix else ""))
         return _finish(cfg, out, write)
     if design.rig.spec is None:
         reasons.append("no simulated stand-in for this rig (rig.sim unset, no [plant] terms), "

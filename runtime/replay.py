@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime.commands import RMS_ERROR_FINAL_AGAINST, rms_error_final
 from runtime.config import KEY_ALIASES, Config, ConfigError, check_config
 
 Array = NDArray[np.float64]
@@ -510,11 +511,15 @@ class Verdict:
     rms_pointing_error: float
     breach_time: float | None
     check: WatchdogCheck
+    rms_error_final: float = math.nan
+    """`runtime.commands.rms_error_final` over the engaged stretch (the dry run's definition)."""
 
     def to_json(self) -> dict[str, Any]:
         """Plain numbers for --json."""
         return {"max_margin_ratio": self.max_margin_ratio, "trip": self.check.trip,
                 "rms_pointing_error": self.rms_pointing_error, "breach_time": self.breach_time,
+                "rms_error_final": _finite(self.rms_error_final),
+                "rms_error_final_against": RMS_ERROR_FINAL_AGAINST,
                 "first_warning": self.check.warning, "later_trips": self.check.trips[1:],
                 "levels": self.check.levels}
 
@@ -580,6 +585,10 @@ class ReplayResult:
         }
 
 
+def _finite(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
 def _tracked_index(design: Any) -> NDArray[np.intp]:
     return np.argmax(design.rig.C != 0, axis=1)
 
@@ -592,6 +601,8 @@ def _verdict(series: Series, check: WatchdogCheck, idx: NDArray[np.intp]) -> Ver
     rms = float(np.sqrt(np.mean(np.sum(err**2, axis=1)))) if err.size else math.nan
     return Verdict(max_margin_ratio=float(np.max(ratio)) if ratio.size else 0.0,
                    rms_pointing_error=rms,
+                   rms_error_final=rms_error_final(series.t[on], series.y[on][:, idx],
+                                                   series.c[on]),
                    breach_time=float(series.t[on][breach[0]]) if breach.size else None,
                    check=check)
 

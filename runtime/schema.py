@@ -59,6 +59,8 @@ SEGMENTS = "segments"
 """A list of command segments ``{at, kind, ...}`` (checked by `runtime.commands`)."""
 TABLES = "tables"
 """An array of tables (``[[faults]]``, checked by `sim_rigs.faults`)."""
+SCALE = "scale"
+"""\"u_max\", \"none\", a positive number or one per input (checked by the design)."""
 RIG_ENTRY = "rig entry"
 """A value the rig loader checks (a parameter, a sensor channel): opaque here."""
 TABLE = "table"
@@ -247,6 +249,8 @@ KEYS: tuple[Key, ...] = (
         doc="augment the regressor with the nominal input"),
     key("adaptation.step_gain_cap", NUMBER, 1.0, "1", "cap on the per-step adaptation gain",
         positive=True),
+    key("adaptation.input_regressor_scale", SCALE, "u_max", "input units",
+        "divides the nominal input in the augmented regressor: u_max, none or numbers"),
     key("adaptation.leakage", CHOICE, "none", doc="leakage modification",
         options="runtime.modifiers:LEAKAGES"),
     key("adaptation.sigma0", NUMBER, Required("with leakage = \"sigma\""), "1/s",

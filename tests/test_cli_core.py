@@ -17,7 +17,7 @@ ROOT = Path(__file__).resolve().parent.parent
 
 DESIGN_KEYS = {"A", "B", "C", "K1", "K2", "A_r", "P", "R", "Q", "R_u", "limits", "eps",
                "binding_state", "envelope", "poles", "c_bar", "step_gain", "feasible",
-               "warnings"}
+               "warnings", "verdict", "verdict_basis", "verdict_reason", "sampled_radius"}
 DRY_RUN_KEYS = {"max_margin_ratio", "breach_time", "rms_error_final", "weight_norm", "ticks",
                 "sim_seconds", "wall_seconds", "law"}
 
@@ -55,24 +55,29 @@ def test_design_json_has_the_documented_keys_and_consistent_numbers(corral):
 
 
 def test_design_refuses_a_gamma_too_large_and_its_suggestion_works(corral):
-    res = corral("design", DEMO, "--json", "--set", "adaptation.gamma=1e6")
+    # With the runtime guard lifted, gamma 1e6 puts Ts * g far past the sampled loop's
+    # limit 4 (docs/sampled-data.md): the closed form refuses it without a dry run.
+    lifted = ("--set", "adaptation.step_gain_cap=1e9")
+    res = corral("design", DEMO, "--json", "--set", "adaptation.gamma=1e6", *lifted)
     assert res.code == 1 and "Traceback" not in res.stderr
     d = json.loads(res.stdout)
     assert d["feasible"] is False
-    assert d["step_gain"] >= d["step_gain_cap"]
-    reason = " ".join(d["reasons"])
-    match = re.search(r"adaptation\.gamma to about ([0-9.eE+-]+)", reason)
-    assert match, reason
+    assert d["verdict"] == "REFUSED" and d["verdict_basis"] == "closed form"
+    assert d["sampled_radius"] >= 1.0
+    match = re.search(r"adaptation\.gamma to about ([0-9.eE+-]+)", d["verdict_reason"])
+    assert match, d["verdict_reason"]
     suggested = float(match.group(1).rstrip("."))
     assert 0 < suggested < 1e6
-    again = corral("design", DEMO, "--json", "--set", f"adaptation.gamma={suggested}")
+    again = corral("design", DEMO, "--json", "--closed-form", "--set",
+                   f"adaptation.gamma={suggested}", *lifted)
     d2 = json.loads(again.stdout)
-    assert d2["step_gain"] < d2["step_gain_cap"]
-    assert d2["feasible"] is True and again.code == 0
+    assert d2["sampled_radius"] < 1.0
+    assert d2["verdict"] == "UNVERIFIED" and d2["feasible"] is True and again.code == 0
 
 
 def test_design_text_report_shows_the_verdict(corral):
-    res = corral("design", DEMO, "--set", "adaptation.gamma=1e6")
+    res = corral("design", DEMO, "--set", "adaptation.gamma=1e6", "--set",
+                 "adaptation.step_gain_cap=1e9")
     assert res.code == 1
     assert "REFUSED" in res.stdout and "adaptation.gamma" in res.stdout
 
@@ -104,9 +109,9 @@ def test_dry_run_json_contract(corral, tmp_path):
 
 def test_dry_run_with_the_standard_law_reports_it(corral, tmp_path):
     res = corral("dry-run", DEMO, "--json", "--set", "commands.duration=0.5",
-                 "--set", "adaptation.law=standard", "--no-plot", "--out", tmp_path)
+                 "--set", "adaptation.law=standard", "--no-plot", "--out", tmp_path, "--force")
     s = json.loads(res.stdout)
-    assert s["law"] == "standard" and s["ticks"] > 0
+    assert s["law"] == "standard" and s["ticks"] > 0 and "verdict" in s
 
 
 def test_cli_without_a_command_prints_help_and_exits_2(corral):

@@ -286,7 +286,8 @@ def test_explicit_eps_within_the_limits_is_used_and_beyond_them_is_refused(small
     assert "lower adaptation.eps" in err.value.fix and "design.limits" in err.value.fix
 
 
-def test_step_gain_follows_the_brief_formula_and_refuses_above_the_cap(small_rig_raw):
+def test_step_gain_follows_the_brief_formula_and_refuses_an_unstable_sampled_loop(
+        small_rig_raw):
     # Brief 2b: g = Ts gamma phi_d(0) ||sigma_bar||^2 lambda_max(B'PB), phi_d(0) = 1/eps;
     # the regressor bound is checked independently on the corner (1, 1) of the operating
     # box, where sigma = [1, 1, 1, sin 1] is largest for this basis.
@@ -297,7 +298,14 @@ def test_step_gain_follows_the_brief_formula_and_refuses_above_the_cap(small_rig
     lam = float(np.max(np.linalg.eigvalsh(B.T @ d.P @ B)))
     g = 0.001 * 5.0 / d.eps * bound_sq * lam
     assert d.step_gain == pytest.approx(g, rel=1e-9)
+    # Above the runtime guard the closed form does not refuse (the guard limits g; the
+    # verdict's dry run decides): it warns.
     small_rig_raw["adaptation"]["gamma"] = 5.0 * 1.5 / g  # nominal g = 1.5 > cap 1
+    guarded = design_from_config(Config(raw=small_rig_raw))
+    assert guarded.feasible and any("step_gain_cap" in w for w in guarded.warnings)
+    # With the guard lifted and Ts * g = 6 > 4 the sampled loop is unstable: refused.
+    small_rig_raw["adaptation"]["step_gain_cap"] = 1e12
+    small_rig_raw["adaptation"]["gamma"] = 5.0 * 6000.0 / g
     refused = design_from_config(Config(raw=small_rig_raw))
-    assert not refused.feasible
+    assert not refused.feasible and refused.sampled_radius > 1.0
     assert "adaptation.gamma" in refused.reasons[0]

@@ -129,7 +129,9 @@ def test_rule_bookkeeping_against_a_plain_loop(cfg):
 
 
 def test_grid_reports_refused_settings_and_the_best(cfg):
-    grid = run_grid(cfg, [("adaptation.gamma", [1e6, 2.0])], plants=2, duration=0.5,
+    # the guard lifted, gamma 1e6 makes the sampled loop unstable: refused by the closed form
+    lifted = cfg.with_overrides(["adaptation.step_gain_cap=1e12"])
+    grid = run_grid(lifted, [("adaptation.gamma", [1e6, 2.0])], plants=2, duration=0.5,
                     workers=1)
     assert [e["setting"] for e in grid["grid"]] == [{"adaptation.gamma": 1e6},
                                                     {"adaptation.gamma": 2.0}]
