@@ -90,6 +90,13 @@ class LinkStats:
     send_drops: int = 0
     """Commands dropped because the device is not reading."""
     reconnects: int = 0
+    rejected: int = 0
+    """Samples refused as implausible against the device's hello (channel count, time,
+    sequence jump; `drivers.wire.SampleGate`)."""
+    resyncs: int = 0
+    """Times the sample stream was resynchronised after a plausible restart of numbering."""
+    hellos_midrun: int = 0
+    """Device hellos that arrived mid-session (reported as link events, never adopted)."""
     connected: bool = False
     last_sample_host_s: float = 0.0
     latencies_us: list[float] = field(default_factory=list, repr=False)
@@ -103,7 +110,7 @@ class LinkStats:
             for k in (
                 "frames_in", "frames_out", "crc_errors", "cobs_errors", "decode_errors",
                 "unknown_kinds", "gaps", "duplicates", "late_frames", "send_drops", "reconnects",
-                "connected",
+                "rejected", "resyncs", "hellos_midrun", "connected",
             )
         }
         lat = np.asarray(self.latencies_us[-100_000:], dtype=float)

@@ -53,7 +53,7 @@ from drivers.wire import (
     Fault,
     Heartbeat,
     Message,
-    SeqTracker,
+    SampleGate,
     Stop,
     UnknownKind,
     WireError,
@@ -482,8 +482,17 @@ async def disconnect_client(client: aiomqtt.Client | None) -> None:
     """Leave `client`; never raises."""
     if client is None:
         return
-    with contextlib.suppress(Exception, asyncio.CancelledError):
+    try:
         await asyncio.wait_for(client.__aexit__(None, None, None), 2.0)
+    except asyncio.CancelledError:
+        # aiomqtt may raise CancelledError of its own while it tears down; that one is
+        # swallowed. A cancellation of the task calling us is passed on: swallowing it
+        # made a cancelled publisher reconnect forever (a run that SIGTERM did not end).
+        task = asyncio.current_task()
+        if task is not None and task.cancelling():
+            raise
+    except Exception:  # noqa: BLE001 - leaving a dead connection must never raise
+        pass
 
 
 def host_hello() -> Hello:
@@ -537,7 +546,9 @@ class MqttLink(Link):
         self.faults: collections.deque[Fault] = collections.deque(maxlen=32)
         self.retained_dropped = 0
         self._clock = clock
-        self._tracker = SeqTracker(self.stats)
+        self._tracker = SampleGate(self.stats)
+        self.events: collections.deque[tuple[str, str]] = collections.deque(maxlen=64)
+        """Link events for the operator (a device hello mid-run): (kind, detail)."""
         self._samples = SampleInbox(self.stats, queue_size, reason="not open")
         self._hello_waiter: asyncio.Future[Hello] | None = None
         self._client: aiomqtt.Client | None = None
@@ -643,8 +654,15 @@ class MqttLink(Link):
             if retain:
                 self.retained_hello = msg
                 return
+            if self.hello is not None and self._hello_waiter is None:
+                # Mid-session (the device answering another host's hello, a restart, a
+                # forgery): never adopted silently; the operator sees it.
+                self.stats.hellos_midrun += 1
+                self.events.append(("link", f"device hello mid-run from {msg.rig_id!r} "
+                                    f"({len(msg.channels)} channels): not adopted"))
+                return
             self.hello = msg
-            self._tracker.reset()
+            self._tracker.start(msg)
             self._offset = None
             self.device_stopped = False
             w = self._hello_waiter
@@ -662,6 +680,11 @@ class MqttLink(Link):
                 self._set_lost(f"rig {self.settings.rig!r} went offline ({why})")
 
     def _on_sample(self, s: Sample, now: float) -> None:
+        verdict = self._tracker.accept(s)
+        if not verdict:
+            return
+        if verdict == 2:
+            self._offset = None  # new numbering: the device clock started over
         # Age check on receipt: the broker removes expired messages, but a
         # sample can still sit in queues. With no shared clock, the smallest
         # (host time - device time) seen this session is the transit floor;
@@ -671,8 +694,6 @@ class MqttLink(Link):
             self._offset = d
         if d - self._offset > self.settings.max_sample_age_s:
             self.stats.late_frames += 1
-            return
-        if not self._tracker.accept(s.seq):
             return
         s.t_host = now
         self.stats.last_sample_host_s = now
@@ -905,8 +926,9 @@ class MqttPublisher:
                 with contextlib.suppress(asyncio.TimeoutError):
                     await asyncio.wait_for(self._drain(), 1.0)
             task.cancel()
+            # Bounded: whatever the broker does, leaving the publisher ends.
             with contextlib.suppress(BaseException):
-                await task
+                await asyncio.wait({task}, timeout=5.0)
 
     async def _drain(self) -> None:
         assert self._queue is not None

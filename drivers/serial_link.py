@@ -40,7 +40,7 @@ from drivers.wire import (
     FrameDecoder,
     Heartbeat,
     Message,
-    SeqTracker,
+    SampleGate,
     Stop,
     encode_message,
 )
@@ -141,7 +141,9 @@ class SerialLink(Link):
         self.send_drops = 0
         self._clock = clock
         self._decoder = FrameDecoder(self.stats, synced=False)
-        self._tracker = SeqTracker(self.stats)
+        self._tracker = SampleGate(self.stats)
+        self.events: collections.deque[tuple[str, str]] = collections.deque(maxlen=64)
+        """Link events for the operator (a device hello mid-run): (kind, detail)."""
         self._samples = SampleInbox(self.stats, queue_size, reason="not open")
         self._hello_waiter: asyncio.Future[Hello] | None = None
         self._transport: asyncio.Transport | None = None
@@ -169,7 +171,7 @@ class SerialLink(Link):
             if type(msg) is Sample:
                 if self.hello is None:
                     continue  # before the handshake: belongs to no session
-                if not self._tracker.accept(msg.seq):
+                if not self._tracker.accept(msg):
                     continue
                 msg.t_host = now
                 self.stats.last_sample_host_s = now
@@ -189,8 +191,17 @@ class SerialLink(Link):
     def _on_hello(self, hello: Hello) -> None:
         if hello.rig_id == HOST_HELLO_RIG_ID and not hello.channels:
             return  # our own hello echoed by a loopback; not a device
+        if self.hello is not None and self._hello_waiter is None:
+            # Mid-session: never adopted silently (a forged hello must not reset the
+            # numbering or change the channels); the operator sees it. A device that
+            # really restarted is picked up by the gate's resynchronisation.
+            self.stats.hellos_midrun += 1
+            self.events.append(("link", f"device hello mid-run from {hello.rig_id!r} "
+                                f"({len(hello.channels)} channels, {hello.sample_rate_hz:g} Hz): "
+                                "not adopted"))
+            return
         self.hello = hello
-        self._tracker.reset()
+        self._tracker.start(hello)
         self.device_stopped = False
         if self._hello_waiter is not None and not self._hello_waiter.done():
             self._hello_waiter.set_result(hello)

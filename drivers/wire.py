@@ -313,7 +313,10 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
     if kind == KIND_SAMPLE:
         msg = Sample(seq, t, _numlist(arr[4], "y"), _uint(arr[3], "status"))
     elif kind == KIND_COMMAND:
-        msg = Command(seq, _numlist(arr[4], "u"), _uint(arr[3], "flags"))
+        u = _numlist(arr[4], "u")
+        if not all(math.isfinite(v) for v in u):
+            raise DecodeError("command u must be finite")
+        msg = Command(seq, u, _uint(arr[3], "flags"))
     elif kind == KIND_HEARTBEAT:
         msg = Heartbeat(seq, t, _uint(arr[3], "status"))
     elif kind == KIND_FAULT:
@@ -336,7 +339,26 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
             output_units=_strlist(arr[10], "output_units"),
             command_timeout_s=_num(arr[11], "command_timeout_s"),
         )
+        _check_hello(msg)
     return msg, seq, t
+
+
+MAX_CHANNELS = 64
+"""Most channels (and outputs) a hello may announce."""
+
+
+def _check_hello(h: Hello) -> None:
+    """A device hello must describe a usable rig; a host hello (no channels) carries none."""
+    if len(h.channels) > MAX_CHANNELS or len(h.output_limits) > MAX_CHANNELS:
+        raise DecodeError(f"hello announces more than {MAX_CHANNELS} channels or outputs")
+    if not math.isfinite(h.command_timeout_s) or h.command_timeout_s < 0:
+        raise DecodeError("hello command_timeout_s must be finite and not negative")
+    if not h.channels:
+        return  # a host hello: asks the device to announce itself
+    if not (math.isfinite(h.sample_rate_hz) and h.sample_rate_hz > 0):
+        raise DecodeError(f"hello sample_rate_hz must be positive, got {h.sample_rate_hz!r}")
+    if not all(math.isfinite(v) and v > 0 for v in h.output_limits):
+        raise DecodeError("hello output_limits must be positive and finite")
 
 
 def decode_body(body: bytes) -> Message:
@@ -349,10 +371,16 @@ def decode_body(body: bytes) -> Message:
 
 
 def decode_frame(encoded: bytes | bytearray | memoryview) -> Message:
-    """Decode one frame given with or without its trailing delimiter."""
+    """Decode one frame given with or without its trailing delimiter.
+
+    A frame longer than `MAX_FRAME` bytes (without its delimiter) is refused
+    (`CobsError`), as the stream decoder refuses it.
+    """
     data = bytes(encoded)
     if data.endswith(DELIMITER):
         data = data[:-1]
+    if len(data) > MAX_FRAME:
+        raise CobsError(f"frame of {len(data)} bytes is over the {MAX_FRAME}-byte limit")
     return decode_body(unframe(data))
 
 
@@ -469,6 +497,95 @@ class SeqTracker:
         self.stats.gaps += diff - 1
         self.last = seq
         return True
+
+
+class SampleGate:
+    """Checks every sample against the device's hello before the loop sees it.
+
+    A sample is refused (counted in `stats.rejected`, or `stats.duplicates`
+    when it is not newer than the last one) when its reading count differs from
+    the hello's channels, its device time is not finite, or it is implausible
+    next to the last accepted sample: a sequence jump over `max_seq_jump`, or a
+    device time that disagrees with the sequence step by more than
+    `max_time_error_s`. Non-finite readings pass: a NaN from a sensor is the
+    loop's `nonfinite` trip, not the link's to hide.
+
+    One forged or corrupted sample cannot poison the stream: a refused sample
+    is kept as a candidate, and only when the very next sample continues it
+    (seq + 1, one period later) does the gate adopt the new numbering (a device
+    that restarted without a hello), counting `stats.resyncs`; the real stream
+    resynchronises back the same way. `accept` returns 0 (refused), 1
+    (accepted) or 2 (accepted, new numbering: the device clock starts over).
+    """
+
+    __slots__ = ("stats", "channels", "period", "max_seq_jump", "max_time_error_s",
+                 "last_seq", "last_t", "_cand", "_span")
+
+    def __init__(self, stats: LinkStats | None = None, *, max_span_s: float = 1.0,
+                 max_time_error_s: float = 0.5) -> None:
+        self.stats = stats if stats is not None else LinkStats()
+        self.channels: int | None = None
+        self.period = 0.0
+        self.max_seq_jump = 1000
+        self.max_time_error_s = max_time_error_s
+        self._span = max_span_s
+        self.last_seq: int | None = None
+        self.last_t = 0.0
+        self._cand: tuple[int, float] | None = None
+
+    def start(self, hello: Hello) -> None:
+        """A new session with this device: its channel count and rate; numbering forgotten."""
+        self.channels = len(hello.channels)
+        rate = hello.sample_rate_hz
+        self.period = 1.0 / rate if math.isfinite(rate) and rate > 0 else 0.0
+        self.max_seq_jump = max(16, int(rate * self._span)) if self.period else 1000
+        self.reset()
+
+    def reset(self) -> None:
+        """Forget the numbering (a new hello restarts it)."""
+        self.last_seq = None
+        self._cand = None
+
+    def _plausible(self, seq: int, t: float, seq0: int, t0: float) -> bool:
+        d = (seq - seq0) % SEQ_MOD
+        if d == 0 or d >= SEQ_MOD // 2 or d > self.max_seq_jump:
+            return False
+        return abs((t - t0) - d * self.period) <= self.max_time_error_s + 0.1 * d * self.period
+
+    def accept(self, s: Sample) -> int:
+        """0: refused; 1: accepted; 2: accepted after a resynchronisation."""
+        stats = self.stats
+        t = s.t_device
+        if (self.channels is not None and len(s.y) != self.channels) or not math.isfinite(t):
+            stats.rejected += 1
+            return 0
+        seq = s.seq
+        last = self.last_seq
+        if last is None:
+            self.last_seq, self.last_t = seq, t
+            return 1
+        if self._plausible(seq, t, last, self.last_t):
+            stats.gaps += (seq - last) % SEQ_MOD - 1
+            self.last_seq, self.last_t = seq, t
+            self._cand = None
+            return 1
+        cand = self._cand
+        if cand is not None and (seq - cand[0]) % SEQ_MOD == 1 \
+                and self._plausible(seq, t, cand[0], cand[1]):
+            self.last_seq, self.last_t = seq, t
+            self._cand = None
+            stats.resyncs += 1
+            return 2
+        d = (seq - last) % SEQ_MOD
+        if d == 0:
+            stats.duplicates += 1  # a plain repeat is never a resync candidate
+            return 0
+        self._cand = (seq, t)
+        if d >= SEQ_MOD // 2:
+            stats.duplicates += 1
+        else:
+            stats.rejected += 1
+        return 0
 
 
 def seq_newer(a: int, b: int) -> bool:

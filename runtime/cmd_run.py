@@ -105,8 +105,13 @@ def _check_serial_port_exists(spec: str) -> None:
                         "`corral rig serve CONFIG --serial`")
 
 
+EXIT_LINK_LOST = 3
+"""`corral run` exit status when the link was lost during the run (a `link_loss` trip)."""
+
+
 def main(args: argparse.Namespace) -> int:
-    """Run; exit 0 when the run ended normally (trips included), 2 on a user error."""
+    """Run; exit 0 when the run ended normally (trips included), 2 on a user error,
+    3 (`EXIT_LINK_LOST`) when the link was lost during the run."""
     from drivers.base import LinkClosed
     from runtime.loop import Runner, RunSettings
 
@@ -200,6 +205,12 @@ def main(args: argparse.Namespace) -> int:
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
         if console_path is not None:
             print(f"  console:  {console_path}")
+    losses = summary.get("link_losses") or []
+    if losses:
+        # A run whose link ended under it did not end normally, whatever came after.
+        print(f"corral run: the link was lost {len(losses)} time(s) (first: "
+              f"{losses[0]['detail']}); exit {EXIT_LINK_LOST}", file=sys.stderr)
+        return EXIT_LINK_LOST
     return 0
 
 
