@@ -48,6 +48,9 @@ class Hello:
     output_limits: tuple[float, ...]
     output_units: tuple[str, ...] = ()
     command_timeout_s: float = 0.05
+    session: int = 0
+    """Protocol v2 session token: from a host, the session it asks for; from a device,
+    the session it granted (the one whose commands it obeys; 0 = none)."""
 
 
 @dataclass(slots=True)
@@ -69,6 +72,8 @@ class Command:
     seq: int
     u: tuple[float, ...]
     flags: int = FLAG_OUTPUTS_ON
+    session: int = 0
+    """The host session it belongs to (set by the link; protocol v2)."""
 
 
 @dataclass(slots=True)
@@ -122,6 +127,17 @@ class LinkStats:
 
 class LinkClosed(Exception):
     """The link is gone (unplugged, broker lost, device offline)."""
+
+
+class SessionRefused(LinkClosed):
+    """The device obeys another host session (another runtime drives the rig)."""
+
+
+def new_session() -> int:
+    """A fresh random session token (1 .. 2**32 - 1), new at every link open."""
+    import secrets
+
+    return secrets.randbelow(0xFFFFFFFF) + 1
 
 
 class SampleInbox:

@@ -46,6 +46,8 @@ from drivers.base import (
     LinkStats,
     Sample,
     SampleInbox,
+    SessionRefused,
+    new_session,
 )
 from drivers.wire import (
     PROTOCOL_VERSION,
@@ -495,9 +497,9 @@ async def disconnect_client(client: aiomqtt.Client | None) -> None:
         pass
 
 
-def host_hello() -> Hello:
-    """The hello a host publishes on the command topic to ask the device to announce itself."""
-    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0)
+def host_hello(session: int = 0) -> Hello:
+    """The hello a host publishes on the command topic: announce yourself, grant `session`."""
+    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0, session)
 
 
 def _client_id(role: str, rig: str) -> str:
@@ -554,6 +556,9 @@ class MqttLink(Link):
         self._client: aiomqtt.Client | None = None
         self._reader: asyncio.Task[None] | None = None
         self._host_seq = 0
+        self.session = 0
+        """This host's session token (protocol v2), new at every open."""
+        self._taken_by = 0
         self._offset: float | None = None  # min(t_host - t_device) this session
         # Recent samples' (t_device, t_host), for latency and the command's t echo.
         self._ring = LatencyRing(self.stats)
@@ -654,12 +659,19 @@ class MqttLink(Link):
             if retain:
                 self.retained_hello = msg
                 return
-            if self.hello is not None and self._hello_waiter is None:
+            if self._hello_waiter is None:
+                if self.hello is None:
+                    return
                 # Mid-session (the device answering another host's hello, a restart, a
                 # forgery): never adopted silently; the operator sees it.
                 self.stats.hellos_midrun += 1
+                ours = msg.session == self.session
                 self.events.append(("link", f"device hello mid-run from {msg.rig_id!r} "
-                                    f"({len(msg.channels)} channels): not adopted"))
+                                    f"({len(msg.channels)} channels, session "
+                                    f"{'ours' if ours else 'other'}): not adopted"))
+                return
+            if msg.session != self.session:
+                self._taken_by = msg.session  # the device obeys another host
                 return
             self.hello = msg
             self._tracker.start(msg)
@@ -740,9 +752,16 @@ class MqttLink(Link):
         loop = asyncio.get_running_loop()
         deadline = loop.time() + self.hello_timeout_s
         assert self._hello_waiter is not None
+        self.session = new_session()
+        self._taken_by = 0
         while True:
-            await self._publish_msg(host_hello())
+            await self._publish_msg(host_hello(self.session))
             left = deadline - loop.time()
+            if left <= 0 and self._taken_by:
+                raise SessionRefused(
+                    f"rig {self.settings.rig!r} via {self.url} is driven by another host "
+                    "session: another runtime owns this rig; stop it first (the device frees "
+                    "the rig once its commands have stopped for its lease)")
             if left <= 0:
                 note = ""
                 if self.device_online is False:
@@ -776,6 +795,7 @@ class MqttLink(Link):
         lost = self._samples.closed_reason
         if self._client is None or lost is not None:
             raise LinkClosed(lost or "link closed")
+        command.session = self.session
         await self._publish(encode_body(command, t=self._ring.device_time(command.seq)))
         self._ring.note_sent(command.seq, self._clock())
 

@@ -34,8 +34,11 @@ from drivers.base import (
     Sample,
 )
 
-PROTOCOL_VERSION = 1
-"""Wire protocol version carried in every hello. Bumped on any incompatible change."""
+PROTOCOL_VERSION = 2
+"""Wire protocol version carried in every hello. Bumped on any incompatible change.
+
+v2 added the session token (a trailing element of hello and command): a device obeys
+commands only from the host session that completed the hello handshake."""
 
 KIND_HELLO = 0
 KIND_SAMPLE = 1
@@ -218,7 +221,8 @@ def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]
             KIND_SAMPLE, msg.seq % SEQ_MOD, float(msg.t_device), int(msg.status), _floats(msg.y)
         ]
     if isinstance(msg, Command):
-        return [KIND_COMMAND, msg.seq % SEQ_MOD, float(t), int(msg.flags), _floats(msg.u)]
+        return [KIND_COMMAND, msg.seq % SEQ_MOD, float(t), int(msg.flags), _floats(msg.u),
+                int(msg.session) % SEQ_MOD]
     if isinstance(msg, Heartbeat):
         return [KIND_HEARTBEAT, msg.seq % SEQ_MOD, float(msg.t), int(msg.status)]
     if isinstance(msg, Fault):
@@ -239,6 +243,7 @@ def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]
             _floats(msg.output_limits),
             [str(u) for u in msg.output_units],
             float(msg.command_timeout_s),
+            int(msg.session) % SEQ_MOD,
         ]
     raise TypeError(f"not a wire message: {type(msg).__name__}")
 
@@ -279,6 +284,16 @@ def _strlist(v: object, what: str) -> tuple[str, ...]:
     return tuple(v)
 
 
+def _session(arr: list[object], i: int) -> int:
+    """The session token at position `i` (0 when a v1 sender left it out)."""
+    if len(arr) <= i:
+        return 0
+    v = _uint(arr[i], "session")
+    if v >= SEQ_MOD:
+        raise DecodeError("session must fit in 32 bits")
+    return v
+
+
 _MIN_LEN = {
     KIND_HELLO: 12,
     KIND_SAMPLE: 5,
@@ -316,7 +331,7 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
         u = _numlist(arr[4], "u")
         if not all(math.isfinite(v) for v in u):
             raise DecodeError("command u must be finite")
-        msg = Command(seq, u, _uint(arr[3], "flags"))
+        msg = Command(seq, u, _uint(arr[3], "flags"), _session(arr, 5))
     elif kind == KIND_HEARTBEAT:
         msg = Heartbeat(seq, t, _uint(arr[3], "status"))
     elif kind == KIND_FAULT:
@@ -338,6 +353,7 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
             output_limits=_numlist(arr[9], "output_limits"),
             output_units=_strlist(arr[10], "output_units"),
             command_timeout_s=_num(arr[11], "command_timeout_s"),
+            session=_session(arr, 12),
         )
         _check_hello(msg)
     return msg, seq, t
@@ -607,15 +623,42 @@ class CommandGuard:
     hello). Commands are clamped to `limits` (`STATUS_SATURATED` when clamped).
     """
 
-    def __init__(self, limits: tuple[float, ...], timeout_s: float) -> None:
+    def __init__(self, limits: tuple[float, ...], timeout_s: float,
+                 lease_s: float | None = None) -> None:
         self.limits = tuple(float(v) for v in limits)
         self.timeout_s = float(timeout_s)
+        self.lease_s = float(lease_s) if lease_s is not None else max(1.0, 20 * self.timeout_s)
+        """An owner silent (no accepted command) this long may be replaced by a new host."""
+        self.owner: int | None = None
+        """The session whose commands are obeyed (None until a host hello)."""
+        self._owner_t = 0.0
+        self.sessions_refused = 0
+        """Host hellos refused because another live session owns the rig."""
+        self.foreign_commands = 0
+        """Commands refused because they carry another session's token."""
         self.stopped = False
         self._u = tuple(0.0 for _ in self.limits)
         self._flags = 0
         self._last_cmd_t: float | None = None
         self._last_seq: int | None = None
         self.commands = 0
+
+    def on_host_hello(self, session: int, now: float) -> int:
+        """A host asks for the rig with `session`; returns the session the device grants.
+
+        Granted (and the guard re-armed) when nobody owns the rig, when it is the
+        owner asking again, or when the owner has been silent for `lease_s`;
+        otherwise refused (counted) and the owner's session is returned, so the
+        asking host learns the rig is taken.
+        """
+        owner = self.owner
+        if owner is None or session == owner or now - self._owner_t > self.lease_s:
+            self.owner = session
+            self._owner_t = now
+            self.rearm()
+            return session
+        self.sessions_refused += 1
+        return owner
 
     def rearm(self) -> None:
         """Clear a latched stop (the host said hello again)."""
@@ -629,12 +672,16 @@ class CommandGuard:
 
     def on_command(self, cmd: Command, now: float) -> bool:
         """Apply a command received at device time `now`; False if it was rejected."""
+        if self.owner is None or cmd.session != self.owner:
+            self.foreign_commands += 1
+            return False
         if len(cmd.u) != len(self.limits) or not all(math.isfinite(v) for v in cmd.u):
             return False
         if self._last_seq is not None and not seq_newer(cmd.seq, self._last_seq):
             return False
         self._last_seq = cmd.seq
         self._last_cmd_t = now
+        self._owner_t = now
         self._u = tuple(cmd.u)
         self._flags = cmd.flags
         self.commands += 1
