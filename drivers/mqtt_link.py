@@ -36,6 +36,7 @@ import aiomqtt
 import msgpack
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
+from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from drivers.base import (
     Command,
@@ -99,6 +100,10 @@ class MqttSettings:
     tls: bool = False
     ca_file: str | None = None
     """CA bundle for the broker's certificate (None: the system store)."""
+    cert_file: str | None = None
+    """Client certificate (PEM) for brokers that require one (with ``key_file``)."""
+    key_file: str | None = None
+    """The client certificate's private key (PEM)."""
     username: str | None = None
     password: str | None = field(default=None, repr=False)
     """Read from the environment variable named by ``password_env``; never stored in a config."""
@@ -135,7 +140,7 @@ class MqttSettings:
         known = {
             "host", "port", "prefix", "tls", "ca_file", "username", "password_env", "password",
             "keepalive_s", "sample_expiry_s", "max_sample_age_s", "remote_requests",
-            "connect_timeout_s", "rig",
+            "connect_timeout_s", "rig", "cert_file", "key_file",
         }
         for k in t:
             if k not in known:
@@ -167,6 +172,15 @@ class MqttSettings:
         if ca_file is not None and not os.path.isfile(ca_file):
             raise MqttConfigError(f"{key}.ca_file", f"file {ca_file!r} does not exist.",
                                   "give the path of the CA certificate (PEM) of the broker.")
+        cert_file = typed("cert_file", str, None)
+        key_file = typed("key_file", str, None)
+        for name, path in (("cert_file", cert_file), ("key_file", key_file)):
+            if path is not None and not os.path.isfile(path):
+                raise MqttConfigError(f"{key}.{name}", f"file {path!r} does not exist.",
+                                      "give the path of the client certificate / key (PEM).")
+        if (cert_file is None) != (key_file is None):
+            raise MqttConfigError(f"{key}.cert_file", "a client certificate needs its key.",
+                                  f"set both {key}.cert_file and {key}.key_file.")
         username = typed("username", str, None)
         password = None
         pw_env = typed("password_env", str, None)
@@ -206,6 +220,8 @@ class MqttSettings:
             prefix=typed("prefix", str, "corral"),
             tls=tls,
             ca_file=ca_file,
+            cert_file=cert_file,
+            key_file=key_file,
             username=username,
             password=password,
             keepalive_s=keepalive,
@@ -376,6 +392,18 @@ def explain_mqtt_error(exc: BaseException, settings: MqttSettings) -> LinkClosed
     return LinkClosed(f"{where}: {exc or type(exc).__name__}")
 
 
+def tls_context_for(tls: bool, ca_file: str | None = None, cert_file: str | None = None,
+                    key_file: str | None = None) -> ssl.SSLContext | None:
+    """The TLS context for a broker connection (None without TLS): the broker's CA
+    (`ca_file`, else the system store) and, when given, a client certificate."""
+    if not tls:
+        return None
+    ctx = ssl.create_default_context(cafile=ca_file)
+    if cert_file is not None:
+        ctx.load_cert_chain(cert_file, key_file)
+    return ctx
+
+
 def make_client(
     settings: MqttSettings,
     *,
@@ -384,9 +412,6 @@ def make_client(
     max_queued: int = 1024,
 ) -> aiomqtt.Client:
     """An MQTT 5 aiomqtt client for these settings (call inside the running loop)."""
-    tls_context = None
-    if settings.tls:
-        tls_context = ssl.create_default_context(cafile=settings.ca_file)
     return aiomqtt.Client(
         settings.host,
         settings.port,
@@ -395,7 +420,8 @@ def make_client(
         identifier=identifier,
         protocol=aiomqtt.ProtocolVersion.V5,
         will=will,
-        tls_context=tls_context,
+        tls_context=tls_context_for(settings.tls, settings.ca_file, settings.cert_file,
+                                    settings.key_file),
         keepalive=settings.keepalive_s,
         timeout=settings.connect_timeout_s,
         max_queued_incoming_messages=max_queued,
@@ -409,6 +435,23 @@ async def connect_client(client: aiomqtt.Client, settings: MqttSettings) -> None
     except (aiomqtt.MqttError, OSError, ssl.SSLError) as exc:
         raise explain_mqtt_error(exc, settings) from None
     set_nodelay(client)
+
+
+async def admits_anonymous(settings: MqttSettings, timeout_s: float = 3.0) -> bool:
+    """True when the broker accepts a client with no user name and no password (same TLS).
+
+    On such a broker anyone who can reach it may publish commands, forged samples and
+    a status that says the device is offline (docs/mqtt.md, threat model).
+    """
+    probe = replace(settings, username=None, password=None, cert_file=None, key_file=None,
+                    connect_timeout_s=timeout_s)
+    client = make_client(probe, identifier=_client_id("probe", settings.rig or "none"))
+    try:
+        await asyncio.wait_for(connect_client(client, probe), timeout_s + 1.0)
+    except (TimeoutError, LinkClosed, OSError):
+        return False
+    await disconnect_client(client)
+    return True
 
 
 def set_nodelay(client: aiomqtt.Client) -> bool:
@@ -1035,7 +1078,11 @@ class MqttPublisher:
                 continue
             delay = self._first_delay
             try:
-                await client.subscribe(self.topics.request, qos=1)
+                # Retain-as-published: an operator request published with the retain
+                # flag keeps it on delivery, so it is recognised and ignored (a stored
+                # "arm" must never act, now or later).
+                await client.subscribe(self.topics.request,
+                                       options=SubscribeOptions(qos=1, retainAsPublished=True))
                 self.connected = True
                 assert self._connected_event is not None
                 self._connected_event.set()
