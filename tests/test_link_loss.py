@@ -241,4 +241,7 @@ def test_run_ends_on_sigterm_while_the_broker_is_gone(mosquitto, tmp_path):  # n
         end(dev)
     assert run.returncode == 3, err
     summary = json.loads(out)
-    assert summary["link_losses"] and summary["link_losses"][0]["detail"] == "broker gone"
+    # Stopping mosquitto may deliver the device's last will before the host's own
+    # connection drops: either names the loss.
+    assert summary["link_losses"]
+    assert summary["link_losses"][0]["detail"] in ("broker gone", "device offline")
