@@ -10,8 +10,8 @@
   on certificates made here with the openssl CLI; the recipe of docs/mqtt.md): an
   anonymous client is refused; a client with a valid login but no ACL grant for the
   rig's device topics publishes commands, samples and an offline status that reach
-  neither the device nor the host (mosquitto drops a denied publish silently: the check is that nothing arrives); the authenticated device
-  and host close the loop over TLS.
+  neither the device nor the host (mosquitto drops a denied publish silently: the check
+  is that nothing arrives); the authenticated device and host close the loop over TLS.
 Every wait is for an event, with a generous bound; no timing is asserted.
 """
 
