@@ -119,6 +119,12 @@ def frames_of(bodies: list[bytes], seed: int = 0) -> bytes:
     return bytes(out)
 
 
+def adopt(link: Any, hello: Hello = HELLO) -> None:
+    """Put `link` in session with `hello`, as a completed handshake leaves it."""
+    link.hello = hello
+    link._tracker.start(hello)
+
+
 def _estimator() -> Any:
     from runtime.estimator import Estimator
 
@@ -132,7 +138,7 @@ def run_serial(n: int, seed: int = 0, chunk: int = 4096) -> dict[str, Any]:
     data = frames_of(bodies, seed)
     link = SerialLink("/nonexistent")
     link._samples = SampleInbox(link.stats, 1 << 16)
-    link._on_hello(HELLO)
+    adopt(link)
     est = _estimator()
     errors: list[str] = []
     delivered = 0
@@ -161,8 +167,8 @@ def run_mqtt(n: int, seed: int = 0) -> dict[str, Any]:
     bodies, seq, t = make_corpus(n, seed)
     link = MqttLink(MqttSettings(rig="fuzz"))
     link._samples = SampleInbox(link.stats, 1 << 16)
-    link._on_topic(link.topics.hello, encode_body(HELLO), False, 0.0)
-    link._on_topic(link.topics.hello, encode_body(HELLO), False, 0.0)  # not adopted twice
+    adopt(link)
+    link._on_topic(link.topics.hello, encode_body(HELLO), False, 0.0)  # mid-run: an event
     errors: list[str] = []
     topic = link.topics.sample
     clock = make_corpus.clock  # type: ignore[attr-defined]
