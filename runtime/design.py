@@ -127,10 +127,36 @@ class RigModel:
         return self.B.shape[1]
 
 
+RIG_NAME_MAX = 64
+"""Longest rig name: it names the run's files, its socket and its MQTT topics."""
+
+
+def rig_name(value: object) -> str:
+    """``rig.name`` checked for use in file names, the socket path and topics, or a
+    one-line `ConfigError`: text of 1..`RIG_NAME_MAX` characters without ``/``, NUL,
+    control characters or MQTT wildcards, and not ``.`` or ``..``."""
+    fix = (f"write 1 to {RIG_NAME_MAX} characters of letters, digits, '-', '_' or '.', "
+           'e.g. rig.name = "pedestal-lab2".')
+    if not isinstance(value, str) or not value:
+        raise ConfigError("rig.name", f"must be a non-empty text, not {value!r}.", fix)
+    if len(value) > RIG_NAME_MAX:
+        raise ConfigError("rig.name", f"is {len(value)} characters long; it names the "
+                          f"run's files and socket, so at most {RIG_NAME_MAX}.", fix)
+    bad = sorted({c for c in value if c in "/\\+#" or not c.isprintable()})
+    if bad or value in (".", ".."):
+        shown = ", ".join(repr(c) for c in bad) or repr(value)
+        raise ConfigError("rig.name", f"{shown} cannot be part of a file name or topic.",
+                          fix)
+    return value
+
+
 def rig_model(cfg: Config) -> RigModel:
     """The nominal model from `[rig]`: a named simulated rig or explicit A, B, C."""
     sim = cfg.get("rig.sim", None)
-    name = str(cfg.get("rig.name", sim or "rig"))
+    if sim is not None and not isinstance(sim, str):
+        raise ConfigError("rig.sim", f"must be the name of a simulated rig, not {sim!r}.",
+                          'write e.g. rig.sim = "pedestal".')
+    name = rig_name(cfg.get("rig.name", sim or "rig"))
     if sim is not None:
         from sim_rigs import RIGS
 

@@ -30,6 +30,7 @@ import contextlib
 import dataclasses
 import gc
 import math
+import os
 import queue
 import sys
 import threading
@@ -892,6 +893,73 @@ def _preflight_job(cfg: Config, plants: int) -> dict[str, Any]:
     return run_preflight(cfg, plants=plants, write=True)
 
 
+# ------------------------------------------------------------------ start-up checks
+_UNIX_PATH_MAX = 107
+"""Longest Unix socket path in bytes (Linux ``sun_path`` is 108 with the NUL)."""
+
+
+def log_dir_from_config(cfg: Config) -> Path:
+    """``log.dir`` as a folder path, or a one-line error (a NUL byte, not text)."""
+    raw = cfg.get("log.dir", "runs")
+    if not isinstance(raw, str) or not raw:
+        raise ConfigError("log.dir", f"must be a folder path, not {raw!r}.",
+                          "write e.g. log.dir = \"runs\".")
+    if "\0" in raw:
+        raise ConfigError("log.dir", "contains a NUL byte, which no file name can hold.",
+                          "write a plain folder path, e.g. log.dir = \"runs\".")
+    return Path(raw)
+
+
+class RigBusy(ConfigError):
+    """Another runtime already owns this rig (its lock file is held)."""
+
+
+class RigLock:
+    """One owner per rig: an exclusive ``flock`` on ``<log.dir>/<rig>.lock`` holding the pid.
+
+    Taken when the runner is built, before any file or socket of the run exists;
+    released by `release` (the end of the run) or by the kernel when the process dies,
+    so a killed runtime never leaves a stale lock. A second runtime with the same rig
+    name and log folder gets `RigBusy` naming the owner's pid and the lock file.
+    """
+
+    def __init__(self, path: Path) -> None:
+        import fcntl
+
+        self.path = Path(path)
+        try:
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+        except OSError as exc:
+            raise ConfigError("log.dir", f"cannot create the rig lock {self.path} "
+                              f"({exc.strerror}).", "name a folder you can write.") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            try:
+                owner = os.pread(fd, 32, 0).decode("ascii", "replace").strip() or "?"
+            finally:
+                os.close(fd)
+            raise RigBusy("rig.name", f"rig {self.path.stem!r} is already run by pid {owner} "
+                          f"(lock {self.path}); this runtime did not start.",
+                          "stop that runtime first, or give this one another rig.name or "
+                          "log.dir.") from None
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+        self.fd: int | None = fd
+
+    def release(self) -> None:
+        """Give the rig up (idempotent). The lock file stays; only the lock goes."""
+        fd, self.fd = self.fd, None
+        if fd is not None:
+            with contextlib.suppress(OSError):
+                os.ftruncate(fd, 0)
+            os.close(fd)
+
+    def __del__(self) -> None:
+        with contextlib.suppress(Exception):
+            self.release()
+
+
 # ------------------------------------------------------------------ the runner
 class Runner:
     """Builds a run from a config and drives it: tasks, clock, shutdown."""
@@ -916,16 +984,27 @@ class Runner:
         if self.faults.faults and not self.simulated:
             raise ConfigError("faults", "fault injection needs the simulated rig.",
                               "drop --fault and [[faults]] for a real rig.")
-        self.log_dir = Path(str(cfg.get("log.dir", "runs")))
+        self.log_dir = log_dir_from_config(cfg)
         try:
             self.log_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise ConfigError("log.dir", f"cannot create the log folder {self.log_dir} "
                               f"({exc.strerror})", "name a folder you can write, e.g. "
                               "--set log.dir=runs") from None
-        self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
-                             self.simulated, self.faults)
         self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"
+        if len(os.fsencode(self.socket_path)) > _UNIX_PATH_MAX:
+            raise ConfigError("log.dir", f"the operator socket path {self.socket_path} is "
+                              f"longer than the {_UNIX_PATH_MAX} bytes a Unix socket allows",
+                              "name a shorter folder (or a shorter rig.name).")
+        # One owner per rig: before any file of this run exists, so a refused second
+        # runtime leaves nothing behind and never touches the first one's socket.
+        self.lock = RigLock(self.log_dir / f"{self.design.rig.name}.lock")
+        try:
+            self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
+                                 self.simulated, self.faults)
+        except BaseException:
+            self.lock.release()
+            raise
         rate = cfg.number("telemetry.rate_hz", 25.0, positive=True, unit="Hz")
         self.telemetry = TelemetryServer(self.socket_path, self.core.hello(), self.core.submit,
                                          rate_hz=rate,
@@ -1005,6 +1084,7 @@ class Runner:
             sys.setswitchinterval(old_switch)
             gc.unfreeze()
             self.core.close()
+            self.lock.release()
         if self.error is not None:
             raise self.error
         return self.summary()
@@ -1075,6 +1155,7 @@ class Runner:
         finally:
             await link.close()
             core.close()
+            self.lock.release()
         return self.summary()
 
     async def _host_clocked(self) -> None:

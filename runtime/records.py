@@ -79,10 +79,26 @@ def _packer() -> msgpack.Packer:
 
 
 def log_paths(log_dir: str | Path, rig: str, stamp: str | None = None) -> tuple[Path, Path]:
-    """The run log and trip log paths of one run: `<dir>/<rig>-<YYYYmmdd-HHMMSS>.run|.trips`."""
+    """The run log and trip log paths of one run, claimed so no other run gets them.
+
+    `<dir>/<rig>-<YYYYmmdd-HHMMSS>-<pid>.run|.trips`; when that trip log already exists (a
+    second run in the same second from the same process) a sequence suffix ``-2``, ``-3``
+    ... is added. The trip log is created empty here with O_EXCL, so two runs never share
+    a trip file (and trip ids stay unique per file) nor a run log.
+    """
     stamp = stamp or time.strftime("%Y%m%d-%H%M%S")
-    base = Path(log_dir) / f"{rig}-{stamp}"
-    return base.with_suffix(RUNLOG_SUFFIX), base.with_suffix(TRIPS_SUFFIX)
+    stem = f"{rig}-{stamp}-{os.getpid()}"
+    for n in range(1, 10_000):
+        base = Path(log_dir) / (stem if n == 1 else f"{stem}-{n}")
+        # Not with_suffix: a dot in the rig name would be taken for a suffix.
+        trips = Path(f"{base}{TRIPS_SUFFIX}")
+        try:
+            fd = os.open(trips, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            continue
+        os.close(fd)
+        return Path(f"{base}{RUNLOG_SUFFIX}"), trips
+    raise FileExistsError(f"no free trip log name for {stem} in {log_dir}")
 
 
 def _fsync_dir(path: Path) -> None:
