@@ -106,9 +106,11 @@ def _check_serial_port_exists(spec: str) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
-    """Run; exit 0 when the run ended normally (trips included), 2 on a user error."""
+    """Run; exit 0 when the run ended normally (trips included), 2 on a user error, 71
+    (`runtime.loop.EXIT_INTERNAL_TRIP`) when an exception inside the tick ended it through
+    the ``internal`` trip."""
     from drivers.base import LinkClosed
-    from runtime.loop import Runner, RunSettings
+    from runtime.loop import EXIT_INTERNAL_TRIP, Runner, RunSettings
 
     if args.duration is not None and not 0 < args.duration < math.inf:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10 "
@@ -200,6 +202,9 @@ def main(args: argparse.Namespace) -> int:
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
         if console_path is not None:
             print(f"  console:  {console_path}")
+    if summary.get("internal_error"):
+        # The tick raised: outputs went off and the trip is on disk (rule `internal`).
+        return EXIT_INTERNAL_TRIP
     return 0
 
 

@@ -384,6 +384,10 @@ class TickCore:
                                         daemon=True)
         self._writer.start()
         self.trips_written = 0
+        self.durable_trip_id = 0
+        """Highest trip id whose record is on disk (fsynced): nothing announces a later one."""
+        self.internal: BaseException | None = None
+        """The exception that ended the run through the `internal` trip (None: none)."""
 
         # live state
         self.tick = 0
@@ -460,9 +464,8 @@ class TickCore:
                "tick": self.tick, "kind": kind, "detail": detail, **extra}
         self.recent_events.append(rec)
         del self.recent_events[:-20]
+        # Sent to the socket (and MQTT) by the writer thread once it is on disk.
         self._writes.put(("event", rec))
-        if self.telemetry is not None:
-            self.telemetry.post(rec)
 
     def _drain_supervisor_events(self) -> None:
         ev = self.sup.events
@@ -472,7 +475,26 @@ class TickCore:
 
     # ------------------------------------------------------------- the tick
     def step(self, sample: Sample | None, now: float) -> Command:
-        """One tick for this period's sample (None: none arrived); returns the command."""
+        """One tick for this period's sample (None: none arrived); returns the command.
+
+        The last line of defence: any exception raised inside the tick becomes the
+        `internal` trip (`internal_trip`): outputs off, the record on disk, then the
+        runner ends the run. After that every tick commands outputs off.
+        """
+        if self.internal is not None:
+            return self._outputs_off(sample)
+        try:
+            return self._step(sample, now)
+        except Exception as exc:  # noqa: BLE001 - the last line of defence
+            return self.internal_trip(exc, sample)
+
+    def _outputs_off(self, sample: Sample | None) -> Command:
+        self.seq += 1
+        self.u = self.u_prev = np.zeros(self.m)
+        self.outputs_on = False
+        return Command(sample.seq if sample is not None else self.seq, (0.0,) * self.m, 0)
+
+    def _step(self, sample: Sample | None, now: float) -> Command:
         Ts = self.Ts
         k = self.tick
         self.t = k * Ts
@@ -601,7 +623,19 @@ class TickCore:
         return cmd
 
     def after_send(self, t_sent: float) -> None:
-        """Record the tick (after the command is out): row, ring, trip record, telemetry."""
+        """Record the tick (after the command is out): row, ring, trip record, telemetry.
+
+        An exception here is the `internal` trip too (the next command is outputs off)."""
+        if self.internal is not None:
+            self.tick += 1
+            return
+        try:
+            self._after_send(t_sent)
+        except Exception as exc:  # noqa: BLE001 - the last line of defence
+            self.internal_trip(exc, None)
+            self.tick += 1
+
+    def _after_send(self, t_sent: float) -> None:
         k = self.tick
         row = self.row
         sl = self.slot
@@ -640,7 +674,10 @@ class TickCore:
                 self._flush_post()
         if self.sup.events:
             self._drain_supervisor_events()
-        if self.telemetry is not None and k % self.tel_every == 0:
+        # Durable before announced: while a trip's record is not yet on disk, no telemetry
+        # (its mode, latch and trip list would announce it).
+        if (self.telemetry is not None and k % self.tel_every == 0
+                and self.durable_trip_id >= self.trip_id):
             self.telemetry.publish(self.telemetry_record())
         self.tick = k + 1
 
@@ -759,9 +796,8 @@ class TickCore:
                    "later": [e["rule"] for e in ctx["later"]]}
         self.trips.append(summary)
         self.current_trip = summary
-        self._writes.put(("trip", rec))
-        if self.telemetry is not None:
-            self.telemetry.post({"type": "trip", **summary})
+        # The writer thread announces it (socket, MQTT, stderr) once it is on disk.
+        self._writes.put(("trip", rec, summary))
         self.post_trip = self.trip_id
         self.post_count = 0
         self.post_later = []
@@ -782,7 +818,7 @@ class TickCore:
             item = self._writes.get()
             if item is None:
                 return
-            kind, rec = item
+            kind, rec = item[0], item[1]
             try:
                 if kind in ("trip", "post"):
                     rec = dict(rec)
@@ -792,13 +828,84 @@ class TickCore:
             except Exception as exc:  # noqa: BLE001 - a full disk must not stop the loop
                 print(f"corral: could not write the trip log: {exc}", file=self.console(),
                       flush=True)
+                if kind == "trip":  # not durable, but the operator must still hear of it
+                    self._announce_trip(rec, item[2])
                 continue
+            # On disk (fsynced) now: only from here on may anyone hear of it.
             if kind == "trip":
-                self.trips_written += 1
-                if self.settings.echo_trips:
-                    print(f"corral: trip {rec['id']} ({rec['first_out']['rule']}, action "
-                          f"{rec['action']}) logged to {self.trip_path}", file=self.console(),
-                          flush=True)
+                self._announce_trip(rec, item[2])
+            elif kind == "event" and self.telemetry is not None:
+                self.telemetry.post(rec)
+
+    def _announce_trip(self, rec: dict[str, Any], summary: dict[str, Any]) -> None:
+        """Tell the operator of a trip whose record is on disk: socket, MQTT, stderr."""
+        self.trips_written += 1
+        self.durable_trip_id = max(self.durable_trip_id, int(rec["id"]))
+        if self.telemetry is not None:
+            self.telemetry.post({"type": "trip", **summary})
+        if self.settings.echo_trips:
+            print(f"corral: trip {rec['id']} ({rec['first_out']['rule']}, action "
+                  f"{rec['action']}) logged to {self.trip_path}", file=self.console(),
+                  flush=True)
+
+    def internal_trip(self, exc: BaseException, sample: Sample | None = None) -> Command:
+        """The `internal` trip: an exception escaped the tick.
+
+        Outputs off at once (the returned command), the trip record written and fsynced
+        HERE, in the calling thread (not queued: the run is about to end), and only then
+        announced. The runner sees `internal` set and ends the run; ``corral run`` then
+        exits with `EXIT_INTERNAL_TRIP`.
+        """
+        import traceback
+
+        self.internal = exc
+        cmd = self._outputs_off(sample)
+        with contextlib.suppress(Exception):
+            self.fb = None
+            self.law.frozen = True
+        with contextlib.suppress(Exception):
+            self.sup.trip("internal", "outputs_off")
+            self.watchdog.by_id["internal"].active = True
+        self.trip_id += 1
+        text = f"{type(exc).__name__}: {exc}"
+        first = {"rule": "internal", "signal": "exception inside the tick", "value": text,
+                 "threshold": 0.5}
+        t_detect = time.monotonic()
+        rec: dict[str, Any] = {
+            "type": "trip", "id": self.trip_id, "t_mono": t_detect, "t_wall": time.time(),
+            "tick": self.tick, "t": self.t, "first_out": first, "later": [],
+            "action": "outputs_off", "detect_to_action_us": 0.0,
+            "exception": "".join(traceback.format_exception(exc))[-4000:],
+            "config_hash": self.config_hash, "software_version": __version__,
+            "rig": self.design.rig.name, "events": [], "pre": [], "snapshot": {},
+        }
+        with contextlib.suppress(Exception):  # best effort: the state may be what broke
+            n_pre = min(self.tick, self.pre_n)
+            idx = np.arange(self.tick - n_pre, self.tick) % self.pre_n
+            rec["pre"] = self.ring[idx].tolist()
+            rec["events"] = list(self.recent_events)
+            rec["snapshot"] = {"mode": self.sup.mode, "x": np.asarray(self.x).tolist(),
+                               "u_applied": [0.0] * self.m,
+                               "u_cmd": np.asarray(self.u_cmd).tolist(),
+                               "eps": self.eps_now, "ratio": self.ratio}
+        summary = {"id": self.trip_id, "rule": "internal", "tick": self.tick, "t": self.t,
+                   "action": "outputs_off", "detect_to_action_us": 0.0, "value": text,
+                   "threshold": 0.5, "later": []}
+        self.trips.append(summary)
+        self.current_trip = summary
+        try:
+            self.trip_log.append(rec)
+        except Exception as log_exc:  # noqa: BLE001 - still turn the outputs off and say so
+            print(f"corral: INTERNAL trip ({text}); outputs off; the trip log could not be "
+                  f"written: {log_exc}", file=self.console(), flush=True)
+            return cmd
+        self.trips_written += 1
+        self.durable_trip_id = max(self.durable_trip_id, self.trip_id)
+        if self.telemetry is not None:
+            self.telemetry.post({"type": "trip", **summary})
+        print(f"corral: INTERNAL trip {self.trip_id} ({text}); outputs off; logged to "
+              f"{self.trip_path}; the run ends", file=self.console(), flush=True)
+        return cmd
 
     def console(self) -> Any:
         """Where progress lines go: `RunSettings.console` (a file beside the logs while a
@@ -880,6 +987,21 @@ def link_stats_now(stats: Any, recent: int = 1000) -> dict[str, Any]:
     else:
         out["latency_p50_us"] = out["latency_p99_us"] = None
     return out
+
+
+def _guarded_tick(core: TickCore, link: Any, t_nom: float) -> Command:
+    """The simulated rig's sample for rig time t_nom and the tick on it; an exception
+    reading the rig is the `internal` trip too (the same last line of defence)."""
+    try:
+        sample = link.sample_now(t_nom)
+    except Exception as exc:  # noqa: BLE001 - the last line of defence
+        return core.internal_trip(exc, None)
+    return core.step(sample, t_nom)
+
+
+EXIT_INTERNAL_TRIP = 71
+"""``corral run`` exit status when the run ended through the `internal` trip (an exception
+inside the tick: outputs off, the record in the trip log). 70 stays an uncaught crash."""
 
 
 def _finite(v: float) -> float | None:
@@ -1147,11 +1269,12 @@ class Runner:
         try:
             for _ in range(ticks):
                 t_nom = core.tick * core.Ts
-                sample = link.sample_now(t_nom)  # type: ignore[attr-defined]
-                cmd = core.step(sample, t_nom)
+                cmd = _guarded_tick(core, link, t_nom)
                 t_sent = time.monotonic()
                 link.apply(cmd)  # type: ignore[attr-defined]
                 core.after_send(t_sent)
+                if core.internal is not None:
+                    break
         finally:
             await link.close()
             core.close()
@@ -1176,12 +1299,11 @@ class Runner:
             # Rig time of this tick on the host clock: skipped deadlines are counted by
             # the overrun rule, they do not age the simulated rig's samples.
             t_nom = base[0] + core.tick * core.Ts
-            sample = link.sample_now(t_nom)  # type: ignore[attr-defined]
-            cmd = core.step(sample, t_nom)
+            cmd = _guarded_tick(core, link, t_nom)
             t_sent = mono()
             link.apply(cmd)  # type: ignore[attr-defined]
             core.after_send(t_sent)
-            if end_tick is not None and core.tick >= end_tick:
+            if (end_tick is not None and core.tick >= end_tick) or core.internal is not None:
                 clock.stop()
 
         def on_exit() -> None:
@@ -1245,6 +1367,8 @@ class Runner:
                 t_sent = mono()
                 await link.send(cmd)
                 core.after_send(t_sent)
+                if core.internal is not None:
+                    break
         except LinkClosed:
             pass
         finally:
@@ -1271,4 +1395,6 @@ class Runner:
             "config_hash": core.config_hash,
             "mqtt": self.mqtt.summary if self.mqtt is not None else None,
             "preflight": self.preflight,
+            "internal_error": (f"{type(core.internal).__name__}: {core.internal}"
+                               if core.internal is not None else None),
         }

@@ -36,17 +36,16 @@ import msgpack
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime.watchdog import RULE_IDS
+
 TRIPS_FORMAT = "corral-trips"
 RUNLOG_FORMAT = "corral-runlog"
 FORMAT_VERSION = 1
 TRIPS_SUFFIX = ".trips"
 RUNLOG_SUFFIX = ".run"
 
-#: Watchdog rule ids, in the order the contract lists them.
-RULES: tuple[str, ...] = (
-    "margin_warning", "margin", "predicted_crossing", "clamp", "stale", "seq_gap",
-    "link_loss", "nonfinite", "jump", "saturation", "overrun", "weight_norm", "weight_rate",
-)
+#: Watchdog rule ids, in the order the contract lists them (one list: the watchdog's).
+RULES: tuple[str, ...] = RULE_IDS
 #: Supervisor modes, in the order used when a mode is recorded as an integer code.
 MODES: tuple[str, ...] = ("idle", "settling", "engaged", "fallback", "stopped")
 #: Margin levels (fractions of eps) when neither the log nor its config names them.

@@ -7,13 +7,16 @@ Times count from the start of the run (seconds of rig time). Kinds:
 - sensor kinds, applied to what the rig reports: ``sensor_freeze`` (readings
   held), ``spike`` (one reading offset by ``size`` on ``axis``), ``dropout``
   (no samples), ``nan`` (readings become NaN), ``delay`` (readings ``ticks``
-  periods old, timestamped when measured);
+  periods old, timestamped when measured), ``malformed`` (a well-formed sample
+  one reading short: a frame that lies about its channel count);
 - plant kinds, applied to the physics: ``effectiveness_loss`` (motor
   effectiveness times ``scale``), ``disturbance_step`` (extra acceleration
   ``size`` rad/s^2 on ``axis``);
 - link kinds, for served or in-process links: ``corrupt``, ``drop`` (a sample
   lost on the way: its sequence number is skipped), ``link_delay``,
-  ``disconnect``.
+  ``disconnect``;
+- ``tick_error``: a test hook for the runtime's last line of defence: reading
+  the in-process rig raises inside the tick (the `internal` trip must follow).
 
 Every fault lasts ``duration`` seconds (default: to the end of the run;
 a spike is one reading). ``axis`` names a state (``az``, ``el_rate``) or an
@@ -35,10 +38,11 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-SENSOR_KINDS = ("sensor_freeze", "spike", "dropout", "nan", "delay")
+SENSOR_KINDS = ("sensor_freeze", "spike", "dropout", "nan", "delay", "malformed")
 PLANT_KINDS = ("effectiveness_loss", "disturbance_step")
 LINK_KINDS = ("corrupt", "drop", "link_delay", "disconnect")
-KINDS = SENSOR_KINDS + PLANT_KINDS + LINK_KINDS
+TEST_KINDS = ("tick_error",)
+KINDS = SENSOR_KINDS + PLANT_KINDS + LINK_KINDS + TEST_KINDS
 
 # Parameters each kind accepts, with defaults.
 DEFAULTS: dict[str, dict[str, Any]] = {
@@ -47,12 +51,14 @@ DEFAULTS: dict[str, dict[str, Any]] = {
     "dropout": {},
     "nan": {"axis": "all"},
     "delay": {"ticks": 5},
+    "malformed": {},
     "effectiveness_loss": {"axis": "all", "scale": 0.3},
     "disturbance_step": {"axis": 1, "size": 3.0},
     "corrupt": {"every": 1},
     "drop": {"count": 1},
     "link_delay": {"seconds": 0.01},
     "disconnect": {},
+    "tick_error": {},
 }
 
 
@@ -62,6 +68,11 @@ _NUMBERS = ("size", "scale", "seconds")
 
 class FaultError(ValueError):
     """A fault text or table is unusable; the message says what to write instead."""
+
+
+class InjectedTickError(RuntimeError):
+    """Raised by the ``tick_error`` fault inside the tick (a test of the last line of
+    defence: the runtime must turn it into the ``internal`` trip)."""
 
 
 @dataclass(frozen=True)
@@ -297,6 +308,11 @@ class FaultInjector:
             kind = f.kind
             if kind == "dropout":
                 return None
+            if kind == "tick_error":
+                raise InjectedTickError(f"injected tick_error fault at t = {t:.3f} s")
+            if kind == "malformed":
+                out = out[..., :-1]
+                continue
             if kind == "delay":
                 d = int(f.param("ticks"))
                 out = self._history[max(0, len(self._history) - 1 - d)].copy()
