@@ -626,14 +626,18 @@ class TickCore:
         """Record the tick (after the command is out): row, ring, trip record, telemetry.
 
         An exception here is the `internal` trip too (the next command is outputs off)."""
+        k = self.tick
         if self.internal is not None:
-            self.tick += 1
+            # Best effort: the row of the tick that tripped (outputs off) goes to the log.
+            with contextlib.suppress(Exception):
+                self._after_send(t_sent)
+            self.tick = k + 1
             return
         try:
             self._after_send(t_sent)
         except Exception as exc:  # noqa: BLE001 - the last line of defence
             self.internal_trip(exc, None)
-            self.tick += 1
+            self.tick = k + 1
 
     def _after_send(self, t_sent: float) -> None:
         k = self.tick
@@ -859,6 +863,7 @@ class TickCore:
         import traceback
 
         self.internal = exc
+        self._pending_trip = None
         cmd = self._outputs_off(sample)
         with contextlib.suppress(Exception):
             self.fb = None
