@@ -196,11 +196,11 @@ def test_lock_is_released_at_the_end_and_by_a_killed_owner(tmp_path):
     b = Runner(cfg, RunSettings(echo_trips=False))  # the first run ended: free again
     b.lock.release()
     # A SIGKILLed owner leaves the lock file but not the lock (the kernel drops it).
-    code = ("import sys, time; sys.path.insert(0, %r)\n"
+    lock_path = str(tmp_path / "pedestal-sim.lock")
+    code = (f"import sys, time; sys.path.insert(0, {str(ROOT)!r})\n"
             "from runtime.loop import RigLock\n"
             "from pathlib import Path\n"
-            "lock = RigLock(Path(%r)); print('held', flush=True); time.sleep(60)"
-            % (str(ROOT), str(tmp_path / "pedestal-sim.lock")))
+            f"lock = RigLock(Path({lock_path!r})); print('held', flush=True); time.sleep(60)")
     holder = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
     try:
         assert holder.stdout is not None and holder.stdout.readline().strip() == "held"

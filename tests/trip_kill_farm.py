@@ -3,8 +3,9 @@
 ``python tests/trip_kill_farm.py BASE N PARALLEL``: the parent loads the code and compiles
 the law once (no threads yet, so forking is safe), then forks N children, at most PARALLEL
 at a time. Child i runs the demo config (simulated rig, not armed: the test arms it over
-the socket once connected) with ``log.dir = BASE/i`` and a spike at 2 s, for at most 4 s. For each child the parent prints ``i pid`` on stdout
-as soon as it is forked, and ``end i status`` when it is reaped, so the test can connect to
+the socket once connected) with ``log.dir = BASE/i`` and a spike at 2 s, for at most 4 s.
+For each child the parent prints ``i pid`` on stdout as soon as it is forked, and
+``end i status`` when it is reaped, so the test can connect to
 ``BASE/i/pedestal-sim.sock`` and SIGKILL the child the moment the trip is announced.
 """
 
