@@ -384,6 +384,12 @@ class TickCore:
                                         daemon=True)
         self._writer.start()
         self.trips_written = 0
+        self.events_per_s = cfg.number("log.events_per_s", 20, minimum=1)
+        """Most operator events written to the trip log per second (the rest counted)."""
+        self._ev_window_t = -math.inf
+        self._ev_count = 0
+        self._ev_suppressed = 0
+        self.events_suppressed = 0
         self.durable_trip_id = 0
         """Highest trip id whose record is on disk (fsynced): nothing announces a later one."""
         self.internal: BaseException | None = None
@@ -460,6 +466,30 @@ class TickCore:
         self.fb = make_fallback(kind, self.design, self.fb_settings, self.u_prev, self.x)
 
     def _event(self, kind: str, detail: str, **extra: Any) -> None:
+        # Bounded: at most `events_per_s` event records per second reach the trip log
+        # (each is fsynced); the rest are counted and summed up in one
+        # ``events_suppressed`` record when the next second's first event comes (or at
+        # the end of the run). A request flood cannot fill the disk.
+        now = time.monotonic()
+        if now - self._ev_window_t >= 1.0:
+            self._flush_suppressed()
+            self._ev_window_t = now
+            self._ev_count = 0
+        if self._ev_count >= self.events_per_s:
+            self._ev_suppressed += 1
+            self.events_suppressed += 1
+            return
+        self._ev_count += 1
+        self._put_event(kind, detail, **extra)
+
+    def _flush_suppressed(self) -> None:
+        if self._ev_suppressed:
+            n, self._ev_suppressed = self._ev_suppressed, 0
+            self._put_event("events_suppressed", f"{n} events in one second over the limit "
+                            f"of {self.events_per_s:g} per second (log.events_per_s)",
+                            count=n)
+
+    def _put_event(self, kind: str, detail: str, **extra: Any) -> None:
         rec = {"type": "event", "t_mono": time.monotonic(), "t_wall": time.time(),
                "tick": self.tick, "kind": kind, "detail": detail, **extra}
         self.recent_events.append(rec)
@@ -922,6 +952,7 @@ class TickCore:
         if self.post_trip is not None:
             self._flush_post()
         self._drain_supervisor_events()
+        self._flush_suppressed()
         self._writes.put(None)
         self._writer.join(10.0)
         self.trip_log.close()
@@ -1037,6 +1068,37 @@ def log_dir_from_config(cfg: Config) -> Path:
     return Path(raw)
 
 
+def operator_settings(cfg: Config) -> dict[str, Any]:
+    """Who may use the operator socket and how fast, from ``[operator]``.
+
+    ``socket_group`` (a group name or gid; mode 0660 for it, else 0600),
+    ``allowed_uids`` (peer uids accepted; default this process's uid and root),
+    ``request_rate_hz`` (default 20) and ``request_burst`` (default 20).
+    """
+    import grp
+
+    gid = None
+    group = cfg.get("operator.socket_group", None)
+    if group is not None:
+        try:
+            gid = (int(group) if isinstance(group, int) and not isinstance(group, bool)
+                   else grp.getgrnam(str(group)).gr_gid)
+        except KeyError:
+            raise ConfigError("operator.socket_group", f"no group called {group!r}.",
+                              "name a group of this machine (see /etc/group) or leave it "
+                              "out for a socket only you can use.") from None
+    uids = cfg.get("operator.allowed_uids", None)
+    if uids is not None:
+        if not (isinstance(uids, list) and all(isinstance(u, int) and not isinstance(u, bool)
+                                               and u >= 0 for u in uids)):
+            raise ConfigError("operator.allowed_uids", f"must be a list of uids, not {uids!r}.",
+                              "write e.g. operator.allowed_uids = [1000, 0].")
+    return {"socket_gid": gid, "allowed_uids": uids,
+            "request_rate_hz": cfg.number("operator.request_rate_hz", 20.0, positive=True,
+                                          unit="Hz"),
+            "request_burst": cfg.number("operator.request_burst", 20.0, minimum=1)}
+
+
 class RigBusy(ConfigError):
     """Another runtime already owns this rig (its lock file is held)."""
 
@@ -1137,7 +1199,8 @@ class Runner:
                                          rate_hz=rate,
                                          client_buffer=int(cfg.number(
                                              "telemetry.client_buffer", 256 * 1024,
-                                             positive=True)))
+                                             positive=True)),
+                                         **operator_settings(cfg))
         self.core.telemetry = self.telemetry
         self.mqtt_settings = mqtt_telemetry_settings(cfg, settings.link, settings.telemetry_mqtt,
                                                      self.design.rig.name)
@@ -1395,6 +1458,8 @@ class Runner:
             "mode": core.sup.mode, "latched": core.sup.latched,
             "engagements": len(core.engagements), "clock": self.clock.granted,
             "run_log_dropped": core.run_log.dropped,
+            "operator": {**self.telemetry.counters,
+                         "events_suppressed": core.events_suppressed},
             "telemetry_clients_dropped": self.telemetry.dropped_clients,
             "simulated": self.simulated, "rig": self.design.rig.name,
             "config_hash": core.config_hash,
