@@ -894,6 +894,7 @@ class TickCore:
 
         self.internal = exc
         self._pending_trip = None
+        self.t = self.tick * self.Ts  # the tick that raised (it may not have set t)
         cmd = self._outputs_off(sample)
         with contextlib.suppress(Exception):
             self.fb = None
