@@ -48,7 +48,7 @@ MATRIX: dict[str, tuple[str, tuple[str, ...], str]] = {
     "effectiveness_loss": ("effectiveness_loss:scale=0.3", ("margin", "predicted_crossing"),
                            "the drives keep 30 % of their effectiveness"),
     "disturbance_step": ("disturbance_step:size=3", (),
-                         "below threshold by design: the law absorbs 3 rad/s^2"),
+                         "the law absorbs a 3 rad/s^2 step within the bound"),
     "saturation": ("saturation:scale=0.02", ("saturation", "margin", "predicted_crossing"),
                    "the elevation drive keeps 2 % of its effectiveness"),
     "corrupt": ("corrupt:every=1", ("stale", "link_loss"), "every frame fails its CRC"),
@@ -96,7 +96,7 @@ def table(rows: list[tuple[str, str, dict, tuple[str, ...], str]]) -> str:
         rule = res["rule"] or "none"
         after = "" if res["after_ms"] is None else f"{res['after_ms']:.0f} ms"
         if res["rule"] is None:
-            verdict = "no trip: " + why if not right else "MISSED"
+            verdict = "no trip (below threshold by design)" if not right else "MISSED"
         elif res["rule"] in right:
             verdict = "right"
         else:
