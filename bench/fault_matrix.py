@@ -125,8 +125,11 @@ def main() -> int:
     if args.write:
         doc = ROOT / "docs" / "faults.md"
         text = doc.read_text()
-        new = re.sub(r"(<!-- matrix:begin -->\n).*?(\n<!-- matrix:end -->)",
-                     lambda m: m.group(1) + out + m.group(2), text, flags=re.S)
+        new = re.sub(r"(<!-- matrix:begin -->\n).*?(<!-- matrix:end -->)",
+                     lambda m: m.group(1) + out + "\n" + m.group(2), text, flags=re.S)
+        if new == text and out not in text:
+            print(f"no <!-- matrix:begin/end --> markers in {doc}", file=sys.stderr)
+            return 2
         doc.write_text(new)
         print(f"written to {doc}")
     bad = [r for r in rows if (r[2]["rule"] is None and r[3]) or
