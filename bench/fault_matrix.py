@@ -67,6 +67,53 @@ MATRIX: dict[str, tuple[str, tuple[str, ...], str]] = {
 }
 
 
+SERVED = ROOT / "configs" / "pedestal-served.toml"
+# Kinds the served device injects itself (sim_rigs.device); the rest wait (docs/faults.md).
+SERIAL_KINDS = ("sensor_freeze", "spike", "dropout", "nan", "delay", "malformed",
+                "effectiveness_loss", "disturbance_step", "saturation", "corrupt", "drop",
+                "link_delay", "disconnect")
+
+
+def run_serial(kind: str, text: str, base: Path) -> dict:
+    """The kind injected by the served device (its own clock, a real pseudo-terminal), the
+    runtime rig-clocked over `serial:` in real time."""
+    import threading
+
+    from sim_rigs.device import PedestalDevice
+    from sim_rigs.faults import FaultSchedule, parse_fault
+    from sim_rigs.pedestal import Pedestal
+
+    head, _, tail = text.partition(":")
+    fault = f"{head}@{AT}" + (f":{tail}" if tail else "")
+    d = base / f"serial-{kind}"
+    d.mkdir(parents=True, exist_ok=True)
+    cfg = load_config(SERVED, [f"log.dir={d}", "supervisor.settle_time=0.2",
+                               "log.pre_capture_s=0.2", "log.post_capture_s=0.1"])
+    device = PedestalDevice(Pedestal.create(), period=float(cfg.get("loop.period", 0.002)),
+                            faults=FaultSchedule([parse_fault(fault)]))
+    path = device.serve_pty(str(d / "rig.tty"))
+    thread = threading.Thread(target=device.run, daemon=True)
+    thread.start()
+    try:
+        r = Runner(cfg, RunSettings(duration=AT + 1.5, auto_arm=True, link=f"serial:{path}",
+                                    preflight=False, echo_trips=False))
+        summary = asyncio.run(r.run())
+    finally:
+        device.stop()
+        thread.join(10)
+    return _first(summary)
+
+
+def _first(summary: dict) -> dict:
+    trips = load_trips([summary["trip_log"]])
+    if not trips:
+        return {"rule": None, "after_ms": None, "action": None,
+                "error": summary.get("internal_error")}
+    rec = trips[0].record
+    return {"rule": rec["first_out"]["rule"], "after_ms": (rec["t"] - AT) * 1e3,
+            "action": rec["action"], "error": summary.get("internal_error")}
+
+
 def run_one(kind: str, text: str, base: Path) -> dict:
     head, _, tail = text.partition(":")
     fault = f"{head}@{AT}" + (f":{tail}" if tail else "")
@@ -80,13 +127,7 @@ def run_one(kind: str, text: str, base: Path) -> dict:
         summary = asyncio.run(r.run())
     else:
         summary = asyncio.run(r.run_ticks(int(round(RUN_S / r.design.Ts))))
-    trips = load_trips([summary["trip_log"]])
-    if not trips:
-        return {"rule": None, "after_ms": None, "action": None,
-                "error": summary.get("internal_error")}
-    rec = trips[0].record
-    return {"rule": rec["first_out"]["rule"], "after_ms": (rec["t"] - AT) * 1e3,
-            "action": rec["action"], "error": summary.get("internal_error")}
+    return _first(summary)
 
 
 def table(rows: list[tuple[str, str, dict, tuple[str, ...], str]]) -> str:
@@ -110,16 +151,21 @@ def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--write", action="store_true", help="write the table into docs/faults.md")
     ap.add_argument("--only", nargs="*", help="kinds to run (default: all)")
+    ap.add_argument("--link", nargs="*", default=["sim"], choices=("sim", "serial"),
+                    help="links to run (default: sim; serial serves the rig over a pty)")
     args = ap.parse_args()
     rows = []
     with tempfile.TemporaryDirectory() as tmp:
         for kind, (text, right, why) in MATRIX.items():
             if args.only and kind not in args.only:
                 continue
-            res = run_one(kind, text, Path(tmp))
-            rows.append((kind, "sim", res, right, why))
-            print(f"{kind:20s} {res['rule']!s:20s} {res['after_ms']!s:>10.10s} ms "
-                  f"{res['action']!s}", flush=True)
+            for link in args.link:
+                if link == "serial" and kind not in SERIAL_KINDS:
+                    continue
+                res = (run_one if link == "sim" else run_serial)(kind, text, Path(tmp))
+                rows.append((kind, link, res, right, why))
+                print(f"{kind:20s} {link:6s} {res['rule']!s:20s} {res['after_ms']!s:>10.10s} "
+                      f"ms {res['action']!s}", flush=True)
     out = table(rows)
     print(out)
     if args.write:
