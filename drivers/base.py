@@ -48,6 +48,9 @@ class Hello:
     output_limits: tuple[float, ...]
     output_units: tuple[str, ...] = ()
     command_timeout_s: float = 0.05
+    session: int = 0
+    """Protocol v2 session token: from a host, the session it asks for; from a device,
+    the session it granted (the one whose commands it obeys; 0 = none)."""
 
 
 @dataclass(slots=True)
@@ -69,6 +72,8 @@ class Command:
     seq: int
     u: tuple[float, ...]
     flags: int = FLAG_OUTPUTS_ON
+    session: int = 0
+    """The host session it belongs to (set by the link; protocol v2)."""
 
 
 @dataclass(slots=True)
@@ -90,6 +95,13 @@ class LinkStats:
     send_drops: int = 0
     """Commands dropped because the device is not reading."""
     reconnects: int = 0
+    rejected: int = 0
+    """Samples refused as implausible against the device's hello (channel count, time,
+    sequence jump; `drivers.wire.SampleGate`)."""
+    resyncs: int = 0
+    """Times the sample stream was resynchronised after a plausible restart of numbering."""
+    hellos_midrun: int = 0
+    """Device hellos that arrived mid-session (reported as link events, never adopted)."""
     connected: bool = False
     last_sample_host_s: float = 0.0
     latencies_us: list[float] = field(default_factory=list, repr=False)
@@ -103,7 +115,7 @@ class LinkStats:
             for k in (
                 "frames_in", "frames_out", "crc_errors", "cobs_errors", "decode_errors",
                 "unknown_kinds", "gaps", "duplicates", "late_frames", "send_drops", "reconnects",
-                "connected",
+                "rejected", "resyncs", "hellos_midrun", "connected",
             )
         }
         lat = np.asarray(self.latencies_us[-100_000:], dtype=float)
@@ -115,6 +127,17 @@ class LinkStats:
 
 class LinkClosed(Exception):
     """The link is gone (unplugged, broker lost, device offline)."""
+
+
+class SessionRefused(LinkClosed):
+    """The device obeys another host session (another runtime drives the rig)."""
+
+
+def new_session() -> int:
+    """A fresh random session token (1 .. 2**32 - 1), new at every link open."""
+    import secrets
+
+    return secrets.randbelow(0xFFFFFFFF) + 1
 
 
 class SampleInbox:

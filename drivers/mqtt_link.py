@@ -36,6 +36,7 @@ import aiomqtt
 import msgpack
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
+from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from drivers.base import (
     Command,
@@ -46,6 +47,8 @@ from drivers.base import (
     LinkStats,
     Sample,
     SampleInbox,
+    SessionRefused,
+    new_session,
 )
 from drivers.wire import (
     PROTOCOL_VERSION,
@@ -53,7 +56,7 @@ from drivers.wire import (
     Fault,
     Heartbeat,
     Message,
-    SeqTracker,
+    SampleGate,
     Stop,
     UnknownKind,
     WireError,
@@ -97,6 +100,10 @@ class MqttSettings:
     tls: bool = False
     ca_file: str | None = None
     """CA bundle for the broker's certificate (None: the system store)."""
+    cert_file: str | None = None
+    """Client certificate (PEM) for brokers that require one (with ``key_file``)."""
+    key_file: str | None = None
+    """The client certificate's private key (PEM)."""
     username: str | None = None
     password: str | None = field(default=None, repr=False)
     """Read from the environment variable named by ``password_env``; never stored in a config."""
@@ -133,7 +140,7 @@ class MqttSettings:
         known = {
             "host", "port", "prefix", "tls", "ca_file", "username", "password_env", "password",
             "keepalive_s", "sample_expiry_s", "max_sample_age_s", "remote_requests",
-            "connect_timeout_s", "rig",
+            "connect_timeout_s", "rig", "cert_file", "key_file",
         }
         for k in t:
             if k not in known:
@@ -165,6 +172,15 @@ class MqttSettings:
         if ca_file is not None and not os.path.isfile(ca_file):
             raise MqttConfigError(f"{key}.ca_file", f"file {ca_file!r} does not exist.",
                                   "give the path of the CA certificate (PEM) of the broker.")
+        cert_file = typed("cert_file", str, None)
+        key_file = typed("key_file", str, None)
+        for name, path in (("cert_file", cert_file), ("key_file", key_file)):
+            if path is not None and not os.path.isfile(path):
+                raise MqttConfigError(f"{key}.{name}", f"file {path!r} does not exist.",
+                                      "give the path of the client certificate / key (PEM).")
+        if (cert_file is None) != (key_file is None):
+            raise MqttConfigError(f"{key}.cert_file", "a client certificate needs its key.",
+                                  f"set both {key}.cert_file and {key}.key_file.")
         username = typed("username", str, None)
         password = None
         pw_env = typed("password_env", str, None)
@@ -204,6 +220,8 @@ class MqttSettings:
             prefix=typed("prefix", str, "corral"),
             tls=tls,
             ca_file=ca_file,
+            cert_file=cert_file,
+            key_file=key_file,
             username=username,
             password=password,
             keepalive_s=keepalive,
@@ -374,6 +392,18 @@ def explain_mqtt_error(exc: BaseException, settings: MqttSettings) -> LinkClosed
     return LinkClosed(f"{where}: {exc or type(exc).__name__}")
 
 
+def tls_context_for(tls: bool, ca_file: str | None = None, cert_file: str | None = None,
+                    key_file: str | None = None) -> ssl.SSLContext | None:
+    """The TLS context for a broker connection (None without TLS): the broker's CA
+    (`ca_file`, else the system store) and, when given, a client certificate."""
+    if not tls:
+        return None
+    ctx = ssl.create_default_context(cafile=ca_file)
+    if cert_file is not None:
+        ctx.load_cert_chain(cert_file, key_file)
+    return ctx
+
+
 def make_client(
     settings: MqttSettings,
     *,
@@ -382,9 +412,6 @@ def make_client(
     max_queued: int = 1024,
 ) -> aiomqtt.Client:
     """An MQTT 5 aiomqtt client for these settings (call inside the running loop)."""
-    tls_context = None
-    if settings.tls:
-        tls_context = ssl.create_default_context(cafile=settings.ca_file)
     return aiomqtt.Client(
         settings.host,
         settings.port,
@@ -393,7 +420,8 @@ def make_client(
         identifier=identifier,
         protocol=aiomqtt.ProtocolVersion.V5,
         will=will,
-        tls_context=tls_context,
+        tls_context=tls_context_for(settings.tls, settings.ca_file, settings.cert_file,
+                                    settings.key_file),
         keepalive=settings.keepalive_s,
         timeout=settings.connect_timeout_s,
         max_queued_incoming_messages=max_queued,
@@ -407,6 +435,23 @@ async def connect_client(client: aiomqtt.Client, settings: MqttSettings) -> None
     except (aiomqtt.MqttError, OSError, ssl.SSLError) as exc:
         raise explain_mqtt_error(exc, settings) from None
     set_nodelay(client)
+
+
+async def admits_anonymous(settings: MqttSettings, timeout_s: float = 3.0) -> bool:
+    """True when the broker accepts a client with no user name and no password (same TLS).
+
+    On such a broker anyone who can reach it may publish commands, forged samples and
+    a status that says the device is offline (docs/mqtt.md, threat model).
+    """
+    probe = replace(settings, username=None, password=None, cert_file=None, key_file=None,
+                    connect_timeout_s=timeout_s)
+    client = make_client(probe, identifier=_client_id("probe", settings.rig or "none"))
+    try:
+        await asyncio.wait_for(connect_client(client, probe), timeout_s + 1.0)
+    except (TimeoutError, LinkClosed, OSError):
+        return False
+    await disconnect_client(client)
+    return True
 
 
 def set_nodelay(client: aiomqtt.Client) -> bool:
@@ -482,13 +527,22 @@ async def disconnect_client(client: aiomqtt.Client | None) -> None:
     """Leave `client`; never raises."""
     if client is None:
         return
-    with contextlib.suppress(Exception, asyncio.CancelledError):
+    try:
         await asyncio.wait_for(client.__aexit__(None, None, None), 2.0)
+    except asyncio.CancelledError:
+        # aiomqtt may raise CancelledError of its own while it tears down; that one is
+        # swallowed. A cancellation of the task calling us is passed on: swallowing it
+        # made a cancelled publisher reconnect forever (a run that SIGTERM did not end).
+        task = asyncio.current_task()
+        if task is not None and task.cancelling():
+            raise
+    except Exception:  # noqa: BLE001 - leaving a dead connection must never raise
+        pass
 
 
-def host_hello() -> Hello:
-    """The hello a host publishes on the command topic to ask the device to announce itself."""
-    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0)
+def host_hello(session: int = 0) -> Hello:
+    """The hello a host publishes on the command topic: announce yourself, grant `session`."""
+    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0, session)
 
 
 def _client_id(role: str, rig: str) -> str:
@@ -537,12 +591,17 @@ class MqttLink(Link):
         self.faults: collections.deque[Fault] = collections.deque(maxlen=32)
         self.retained_dropped = 0
         self._clock = clock
-        self._tracker = SeqTracker(self.stats)
+        self._tracker = SampleGate(self.stats)
+        self.events: collections.deque[tuple[str, str]] = collections.deque(maxlen=64)
+        """Link events for the operator (a device hello mid-run): (kind, detail)."""
         self._samples = SampleInbox(self.stats, queue_size, reason="not open")
         self._hello_waiter: asyncio.Future[Hello] | None = None
         self._client: aiomqtt.Client | None = None
         self._reader: asyncio.Task[None] | None = None
         self._host_seq = 0
+        self.session = 0
+        """This host's session token (protocol v2), new at every open."""
+        self._taken_by = 0
         self._offset: float | None = None  # min(t_host - t_device) this session
         # Recent samples' (t_device, t_host), for latency and the command's t echo.
         self._ring = LatencyRing(self.stats)
@@ -643,8 +702,22 @@ class MqttLink(Link):
             if retain:
                 self.retained_hello = msg
                 return
+            if self._hello_waiter is None:
+                if self.hello is None:
+                    return
+                # Mid-session (the device answering another host's hello, a restart, a
+                # forgery): never adopted silently; the operator sees it.
+                self.stats.hellos_midrun += 1
+                ours = msg.session == self.session
+                self.events.append(("link", f"device hello mid-run from {msg.rig_id!r} "
+                                    f"({len(msg.channels)} channels, session "
+                                    f"{'ours' if ours else 'other'}): not adopted"))
+                return
+            if msg.session != self.session:
+                self._taken_by = msg.session  # the device obeys another host
+                return
             self.hello = msg
-            self._tracker.reset()
+            self._tracker.start(msg)
             self._offset = None
             self.device_stopped = False
             w = self._hello_waiter
@@ -662,6 +735,11 @@ class MqttLink(Link):
                 self._set_lost(f"rig {self.settings.rig!r} went offline ({why})")
 
     def _on_sample(self, s: Sample, now: float) -> None:
+        verdict = self._tracker.accept(s)
+        if not verdict:
+            return
+        if verdict == 2:
+            self._offset = None  # new numbering: the device clock started over
         # Age check on receipt: the broker removes expired messages, but a
         # sample can still sit in queues. With no shared clock, the smallest
         # (host time - device time) seen this session is the transit floor;
@@ -671,8 +749,6 @@ class MqttLink(Link):
             self._offset = d
         if d - self._offset > self.settings.max_sample_age_s:
             self.stats.late_frames += 1
-            return
-        if not self._tracker.accept(s.seq):
             return
         s.t_host = now
         self.stats.last_sample_host_s = now
@@ -719,9 +795,16 @@ class MqttLink(Link):
         loop = asyncio.get_running_loop()
         deadline = loop.time() + self.hello_timeout_s
         assert self._hello_waiter is not None
+        self.session = new_session()
+        self._taken_by = 0
         while True:
-            await self._publish_msg(host_hello())
+            await self._publish_msg(host_hello(self.session))
             left = deadline - loop.time()
+            if left <= 0 and self._taken_by:
+                raise SessionRefused(
+                    f"rig {self.settings.rig!r} via {self.url} is driven by another host "
+                    "session: another runtime owns this rig; stop it first (the device frees "
+                    "the rig once its commands have stopped for its lease)")
             if left <= 0:
                 note = ""
                 if self.device_online is False:
@@ -755,6 +838,7 @@ class MqttLink(Link):
         lost = self._samples.closed_reason
         if self._client is None or lost is not None:
             raise LinkClosed(lost or "link closed")
+        command.session = self.session
         await self._publish(encode_body(command, t=self._ring.device_time(command.seq)))
         self._ring.note_sent(command.seq, self._clock())
 
@@ -905,8 +989,9 @@ class MqttPublisher:
                 with contextlib.suppress(asyncio.TimeoutError):
                     await asyncio.wait_for(self._drain(), 1.0)
             task.cancel()
+            # Bounded: whatever the broker does, leaving the publisher ends.
             with contextlib.suppress(BaseException):
-                await task
+                await asyncio.wait({task}, timeout=5.0)
 
     async def _drain(self) -> None:
         assert self._queue is not None
@@ -993,7 +1078,11 @@ class MqttPublisher:
                 continue
             delay = self._first_delay
             try:
-                await client.subscribe(self.topics.request, qos=1)
+                # Retain-as-published: an operator request published with the retain
+                # flag keeps it on delivery, so it is recognised and ignored (a stored
+                # "arm" must never act, now or later).
+                await client.subscribe(self.topics.request,
+                                       options=SubscribeOptions(qos=1, retainAsPublished=True))
                 self.connected = True
                 assert self._connected_event is not None
                 self._connected_event.set()

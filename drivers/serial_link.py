@@ -13,6 +13,7 @@ from __future__ import annotations
 import asyncio
 import collections
 import contextlib
+import dataclasses
 import errno
 import os
 import select
@@ -32,6 +33,8 @@ from drivers.base import (
     LinkStats,
     Sample,
     SampleInbox,
+    SessionRefused,
+    new_session,
 )
 from drivers.wire import (
     PROTOCOL_VERSION,
@@ -40,7 +43,7 @@ from drivers.wire import (
     FrameDecoder,
     Heartbeat,
     Message,
-    SeqTracker,
+    SampleGate,
     Stop,
     encode_message,
 )
@@ -82,9 +85,10 @@ def parse_serial_url(url: str) -> tuple[str, int]:
     return path, baud
 
 
-def host_hello() -> Hello:
-    """The hello a host sends to ask a device to announce itself."""
-    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0)
+def host_hello(session: int = 0) -> Hello:
+    """The hello a host sends to ask a device to announce itself and grant `session`."""
+    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0, session)
+
 
 
 class _Protocol(asyncio.Protocol):
@@ -141,12 +145,17 @@ class SerialLink(Link):
         self.send_drops = 0
         self._clock = clock
         self._decoder = FrameDecoder(self.stats, synced=False)
-        self._tracker = SeqTracker(self.stats)
+        self._tracker = SampleGate(self.stats)
+        self.events: collections.deque[tuple[str, str]] = collections.deque(maxlen=64)
+        """Link events for the operator (a device hello mid-run): (kind, detail)."""
         self._samples = SampleInbox(self.stats, queue_size, reason="not open")
         self._hello_waiter: asyncio.Future[Hello] | None = None
         self._transport: asyncio.Transport | None = None
         self._protocol: _Protocol | None = None
         self._host_seq = 0
+        self.session = 0
+        """This host's session token (protocol v2), new at every open."""
+        self._taken_by = 0
         # Recent samples' (t_device, t_host), for latency and the command's t echo.
         self._ring = LatencyRing(self.stats)
 
@@ -169,7 +178,7 @@ class SerialLink(Link):
             if type(msg) is Sample:
                 if self.hello is None:
                     continue  # before the handshake: belongs to no session
-                if not self._tracker.accept(msg.seq):
+                if not self._tracker.accept(msg):
                     continue
                 msg.t_host = now
                 self.stats.last_sample_host_s = now
@@ -189,8 +198,23 @@ class SerialLink(Link):
     def _on_hello(self, hello: Hello) -> None:
         if hello.rig_id == HOST_HELLO_RIG_ID and not hello.channels:
             return  # our own hello echoed by a loopback; not a device
+        if self._hello_waiter is None:
+            if self.hello is None:
+                return  # unsolicited, outside a handshake: belongs to no session
+            # Mid-session: never adopted silently (a forged hello must not reset the
+            # numbering or change the channels); the operator sees it. A device that
+            # really restarted is picked up by the gate's resynchronisation.
+            self.stats.hellos_midrun += 1
+            self.events.append(("link", f"device hello mid-run from {hello.rig_id!r} "
+                                f"({len(hello.channels)} channels, {hello.sample_rate_hz:g} Hz, "
+                                f"session {'ours' if hello.session == self.session else 'other'}"
+                                "): not adopted"))
+            return
+        if hello.session != self.session:
+            self._taken_by = hello.session  # the device obeys another host
+            return
         self.hello = hello
-        self._tracker.reset()
+        self._tracker.start(hello)
         self.device_stopped = False
         if self._hello_waiter is not None and not self._hello_waiter.done():
             self._hello_waiter.set_result(hello)
@@ -241,10 +265,19 @@ class SerialLink(Link):
         loop = asyncio.get_running_loop()
         self._hello_waiter = loop.create_future()
         deadline = loop.time() + self.hello_timeout_s
+        self.session = new_session()
+        self._taken_by = 0
         try:
             while True:
-                self._write(encode_message(host_hello(), seq=self._next_seq(), t=0.0))
+                self._write(encode_message(host_hello(self.session), seq=self._next_seq(),
+                                           t=0.0))
                 left = deadline - loop.time()
+                if left <= 0 and self._taken_by:
+                    raise SessionRefused(
+                        f"device on {self.url} is driven by another host session: another "
+                        "runtime owns this rig; stop it first (the device frees the rig once "
+                        "its commands have stopped for its lease)"
+                    )
                 if left <= 0:
                     raise HandshakeError(
                         f"no hello from {self.url} within {self.hello_timeout_s:g} s: is the "
@@ -279,6 +312,7 @@ class SerialLink(Link):
         """Write one command; records latency when it answers a recent sample."""
         if self._transport is None:
             raise LinkClosed(self._samples.closed_reason or "link closed")
+        command.session = self.session
         frame = encode_message(command, t=self._ring.device_time(command.seq))
         if self._transport.get_write_buffer_size() > self.max_write_buffer:
             self.send_drops += 1  # the device is not reading; do not pile up stale commands
@@ -458,14 +492,17 @@ class DeviceEndpoint:
         self.stats.frames_out += ok
         return ok
 
-    def send_hello(self) -> bool:
-        """Announce the device (also done automatically on every host hello).
+    def send_hello(self, session: int | None = None) -> bool:
+        """Announce the device (also done automatically on every host hello), with the
+        session it granted (default: the current owner's, 0 when none).
 
         A delimiter goes first, so a host that just opened the port (and drops
         everything before its first delimiter) sees this hello whole.
         """
+        if session is None:
+            session = self.guard.owner or 0
         self._write(b"\x00")
-        return self.send(self.hello)
+        return self.send(dataclasses.replace(self.hello, session=session))
 
     def send_sample(self, y: tuple[float, ...], status: int = 0, t: float | None = None) -> int:
         """Send one sample with the next sequence number; returns that number."""
@@ -499,9 +536,10 @@ class DeviceEndpoint:
             elif type(m) is Stop:
                 self.guard.on_stop()
             elif type(m) is Hello:
+                # The session handshake: granted (and re-armed) or refused (the
+                # answer names the owner's session, so the asker learns it).
                 self.host_hellos += 1
-                self.guard.rearm()
-                self.send_hello()
+                self.send_hello(self.guard.on_host_hello(m.session, now))
         return msgs
 
     def outputs(self) -> tuple[tuple[float, ...], int]:

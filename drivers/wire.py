@@ -34,8 +34,11 @@ from drivers.base import (
     Sample,
 )
 
-PROTOCOL_VERSION = 1
-"""Wire protocol version carried in every hello. Bumped on any incompatible change."""
+PROTOCOL_VERSION = 2
+"""Wire protocol version carried in every hello. Bumped on any incompatible change.
+
+v2 added the session token (a trailing element of hello and command): a device obeys
+commands only from the host session that completed the hello handshake."""
 
 KIND_HELLO = 0
 KIND_SAMPLE = 1
@@ -218,7 +221,8 @@ def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]
             KIND_SAMPLE, msg.seq % SEQ_MOD, float(msg.t_device), int(msg.status), _floats(msg.y)
         ]
     if isinstance(msg, Command):
-        return [KIND_COMMAND, msg.seq % SEQ_MOD, float(t), int(msg.flags), _floats(msg.u)]
+        return [KIND_COMMAND, msg.seq % SEQ_MOD, float(t), int(msg.flags), _floats(msg.u),
+                int(msg.session) % SEQ_MOD]
     if isinstance(msg, Heartbeat):
         return [KIND_HEARTBEAT, msg.seq % SEQ_MOD, float(msg.t), int(msg.status)]
     if isinstance(msg, Fault):
@@ -239,6 +243,7 @@ def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]
             _floats(msg.output_limits),
             [str(u) for u in msg.output_units],
             float(msg.command_timeout_s),
+            int(msg.session) % SEQ_MOD,
         ]
     raise TypeError(f"not a wire message: {type(msg).__name__}")
 
@@ -279,6 +284,16 @@ def _strlist(v: object, what: str) -> tuple[str, ...]:
     return tuple(v)
 
 
+def _session(arr: list[object], i: int) -> int:
+    """The session token at position `i` (0 when a v1 sender left it out)."""
+    if len(arr) <= i:
+        return 0
+    v = _uint(arr[i], "session")
+    if v >= SEQ_MOD:
+        raise DecodeError("session must fit in 32 bits")
+    return v
+
+
 _MIN_LEN = {
     KIND_HELLO: 12,
     KIND_SAMPLE: 5,
@@ -313,7 +328,10 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
     if kind == KIND_SAMPLE:
         msg = Sample(seq, t, _numlist(arr[4], "y"), _uint(arr[3], "status"))
     elif kind == KIND_COMMAND:
-        msg = Command(seq, _numlist(arr[4], "u"), _uint(arr[3], "flags"))
+        u = _numlist(arr[4], "u")
+        if not all(math.isfinite(v) for v in u):
+            raise DecodeError("command u must be finite")
+        msg = Command(seq, u, _uint(arr[3], "flags"), _session(arr, 5))
     elif kind == KIND_HEARTBEAT:
         msg = Heartbeat(seq, t, _uint(arr[3], "status"))
     elif kind == KIND_FAULT:
@@ -335,8 +353,28 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
             output_limits=_numlist(arr[9], "output_limits"),
             output_units=_strlist(arr[10], "output_units"),
             command_timeout_s=_num(arr[11], "command_timeout_s"),
+            session=_session(arr, 12),
         )
+        _check_hello(msg)
     return msg, seq, t
+
+
+MAX_CHANNELS = 64
+"""Most channels (and outputs) a hello may announce."""
+
+
+def _check_hello(h: Hello) -> None:
+    """A device hello must describe a usable rig; a host hello (no channels) carries none."""
+    if len(h.channels) > MAX_CHANNELS or len(h.output_limits) > MAX_CHANNELS:
+        raise DecodeError(f"hello announces more than {MAX_CHANNELS} channels or outputs")
+    if not math.isfinite(h.command_timeout_s) or h.command_timeout_s < 0:
+        raise DecodeError("hello command_timeout_s must be finite and not negative")
+    if not h.channels:
+        return  # a host hello: asks the device to announce itself
+    if not (math.isfinite(h.sample_rate_hz) and h.sample_rate_hz > 0):
+        raise DecodeError(f"hello sample_rate_hz must be positive, got {h.sample_rate_hz!r}")
+    if not all(math.isfinite(v) and v > 0 for v in h.output_limits):
+        raise DecodeError("hello output_limits must be positive and finite")
 
 
 def decode_body(body: bytes) -> Message:
@@ -349,10 +387,16 @@ def decode_body(body: bytes) -> Message:
 
 
 def decode_frame(encoded: bytes | bytearray | memoryview) -> Message:
-    """Decode one frame given with or without its trailing delimiter."""
+    """Decode one frame given with or without its trailing delimiter.
+
+    A frame longer than `MAX_FRAME` bytes (without its delimiter) is refused
+    (`CobsError`), as the stream decoder refuses it.
+    """
     data = bytes(encoded)
     if data.endswith(DELIMITER):
         data = data[:-1]
+    if len(data) > MAX_FRAME:
+        raise CobsError(f"frame of {len(data)} bytes is over the {MAX_FRAME}-byte limit")
     return decode_body(unframe(data))
 
 
@@ -471,6 +515,95 @@ class SeqTracker:
         return True
 
 
+class SampleGate:
+    """Checks every sample against the device's hello before the loop sees it.
+
+    A sample is refused (counted in `stats.rejected`, or `stats.duplicates`
+    when it is not newer than the last one) when its reading count differs from
+    the hello's channels, its device time is not finite, or it is implausible
+    next to the last accepted sample: a sequence jump over `max_seq_jump`, or a
+    device time that disagrees with the sequence step by more than
+    `max_time_error_s`. Non-finite readings pass: a NaN from a sensor is the
+    loop's `nonfinite` trip, not the link's to hide.
+
+    One forged or corrupted sample cannot poison the stream: a refused sample
+    is kept as a candidate, and only when the very next sample continues it
+    (seq + 1, one period later) does the gate adopt the new numbering (a device
+    that restarted without a hello), counting `stats.resyncs`; the real stream
+    resynchronises back the same way. `accept` returns 0 (refused), 1
+    (accepted) or 2 (accepted, new numbering: the device clock starts over).
+    """
+
+    __slots__ = ("stats", "channels", "period", "max_seq_jump", "max_time_error_s",
+                 "last_seq", "last_t", "_cand", "_span")
+
+    def __init__(self, stats: LinkStats | None = None, *, max_span_s: float = 1.0,
+                 max_time_error_s: float = 0.5) -> None:
+        self.stats = stats if stats is not None else LinkStats()
+        self.channels: int | None = None
+        self.period = 0.0
+        self.max_seq_jump = 1000
+        self.max_time_error_s = max_time_error_s
+        self._span = max_span_s
+        self.last_seq: int | None = None
+        self.last_t = 0.0
+        self._cand: tuple[int, float] | None = None
+
+    def start(self, hello: Hello) -> None:
+        """A new session with this device: its channel count and rate; numbering forgotten."""
+        self.channels = len(hello.channels)
+        rate = hello.sample_rate_hz
+        self.period = 1.0 / rate if math.isfinite(rate) and rate > 0 else 0.0
+        self.max_seq_jump = max(16, int(rate * self._span)) if self.period else 1000
+        self.reset()
+
+    def reset(self) -> None:
+        """Forget the numbering (a new hello restarts it)."""
+        self.last_seq = None
+        self._cand = None
+
+    def _plausible(self, seq: int, t: float, seq0: int, t0: float) -> bool:
+        d = (seq - seq0) % SEQ_MOD
+        if d == 0 or d >= SEQ_MOD // 2 or d > self.max_seq_jump:
+            return False
+        return abs((t - t0) - d * self.period) <= self.max_time_error_s + 0.1 * d * self.period
+
+    def accept(self, s: Sample) -> int:
+        """0: refused; 1: accepted; 2: accepted after a resynchronisation."""
+        stats = self.stats
+        t = s.t_device
+        if (self.channels is not None and len(s.y) != self.channels) or not math.isfinite(t):
+            stats.rejected += 1
+            return 0
+        seq = s.seq
+        last = self.last_seq
+        if last is None:
+            self.last_seq, self.last_t = seq, t
+            return 1
+        if self._plausible(seq, t, last, self.last_t):
+            stats.gaps += (seq - last) % SEQ_MOD - 1
+            self.last_seq, self.last_t = seq, t
+            self._cand = None
+            return 1
+        cand = self._cand
+        if cand is not None and (seq - cand[0]) % SEQ_MOD == 1 \
+                and self._plausible(seq, t, cand[0], cand[1]):
+            self.last_seq, self.last_t = seq, t
+            self._cand = None
+            stats.resyncs += 1
+            return 2
+        d = (seq - last) % SEQ_MOD
+        if d == 0:
+            stats.duplicates += 1  # a plain repeat is never a resync candidate
+            return 0
+        self._cand = (seq, t)
+        if d >= SEQ_MOD // 2:
+            stats.duplicates += 1
+        else:
+            stats.rejected += 1
+        return 0
+
+
 def seq_newer(a: int, b: int) -> bool:
     """True if sequence number `a` is newer than `b` (32-bit serial arithmetic)."""
     return 0 < (a - b) % SEQ_MOD < SEQ_MOD // 2
@@ -490,15 +623,42 @@ class CommandGuard:
     hello). Commands are clamped to `limits` (`STATUS_SATURATED` when clamped).
     """
 
-    def __init__(self, limits: tuple[float, ...], timeout_s: float) -> None:
+    def __init__(self, limits: tuple[float, ...], timeout_s: float,
+                 lease_s: float | None = None) -> None:
         self.limits = tuple(float(v) for v in limits)
         self.timeout_s = float(timeout_s)
+        self.lease_s = float(lease_s) if lease_s is not None else max(1.0, 20 * self.timeout_s)
+        """An owner silent (no accepted command) this long may be replaced by a new host."""
+        self.owner: int | None = None
+        """The session whose commands are obeyed (None until a host hello)."""
+        self._owner_t = 0.0
+        self.sessions_refused = 0
+        """Host hellos refused because another live session owns the rig."""
+        self.foreign_commands = 0
+        """Commands refused because they carry another session's token."""
         self.stopped = False
         self._u = tuple(0.0 for _ in self.limits)
         self._flags = 0
         self._last_cmd_t: float | None = None
         self._last_seq: int | None = None
         self.commands = 0
+
+    def on_host_hello(self, session: int, now: float) -> int:
+        """A host asks for the rig with `session`; returns the session the device grants.
+
+        Granted (and the guard re-armed) when nobody owns the rig, when it is the
+        owner asking again, or when the owner has been silent for `lease_s`;
+        otherwise refused (counted) and the owner's session is returned, so the
+        asking host learns the rig is taken.
+        """
+        owner = self.owner
+        if owner is None or session == owner or now - self._owner_t > self.lease_s:
+            self.owner = session
+            self._owner_t = now
+            self.rearm()
+            return session
+        self.sessions_refused += 1
+        return owner
 
     def rearm(self) -> None:
         """Clear a latched stop (the host said hello again)."""
@@ -512,12 +672,16 @@ class CommandGuard:
 
     def on_command(self, cmd: Command, now: float) -> bool:
         """Apply a command received at device time `now`; False if it was rejected."""
+        if self.owner is None or cmd.session != self.owner:
+            self.foreign_commands += 1
+            return False
         if len(cmd.u) != len(self.limits) or not all(math.isfinite(v) for v in cmd.u):
             return False
         if self._last_seq is not None and not seq_newer(cmd.seq, self._last_seq):
             return False
         self._last_seq = cmd.seq
         self._last_cmd_t = now
+        self._owner_t = now
         self._u = tuple(cmd.u)
         self._flags = cmd.flags
         self.commands += 1

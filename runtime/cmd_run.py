@@ -105,8 +105,38 @@ def _check_serial_port_exists(spec: str) -> None:
                         "`corral rig serve CONFIG --serial`")
 
 
+ANONYMOUS_BROKER_WARNING = """\
+corral: WARNING ********************************************************************
+corral: WARNING  the MQTT broker {where} admits ANONYMOUS clients.
+corral: WARNING  Anyone who can reach it can publish commands to this rig, forged
+corral: WARNING  samples, or a status that ends the run. Lock it before arming hardware:
+corral: WARNING  a password file, a per-rig ACL and TLS (docs/mqtt.md, "Locking the broker").
+corral: WARNING ********************************************************************"""
+
+
+def _warn_if_broker_is_open(link: object) -> None:
+    """A loud warning when a real rig's broker lets anonymous clients in."""
+    from drivers.mqtt_link import MqttLink, admits_anonymous
+
+    if not isinstance(link, MqttLink):
+        return
+    s = link.settings
+    try:
+        open_ = asyncio.run(admits_anonymous(s))
+    except Exception:  # noqa: BLE001 - a probe that fails says nothing either way
+        return
+    if open_:
+        print(ANONYMOUS_BROKER_WARNING.format(where=f"{s.host}:{s.port}"), file=sys.stderr,
+              flush=True)
+
+
+EXIT_LINK_LOST = 3
+"""`corral run` exit status when the link was lost during the run (a `link_loss` trip)."""
+
+
 def main(args: argparse.Namespace) -> int:
-    """Run; exit 0 when the run ended normally (trips included), 2 on a user error, 71
+    """Run; exit 0 when the run ended normally (trips included), 2 on a user error,
+    3 (`EXIT_LINK_LOST`) when the link was lost during the run, 71
     (`runtime.loop.EXIT_INTERNAL_TRIP`) when an exception inside the tick ended it through
     the ``internal`` trip."""
     from drivers.base import LinkClosed
@@ -123,6 +153,7 @@ def main(args: argparse.Namespace) -> int:
     runner = Runner(cfg, settings)
     if not runner.simulated:
         print(HARDWARE_CAUTIONS, file=sys.stderr)
+        _warn_if_broker_is_open(runner.link)
         if args.arm:
             raise UserError("--arm arms only the simulated rig; arm a real rig yourself "
                             "from the dashboard or the operator socket once it is safe")
@@ -205,6 +236,12 @@ def main(args: argparse.Namespace) -> int:
     if summary.get("internal_error"):
         # The tick raised: outputs went off and the trip is on disk (rule `internal`).
         return EXIT_INTERNAL_TRIP
+    losses = summary.get("link_losses") or []
+    if losses:
+        # A run whose link ended under it did not end normally, whatever came after.
+        print(f"corral run: the link was lost {len(losses)} time(s) (first: "
+              f"{losses[0]['detail']}); exit {EXIT_LINK_LOST}", file=sys.stderr)
+        return EXIT_LINK_LOST
     return 0
 
 

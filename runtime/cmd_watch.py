@@ -30,6 +30,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--password-env", metavar="VAR",
                         help="environment variable holding the broker password")
     parser.add_argument("--tls", action="store_true", help="use TLS to the broker")
+    parser.add_argument("--ca-file", metavar="PEM",
+                        help="CA certificate of the broker (with --tls; default: the system "
+                        "store)")
+    parser.add_argument("--cert", metavar="PEM",
+                        help="client certificate, for brokers that require one (with --tls)")
+    parser.add_argument("--key", metavar="PEM", help="the client certificate's key (with --cert)")
     parser.add_argument("--prefix", default="corral",
                         help="first topic level on the broker (the rig's [link.mqtt] prefix)")
     parser.add_argument("--replay", type=Path, metavar="FILE",
@@ -54,8 +60,16 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
         if not host or not port.isdigit():
             raise UserError(f"--mqtt {args.mqtt!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
         password = os.environ.get(args.password_env) if args.password_env else None
+        ca, cert, key = (getattr(args, k, None) for k in ("ca_file", "cert", "key"))
+        if (ca or cert or key) and not args.tls:
+            raise UserError("--ca-file, --cert and --key go with --tls; add --tls")
+        for flag, path in (("--ca-file", ca), ("--cert", cert), ("--key", key)):
+            if path is not None and not os.path.isfile(path):
+                raise UserError(f"{flag} {path}: no such file; give the PEM file's path")
+        if (cert is None) != (key is None):
+            raise UserError("--cert needs --key (and --key needs --cert)")
         return MqttSource(host, int(port), args.rig, args.username, password, args.tls,
-                          prefix=args.prefix)
+                          prefix=args.prefix, ca_file=ca, cert_file=cert, key_file=key)
     path = args.socket
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)

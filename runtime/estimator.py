@@ -76,6 +76,17 @@ class Estimator:
         self.frozen_age = 0.0
         self.received = False
 
+    def restart_link(self) -> None:
+        """A new link session (reconnect, device restart, resynchronised stream): the
+        device clock and sequence numbers start over, so the host-minus-device offset,
+        the last seq and the last reading are forgotten (the next reading re-acquires
+        the state instead of being judged against the old session)."""
+        self.offset = math.inf
+        self._offset_t = None
+        self.last_seq = None
+        self.prev_y = None
+        self.valid = False
+
     def reset_to(self, x: Array) -> None:
         """Start from a known state (tests)."""
         self.x[:] = x

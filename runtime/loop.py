@@ -435,6 +435,10 @@ class TickCore:
         """When set, every arm request is refused with this reason (preflight NO-GO)."""
         self.law_ran = False
         """The adaptive law ran this tick (its ratio, s, e are recorded even on a trip)."""
+        self.link_up = True
+        """False from a link loss until the link is back (the `link_loss` rule sees it)."""
+        self.link_detail = ""
+        """Why the link is down (the `link_loss` first-out's ``detail``)."""
 
     # ------------------------------------------------------------- helpers
     def levels(self) -> dict[str, float]:
@@ -605,7 +609,7 @@ class TickCore:
         sig.sample_age = self.est.age
         sig.frozen_age = self.est.frozen_age
         sig.seq_gap = self.est.seq_gap
-        sig.connected = bool(getattr(self.link.stats, "connected", True))
+        sig.connected = self.link_up and bool(getattr(self.link.stats, "connected", True))
         sig.since_sample = now - self.last_sample_t
         finite = bool(np.all(np.isfinite(u))) and (not law_ran or bool(np.isfinite(self.w_norm)))
         sig.nonfinite = self.est.nonfinite or not finite
@@ -640,7 +644,12 @@ class TickCore:
         if sup.mode == "fallback":
             flags |= FLAG_FALLBACK
         u_out = np.clip(u, -self.u_max, self.u_max) if on else np.zeros(self.m)
-        cmd = Command(sample.seq if sample is not None else self.seq,
+        # A tick without a sample echoes the last sample's seq (never a host counter:
+        # a number ahead of the device's would make it refuse every later command as old,
+        # e.g. after the device restarted its numbering on a reconnect).
+        last = self.est.last_seq
+        cmd = Command(sample.seq if sample is not None else (last if last is not None
+                                                            else self.seq),
                       (float(u_out[0]), float(u_out[1])) if self.m == 2
                       else tuple(float(v) for v in u_out), flags)
         self.u_prev = u_out
@@ -795,6 +804,9 @@ class TickCore:
         idx = (np.arange(k + 1 - n_pre, k + 1)) % self.pre_n
         pre = self.ring[idx].copy()
         first = ctx["first"]
+        first_out = {key: first[key] for key in ("rule", "signal", "value", "threshold")}
+        if first["rule"] == "link_loss":
+            first_out["detail"] = self.link_detail or "device silent"
         link_stats: dict[str, Any] = {}
         with contextlib.suppress(Exception):
             link_stats = link_stats_now(self.link.stats)
@@ -804,7 +816,7 @@ class TickCore:
         rec = {
             "type": "trip", "id": self.trip_id, "t_mono": ctx["t_detect"], "t_wall": time.time(),
             "tick": k, "t": self.t,
-            "first_out": {key: first[key] for key in ("rule", "signal", "value", "threshold")},
+            "first_out": first_out,
             "later": [{key: e[key] for key in ("rule", "signal", "value", "threshold", "tick")}
                       for e in ctx["later"]],
             "action": ctx["action"], "detect_to_action_us": d2a,
@@ -828,6 +840,8 @@ class TickCore:
                    "action": ctx["action"], "detect_to_action_us": d2a,
                    "value": first["value"], "threshold": first["threshold"],
                    "later": [e["rule"] for e in ctx["later"]]}
+        if "detail" in first_out:
+            summary["detail"] = first_out["detail"]
         self.trips.append(summary)
         self.current_trip = summary
         # The writer thread announces it (socket, MQTT, stderr) once it is on disk.
@@ -1041,6 +1055,30 @@ EXIT_INTERNAL_TRIP = 71
 inside the tick: outputs off, the record in the trip log). 70 stays an uncaught crash."""
 
 
+def loss_detail(reason: str) -> str:
+    """A short first-out detail for a link loss, from the link's `LinkClosed` reason.
+
+    >>> loss_detail("rig 'x' went offline (connection lost)")
+    'device offline'
+    """
+    r = reason.lower()
+    if "offline" in r:
+        return "device offline"
+    if "session" in r:
+        return "session taken"
+    if "mqtt" in r or "broker" in r:
+        return "broker gone"
+    if "serial" in r or "pty" in r or "/dev/" in r:
+        return "pty closed"
+    return "link closed"
+
+
+def _link_sessions(link: Link) -> int:
+    """Reconnects plus stream resynchronisations so far (each starts a new device clock)."""
+    st = link.stats
+    return int(getattr(st, "reconnects", 0)) + int(getattr(st, "resyncs", 0))
+
+
 def _finite(v: float) -> float | None:
     return v if math.isfinite(v) else None
 
@@ -1229,6 +1267,10 @@ class Runner:
         """The preflight verdict (go, predicted_trip_rate, reasons, record), when one ran."""
         self.error: BaseException | None = None
         self.ready = threading.Event()
+        self.link_losses: list[dict[str, Any]] = []
+        """Each loss of the link: t, tick, detail (``pty closed``, ``broker gone``, ...)."""
+        self.last_reconnect_error = ""
+        self._sessions = 0
 
     def request_stop(self) -> None:
         """End the run (thread-safe)."""
@@ -1433,34 +1475,103 @@ class Runner:
                 # Lowest real-time priority: above every normal process, below the tick
                 # and below a served device (40) sharing the machine.
                 helpers = raise_helper_threads(1)
+        reconnecting: asyncio.Task[None] | None = None
         try:
             while not self.stop_event.is_set() and mono() < end:
-                # asyncio.timeout, not wait_for: no task per sample (wait_for wraps
-                # the receive in a new task, one more loop turn each).
-                try:
-                    async with asyncio.timeout(timeout):
-                        sample: Sample | None = await link.receive()
-                except TimeoutError:
-                    sample = None
+                sample: Sample | None = None
+                if core.link_up:
+                    # asyncio.timeout, not wait_for: no task per sample (wait_for wraps
+                    # the receive in a new task, one more loop turn each).
+                    try:
+                        async with asyncio.timeout(timeout):
+                            sample = await link.receive()
+                    except TimeoutError:
+                        sample = None
+                    except LinkClosed as exc:
+                        # Every way a link can end is a trip: this tick sees it gone.
+                        self._link_lost(str(exc))
+                else:
+                    # Link down: tick on the host's time (the latch, the operator's
+                    # requests and telemetry go on) while the link comes back by itself.
+                    if reconnecting is None or reconnecting.done():
+                        reconnecting = asyncio.ensure_future(self._reconnect())
+                    await asyncio.wait({reconnecting}, timeout=core.Ts)
+                    if reconnecting.done() and core.link_up:
+                        reconnecting = None
                 now = mono()
                 if sample is not None:
                     core.lateness, missed = arrivals.handle(
                         sample.seq, sample.t_device, sample.t_host or now, now)
                     stats.add(core.lateness)
                     stats.misses += missed
+                self._drain_link_events()
+                sessions = _link_sessions(link)
+                if sessions != self._sessions:
+                    # The link resynchronised its stream (a device restart without a
+                    # hello): the device clock and numbering start over.
+                    self._sessions = sessions
+                    core.est.restart_link()
                 cmd = core.step(sample, now)
                 t_sent = mono()
-                await link.send(cmd)
+                if core.link_up:
+                    try:
+                        await link.send(cmd)
+                    except LinkClosed as exc:
+                        self._link_lost(str(exc))
                 core.after_send(t_sent)
                 if core.internal is not None:
                     break
-        except LinkClosed:
-            pass
         finally:
+            if reconnecting is not None and not reconnecting.done():
+                reconnecting.cancel()
+                with contextlib.suppress(BaseException):
+                    await asyncio.wait({reconnecting}, timeout=5.0)
             with contextlib.suppress(Exception):
                 await link.send(Command(core.seq + 1, (0.0,) * core.m, 0))
             restore_threads(helpers)
             set_thread_policy(policy)
+
+    def _link_lost(self, reason: str) -> None:
+        """The link is gone: the next tick trips `link_loss` (first-out detail: why)."""
+        core = self.core
+        if not core.link_up:
+            return
+        detail = loss_detail(reason)
+        core.link_up = False
+        core.link_detail = detail
+        self.link_losses.append({"t": core.t, "tick": core.tick, "detail": detail,
+                                 "reason": reason})
+        core._event("link", f"link lost: {detail} ({reason})")
+
+    async def _reconnect(self) -> None:
+        """Bring the link back with backoff (the runtime stays latched: re-arm is the
+        operator's). Returns when it is up again; cancelled at the end of the run."""
+        link, core = self.link, self.core
+        again = getattr(link, "reconnect", None)
+        if again is None:
+            await asyncio.sleep(3600.0)
+            return
+        while True:
+            try:
+                await again(timeout_s=5.0)
+            except LinkClosed as exc:
+                self.last_reconnect_error = str(exc)
+                await asyncio.sleep(1.0)
+                continue
+            break
+        core.est.restart_link()
+        self._sessions = _link_sessions(link)
+        core.link_up = True
+        core.link_detail = ""
+        core._event("link", f"link back after {len(self.link_losses)} loss(es); the trip "
+                    "stays latched: clear, reset, then arm")
+
+    def _drain_link_events(self) -> None:
+        """Turn what the link noticed (a hello mid-run, a refused session) into events."""
+        events = getattr(self.link, "events", None)
+        while events:
+            kind, detail = events.popleft()
+            self.core._event(kind, detail)
 
     def summary(self) -> dict[str, Any]:
         """The run's figures (the `--json` object)."""
@@ -1484,4 +1595,6 @@ class Runner:
             "preflight": self.preflight,
             "internal_error": (f"{type(core.internal).__name__}: {core.internal}"
                                if core.internal is not None else None),
+            "link_losses": list(self.link_losses),
+            "link_up": core.link_up,
         }

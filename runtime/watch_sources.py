@@ -142,9 +142,11 @@ class MqttSource(TelemetrySource):
 
     def __init__(self, host: str, port: int, rig: str, username: str | None = None,
                  password: str | None = None, tls: bool = False,
-                 prefix: str = "corral") -> None:
+                 prefix: str = "corral", ca_file: str | None = None,
+                 cert_file: str | None = None, key_file: str | None = None) -> None:
         self.host, self.port, self.rig = host, port, rig
         self.username, self.password, self.tls = username, password, tls
+        self.ca_file, self.cert_file, self.key_file = ca_file, cert_file, key_file
         self.prefix = prefix
         self.description = f"mqtt://{host}:{port}/{rig}"
         self._client: Any = None
@@ -152,12 +154,13 @@ class MqttSource(TelemetrySource):
 
     async def open(self) -> None:
         import contextlib
-        import ssl
 
         import aiomqtt
 
+        from drivers.mqtt_link import tls_context_for
+
         self._stack = contextlib.AsyncExitStack()
-        tls_context = ssl.create_default_context() if self.tls else None
+        tls_context = tls_context_for(self.tls, self.ca_file, self.cert_file, self.key_file)
         self._client = await self._stack.enter_async_context(aiomqtt.Client(
             self.host, self.port, username=self.username, password=self.password,
             tls_context=tls_context, max_queued_incoming_messages=1000))

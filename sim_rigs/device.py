@@ -29,6 +29,7 @@ import asyncio
 import collections
 import contextlib
 import ctypes
+import dataclasses
 import gc
 import math
 import os
@@ -43,6 +44,7 @@ from typing import Any
 
 import aiomqtt
 import numpy as np
+from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from drivers.base import STATUS_COMMAND_TIMEOUT, Command, Hello, Sample
 from drivers.mqtt_link import (
@@ -267,7 +269,10 @@ class MqttDeviceTransport(Transport):
                 client._client.message_callback_add(
                     self.topics.command,
                     lambda pc, ud, m, c=client: self._on_paho_command(c, pc, m))
-                await client.subscribe(self.topics.command, qos=0)
+                # Retain-as-published: a command published retained keeps its flag, so
+                # it is recognised and ignored (a stored command must never act).
+                await client.subscribe(self.topics.command,
+                                       options=SubscribeOptions(qos=0, retainAsPublished=True))
                 await client.publish(self.topics.status,
                                      status_payload(True, self.settings.rig), qos=1, retain=True)
                 await self._publish_hello(client)
@@ -310,9 +315,12 @@ class MqttDeviceTransport(Transport):
         for t in pending:
             t.cancel()
 
-    async def _publish_hello(self, client: aiomqtt.Client) -> None:
+    async def _publish_hello(self, client: aiomqtt.Client, session: int | None = None) -> None:
         self.seq = (self.seq + 1) & 0xFFFFFFFF
-        await client.publish(self.topics.hello, encode_body(self.hello, seq=self.seq), qos=1,
+        if session is None:
+            session = self.guard.owner or 0
+        hello = dataclasses.replace(self.hello, session=session)
+        await client.publish(self.topics.hello, encode_body(hello, seq=self.seq), qos=1,
                              retain=True)
 
     async def _reader(self, client: aiomqtt.Client) -> None:
@@ -342,15 +350,17 @@ class MqttDeviceTransport(Transport):
             return
         if type(msg) is Hello:
             if msg.rig_id == HOST_HELLO_RIG_ID:
+                # The session handshake: granted (guard re-armed) or refused; the
+                # answer names the session the device obeys.
                 with self.guard_lock:
-                    self.guard.rearm()
-                self._loop.create_task(self._answer_hello(client))
+                    granted = self.guard.on_host_hello(msg.session, now)
+                self._loop.create_task(self._answer_hello(client, granted))
             return
         self._inbox.append((now, msg))
 
-    async def _answer_hello(self, client: aiomqtt.Client) -> None:
+    async def _answer_hello(self, client: aiomqtt.Client, session: int) -> None:
         with contextlib.suppress(aiomqtt.MqttError):
-            await self._publish_hello(client)
+            await self._publish_hello(client, session)
 
     def _publish_sample(self, body: bytes) -> None:
         """Write one sample to the broker now (loop thread; called from the clock thread)."""

@@ -44,7 +44,7 @@ class Broker:
     """One mosquitto process with its own config, log and (optional) password file."""
 
     def __init__(self, folder: Path, *, users: dict[str, str] | None = None,
-                 tcp_nodelay: bool = False) -> None:
+                 tcp_nodelay: bool = False, acl: str | None = None, tls: bool = False) -> None:
         binary = mosquitto_binary()
         if binary is None:
             raise RuntimeError("mosquitto is not installed (apt-get install mosquitto)")
@@ -55,6 +55,13 @@ class Broker:
         self.users = dict(users or {})
         self.tcp_nodelay = tcp_nodelay
         """``set_tcp_nodelay true``: the broker sends small messages without Nagle's wait."""
+        self.acl = acl
+        """Text of an ACL file (mosquitto's ``acl_file`` format), or None for none."""
+        self.tls = tls
+        """The listener speaks TLS on a certificate made here (`ca_file` is its CA)."""
+        self.ca_file: Path | None = None
+        if tls:
+            self.ca_file = make_certificates(folder)
         self.log_path = folder / "mosquitto.log"
         self.conf_path = folder / "mosquitto.conf"
         self.proc: subprocess.Popen[bytes] | None = None
@@ -68,6 +75,8 @@ class Broker:
     def _write_config(self) -> None:
         lines = [
             f"listener {self.port} 127.0.0.1",
+            *([f"cafile {self.folder / 'ca.crt'}", f"certfile {self.folder / 'server.crt'}",
+               f"keyfile {self.folder / 'server.key'}"] if self.tls else []),
             "persistence false",
             f"log_dest file {self.log_path}",
             "log_type error",
@@ -90,6 +99,10 @@ class Broker:
             lines += ["allow_anonymous false", f"password_file {pw}"]
         else:
             lines.append("allow_anonymous true")
+        if self.acl is not None:
+            acl = self.folder / "acl"
+            acl.write_text(self.acl)
+            lines.append(f"acl_file {acl}")
         self.conf_path.write_text("\n".join(lines) + "\n")
 
     def start(self, timeout_s: float = 10.0) -> None:
@@ -131,6 +144,22 @@ class Broker:
         self.stop()
         time.sleep(pause_s)
         self.start()
+
+
+def make_certificates(folder: Path) -> Path:
+    """A throw-away CA and a server certificate for 127.0.0.1 (openssl CLI, made at test
+    time); returns the CA certificate's path (``ca.crt``; ``server.crt``/``server.key``)."""
+    def ssl(*args: str) -> None:
+        subprocess.run(["openssl", *args], cwd=folder, check=True, capture_output=True)
+
+    ec = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1", "-nodes"]
+    ssl("req", "-x509", *ec, "-keyout", "ca.key", "-out", "ca.crt", "-days", "2",
+        "-subj", "/CN=corral test CA")
+    ssl("req", *ec, "-keyout", "server.key", "-out", "server.csr", "-subj", "/CN=127.0.0.1")
+    (folder / "san.ext").write_text("subjectAltName=IP:127.0.0.1\n")
+    ssl("x509", "-req", "-in", "server.csr", "-CA", "ca.crt", "-CAkey", "ca.key",
+        "-CAcreateserial", "-out", "server.crt", "-days", "2", "-extfile", "san.ext")
+    return folder / "ca.crt"
 
 
 @pytest.fixture

@@ -101,35 +101,45 @@ def test_c_cobs_agrees_with_python_on_examples_and_random_data(bins):
 
 def test_c_stream_decoder_counts_like_python(bins):
     rnd = random.Random(7)
-    chunks = [b"\x00"]
+    # The session handshake first (protocol v2): the device obeys session 9 only.
+    chunks = [b"\x00", encode_message(host_hello(9), seq=1)]
+    forged = 0
     for i in range(60):
         r = rnd.random()
-        if r < 0.5:
-            chunks.append(encode_message(Command(i, (0.5, -0.5), FLAG_OUTPUTS_ON)))
+        if r < 0.1:
+            # A forger (or a second runtime): another session, seq far ahead. Refused
+            # and counted; the owner's later commands are not made "old" by it.
+            chunks.append(encode_message(Command(100_000 + i, (12.0, 12.0), 1, session=8)))
+            forged += 1
+        elif r < 0.5:
+            chunks.append(encode_message(Command(i, (0.5, -0.5), FLAG_OUTPUTS_ON, session=9)))
         elif r < 0.55:
             chunks.append(frame_body(b"\x94\x63\x01\xcb" + bytes(8)))  # truncated array
         elif r < 0.6:
             chunks.append(frame_body(b"\x94\x63\x01\xcb" + bytes(8) + b"\xc0"))  # kind 99
         elif r < 0.8:
-            f = bytearray(encode_message(Command(i, (1.0, 2.0), 1)))
+            f = bytearray(encode_message(Command(i, (1.0, 2.0), 1, session=9)))
             f[rnd.randrange(len(f) - 1)] ^= 1 << rnd.randrange(8)
             chunks.append(bytes(f))
         else:
             chunks.append(bytes(rnd.randrange(256) for _ in range(rnd.randrange(1, 30))))
-    chunks.append(encode_message(host_hello(), seq=1))
-    chunks.append(encode_message(Stop(2, 0.0)))
+    chunks.append(encode_message(host_hello(8), seq=2))  # a second host: refused
+    chunks.append(encode_message(Stop(3, 0.0)))  # a stop is obeyed from anyone
     stream = b"".join(chunks)
     py = FrameDecoder(synced=False)
     msgs = py.feed(stream)
     out = _tool(bins, [f"feed {stream[i : i + 97].hex()}" for i in range(0, len(stream), 97)])
-    frames, crc, cobs, dec, unk, cmds, hellos, stopped = map(int, out[-1].split())
+    frames, crc, cobs, dec, unk, cmds, hellos, stopped, foreign, refused = map(
+        int, out[-1].split())
     s = py.stats
     assert min(s.frames_in, s.crc_errors, s.cobs_errors, s.decode_errors, s.unknown_kinds) > 0
     assert (frames, crc, cobs, dec, unk) == (
         s.frames_in, s.crc_errors, s.cobs_errors, s.decode_errors, s.unknown_kinds
     )
-    assert cmds == len({m.seq for m in msgs if isinstance(m, Command)})  # all newer, width 2
-    assert hellos == 1 and stopped == 1
+    owned = {m.seq for m in msgs if isinstance(m, Command) and m.session == 9}
+    assert cmds == len(owned)  # all newer, width 2, the owner's session
+    assert foreign == sum(1 for m in msgs if isinstance(m, Command) and m.session != 9) > 0
+    assert hellos == 2 and refused == 1 and stopped == 1
 
 
 # --------------------------------------------------------------------------- over a pty

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import os
 import threading
 import time
@@ -115,7 +116,8 @@ def test_handshake_samples_and_commands_echo_seq():
     async def main():
         with FakeDevice() as fake:
             async with SerialLink.from_url(f"serial:{fake.path}@115200") as link:
-                assert link.hello == HELLO
+                # The device granted this link's session (protocol v2 handshake).
+                assert link.hello == dataclasses.replace(HELLO, session=link.session)
                 assert link.stats.connected
                 seqs = []
                 for _ in range(150):
@@ -259,7 +261,7 @@ def test_unplug_raises_link_closed_and_reconnect_recovers(tmp_path):
             s = await link.receive()
             await link.send(Command(s.seq, (0.5,), FLAG_OUTPUTS_ON))
             assert link.stats.reconnects == 1 and link.stats.connected
-            assert link.hello == HELLO
+            assert link.hello == dataclasses.replace(HELLO, session=link.session)
             await asyncio.sleep(0.05)
             assert fake2.dev.guard.commands == 1
         finally:

@@ -360,21 +360,46 @@ def test_seq_newer_is_serial_number_arithmetic():
 
 def test_command_guard_fail_safe():
     g = CommandGuard((12.0, 12.0), timeout_s=0.05)
+    assert g.on_host_hello(77, 0.0) == 77  # the session handshake (protocol v2)
+
+    def cmd(seq: int, u: tuple[float, ...], flags: int = FLAG_OUTPUTS_ON) -> Command:
+        return Command(seq, u, flags, session=77)
+
     assert g.outputs(0.0) == ((0.0, 0.0), STATUS_OUTPUTS_OFF)  # nothing yet
-    assert g.on_command(Command(10, (1.0, 20.0), FLAG_OUTPUTS_ON), 1.0)
+    assert g.on_command(cmd(10, (1.0, 20.0)), 1.0)
     assert g.outputs(1.01) == ((1.0, 12.0), STATUS_SATURATED)
-    assert not g.on_command(Command(9, (5.0, 5.0), FLAG_OUTPUTS_ON), 1.02)  # older: ignored
-    assert not g.on_command(Command(11, (5.0,), FLAG_OUTPUTS_ON), 1.02)  # wrong width
+    assert not g.on_command(cmd(9, (5.0, 5.0)), 1.02)  # older: ignored
+    assert not g.on_command(cmd(11, (5.0,)), 1.02)  # wrong width
     assert g.outputs(1.049) == ((1.0, 12.0), STATUS_SATURATED)
     assert g.outputs(1.06) == ((0.0, 0.0), STATUS_COMMAND_TIMEOUT | STATUS_OUTPUTS_OFF)
-    assert g.on_command(Command(12, (-3.0, 0.0), FLAG_OUTPUTS_ON), 2.0)
+    assert g.on_command(cmd(12, (-3.0, 0.0)), 2.0)
     assert g.outputs(2.0) == ((-3.0, 0.0), 0)
     g.on_stop()
-    assert g.on_command(Command(13, (1.0, 1.0), FLAG_OUTPUTS_ON), 2.01)
+    assert g.on_command(cmd(13, (1.0, 1.0)), 2.01)
     assert g.outputs(2.01) == ((0.0, 0.0), STATUS_OUTPUTS_OFF)  # stop is latched
     g.rearm()
-    assert g.on_command(Command(1, (1.0, 1.0), FLAG_OUTPUTS_ON), 3.0)
+    assert g.on_command(cmd(1, (1.0, 1.0)), 3.0)
     assert g.outputs(3.0) == ((1.0, 1.0), 0)
+
+
+def test_command_guard_obeys_only_the_session_that_completed_the_handshake():
+    g = CommandGuard((12.0, 12.0), timeout_s=0.05, lease_s=1.0)
+    assert not g.on_command(Command(1, (1.0, 1.0), FLAG_OUTPUTS_ON, 5), 0.0)  # no owner yet
+    assert g.on_host_hello(5, 0.0) == 5
+    assert g.on_command(Command(1, (1.0, 1.0), FLAG_OUTPUTS_ON, 5), 0.01)
+    # A forger (or a second runtime) with sequence numbers far ahead: refused, counted,
+    # and the owner's next command still drives the outputs.
+    assert not g.on_command(Command(100_000, (12.0, 12.0), FLAG_OUTPUTS_ON, 6), 0.02)
+    assert not g.on_command(Command(100_001, (12.0, 12.0), FLAG_OUTPUTS_ON, 0), 0.02)
+    assert g.foreign_commands == 3
+    assert g.on_command(Command(2, (2.0, 2.0), FLAG_OUTPUTS_ON, 5), 0.03)
+    assert g.outputs(0.03) == ((2.0, 2.0), 0)
+    # A second host asking for the rig while the owner is live: refused, told the owner.
+    assert g.on_host_hello(6, 0.5) == 5 and g.sessions_refused == 1
+    assert g.outputs(0.05) == ((2.0, 2.0), 0)  # not re-armed by the refused hello
+    # Once the owner has been silent for the lease, a new host may take the rig.
+    assert g.on_host_hello(6, 1.2) == 6
+    assert not g.on_command(Command(3, (1.0, 1.0), FLAG_OUTPUTS_ON, 5), 1.21)
 
 
 # --------------------------------------------------------------------------- the spec
@@ -394,8 +419,8 @@ def test_worked_example_in_the_spec_is_what_the_codec_produces():
     assert _doc_hex("example-frame") == encode_message(s)
     assert decode_frame(_doc_hex("example-frame")) == s
     cmd = _doc_hex("example-command")
-    assert cmd == encode_message(Command(7, (1.25,), FLAG_OUTPUTS_ON), t=0.007)
-    assert decode_frame(cmd) == Command(7, (1.25,), FLAG_OUTPUTS_ON)
+    assert cmd == encode_message(Command(7, (1.25,), FLAG_OUTPUTS_ON, session=42), t=0.007)
+    assert decode_frame(cmd) == Command(7, (1.25,), FLAG_OUTPUTS_ON, session=42)
 
 
 def test_spec_bits_match_drivers_base():

@@ -39,7 +39,7 @@ static void write_hello(corral_mp_writer *w, uint32_t seq, double t, const corra
 {
     /* names arrays are not modified; the cast only drops const for the helper */
     corral_hello *hh = (corral_hello *)h;
-    write_head(w, 12, CORRAL_KIND_HELLO, seq, t);
+    write_head(w, 13, CORRAL_KIND_HELLO, seq, t);
     corral_mp_write_uint(w, h->protocol);
     corral_mp_write_str(w, h->rig_id);
     write_names(w, hh->channels, h->n_channels);
@@ -49,6 +49,7 @@ static void write_hello(corral_mp_writer *w, uint32_t seq, double t, const corra
     write_doubles(w, h->output_limits, h->n_output_limits);
     write_names(w, hh->output_units, h->n_output_units);
     corral_mp_write_double(w, h->command_timeout_s);
+    corral_mp_write_uint(w, h->session);
 }
 
 int corral_msg_encode_body(const corral_msg *m, uint8_t *out, size_t cap, size_t *len)
@@ -61,9 +62,12 @@ int corral_msg_encode_body(const corral_msg *m, uint8_t *out, size_t cap, size_t
         break;
     case CORRAL_KIND_SAMPLE:
     case CORRAL_KIND_COMMAND:
-        write_head(&w, 5, m->kind, m->seq, m->t);
+        write_head(&w, m->kind == CORRAL_KIND_SAMPLE ? 5 : 6, m->kind, m->seq, m->t);
         corral_mp_write_uint(&w, m->kind == CORRAL_KIND_SAMPLE ? m->status : m->flags);
         write_doubles(&w, m->values, m->n_values);
+        if (m->kind == CORRAL_KIND_COMMAND) {
+            corral_mp_write_uint(&w, m->session);
+        }
         break;
     case CORRAL_KIND_HEARTBEAT:
         write_head(&w, 4, m->kind, m->seq, m->t);
@@ -195,6 +199,7 @@ int corral_msg_decode_body(const uint8_t *body, size_t n, corral_msg *m)
         return CORRAL_ERR_DECODE;
     }
     m->kind = (uint32_t)kind;
+    m->session = 0;
     m->seq = read_u32(&r);
     m->t = corral_mp_read_number(&r);
     switch (m->kind) {
@@ -205,6 +210,10 @@ int corral_msg_decode_body(const uint8_t *body, size_t n, corral_msg *m)
     case CORRAL_KIND_COMMAND:
         m->flags = read_u32(&r);
         m->n_values = read_doubles(&r, m->values, CORRAL_MAX_CHANNELS);
+        if (count > need) { /* v2: the session token */
+            m->session = read_u32(&r);
+            need++;
+        }
         break;
     case CORRAL_KIND_HEARTBEAT:
         m->status = read_u32(&r);
@@ -227,6 +236,11 @@ int corral_msg_decode_body(const uint8_t *body, size_t n, corral_msg *m)
         h->n_output_limits = read_doubles(&r, h->output_limits, CORRAL_MAX_OUTPUTS);
         h->n_output_units = read_names(&r, h->output_units, CORRAL_MAX_OUTPUTS);
         h->command_timeout_s = corral_mp_read_number(&r);
+        h->session = 0;
+        if (count > need) { /* v2: the session token */
+            h->session = read_u32(&r);
+            need++;
+        }
         break;
     }
     }
@@ -260,7 +274,12 @@ void corral_device_init(corral_device *d, const corral_hello *hello)
 {
     memset(d, 0, sizeof *d);
     d->hello = *hello;
+    d->hello.session = 0;
     d->rx_discarding = 1; /* bytes before the first delimiter belong to nobody */
+    d->lease_s = 20.0 * hello->command_timeout_s;
+    if (d->lease_s < 1.0) {
+        d->lease_s = 1.0;
+    }
 }
 
 /* serial number arithmetic (RFC 1982, 32 bits): is a newer than b? */
@@ -275,6 +294,10 @@ static void handle(corral_device *d, const corral_msg *m, double now_s)
     uint8_t i;
     switch (m->kind) {
     case CORRAL_KIND_COMMAND:
+        if (!d->has_owner || m->session != d->owner) {
+            d->foreign_commands++; /* another session, or none: never drives the outputs */
+            return;
+        }
         if (m->n_values != d->hello.n_output_limits ||
             (d->have_command && !seq_newer(m->seq, d->last_command_seq))) {
             d->rejected_commands++;
@@ -294,6 +317,7 @@ static void handle(corral_device *d, const corral_msg *m, double now_s)
         d->have_command = 1;
         d->last_command_seq = m->seq;
         d->last_command_t = now_s;
+        d->owner_t = now_s;
         d->commands++;
         if (m->flags & CORRAL_FLAG_STOP) {
             d->stopped = 1;
@@ -305,9 +329,17 @@ static void handle(corral_device *d, const corral_msg *m, double now_s)
         break;
     case CORRAL_KIND_HELLO:
         d->host_hellos++;
-        d->hello_requested = 1;
-        d->stopped = 0;
-        d->have_command = 0;
+        d->hello_requested = 1; /* answered with the granted (or the owner's) session */
+        if (!d->has_owner || m->hello.session == d->owner || now_s - d->owner_t > d->lease_s) {
+            d->has_owner = 1;
+            d->owner = m->hello.session;
+            d->owner_t = now_s;
+            d->hello.session = d->owner;
+            d->stopped = 0;
+            d->have_command = 0;
+        } else {
+            d->sessions_refused++;
+        }
         break;
     default:
         break; /* heartbeats and anything else: nothing to do */

@@ -23,7 +23,7 @@
 #include <stddef.h>
 #include <stdint.h>
 
-#define CORRAL_PROTOCOL_VERSION 1u
+#define CORRAL_PROTOCOL_VERSION 2u /* v2: session token in hello and command */
 
 #define CORRAL_KIND_HELLO 0u
 #define CORRAL_KIND_SAMPLE 1u
@@ -82,6 +82,7 @@ typedef struct {
     uint8_t n_output_units;
     char output_units[CORRAL_MAX_OUTPUTS][CORRAL_NAME_LEN];
     double command_timeout_s;
+    uint32_t session; /* host hello: the session asked for; device hello: the one granted */
 } corral_hello;
 
 /* One decoded message. Which fields mean something depends on kind:
@@ -95,6 +96,7 @@ typedef struct {
     uint32_t status;
     uint32_t flags;
     uint32_t code;
+    uint32_t session; /* command: the host session it belongs to (0 if the sender left it out) */
     uint8_t n_values;
     double values[CORRAL_MAX_CHANNELS];
     char text[CORRAL_TEXT_LEN];
@@ -129,9 +131,15 @@ typedef struct {
     double last_command_t;
     int stopped;
     int hello_requested; /* a host hello arrived: send your hello, then clear this */
+    /* session (protocol v2): commands are obeyed only from the owner's session */
+    int has_owner;
+    uint32_t owner;
+    double owner_t;  /* last handshake or accepted command of the owner */
+    double lease_s;  /* a silent owner may be replaced after this long */
     /* counters */
     uint32_t frames_in, crc_errors, cobs_errors, decode_errors, unknown_kinds;
     uint32_t commands, rejected_commands, host_hellos, stops;
+    uint32_t sessions_refused, foreign_commands;
 } corral_device;
 
 void corral_device_init(corral_device *d, const corral_hello *hello);

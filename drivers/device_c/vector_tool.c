@@ -8,7 +8,8 @@
  *   uncobs <hex>  prints the COBS decoding or "ERR"
  *   crc <hex>     prints CRC-16/CCITT-FALSE as 4 hex digits
  *   feed <hex>    feeds bytes to one device instance (time 0) and prints its
- *                 counters: frames crc cobs decode unknown commands hellos stopped */
+ *                 counters: frames crc cobs decode unknown commands hellos stopped
+ *                           foreign_commands sessions_refused */
 #include <stdio.h>
 #include <string.h>
 
@@ -115,10 +116,11 @@ int main(void)
             printf("%04x\n", (unsigned)corral_crc16(in, n));
         } else if (strcmp(line, "feed") == 0) {
             corral_device_feed(&dev, in, n, 0.0);
-            printf("%lu %lu %lu %lu %lu %lu %lu %d\n", (unsigned long)dev.frames_in,
+            printf("%lu %lu %lu %lu %lu %lu %lu %d %lu %lu\n", (unsigned long)dev.frames_in,
                    (unsigned long)dev.crc_errors, (unsigned long)dev.cobs_errors,
                    (unsigned long)dev.decode_errors, (unsigned long)dev.unknown_kinds,
-                   (unsigned long)dev.commands, (unsigned long)dev.host_hellos, dev.stopped);
+                   (unsigned long)dev.commands, (unsigned long)dev.host_hellos, dev.stopped,
+                   (unsigned long)dev.foreign_commands, (unsigned long)dev.sessions_refused);
         } else {
             printf("ERR unknown command\n");
         }
