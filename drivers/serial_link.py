@@ -154,7 +154,7 @@ class SerialLink(Link):
         self._protocol: _Protocol | None = None
         self._host_seq = 0
         self.session = 0
-        """This host's session token (protocol v2), new at every open."""
+        """This host's session token (protocol v2), drawn at the first open."""
         self._taken_by = 0
         # Recent samples' (t_device, t_host), for latency and the command's t echo.
         self._ring = LatencyRing(self.stats)
@@ -265,7 +265,10 @@ class SerialLink(Link):
         loop = asyncio.get_running_loop()
         self._hello_waiter = loop.create_future()
         deadline = loop.time() + self.hello_timeout_s
-        self.session = new_session()
+        if not self.session:
+            # One token per link object: a reconnect asks again as the same owner, so a
+            # device that still remembers it grants it at once.
+            self.session = new_session()
         self._taken_by = 0
         try:
             while True:

@@ -72,7 +72,7 @@ def test_mqtt_sample_path_survives_the_corpus():
 @given(st.binary(max_size=2048))
 def test_any_bytes_never_raise_from_the_stream_decoder(data):
     link = SerialLink("/nonexistent")
-    link._on_hello(fuzz.HELLO)
+    fuzz.adopt(link)
     link._on_data(b"\x00" + data + b"\x00")
 
 
@@ -95,7 +95,7 @@ def test_any_msgpack_array_decodes_or_raises_a_wire_error(arr, kind):
     except WireError:
         pass
     link = SerialLink("/nonexistent")
-    link._on_hello(fuzz.HELLO)
+    fuzz.adopt(link)
     link._on_data(frame_body(body))
 
 
@@ -161,7 +161,7 @@ def test_wrong_channel_count_and_non_finite_time_are_refused_before_the_loop():
 
 def test_a_hello_mid_run_is_an_event_and_is_not_adopted():
     link = SerialLink("/nonexistent")
-    link._on_hello(fuzz.HELLO)
+    fuzz.adopt(link)
     forged = Hello(PROTOCOL_VERSION, "forged", ("a", "b", "c"), ("", "", ""), 100.0, ("v",),
                    (1.0,), ("V",), 0.05)
     link._on_data(b"\x00" + encode_message(forged))
