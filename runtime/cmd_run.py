@@ -137,9 +137,11 @@ EXIT_LINK_LOST = 3
 
 def main(args: argparse.Namespace) -> int:
     """Run; exit 0 when the run ended normally (trips included), 2 on a user error,
-    3 (`EXIT_LINK_LOST`) when the link was lost during the run."""
+    3 (`EXIT_LINK_LOST`) when the link was lost during the run, 71
+    (`runtime.loop.EXIT_INTERNAL_TRIP`) when an exception inside the tick ended it through
+    the ``internal`` trip."""
     from drivers.base import LinkClosed
-    from runtime.loop import Runner, RunSettings
+    from runtime.loop import EXIT_INTERNAL_TRIP, Runner, RunSettings
 
     if args.duration is not None and not 0 < args.duration < math.inf:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10 "
@@ -240,6 +242,9 @@ def main(args: argparse.Namespace) -> int:
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
         if console_path is not None:
             print(f"  console:  {console_path}")
+    if summary.get("internal_error"):
+        # The tick raised: outputs went off and the trip is on disk (rule `internal`).
+        return EXIT_INTERNAL_TRIP
     losses = summary.get("link_losses") or []
     if losses:
         # A run whose link ended under it did not end normally, whatever came after.

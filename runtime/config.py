@@ -264,9 +264,37 @@ class Config:
         return Config(raw=raw, path=self.path, overrides=[*self.overrides, *overrides])
 
 
+RIG_NAME_MAX = 64
+"""Longest rig name: it names the run's files, its socket and its MQTT topics."""
+
+
+def check_rig_name(value: object) -> str:
+    """``rig.name`` checked for use in file names, the socket path and topics, or a
+    one-line `ConfigError`: text of 1..`RIG_NAME_MAX` characters without ``/``, NUL,
+    control characters or MQTT wildcards, and not ``.`` or ``..``."""
+    fix = (f"write 1 to {RIG_NAME_MAX} characters of letters, digits, '-', '_' or '.', "
+           'e.g. rig.name = "pedestal-lab2".')
+    if not isinstance(value, str) or not value:
+        raise ConfigError("rig.name", f"must be a non-empty text, not {value!r}.", fix)
+    if len(value) > RIG_NAME_MAX:
+        raise ConfigError("rig.name", f"is {len(value)} characters long; it names the "
+                          f"run's files and socket, so at most {RIG_NAME_MAX}.", fix)
+    bad = sorted({c for c in value if c in "/\\+#" or not c.isprintable()})
+    if bad or value in (".", ".."):
+        shown = ", ".join(repr(c) for c in bad) or repr(value)
+        raise ConfigError("rig.name", f"{shown} cannot be part of a file name or topic.",
+                          fix)
+    return value
+
+
 def rig_name(cfg: Config) -> str:
-    """The rig's name: ``rig.name``, else the simulated rig's (``rig.sim``), else "rig"."""
-    return str(cfg.get("rig.name", cfg.get("rig.sim") or "rig"))
+    """The rig's name, checked (`check_rig_name`): ``rig.name``, else the simulated rig's own
+    name (a built-in rig or a rig file's ``name``), else "rig"."""
+    name = cfg.get("rig.name")
+    if name is None:
+        spec = schema.rig_spec(cfg.raw)
+        name = spec.name if spec is not None else "rig"
+    return check_rig_name(name)
 
 
 def _shape_txt(shape: tuple[int | None, int | None]) -> str:

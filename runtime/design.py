@@ -19,7 +19,7 @@ import scipy.linalg as sla
 from numpy.typing import NDArray
 
 from runtime.basis import Basis, basis_from_config
-from runtime.config import Config, ConfigError
+from runtime.config import Config, ConfigError, rig_name
 
 Array = NDArray[np.float64]
 
@@ -161,11 +161,15 @@ def rig_model(cfg: Config) -> RigModel:
     """The nominal model: the simulated rig's (`rig.sim`, a built-in name or a rig file), or
     explicit `rig.A`, `rig.B`, `rig.C`; explicit keys override the rig file's."""
     from runtime.rig import INLINE, rig_spec
+    sim = cfg.get("rig.sim")
+    if sim is not None and not isinstance(sim, str):
+        raise ConfigError("rig.sim", f"must name a built-in rig or a rig file, not {sim!r}.",
+                          'write e.g. rig.sim = "pedestal" or rig.sim = "my-rig.toml".')
 
     spec = rig_spec(cfg)
-    if spec is not None and cfg.get("rig.sim", None) is not None:
+    name = rig_name(cfg)
+    if spec is not None and sim is not None:
         sim = spec.name
-        name = str(cfg.get("rig.name", sim))
         A0, B0, C0 = spec.nominal_model()
         n, m = A0.shape[0], B0.shape[1]
         A = cfg.matrix("rig.A", (n, n)) if cfg.has("rig.A") else A0
@@ -175,7 +179,6 @@ def rig_model(cfg: Config) -> RigModel:
                   if cfg.has("rig.input_limits") else np.array(spec.input_limits, dtype=float))
         return RigModel(name, sim, A, B, C, spec.states, spec.state_units, spec.inputs,
                         spec.input_units, limits, spec)
-    name = str(cfg.get("rig.name", "rig"))
     A = cfg.matrix("rig.A", (None, None))
     n = A.shape[0]
     if A.shape != (n, n):

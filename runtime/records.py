@@ -36,17 +36,16 @@ import msgpack
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime.watchdog import RULE_IDS
+
 TRIPS_FORMAT = "corral-trips"
 RUNLOG_FORMAT = "corral-runlog"
 FORMAT_VERSION = 1
 TRIPS_SUFFIX = ".trips"
 RUNLOG_SUFFIX = ".run"
 
-#: Watchdog rule ids, in the order the contract lists them.
-RULES: tuple[str, ...] = (
-    "margin_warning", "margin", "predicted_crossing", "clamp", "stale", "seq_gap",
-    "link_loss", "nonfinite", "jump", "saturation", "overrun", "weight_norm", "weight_rate",
-)
+#: Watchdog rule ids, in the order the contract lists them (one list: the watchdog's).
+RULES: tuple[str, ...] = RULE_IDS
 #: Supervisor modes, in the order used when a mode is recorded as an integer code.
 MODES: tuple[str, ...] = ("idle", "settling", "engaged", "fallback", "stopped")
 #: Margin levels (fractions of eps) when neither the log nor its config names them.
@@ -79,10 +78,26 @@ def _packer() -> msgpack.Packer:
 
 
 def log_paths(log_dir: str | Path, rig: str, stamp: str | None = None) -> tuple[Path, Path]:
-    """The run log and trip log paths of one run: `<dir>/<rig>-<YYYYmmdd-HHMMSS>.run|.trips`."""
+    """The run log and trip log paths of one run, claimed so no other run gets them.
+
+    `<dir>/<rig>-<YYYYmmdd-HHMMSS>-<pid>.run|.trips`; when that trip log already exists (a
+    second run in the same second from the same process) a sequence suffix ``-2``, ``-3``
+    ... is added. The trip log is created empty here with O_EXCL, so two runs never share
+    a trip file (and trip ids stay unique per file) nor a run log.
+    """
     stamp = stamp or time.strftime("%Y%m%d-%H%M%S")
-    base = Path(log_dir) / f"{rig}-{stamp}"
-    return base.with_suffix(RUNLOG_SUFFIX), base.with_suffix(TRIPS_SUFFIX)
+    stem = f"{rig}-{stamp}-{os.getpid()}"
+    for n in range(1, 10_000):
+        base = Path(log_dir) / (stem if n == 1 else f"{stem}-{n}")
+        # Not with_suffix: a dot in the rig name would be taken for a suffix.
+        trips = Path(f"{base}{TRIPS_SUFFIX}")
+        try:
+            fd = os.open(trips, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            continue
+        os.close(fd)
+        return Path(f"{base}{RUNLOG_SUFFIX}"), trips
+    raise FileExistsError(f"no free trip log name for {stem} in {log_dir}")
 
 
 def _fsync_dir(path: Path) -> None:

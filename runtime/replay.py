@@ -50,6 +50,7 @@ UNRECORDED_RULES = {
     "jump": "the estimator's innovation is not recorded",
     "overrun": "deadline misses belong to the host clock, not replayable",
     "weight_rate": "the weight matrix per tick is not recorded (only its norm)",
+    "internal": "an exception inside the tick is a software fault, not a replayable signal",
 }
 
 #: The loop filters d(ratio)/dt with a 20 Hz first-order low-pass (runtime.loop.TickCore).

@@ -59,10 +59,9 @@ SEGMENTS = "segments"
 """A list of command segments ``{at, kind, ...}`` (checked by `runtime.commands`)."""
 TABLES = "tables"
 """An array of tables (``[[faults]]``, checked by `sim_rigs.faults`)."""
-SCALE = "scale"
-"""\"u_max\", \"none\", a positive number or one per input (checked by the design)."""
-RIG_ENTRY = "rig entry"
-"""A value the rig loader checks (a parameter, a sensor channel): opaque here."""
+CHECKED = "checked"
+"""A value its one reader checks (a rig parameter or sensor channel by the rig loader,
+the input regressor scale by the design, the socket group by the runtime): opaque here."""
 TABLE = "table"
 """A table of keys: declared keys below it, or an `OpenTable`."""
 
@@ -249,7 +248,7 @@ KEYS: tuple[Key, ...] = (
         doc="augment the regressor with the nominal input"),
     key("adaptation.step_gain_cap", NUMBER, 1.0, "1", "cap on the per-step adaptation gain",
         positive=True),
-    key("adaptation.input_regressor_scale", SCALE, "u_max", "input units",
+    key("adaptation.input_regressor_scale", CHECKED, "u_max", "input units",
         "divides the nominal input in the augmented regressor: u_max, none or numbers"),
     key("adaptation.leakage", CHOICE, "none", doc="leakage modification",
         options="runtime.modifiers:LEAKAGES"),
@@ -315,11 +314,11 @@ KEYS: tuple[Key, ...] = (
     key("plant.sensors", TABLE, OPTIONAL, doc="overrides of the rig's named sensor settings"),
     key("plant.sensors.*", NUMBER, Derived("the rig's sensor setting"), "see the rig",
         "a sensor setting of the rig (resolution, noise; delay_ticks in ticks)", minimum=0.0),
-    key("plant.sensors.channels", RIG_ENTRY, OPTIONAL, "see the rig",
+    key("plant.sensors.channels", CHECKED, OPTIONAL, "see the rig",
         "per measured state: resolution and noise (a number or a sensor setting's name)"),
     key("plant.params", TABLE, OPTIONAL,
         doc="inline rig: named parameters (as a rig file's [params])"),
-    key("plant.params.*", RIG_ENTRY, OPTIONAL, "see the entry",
+    key("plant.params.*", CHECKED, OPTIONAL, "see the entry",
         "a parameter: value, unit, optional range [lo, hi]"),
     key("plant.terms", TABLES, OPTIONAL,
         doc="inline rig: matched terms (as a rig file's [[term]])"),
@@ -333,6 +332,17 @@ KEYS: tuple[Key, ...] = (
     key("log.dir", TEXT, "runs", doc="folder for run logs, trip logs and sockets"),
     key("log.pre_capture_s", NUMBER, 1.0, "s", "trip capture before the trip", minimum=0.0),
     key("log.post_capture_s", NUMBER, 1.0, "s", "trip capture after the trip", minimum=0.0),
+    key("log.events_per_s", NUMBER, 20.0, "1/s",
+        "operator events written per second at most; the excess is counted", minimum=1.0),
+    # [operator] -- who may use the operator socket, and how fast
+    key("operator", TABLE, OPTIONAL, doc="the operator socket's access and rate limit"),
+    key("operator.socket_group", CHECKED, OPTIONAL,
+        doc="a group (name or gid) given read/write on the socket (0660); else 0600"),
+    key("operator.allowed_uids", CHECKED, OPTIONAL,
+        doc="peer uids accepted (SO_PEERCRED); default this process's uid and root"),
+    key("operator.request_rate_hz", NUMBER, 20.0, "Hz", "requests per second per runtime",
+        positive=True),
+    key("operator.request_burst", NUMBER, 20.0, "requests", "burst allowance", minimum=1.0),
     # [watchdog]
     key("watchdog", TABLE, OPTIONAL, doc="rule thresholds (runtime/watchdog.py)"),
     key("watchdog.margin_warning", NUMBER, 0.8, "||e||_P/eps", "warning level", positive=True),

@@ -6,6 +6,17 @@ trip happens and ``reply`` maps answering requests. Client -> server:
 ``{"type": "request", "op": "arm" | "disarm" | "reset" | "stop"}``. The map
 fields are listed in docs/telemetry.md.
 
+Who may use it (the socket arms a rig): the socket file is created mode 0600
+(0660 with ``operator.socket_group``) under a temporary name and renamed into
+place once its mode is set, so no one connects through a wider mode even for an
+instant; each connecting peer's uid (``SO_PEERCRED``) must be in
+``operator.allowed_uids`` (default: the runtime's own uid and root), or it gets
+one refusing reply and is disconnected (counted). Requests pass a token bucket
+(``operator.request_rate_hz``, default 20, burst ``operator.request_burst``,
+default 20): the excess is answered ``busy`` (counted) and never reaches the
+tick; a client still sending after 100 busy answers in a row is disconnected
+(counted as a flood): answering a flood costs the tick's process the GIL.
+
 A slow client is dropped, never waited for: messages go out through the
 transport without awaiting a drain, and a client whose unsent bytes exceed
 ``telemetry.client_buffer`` (default 256 KiB) is disconnected and counted.
@@ -23,7 +34,9 @@ import contextlib
 import math
 import os
 import socket
-from collections.abc import Callable
+import struct
+import time
+from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Any
 
@@ -36,14 +49,71 @@ class _Client:
     def __init__(self, writer: asyncio.StreamWriter) -> None:
         self.writer = writer
         self.closed = False
+        self.busy_run = 0
+        """Requests answered busy since the last one that got through."""
+
+
+class TokenBucket:
+    """`rate` tokens per second, at most `burst` saved; `take()` spends one or says no."""
+
+    def __init__(self, rate: float, burst: float) -> None:
+        self.rate = float(rate)
+        self.burst = float(burst)
+        self.tokens = float(burst)
+        self.t = time.monotonic()
+
+    def take(self) -> bool:
+        """Spend one token if there is one."""
+        now = time.monotonic()
+        self.tokens = min(self.burst, self.tokens + (now - self.t) * self.rate)
+        self.t = now
+        if self.tokens >= 1.0:
+            self.tokens -= 1.0
+            return True
+        return False
+
+
+def peer_uid(sock: socket.socket) -> int | None:
+    """The connecting process's uid (Linux ``SO_PEERCRED``), None where unsupported."""
+    opt = getattr(socket, "SO_PEERCRED", None)
+    if opt is None:
+        return None
+    try:
+        _pid, uid, _gid = struct.unpack("3i", sock.getsockopt(socket.SOL_SOCKET, opt,
+                                                              struct.calcsize("3i")))
+    except OSError:
+        return None
+    return int(uid)
 
 
 class TelemetryServer:
-    """The socket server (see the module docstring). Run `serve()` as a task."""
+    """The socket server (see the module docstring). Run `serve()` as a task.
+
+    ``socket_gid``: a group whose members may connect (mode 0660; None: 0600).
+    ``allowed_uids``: peer uids accepted (None: this process's uid and root).
+    ``request_rate_hz``/``request_burst``: the token bucket every request passes.
+    """
 
     def __init__(self, path: str | Path, hello: dict[str, Any], on_request: RequestHandler,
-                 rate_hz: float = 25.0, client_buffer: int = 256 * 1024) -> None:
+                 rate_hz: float = 25.0, client_buffer: int = 256 * 1024,
+                 socket_gid: int | None = None, allowed_uids: Iterable[int] | None = None,
+                 request_rate_hz: float = 20.0, request_burst: float = 20.0) -> None:
         self.path = str(path)
+        self.socket_gid = socket_gid
+        self.allowed_uids = (set(int(u) for u in allowed_uids) if allowed_uids is not None
+                             else {os.getuid(), 0})
+        self.bucket = TokenBucket(request_rate_hz, request_burst)
+        self.requests = 0
+        """Requests passed on to the loop."""
+        self.busy = 0
+        """Requests answered ``busy`` (over the rate limit)."""
+        self.refused_peers = 0
+        """Connections refused because the peer's uid is not allowed."""
+        self.flood_limit = 100
+        """Busy answers in a row after which a client is disconnected as a flood."""
+        self.flood_drops = 0
+        """Clients disconnected for flooding."""
+        self._busy_replies: dict[str, bytes] = {}
         self.hello = {"type": "hello", **hello}
         self.on_request = on_request
         self.rate_hz = min(50.0, max(1.0, float(rate_hz)))
@@ -74,10 +144,8 @@ class TelemetryServer:
     async def serve(self) -> None:
         """Listen and stream telemetry until cancelled; removes the socket file at the end."""
         self._loop = asyncio.get_running_loop()
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(self.path)
         Path(self.path).parent.mkdir(parents=True, exist_ok=True)
-        self._server = await asyncio.start_unix_server(self._handle, path=self.path)
+        self._server = await asyncio.start_unix_server(self._handle, sock=self._bind())
         try:
             period = 1.0 / self.rate_hz
             while True:
@@ -91,6 +159,42 @@ class TelemetryServer:
                 self._drop(c, count=False)
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(self.path)
+
+    def _bind(self) -> socket.socket:
+        """A listening socket at `path` whose mode was set before it got its name.
+
+        Bound under a temporary name, chmod 0600 (0660 and chgrp with a group), listening,
+        then renamed over `path`: a client can never find the socket with the umask's mode,
+        nor find it before it listens. (The rig lock makes this runtime the only owner
+        of `path`; a socket left there by a killed run is replaced.)
+        """
+        tmp = f"{self.path}.{os.getpid()}.tmp"
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        try:
+            sock.bind(tmp)
+            if self.socket_gid is not None:
+                os.chown(tmp, -1, self.socket_gid)
+                os.chmod(tmp, 0o660)
+            else:
+                os.chmod(tmp, 0o600)
+            sock.listen(16)
+            os.rename(tmp, self.path)
+        except BaseException:
+            sock.close()
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+            raise
+        sock.setblocking(False)
+        return sock
+
+    @property
+    def counters(self) -> dict[str, int]:
+        """Operator-socket figures for the run summary."""
+        return {"requests": self.requests, "busy": self.busy,
+                "refused_peers": self.refused_peers, "flood_drops": self.flood_drops,
+                "dropped_clients": self.dropped_clients}
 
     def _deliver(self, record: dict[str, Any]) -> None:
         for listener in self.listeners:
@@ -136,6 +240,16 @@ class TelemetryServer:
         # Never let the transport pause us: we police the buffer ourselves.
         writer.transport.set_write_buffer_limits(high=self.client_buffer * 4)
         sock = writer.get_extra_info("socket")
+        uid = peer_uid(sock) if sock is not None else None
+        if uid is not None and uid not in self.allowed_uids:
+            self.refused_peers += 1
+            with contextlib.suppress(Exception):
+                writer.write(msgpack.packb(
+                    {"type": "reply", "op": "", "ok": False,
+                     "message": f"uid {uid} may not use this rig's operator socket "
+                                "(operator.allowed_uids)"}, use_bin_type=True))
+                writer.close()
+            return
         if sock is not None:  # bound what the kernel holds for a client too
             with contextlib.suppress(OSError):
                 sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, self.client_buffer)
@@ -150,6 +264,13 @@ class TelemetryServer:
                 unpacker.feed(chunk)
                 for msg in unpacker:
                     self._on_message(c, msg)
+                    if c.busy_run > self.flood_limit:
+                        # Still sending after this many busy answers: a flood, not an
+                        # operator. Cut it off (counted): answering costs the tick's
+                        # process CPU and the GIL.
+                        self.flood_drops += 1
+                        self._drop(c, count=False)
+                        break
         except (ConnectionError, ValueError, msgpack.UnpackException):
             pass
         finally:
@@ -162,6 +283,21 @@ class TelemetryServer:
             return
         op = str(msg.get("op", ""))
         loop = self._loop
+        if not self.bucket.take():
+            # Over the rate limit: answered here, never queued for the tick.
+            self.busy += 1
+            c.busy_run += 1
+            data = self._busy_replies.get(op)
+            if data is None:
+                data = msgpack.packb({"type": "reply", "op": op, "ok": False,
+                                      "message": "busy: too many requests, try again shortly"},
+                                     use_bin_type=True)
+                if len(self._busy_replies) < 16:
+                    self._busy_replies[op] = data
+            self._send(c, data)
+            return
+        self.requests += 1
+        c.busy_run = 0
 
         def reply(ok: bool, message: str) -> None:
             if loop is not None and not loop.is_closed():

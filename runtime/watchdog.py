@@ -15,7 +15,8 @@ Config (all optional, declared with their defaults in `runtime.schema`): ``[watc
 (``margin_warning``, ``margin_trip``, ``predicted_horizon_s``,
 ``stale_periods``, ``seq_gap_max``, ``link_timeout_s``, ``saturation_s``,
 ``overrun_misses``, ``overrun_window``, ``weight_norm_max``,
-``weight_rate_max``, ``jump_limit``), and per rule
+``weight_rate_max``, ``jump_limit``), and per rule (except ``internal``, always
+outputs off)
 ``[watchdog.rules.<id>]`` with ``reaction``, ``on_delay_s``, ``deadband``,
 ``enabled``.
 
@@ -42,7 +43,7 @@ SEVERITY = {"none": 0, "baseline": 1, "controlled_stop": 2, "outputs_off": 3}
 
 RULE_IDS = ("margin_warning", "margin", "predicted_crossing", "clamp", "stale", "seq_gap",
             "link_loss", "nonfinite", "jump", "saturation", "overrun", "weight_norm",
-            "weight_rate")
+            "weight_rate", "internal")
 
 # Safe default reaction per rule: data that cannot be trusted -> outputs off;
 # the adaptive part misbehaving -> the fixed-gain baseline; the drive pinned
@@ -52,7 +53,7 @@ DEFAULT_REACTIONS = {
     "clamp": "baseline", "stale": "outputs_off", "seq_gap": "baseline",
     "link_loss": "outputs_off", "nonfinite": "outputs_off", "jump": "baseline",
     "saturation": "controlled_stop", "overrun": "baseline", "weight_norm": "baseline",
-    "weight_rate": "baseline",
+    "weight_rate": "baseline", "internal": "outputs_off",
 }
 
 DEFAULTS: dict[str, Any] = schema.defaults_of("watchdog")
@@ -99,6 +100,8 @@ class Signals:
     misses_window: int = 0
     w_norm: float = 0.0
     w_rate: float = 0.0
+    internal: bool = False
+    """An exception escaped the tick (set by the loop's last line of defence)."""
 
 
 @dataclass
@@ -187,10 +190,14 @@ def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
              lambda s: float(s.misses_window)),
         Rule("margin_warning", "||e||_P / eps", num("margin_warning"), lambda s: s.ratio,
              engaged_only=True, deadband=0.05, warning_only=True),
+        # The last line of defence: an exception inside the tick. The loop trips it
+        # directly (`runtime.loop.TickCore.internal_trip`); its reaction is always outputs
+        # off and it cannot be disabled (nothing computed by a broken tick can be trusted).
+        Rule("internal", "exception inside the tick", 0.5, lambda s: float(s.internal)),
     ]
     for rule in rules:
         rule.reaction = DEFAULT_REACTIONS[rule.id]
-        if cfg is None:
+        if cfg is None or rule.id == "internal":
             continue
         base = f"watchdog.rules.{rule.id}"
         if rule.warning_only:

@@ -621,7 +621,10 @@ class RigDevice:
         y = self.injector.measure(t, self.plant.measure()[0])
         self.seq = (self.seq + 1) & 0xFFFFFFFF
         if y is not None:
-            sample = Sample(self.seq, t, tuple(float(v) for v in y), status)
+            # A delayed reading is timestamped when it was measured (as on the in-process
+            # rig): stamped "now" the delay fault was invisible to the stale rule.
+            t_measured = t - self.injector.delay_ticks(t) * self.period
+            sample = Sample(self.seq, t_measured, tuple(float(v) for v in y), status)
             corrupt = 0
             delay = 0.0
             send = True

@@ -7,13 +7,25 @@ Times count from the start of the run (seconds of rig time). Kinds:
 - sensor kinds, applied to what the rig reports: ``sensor_freeze`` (readings
   held), ``spike`` (one reading offset by ``size`` on ``axis``), ``dropout``
   (no samples), ``nan`` (readings become NaN), ``delay`` (readings ``ticks``
-  periods old, timestamped when measured);
+  periods old, timestamped when measured), ``malformed`` (a well-formed sample
+  one reading short: a frame that lies about its channel count);
 - plant kinds, applied to the physics: ``effectiveness_loss`` (motor
   effectiveness times ``scale``), ``disturbance_step`` (extra acceleration
   ``size`` rad/s^2 on ``axis``);
-- link kinds, for served or in-process links: ``corrupt``, ``drop`` (a sample
-  lost on the way: its sequence number is skipped), ``link_delay``,
-  ``disconnect``.
+- link kinds, for served or in-process links: ``corrupt`` (every ``every``-th
+  frame fails its CRC and is discarded by the receiver), ``drop`` (``count``
+  samples lost on the way: their sequence numbers are skipped), ``link_delay``
+  (every sample arrives ``seconds`` late), ``disconnect``, ``duplicate`` (every
+  ``every``-th frame arrives twice: the previous one again instead of the new),
+  ``burst`` (samples held back for ``ticks`` periods, then only the newest
+  arrives), ``insertion`` (one forged, plausible sample with a sequence number
+  ``ahead`` of the real ones: a masquerading sender);
+- host kinds: ``overrun`` (reading the rig stalls the tick for ``seconds``, every
+  tick: deadline misses);
+- plant kind ``saturation``: the drive keeps only ``scale`` of its effectiveness
+  on ``axis``, so the law holds the input at its limit;
+- ``tick_error``: a test hook for the runtime's last line of defence: reading
+  the in-process rig raises inside the tick (the `internal` trip must follow).
 
 Every fault lasts ``duration`` seconds (default: to the end of the run;
 a spike is one reading). ``axis`` names a state (``az``, ``el_rate``) or an
@@ -35,10 +47,13 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-SENSOR_KINDS = ("sensor_freeze", "spike", "dropout", "nan", "delay")
-PLANT_KINDS = ("effectiveness_loss", "disturbance_step")
-LINK_KINDS = ("corrupt", "drop", "link_delay", "disconnect")
-KINDS = SENSOR_KINDS + PLANT_KINDS + LINK_KINDS
+SENSOR_KINDS = ("sensor_freeze", "spike", "dropout", "nan", "delay", "malformed")
+PLANT_KINDS = ("effectiveness_loss", "disturbance_step", "saturation")
+LINK_KINDS = ("corrupt", "drop", "link_delay", "disconnect", "duplicate", "burst",
+              "insertion")
+HOST_KINDS = ("overrun",)
+TEST_KINDS = ("tick_error",)
+KINDS = SENSOR_KINDS + PLANT_KINDS + LINK_KINDS + HOST_KINDS + TEST_KINDS
 
 # Parameters each kind accepts, with defaults.
 DEFAULTS: dict[str, dict[str, Any]] = {
@@ -47,21 +62,33 @@ DEFAULTS: dict[str, dict[str, Any]] = {
     "dropout": {},
     "nan": {"axis": "all"},
     "delay": {"ticks": 5},
+    "malformed": {},
     "effectiveness_loss": {"axis": "all", "scale": 0.3},
     "disturbance_step": {"axis": 1, "size": 3.0},
     "corrupt": {"every": 1},
     "drop": {"count": 1},
     "link_delay": {"seconds": 0.01},
     "disconnect": {},
+    "duplicate": {"every": 1},
+    "burst": {"ticks": 20},
+    "insertion": {"ahead": 100000},
+    "overrun": {"seconds": 0.003},
+    "saturation": {"axis": 1, "scale": 0.02},
+    "tick_error": {},
 }
 
 
-_COUNTS = ("ticks", "every", "count")
+_COUNTS = ("ticks", "every", "count", "ahead")
 _NUMBERS = ("size", "scale", "seconds")
 
 
 class FaultError(ValueError):
     """A fault text or table is unusable; the message says what to write instead."""
+
+
+class InjectedTickError(RuntimeError):
+    """Raised by the ``tick_error`` fault inside the tick (a test of the last line of
+    defence: the runtime must turn it into the ``internal`` trip)."""
 
 
 @dataclass(frozen=True)
@@ -252,6 +279,10 @@ class FaultInjector:
                 self._channels[i] = resolve_axis(f.param("axis"), self.states, len(self.states))
             elif f.kind in PLANT_KINDS:
                 self._channels[i] = resolve_axis(f.param("axis"), self.axes, len(self.axes))
+        self._link_n: dict[int, int] = {}
+        """Samples each link fault has seen since it started (by fault index)."""
+        self._late: list[Any] = []
+        self._last_sample: Any = None
 
     def active(self, t: float) -> list[str]:
         """Labels of the faults in force at t."""
@@ -275,11 +306,56 @@ class FaultInjector:
             if f.kind == "disturbance_step":
                 dist[:, self._channels[i]] += float(f.param("size"))
                 any_dist = True
-            elif f.kind == "effectiveness_loss":
+            elif f.kind in ("effectiveness_loss", "saturation"):
                 lam[:, self._channels[i]] *= float(f.param("scale"))
                 any_lam = True
         self.plant.disturbance = dist if any_dist else None
         self.plant.lam_scale = lam if any_lam else None
+
+    def on_link(self, t: float, sample: Any, stats: Any, period: float) -> Any:
+        """The sample (a `drivers.base.Sample`) as the receiver gets it at rig time t through
+        the link faults in force (None: nothing arrives this period). Counts what a real
+        receiver would count in `stats` (crc_errors, duplicates). Also the host kinds:
+        ``overrun`` stalls here, inside the tick."""
+        import dataclasses
+        import time
+
+        out = sample
+        for i, f in enumerate(self.schedule.faults):
+            if not f.active(t) or f.kind not in LINK_KINDS + HOST_KINDS:
+                continue
+            n = self._link_n.get(i, 0)
+            self._link_n[i] = n + 1
+            kind = f.kind
+            if kind == "overrun":
+                time.sleep(float(f.param("seconds")))
+            elif out is None:
+                continue
+            elif kind == "drop":
+                if n < int(f.param("count")):
+                    out = None
+            elif kind == "corrupt":
+                if n % int(f.param("every")) == 0:
+                    stats.crc_errors += 1
+                    out = None
+            elif kind == "duplicate":
+                if n % int(f.param("every")) == 0 and self._last_sample is not None:
+                    stats.duplicates += 1
+                    out = self._last_sample
+            elif kind == "burst":
+                held = int(f.param("ticks"))
+                if n % (held + 1) != held:
+                    out = None
+            elif kind == "insertion":
+                if n == 0:
+                    out = dataclasses.replace(out, seq=out.seq + int(f.param("ahead")))
+            elif kind == "link_delay":
+                d = max(1, int(round(float(f.param("seconds")) / period)))
+                self._late.append(out)
+                out = self._late.pop(0) if len(self._late) > d else None
+        if out is not None and out is sample:
+            self._last_sample = sample
+        return out
 
     def measure(self, t: float, y: NDArray[np.float64]) -> NDArray[np.float64] | None:
         """The reading reported at t for the true reading y (None: dropped)."""
@@ -297,6 +373,11 @@ class FaultInjector:
             kind = f.kind
             if kind == "dropout":
                 return None
+            if kind == "tick_error":
+                raise InjectedTickError(f"injected tick_error fault at t = {t:.3f} s")
+            if kind == "malformed":
+                out = out[..., :-1]
+                continue
             if kind == "delay":
                 d = int(f.param("ticks"))
                 out = self._history[max(0, len(self._history) - 1 - d)].copy()

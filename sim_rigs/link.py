@@ -118,12 +118,13 @@ class SimLink(Link):
         y = self.injector.measure(t, np.asarray(self._read_sensors()))
         if y is None:
             return None
-        for f in self.schedule.link_faults(t):
-            if f.kind == "drop":
-                return None
         d = self.injector.delay_ticks(t)
         status = self._status
         sample = Sample(self.seq, t - d * self.period, tuple(float(v) for v in y), status, t_host)
+        # Link and host faults: what arrives (sim_rigs.faults.FaultInjector.on_link).
+        sample = self.injector.on_link(t, sample, self.stats, self.period)
+        if sample is None:
+            return None
         self.stats.frames_in += 1
         self.stats.last_sample_host_s = t_host
         return sample

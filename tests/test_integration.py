@@ -73,7 +73,8 @@ def test_fast_law_carries_the_config_modifiers(tmp_path):
     r = _runner(DEMO, tmp_path, ["adaptation.leakage=sigma", "adaptation.sigma0=0.5"])
     assert r.core.law._fast.modifiers.leakage == "sigma"
     assert r.core.law._fast.modifiers.sigma0 == 0.5
-    ref = _runner(DEMO, tmp_path, ["loop.law=reference", "adaptation.leakage=sigma",
+    # Another folder: two runtimes of one rig in one folder is refused (one owner per rig).
+    ref = _runner(DEMO, tmp_path / "ref", ["loop.law=reference", "adaptation.leakage=sigma",
                                    "adaptation.sigma0=0.5"])
     assert [type(m).__name__ for m in ref.core.law._law.modifiers] == ["SigmaModification"]
 

@@ -1,0 +1,52 @@
+"""Every in-process fault kind ends in the right first-out trip (or is below threshold by
+design), through the real tick, watchdog and trip log; the injectors do what they say.
+
+The expected first-out of each kind is the trade's reading of the fault (common
+practice): lost or late data -> stale / seq_gap, no link -> link_loss, a value that is no
+number -> nonfinite, an implausible step -> jump, a software fault -> internal.
+The full table with times is bench/fault_matrix.py's (docs/faults.md).
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from bench.fault_matrix import MATRIX
+from runtime.records import read_trip_log
+from tests.runtime_helpers import run_unpaced
+
+AT = 1.0
+
+
+@pytest.mark.parametrize("kind", [k for k in MATRIX if k != "overrun"])
+def test_each_kind_trips_with_its_first_out(tmp_path, kind):
+    text, right, _ = MATRIX[kind]
+    head, _, tail = text.partition(":")
+    fault = f"{head}@{AT}" + (f":{tail}" if tail else "")
+    r, summary = run_unpaced(tmp_path, 2.0, [fault])
+    _, trips, _, torn = read_trip_log(summary["trip_log"])
+    assert not torn
+    if not right:
+        assert not trips
+        return
+    assert trips, f"{kind}: no trip"
+    first = trips[0].record
+    assert first["first_out"]["rule"] in right, first["first_out"]
+    assert first["t"] >= AT - 1e-9  # not before the fault
+
+
+def test_drop_loses_exactly_count_samples(tmp_path):
+    r, _ = run_unpaced(tmp_path, 1.5, ["drop@1.0:count=3"])
+    ticks = r.core.tick
+    assert r.link.stats.frames_in == ticks - 3
+
+
+def test_corrupt_frames_are_counted_as_crc_errors_and_lost(tmp_path):
+    r, summary = run_unpaced(tmp_path, 1.5, ["corrupt@1.0:every=4,duration=0.2"])
+    assert r.link.stats.crc_errors == 50  # 200 frames in 0.2 s, every 4th
+    assert summary["trips"][0]["rule"] == "seq_gap"
+
+
+def test_duplicates_are_counted(tmp_path):
+    r, _ = run_unpaced(tmp_path, 1.5, ["duplicate@1.0:every=10,duration=0.1"])
+    assert r.link.stats.duplicates == 10
