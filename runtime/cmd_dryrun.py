@@ -8,7 +8,7 @@ import sys
 import time
 from pathlib import Path
 
-from runtime.cli import common_config_args, output_folder
+from runtime.cli_common import common_config_args, output_folder
 from runtime.config import load_config
 from runtime.dryrun import dry_run, plot_report, write_run_file
 

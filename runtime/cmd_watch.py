@@ -12,7 +12,7 @@ import sys
 import time
 from pathlib import Path
 
-from runtime.cli import UserError
+from runtime.cli_common import UserError
 from runtime.config import load_config
 from runtime.watch_sources import MqttSource, RecordedSource, SocketSource, TelemetrySource
 
@@ -99,6 +99,6 @@ def main(args: argparse.Namespace) -> int:
 
 
 if __name__ == "__main__":
-    from runtime.cli import main as cli_main
+    from runtime.cli_common import main as cli_main
 
     sys.exit(cli_main(["watch", *sys.argv[1:]]))

@@ -20,6 +20,7 @@ from numpy.typing import NDArray
 
 from runtime.basis import Basis, basis_from_config
 from runtime.config import Config, ConfigError
+from runtime.rbf import coverage, envelope_points, residual_eps
 
 Array = NDArray[np.float64]
 
@@ -385,7 +386,6 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
     import dataclasses
 
     from runtime.bound import schedule_from_config
-    from runtime.rbf import coverage, envelope_points, residual_eps
 
     reasons = list(d.reasons)
     warnings = list(d.warnings)
@@ -414,7 +414,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 "the limits.")
     if d.basis.rbf_centres is not None and d.basis.rbf_widths is not None:
         min_act = cfg.number("basis.rbf_min_activation", 0.3, positive=True, maximum=1.0)
-        pts = envelope_points(d, cfg, eps_max)
+        pts = envelope_points(d, cfg, eps_max, zoh(d.A_r, d.B_r, 0.01), 0.01)
         cov = coverage(d.basis.rbf_centres, d.basis.rbf_widths, d.basis.rbf_scale
                        if d.basis.rbf_scale is not None else np.ones(d.rig.n), pts, min_act)
         extras["rbf_coverage"] = cov

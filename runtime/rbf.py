@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime.commands import schedule_from_config, tracked_names
 from runtime.config import Config, ConfigError
 
 Array = NDArray[np.float64]
@@ -123,27 +124,25 @@ def rbf_from_config(cfg: Config, states: Sequence[str]) -> RbfBlock:
 
 
 # ---------------------------------------------------------------- design checks
-def envelope_points(design: Any, cfg: Config, eps: float, count: int = 24,
+def envelope_points(design: Any, cfg: Config, eps: float, reference_step: tuple[Array, Array],
+                    dt: float, count: int = 24,
                     rng: np.random.Generator | None = None) -> Array:
     """Points of {x_r + e : ||e||_P = eps} along the reference the commands drive.
 
-    x_r: the reference model (exact ZOH at 10 ms) driven by `[commands]`
-    (or the operating box of design.state_range when there are none); e: the
-    per-state extreme points of the ellipsoid plus `count` random directions.
+    x_r: the reference model, stepped by `reference_step` = (A_d, B_d) (its exact
+    zero-order hold at `dt`, from `runtime.design.zoh`; passed in so this module does
+    not import the design, which imports it), driven by `[commands]` (or the operating
+    box of design.state_range when there are none); e: the per-state extreme points of
+    the ellipsoid plus `count` random directions.
     """
-    from runtime.design import zoh
-
     rng = np.random.default_rng(3) if rng is None else rng
     n = design.rig.n
     if cfg.get("commands", None) is not None:
-        from runtime.commands import schedule_from_config, tracked_names
-
         rig = design.rig
         sched = schedule_from_config(cfg, tracked_names(rig.C, rig.states))
-        dt = 0.01
         t = np.arange(0.0, sched.duration, dt)
         c = np.asarray(sched.evaluate(t), dtype=float).reshape(t.size, -1)
-        Ad, Bd = zoh(design.A_r, design.B_r, dt)
+        Ad, Bd = reference_step
         xr = np.zeros((t.size, n))
         for k in range(1, t.size):
             xr[k] = Ad @ xr[k - 1] + Bd @ c[k - 1]

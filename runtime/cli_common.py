@@ -1,0 +1,35 @@
+"""What every `corral` subcommand module shares with the command line: the
+user-error type and the common arguments. Its own module so the subcommands
+(`runtime/cmd_*.py`) never import `runtime.cli`, which loads them: no cycle.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+
+class UserError(Exception):
+    """An expected, user-fixable problem that is not a config field (a missing log, say)."""
+
+
+def common_config_args(parser: argparse.ArgumentParser) -> None:
+    """CONFIG plus repeatable --set KEY=VALUE overrides."""
+    parser.add_argument("config", help="TOML config, e.g. configs/pedestal-sim.toml")
+    parser.add_argument("--set", dest="overrides", action="append", default=[],
+                        metavar="KEY=VALUE",
+                        help="override a config key, e.g. --set adaptation.gamma=8 (repeatable)")
+
+
+def output_folder(path: Path, what: str) -> Path:
+    """Create the output folder `path` (named in messages as `what`, e.g. '--out') or raise
+    UserError with the reason: a file in the way, no permission, a missing parent."""
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except FileExistsError:
+        raise UserError(f"{what} '{path}' is a file, not a folder. Fix: give a folder path "
+                        f"(it is created if missing).") from None
+    except OSError as exc:
+        raise UserError(f"{what} '{path}': cannot create the folder ({exc.strerror}). Fix: "
+                        f"give a folder you can write to.") from None
+    return path
