@@ -99,6 +99,6 @@ def main(args: argparse.Namespace) -> int:
 
 
 if __name__ == "__main__":
-    from runtime.cli_common import main as cli_main
+    from runtime.cli import main as cli_main
 
     sys.exit(cli_main(["watch", *sys.argv[1:]]))

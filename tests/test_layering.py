@@ -72,7 +72,11 @@ def module_name(path: Path) -> str:
 def imports_of(name: str, source: str, is_package: bool, known: set[str]) -> set[str]:
     """Every module `source` (module `name`) imports, anywhere in the file."""
     found: set[str] = set()
-    for node in ast.walk(ast.parse(source)):
+    tree = ast.parse(source)
+    # A `if __name__ == "__main__":` block runs the file as a program (a second copy of
+    # the module), not as an import of it: its imports are not edges of the module.
+    tree.body = [n for n in tree.body if not _is_main_guard(n)]
+    for node in ast.walk(tree):
         if isinstance(node, ast.Import):
             found.update(a.name for a in node.names)
         elif isinstance(node, ast.ImportFrom):
@@ -92,6 +96,13 @@ def imports_of(name: str, source: str, is_package: bool, known: set[str]) -> set
             # is more often a word than a package)
             found.add(node.value)
     return found
+
+
+def _is_main_guard(node: ast.stmt) -> bool:
+    return (isinstance(node, ast.If) and isinstance(node.test, ast.Compare)
+            and isinstance(node.test.left, ast.Name) and node.test.left.id == "__name__"
+            and any(isinstance(c, ast.Constant) and c.value == "__main__"
+                    for c in node.test.comparators))
 
 
 def our_modules() -> dict[str, Path]:
@@ -207,6 +218,9 @@ def later():
     import asyncio
     from runtime.law import step
     return importlib.import_module("runtime.loop")
+
+if __name__ == "__main__":
+    import textual
 '''
 
 
@@ -216,6 +230,7 @@ def test_the_walker_sees_deferred_and_relative_imports() -> None:
     got = imports_of("pkg.sub.mod", SAMPLE, is_package=False, known=known)
     assert {"numpy", "asyncio", "runtime.law", "runtime.loop", "pkg.sub.sibling",
             "pkg.drivers.wire"} <= got
+    assert "textual" not in got  # the program entry point is not an import
     graph = {"pkg.sub.mod": got, "runtime.law": set()}
     rule = Rule("no asyncio", ("pkg.*",), ("asyncio",))
     assert violations(graph, rule) == ["pkg.sub.mod -> asyncio"]
