@@ -241,7 +241,7 @@ def apply_aliases(raw: dict[str, Any]) -> None:
     """
     for alias, key in KEY_ALIASES.items():
         *a_path, a_leaf = alias.split(".")
-        node = raw
+        node: Any = raw
         for part in a_path:
             node = node.get(part) if isinstance(node, dict) else None
             if node is None:

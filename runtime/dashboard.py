@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import asyncio
 from collections import deque
+from collections.abc import Sequence
 from typing import Any
 
 from rich.text import Text
@@ -300,7 +301,7 @@ class Dashboard(App[None]):
         self._fill(main, "#health", panels.health_rows(tel))
 
     @staticmethod
-    def _fill(main: Screen, selector: str, rows: list[tuple[str, ...]]) -> None:
+    def _fill(main: Screen, selector: str, rows: Sequence[tuple[str, ...]]) -> None:
         table = main.query_one(selector, DataTable)
         table.clear()
         for row in rows:

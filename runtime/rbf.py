@@ -67,10 +67,12 @@ def rbf_evaluate(x: Array, centres: Array, widths: Array, scale: Array | None = 
     if scale is not None:
         d = d * scale
     d2 = np.einsum("...ki,...ki->...k", d, d)
-    return np.exp(-d2 / (2.0 * widths * widths))
+    act: Array = np.exp(-d2 / (2.0 * widths * widths))
+    return act
 
 
-def grid(centre: Sequence[float], span: Sequence[float], per_axis: Sequence[int]) -> Array:
+def grid(centre: Sequence[float] | Array, span: Sequence[float] | Array,
+         per_axis: Sequence[int]) -> Array:
     """A tensor grid: per_axis[i] points evenly over centre[i] +- span[i]; (prod, len)."""
     axes = [np.linspace(c - s, c + s, k) if k > 1 else np.array([c])
             for c, s, k in zip(centre, span, per_axis, strict=True)]
@@ -158,7 +160,8 @@ def envelope_points(design: Any, cfg: Config, eps: float, reference_step: tuple[
     u /= np.linalg.norm(u, axis=1, keepdims=True)
     rand = eps * np.linalg.solve(L.T, u.T).T
     dirs = np.vstack([np.array(extremes), -np.array(extremes), rand, np.zeros((1, n))])
-    return (xr[:, None, :] + dirs[None, :, :]).reshape(-1, n)
+    pts: Array = (xr[:, None, :] + dirs[None, :, :]).reshape(-1, n)
+    return pts
 
 
 def coverage(centres: Array, widths: Array, scale: Array, points: Array,

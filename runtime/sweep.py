@@ -66,6 +66,8 @@ from runtime.config import Config, ConfigError, check_sections
 from runtime.design import Design, design_from_config
 
 Array = NDArray[np.float64]
+Columns = dict[str, NDArray[Any]]
+"""Named per-plant columns: parameters and results (float, or int tick indices)."""
 Progress = Callable[[int, int], None]
 
 RULES = ("margin", "clamp", "nonfinite", "saturation")
@@ -188,7 +190,7 @@ def _ranges(cfg: Config, truth_names: Sequence[str]) -> dict[str, tuple[float, f
     return out
 
 
-def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
+def draw_plants(cfg: Config, plants: int, seed: int) -> Columns:
     """The truth of `plants` plants: ranged parameters uniform in [lo, hi], others at truth."""
     from sim_rigs import RIGS
     from sim_rigs.pedestal import draw_truth
@@ -259,7 +261,7 @@ def _setup(raw: dict[str, Any], settings: SweepSettings) -> _Setup:
     rig = design.rig
     schedule = schedule_from_config(cfg, tracked_names(rig.C, rig.states))
     ticks = max(1, int(round(settings.duration / design.Ts)))
-    t = np.arange(ticks) * design.Ts
+    t = np.arange(ticks, dtype=np.float64) * design.Ts
     cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
     eps_t = eps_schedule(cfg, design, t)
     plant = plant_from_config(cfg, design)
@@ -341,8 +343,8 @@ class _Rules:
         if newly.any():
             first[newly] = k
 
-    def result(self) -> dict[str, Array]:
-        out = {f"first_{r}": v for r, v in self.first.items()}
+    def result(self) -> Columns:
+        out: Columns = {f"first_{r}": v for r, v in self.first.items()}
         ratio = self.max_ratio.copy()
         ratio[self.first["nonfinite"] >= 0] = np.inf
         out["max_ratio"] = ratio
@@ -350,8 +352,8 @@ class _Rules:
 
 
 # ------------------------------------------------------------------ the fused engine
-def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
-               ) -> dict[str, Array]:
+def _run_fused(setup: _Setup, prm: Columns, rng: np.random.Generator,
+               ) -> Columns:
     d = setup.design
     st = setup.settings
     B = len(next(iter(prm.values())))
@@ -631,8 +633,8 @@ def _run_fused(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
 
 
 # ------------------------------------------------------------------ the reference engine
-def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
-                   ) -> dict[str, Array]:
+def _run_reference(setup: _Setup, prm: Columns, rng: np.random.Generator,
+                   ) -> Columns:
     from runtime.law import AdaptiveLaw
     from sim_rigs.pedestal import Pedestal, SensorModel
 
@@ -675,8 +677,8 @@ def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generato
 
 
 # ------------------------------------------------------------------ the compiled engine
-def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.int64],
-                  noise_given: Array | None = None) -> dict[str, Array]:
+def _run_compiled(setup: _Setup, prm: Columns, plant_ids: NDArray[np.int64],
+                  noise_given: Array | None = None) -> Columns:
     """Plants `plant_ids` through `runtime.fast.sweep_kernel` (threads: numba's current count).
 
     Noise: each plant's own stream keyed by (seed, plant id), or `noise_given`
@@ -688,6 +690,7 @@ def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.in
     st = setup.settings
     sens = setup.sensors
     B = len(plant_ids)
+    assert setup.packed is not None, "the fused engine runs only on a packed plant"
     ic, fc = setup.packed
     P = np.ascontiguousarray(np.stack([np.asarray(prm[k], dtype=float)
                                        for k in fast.PEDESTAL_PARAMS], axis=1))
@@ -709,7 +712,8 @@ def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.in
         float(sens.angle_resolution), int(sens.delay_ticks), int(st.latency_ticks), mode, given,
         ic, fc, fast.sweep_law_fits(ic), levels, st.saturation_time / d.Ts,
         np.asarray(st.divergence_factor * d.state_range, dtype=float), first, max_ratio)
-    out = {f"first_{r}": first[:, j].copy() for j, r in enumerate(fast.SWEEP_RULES)}
+    out: Columns = {f"first_{r}": first[:, j].copy()
+                             for j, r in enumerate(fast.SWEEP_RULES)}
     max_ratio[out["first_nonfinite"] >= 0] = np.inf
     out["max_ratio"] = max_ratio
     return out
@@ -721,8 +725,8 @@ def _compiled_threads(workers: int) -> int:
     return max(1, min(int(workers), int(numba.config.NUMBA_NUM_THREADS)))
 
 
-def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: dict[str, Array],
-              chunk_index: int) -> dict[str, Array]:
+def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: Columns,
+              chunk_index: int) -> Columns:
     """Simulate one chunk of plants (in this process); per-plant result arrays.
 
     The compiled engine numbers the chunk's plants 0.. for their noise streams;
@@ -746,8 +750,8 @@ class SweepResult:
 
     design: Design
     settings: SweepSettings
-    truth: dict[str, Array]
-    per_plant: dict[str, Array]
+    truth: Columns
+    per_plant: Columns
     summary: dict[str, Any] = field(default_factory=dict)
 
 
@@ -767,7 +771,7 @@ def _clean(v: Any) -> Any:
     return v
 
 
-def classify(per_plant: dict[str, Array], Ts: float) -> dict[str, Array]:
+def classify(per_plant: Columns, Ts: float) -> Columns:
     """Outcome (0 inside, 1 tripped, 2 diverged), first-out rule index and its time per plant."""
     B = len(per_plant["max_ratio"])
     big = np.iinfo(np.int64).max
@@ -783,8 +787,8 @@ def classify(per_plant: dict[str, Array], Ts: float) -> dict[str, Array]:
             "trip_time": trip_time}
 
 
-def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
-              per_plant: dict[str, Array], wall: float, worst: int = 5) -> dict[str, Any]:
+def summarise(design: Design, settings: SweepSettings, truth: Columns,
+              per_plant: Columns, wall: float, worst: int = 5) -> dict[str, Any]:
     """The report: fractions, trips by rule, worst margin and its distribution, worst cases."""
     Ts = design.Ts
     cls = classify(per_plant, Ts)
@@ -847,8 +851,8 @@ def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
     return _clean(summary)
 
 
-def _sweep_compiled(setup: _Setup, truth: dict[str, Array], progress: Progress | None,
-                    ) -> tuple[dict[int, dict[str, Array]], int, float, float]:
+def _sweep_compiled(setup: _Setup, truth: Columns, progress: Progress | None,
+                    ) -> tuple[dict[int, Columns], int, float, float]:
     """All plants through the compiled kernel on numba threads, in plant slices so the
     progress bar moves; returns (results by slice start, slice size, wall, compile) seconds."""
     import numba
@@ -858,7 +862,7 @@ def _sweep_compiled(setup: _Setup, truth: dict[str, Array], progress: Progress |
     threads = _compiled_threads(settings.workers)
     before = numba.get_num_threads()
     numba.set_num_threads(threads)
-    results: dict[int, dict[str, Array]] = {}
+    results: dict[int, Columns] = {}
     try:
         t0 = time.perf_counter()
         short = _Setup(**{**setup.__dict__, "cmd": setup.cmd[:1], "eps_t": setup.eps_t[:1]})

@@ -45,6 +45,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -141,7 +142,7 @@ class Pedestal:
         truth: Mapping[str, ArrayLike] | None = None,
         batch: int = 1,
         x0: ArrayLike | None = None,
-        **kwargs: object,
+        **kwargs: Any,
     ) -> Pedestal:
         """Pedestals with the given truth (defaults fill the rest), all starting at x0."""
         params = {}
@@ -153,7 +154,7 @@ class Pedestal:
             raise KeyError(f"unknown pedestal parameter(s): {', '.join(sorted(unknown))}")
         x = np.zeros((batch, 4)) if x0 is None else np.broadcast_to(
             np.asarray(x0, dtype=float), (batch, 4)).copy()
-        return cls(params=params, x=x, **kwargs)  # type: ignore[arg-type]
+        return cls(params=params, x=x, **kwargs)
 
     @property
     def batch(self) -> int:
