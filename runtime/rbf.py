@@ -17,7 +17,7 @@ Config (``[basis]``, with ``kind = "rbf"``):
 - ``rbf_width``    width w (state units; scalar or one per grid state;
   default: the grid spacing of each axis).
 
-Also here: the design checks the brief asks for, `coverage` (does the grid
+Also here: the design checks of docs/method.md §6, `coverage` (does the grid
 cover ``{x_r + e : ||e||_P <= eps}`` along the commanded reference?) and
 `residual_eps` (the bound a residual |d| <= d_max needs,
 ``eps > 2 ||P^{1/2} B|| d_max / c_bar``).
