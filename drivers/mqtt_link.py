@@ -463,7 +463,7 @@ def set_nodelay(client: aiomqtt.Client) -> bool:
     With Nagle on, a small publish waits while an earlier one is unacknowledged.
     """
     sock = client._client.socket()  # aiomqtt keeps its paho client here
-    if sock is None:
+    if not isinstance(sock, socket.socket):  # none yet, or a websocket wrapper
         return False
     with contextlib.suppress(OSError, AttributeError):
         sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)

@@ -20,6 +20,7 @@ import select
 import time
 import tty
 from collections.abc import Callable
+from typing import Any
 
 import serial
 import serial_asyncio_fast
@@ -160,10 +161,10 @@ class SerialLink(Link):
         self._ring = LatencyRing(self.stats)
 
     @classmethod
-    def from_url(cls, url: str, **kwargs: object) -> SerialLink:
+    def from_url(cls, url: str, **kwargs: Any) -> SerialLink:
         """Build from ``serial:/path@baud`` (keyword arguments pass through)."""
         path, baud = parse_serial_url(url)
-        return cls(path, baud, **kwargs)  # type: ignore[arg-type]
+        return cls(path, baud, **kwargs)
 
     @property
     def url(self) -> str:
@@ -250,8 +251,9 @@ class SerialLink(Link):
             )
         except (serial.SerialException, OSError, ValueError) as exc:
             raise LinkClosed(f"cannot open serial port {self.path}: {exc}") from exc
-        self._transport = transport  # type: ignore[assignment]
-        self._protocol = protocol  # type: ignore[assignment]
+        assert isinstance(protocol, _Protocol)
+        self._transport = transport
+        self._protocol = protocol
         self._samples.reset()
         self.stats.connected = True
         transport.write(b"\x00")  # a leading delimiter: the device starts on a clean frame
@@ -457,11 +459,11 @@ class DeviceEndpoint:
 
     @classmethod
     def create_pty(
-        cls, hello: Hello, *, link_path: str | None = None, **kwargs: object
+        cls, hello: Hello, *, link_path: str | None = None, **kwargs: Any
     ) -> DeviceEndpoint:
         """A device on a fresh pseudo-terminal; the host opens `.path`."""
         master, slave, path = open_pty(link_path)
-        dev = cls(master, hello, extra_fds=(slave,), **kwargs)  # type: ignore[arg-type]
+        dev = cls(master, hello, extra_fds=(slave,), **kwargs)
         dev.path = path
         return dev
 

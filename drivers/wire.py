@@ -17,7 +17,9 @@ from __future__ import annotations
 
 import binascii
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
+from typing import SupportsFloat
 
 import msgpack
 
@@ -206,8 +208,8 @@ def unframe(encoded: bytes | bytearray | memoryview) -> bytes:
 _pack = msgpack.Packer(use_bin_type=True, autoreset=True).pack
 
 
-def _floats(values: object) -> list[float]:
-    return [float(v) for v in values]  # type: ignore[attr-defined]
+def _floats(values: Iterable[SupportsFloat]) -> list[float]:
+    return [float(v) for v in values]
 
 
 def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]:

@@ -21,7 +21,10 @@ from numpy.typing import ArrayLike, NDArray
 class BarrierFamily(Protocol):
     """A pluggable barrier: phi, phi_d = d phi / d(s^2), and its domain check."""
 
-    name: str
+    @property
+    def name(self) -> str:
+        """The family's name in configs (`adaptation.barrier`)."""
+        ...
 
     def phi(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.float64]:
         """Barrier value at weighted error norm s for bound eps."""
@@ -48,12 +51,15 @@ class RationalBarrier:
 
     def phi(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.float64]:
         s = np.asarray(s, dtype=float)
-        return s * s / (np.asarray(eps, dtype=float) - s)
+        out: NDArray[np.float64] = s * s / (np.asarray(eps, dtype=float) - s)
+        return out
 
     def phi_d(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.float64]:
         s = np.asarray(s, dtype=float)
-        gap = np.asarray(eps, dtype=float) - s
-        return (2.0 * eps - s) / (2.0 * gap * gap)
+        e = np.asarray(eps, dtype=float)
+        gap = e - s
+        out: NDArray[np.float64] = (2.0 * e - s) / (2.0 * gap * gap)
+        return out
 
     def valid(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.bool_]:
         s = np.asarray(s, dtype=float)
@@ -74,12 +80,14 @@ class LogBarrier:
     def phi(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.float64]:
         s = np.asarray(s, dtype=float)
         eps = np.asarray(eps, dtype=float)
-        return -eps * np.log1p(-(s / eps) ** 2)
+        out: NDArray[np.float64] = -eps * np.log1p(-(s / eps) ** 2)
+        return out
 
     def phi_d(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.float64]:
         s = np.asarray(s, dtype=float)
         eps = np.asarray(eps, dtype=float)
-        return eps / (eps * eps - s * s)
+        out: NDArray[np.float64] = eps / (eps * eps - s * s)
+        return out
 
     def valid(self, s: ArrayLike, eps: ArrayLike) -> NDArray[np.bool_]:
         s = np.asarray(s, dtype=float)

@@ -24,6 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from runtime.config import Config, ConfigError
+from runtime.rbf import rbf_evaluate, rbf_from_config
 
 Term = Callable[[NDArray[np.float64]], NDArray[np.float64]]
 
@@ -69,8 +70,6 @@ class Basis:
         for i, term in enumerate(self.terms):
             out[..., i] = term(x)
         if self.rbf_centres is not None and self.rbf_widths is not None:
-            from runtime.rbf import rbf_evaluate
-
             out[..., len(self.terms):] = rbf_evaluate(x, self.rbf_centres, self.rbf_widths,
                                                       self.rbf_scale)
         return out
@@ -119,8 +118,6 @@ def basis_from_config(cfg: Config, states: Sequence[str]) -> Basis:
     """
     kind = cfg.choice("basis.kind")
     if kind == "rbf":
-        from runtime.rbf import rbf_from_config
-
         names = cfg.strings("basis.terms", None, ["bias"])
         width = cfg.number("basis.tanh_width")
         parsed = [_parse_term(n, states, width, "basis.terms") for n in names]

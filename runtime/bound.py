@@ -89,7 +89,7 @@ class BoundSchedule:
 
     def __post_init__(self) -> None:
         if self.kind == "widen_on_command" and len(self._starts) != len(self.events):
-            starts = []
+            starts: list[float] = []
             for k, tk in enumerate(self.events):
                 prev = -1 if k == 0 else k - 1
                 starts.append(float(self._segment(np.array([tk]), prev, starts)[0][0]))

@@ -12,7 +12,7 @@ import argparse
 import json
 from typing import Any
 
-from runtime.cli import common_config_args
+from runtime.cli_common import common_config_args
 from runtime.config import load_config, resolved
 
 

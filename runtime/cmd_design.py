@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 
-from runtime.cli import common_config_args
+from runtime.cli_common import common_config_args
 from runtime.config import load_config
 from runtime.design import design_from_config, format_design
 from runtime.verdict import decide

@@ -7,9 +7,10 @@ import json
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
-from runtime.cli import common_config_args, force_arg, output_folder, verdict_gate
-from runtime.config import load_config
+from runtime.cli_common import common_config_args, force_arg, output_folder, verdict_gate
+from runtime.config import Config, load_config
 from runtime.dryrun import dry_run, plot_report, write_run_file
 
 
@@ -33,13 +34,13 @@ def _progress(k: int, total: int) -> None:
         print("\r" + line.ljust(88), end="", file=sys.stderr, flush=True)
 
 
-def _duration(result: object, cfg: object) -> float:
+def _duration(result: Any, cfg: Config) -> float:
     """The config's command duration (s), to tell whether the verdict's run covered it."""
     from runtime.commands import schedule_from_config, tracked_names
 
-    rig = result.design.rig  # type: ignore[attr-defined]
+    rig = result.design.rig
     return float(schedule_from_config(cfg, tracked_names(rig.C, rig.states)).duration
-                 ) - 0.5 * result.design.Ts  # type: ignore[attr-defined]
+                 ) - 0.5 * result.design.Ts
 
 
 def main(args: argparse.Namespace) -> int:

@@ -19,7 +19,7 @@ import math
 import sys
 import time
 
-from runtime.cli import UserError, common_config_args
+from runtime.cli_common import UserError, common_config_args
 from runtime.config import load_config, rig_name
 from runtime.hostcheck import DEFAULT_SECONDS, report_lines, run_hostcheck
 

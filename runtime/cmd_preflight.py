@@ -9,7 +9,7 @@ from __future__ import annotations
 import argparse
 import json
 
-from runtime.cli import common_config_args
+from runtime.cli_common import common_config_args
 from runtime.cmd_sweep import ProgressBar
 from runtime.config import load_config
 from runtime.preflight import run_preflight

@@ -16,7 +16,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from runtime.cli import UserError
+from runtime.cli_common import UserError
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:

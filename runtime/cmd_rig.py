@@ -23,7 +23,7 @@ import sys
 import tempfile
 from typing import Any
 
-from runtime.cli import UserError, common_config_args
+from runtime.cli_common import UserError, common_config_args
 from runtime.config import ConfigError, load_config
 
 

@@ -28,7 +28,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-from runtime.cli import UserError, common_config_args
+from runtime.cli_common import UserError, common_config_args
 from runtime.config import load_config
 from runtime.hostcheck import explain_from_header
 

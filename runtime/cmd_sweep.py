@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from runtime.cli import common_config_args, force_arg, output_folder, verdict_gate
+from runtime.cli_common import common_config_args, force_arg, output_folder, verdict_gate
 from runtime.config import load_config, rig_name
 from runtime.sweep import ENGINES, parse_grid, plot_grid, plot_sweep, run_grid, run_sweep
 

@@ -21,7 +21,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from runtime.cli import UserError
+from runtime.cli_common import UserError
 from runtime.hostcheck import explain_from_header
 from runtime.records import LogReadError, Trip, find_logs, read_trip_log
 

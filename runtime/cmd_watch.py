@@ -12,7 +12,7 @@ import sys
 import time
 from pathlib import Path
 
-from runtime.cli import UserError
+from runtime.cli_common import UserError
 from runtime.config import load_config, rig_name
 from runtime.watch_sources import MqttSource, RecordedSource, SocketSource, TelemetrySource
 

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -81,7 +82,7 @@ class CommandSchedule:
         return np.stack([a.evaluate(t) for a in self.axes], axis=-1)
 
 
-def _seg_number(item: dict, key: str, where: str, *, positive: bool = False) -> float:
+def _seg_number(item: dict[str, Any], key: str, where: str, *, positive: bool = False) -> float:
     if key not in item:
         raise ConfigError(f"{where}.{key}", "is missing.", f"add {key} = <number> to the segment.")
     v = item[key]

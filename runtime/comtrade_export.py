@@ -29,6 +29,7 @@ import math
 import re
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -108,8 +109,8 @@ def _rule_activity(trip: Trip) -> dict[str, NDArray[np.float64]]:
                         out[r][i] = 1.0
         return out
     # Not recorded per tick: a trip rule counts as active from the tick it fired (trips latch).
-    ticks = None
     tick_col = cap.numeric("tick")
+    ticks: NDArray[Any]
     if tick_col is not None and tick_col.ndim == 1:
         ticks = tick_col
     else:
@@ -118,7 +119,7 @@ def _rule_activity(trip: Trip) -> dict[str, NDArray[np.float64]]:
                                         for r in trip.later]
     for rule, tick in fired:
         if rule in out:
-            out[rule] = np.maximum(out[rule], (ticks >= tick).astype(float))
+            out[rule] = np.maximum(out[rule], np.asarray(ticks >= tick, dtype=float))
     ratio = cap.numeric("ratio")
     if ratio is not None and ratio.ndim == 1:
         with np.errstate(invalid="ignore"):

@@ -321,7 +321,7 @@ def apply_aliases(raw: dict[str, Any]) -> None:
     """
     for alias, key in KEY_ALIASES.items():
         *a_path, a_leaf = alias.split(".")
-        node = raw
+        node: Any = raw
         for part in a_path:
             node = node.get(part) if isinstance(node, dict) else None
             if node is None:
@@ -402,7 +402,9 @@ def _anchor_rig_file(raw: dict[str, Any], path: Path) -> None:
     """A rig file named relative to the config (`rig.sim = "my-rig.toml"`) is read relative
     to the config file, also where the config travels without its path (sweep workers)."""
     rig = raw.get("rig")
-    sim = rig.get("sim") if isinstance(rig, dict) else None
+    if not isinstance(rig, dict):
+        return
+    sim = rig.get("sim")
     if isinstance(sim, str) and ("/" in sim or sim.endswith(".toml")):
         q = Path(sim)
         if not q.is_absolute():

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import asyncio
 from collections import deque
+from collections.abc import Sequence
 from typing import Any
 
 from rich.text import Text
@@ -238,7 +239,11 @@ class Dashboard(App[None]):
             "input", "applied", "limit", "saturated for", "")
         self.query_one("#health", DataTable).add_columns("loop and link", "value")
         self.read_telemetry()
-        self.set_interval(1.0 / REFRESH_HZ, self.redraw)
+        # The refresh timer belongs to the main screen, not to the app: textual stops a
+        # screen's timers when the screen is pruned, before its widgets are removed, while
+        # the app's own timers outlive the screens at shutdown (a redraw then ran against
+        # a half-removed screen: NoMatches for MarginPanel, about one exit in three).
+        self.redraw_timer = self.screen.set_interval(1.0 / REFRESH_HZ, self.redraw)
         self.watch_status(self.status)
 
     # -- data --------------------------------------------------------------
@@ -296,7 +301,7 @@ class Dashboard(App[None]):
         self._fill(main, "#health", panels.health_rows(tel))
 
     @staticmethod
-    def _fill(main: Screen, selector: str, rows: list[tuple[str, ...]]) -> None:
+    def _fill(main: Screen, selector: str, rows: Sequence[tuple[str, ...]]) -> None:
         table = main.query_one(selector, DataTable)
         table.clear()
         for row in rows:

@@ -20,12 +20,15 @@ from numpy.typing import NDArray
 
 from runtime.basis import Basis, basis_from_config
 from runtime.config import Config, ConfigError, rig_name
+from runtime.rbf import coverage, envelope_points, residual_eps
 
 Array = NDArray[np.float64]
+Poles = NDArray[np.inexact[Any]]
+"""Eigenvalues: real or complex, as numpy returns them."""
 
 
 # ---------------------------------------------------------------- plain functions
-def lqr(A: Array, B: Array, Q: Array, R: Array) -> tuple[Array, Array, Array]:
+def lqr(A: Array, B: Array, Q: Array, R: Array) -> tuple[Array, Array, Poles]:
     """Continuous-time LQR: gain K (m x n), Riccati solution X, closed-loop poles.
 
     Minimises the integral of x'Qx + u'Ru for x' = Ax + Bu with u = -Kx.
@@ -65,7 +68,8 @@ def tracking_gain(A_r: Array, B: Array, C: Array) -> Array:
 def lyapunov(A_r: Array, R: Array) -> Array:
     """P solving A_r' P + P A_r + R = 0 (symmetric, positive definite for Hurwitz A_r)."""
     P = sla.solve_continuous_lyapunov(A_r.T, -R)
-    return 0.5 * (P + P.T)
+    sym: Array = 0.5 * (P + P.T)
+    return sym
 
 
 def eps_from_limits(P: Array, limits: Array) -> tuple[float, int, Array]:
@@ -149,12 +153,12 @@ class RigModel:
     @property
     def n(self) -> int:
         """Number of states."""
-        return self.A.shape[0]
+        return int(self.A.shape[0])
 
     @property
     def m(self) -> int:
         """Number of inputs."""
-        return self.B.shape[1]
+        return int(self.B.shape[1])
 
 
 def rig_model(cfg: Config) -> RigModel:
@@ -240,7 +244,7 @@ class Design:
     eps_from_limits: float
     binding_state: str
     envelope: Array
-    poles: Array
+    poles: Poles
     c_bar: float
     Ts: float
     A_d: Array
@@ -482,7 +486,6 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
     import dataclasses
 
     from runtime.bound import schedule_from_config
-    from runtime.rbf import coverage, envelope_points, residual_eps
 
     reasons = list(d.reasons)
     warnings = list(d.warnings)
@@ -513,7 +516,7 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 "the limits.")
     if d.basis.rbf_centres is not None and d.basis.rbf_widths is not None:
         min_act = cfg.number("basis.rbf_min_activation")
-        pts = envelope_points(d, cfg, eps_max)
+        pts = envelope_points(d, cfg, eps_max, zoh(d.A_r, d.B_r, 0.01), 0.01)
         cov = coverage(d.basis.rbf_centres, d.basis.rbf_widths, d.basis.rbf_scale
                        if d.basis.rbf_scale is not None else np.ones(d.rig.n), pts, min_act)
         extras["rbf_coverage"] = cov

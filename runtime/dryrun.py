@@ -153,7 +153,7 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
                           f"{schedule.duration:g} s at loop.period = {Ts:g} s is {ticks:,} "
                           f"ticks; a dry run records at most {MAX_TICKS:,} (about 1 GB).",
                           "shorten commands.duration or lengthen loop.period.")
-    t = np.arange(ticks) * Ts
+    t = np.arange(ticks, dtype=np.float64) * Ts
     cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
     eps_t = eps_schedule(cfg, design, t)
     n, m, p = rig.n, rig.m, len(tracked)

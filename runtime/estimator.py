@@ -45,7 +45,7 @@ def rate_pairs(A: Array) -> list[tuple[int, int]]:
 class Estimator:
     """x from samples, with plausibility checks and data age (see the module docstring)."""
 
-    def __init__(self, A: Array, period: float, jump_limit: Sequence[float],
+    def __init__(self, A: Array, period: float, jump_limit: Sequence[float] | Array,
                  channels: int | None = None, cutoff_hz: float = 50.0) -> None:
         self.n = A.shape[0]
         self.period = float(period)

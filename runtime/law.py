@@ -78,9 +78,9 @@ class TickOut:
     """Effective learning rate gamma_max * phi_d (after the step-gain cap)."""
     step_gain: Array
     """Per-step adaptation gain g_k before the cap."""
-    clamped: Array
+    clamped: NDArray[np.bool_]
     """True where the phi_d clamp engaged (s beyond (1 - margin) eps)."""
-    capped: Array
+    capped: NDArray[np.bool_]
     """True where the step-gain cap limited the update."""
 
 
@@ -174,7 +174,8 @@ class AdaptiveLaw:
         s = np.sqrt(np.einsum("...i,ij,...j->...", e, self.P, e))
         first = self.barrier.phi(s, eps) if self.kind == "barrier" else s * s
         second = np.einsum("...im,...im->...", W_tilde / self.gamma[:, None], W_tilde)
-        return first + second
+        total: Array = first + second
+        return total
 
 
 def law_from_config(cfg: Config, design: Design | None = None) -> AdaptiveLaw:

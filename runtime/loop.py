@@ -38,7 +38,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -68,6 +68,9 @@ from runtime.telemetry import MqttBridge, TelemetryServer
 from runtime.watchdog import Signals, Watchdog, over
 
 Array = NDArray[np.float64]
+
+if TYPE_CHECKING:  # the simulated rig is imported where it is built
+    from sim_rigs.link import SimLink
 
 
 # ------------------------------------------------------------------ the law adapter
@@ -1379,7 +1382,7 @@ class Runner:
         if not self.simulated:
             raise ConfigError("rig.link", "unpaced runs need the simulated rig.",
                               "use --link sim.")
-        core, link = self.core, self.link
+        core, link = self.core, self._sim_link()
         await link.open()
         if self.settings.auto_arm:
             core.submit("arm", lambda ok, msg: None)
@@ -1388,7 +1391,7 @@ class Runner:
                 t_nom = core.tick * core.Ts
                 cmd = _guarded_tick(core, link, t_nom)
                 t_sent = time.monotonic()
-                link.apply(cmd)  # type: ignore[attr-defined]
+                link.apply(cmd)
                 core.after_send(t_sent)
                 if core.internal is not None:
                     break
@@ -1398,8 +1401,18 @@ class Runner:
             self.lock.release()
         return self.summary()
 
+    def _sim_link(self) -> SimLink:
+        """The link as the in-process simulated rig (the host-clocked paths step it)."""
+        from sim_rigs.link import SimLink
+
+        link = self.link
+        if not isinstance(link, SimLink):
+            raise ConfigError("rig.link", "host-clocked runs need the simulated rig.",
+                              "use --link sim.")
+        return link
+
     async def _host_clocked(self) -> None:
-        core, link, clock = self.core, self.link, self.clock
+        core, link, clock = self.core, self._sim_link(), self.clock
         assert self.stop_event is not None
         end_tick = (int(round(self.settings.duration / core.Ts))
                     if self.settings.duration is not None else None)
@@ -1418,7 +1431,7 @@ class Runner:
             t_nom = base[0] + core.tick * core.Ts
             cmd = _guarded_tick(core, link, t_nom)
             t_sent = mono()
-            link.apply(cmd)  # type: ignore[attr-defined]
+            link.apply(cmd)
             core.after_send(t_sent)
             if (end_tick is not None and core.tick >= end_tick) or core.internal is not None:
                 clock.stop()
@@ -1455,7 +1468,7 @@ class Runner:
             await asyncio.to_thread(clock.join, 5.0)
             # Outputs off before anything else happens.
             with contextlib.suppress(Exception):
-                link.apply(Command(core.seq + 1, (0.0,) * core.m, 0))  # type: ignore[attr-defined]
+                link.apply(Command(core.seq + 1, (0.0,) * core.m, 0))
         if clock.error is not None:
             self.error = clock.error
 

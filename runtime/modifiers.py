@@ -91,7 +91,9 @@ class EModification:
     def apply(self, W: Array, dW: Array, e: Array, ePB: Array, s: Array, eps: Array) -> Array:
         """dW - gamma mu ||e'PB|| W."""
         norm = np.sqrt(np.sum(np.asarray(ePB) ** 2, axis=-1))
-        return dW - _gamma_col(self.gamma, W.shape[-2]) * (self.mu * norm[..., None, None] * W)
+        leak = _gamma_col(self.gamma, W.shape[-2]) * (self.mu * norm[..., None, None] * W)
+        out: Array = dW - leak
+        return out
 
 
 class Projection:
@@ -109,7 +111,8 @@ class Projection:
         """The convex function f(theta) per column, shape (..., m)."""
         tt = np.sum(W * W, axis=-2)
         tm2 = self.theta_max**2
-        return ((1.0 + self.eps_p) * tt - tm2) / (self.eps_p * tm2)
+        f: Array = ((1.0 + self.eps_p) * tt - tm2) / (self.eps_p * tm2)
+        return f
 
     def project(self, W: Array, Y: Array) -> Array:
         """Proj(theta, y) for each column theta = W[..., :, j], y = Y[..., :, j]."""

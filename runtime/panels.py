@@ -136,7 +136,7 @@ def tracking_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
     c = tel.get("c") or []
     x = tel.get("x") or []
     xr = tel.get("xr") or []
-    rows = []
+    rows: list[tuple[str, ...]] = []
     for i, name in enumerate(states):
         unit = units[i] if i < len(units) else ""
         cmd = "-"
@@ -160,7 +160,7 @@ def input_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
     limits: Sequence[float] = hello.get("input_limits") or []
     u = tel.get("u") or []
     sat = tel.get("sat_time") or []
-    rows = []
+    rows: list[tuple[str, ...]] = []
     for i, name in enumerate(names):
         unit = units[i] if i < len(units) else ""
         value = u[i] if i < len(u) else None

@@ -84,11 +84,11 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
     out["sweep"] = {k: v for k, v in s.items() if k != "worst_cases"}
     out["worst_cases"] = s["worst_cases"]
     trips = int(round(rate * s["plants"]))
-    verdict = (f"predicted trip rate {100 * rate:.1f} % ({trips} of {s['plants']} plants over "
+    prediction = (f"predicted trip rate {100 * rate:.1f} % ({trips} of {s['plants']} plants over "
                f"{s['duration']:g} s, latency {s['latency_ticks']} ticks, noise "
                f"{'on' if s['noise'] else 'off'})")
     if rate > max_rate:
-        reasons.append(f"{verdict} exceeds preflight.max_trip_rate {100 * max_rate:.1f} %.")
+        reasons.append(f"{prediction} exceeds preflight.max_trip_rate {100 * max_rate:.1f} %.")
         rules = ", ".join(f"{k} {v}" for k, v in s["trips_by_rule"].items() if v)
         if rules:
             reasons.append(f"first-out rules: {rules}.")
@@ -103,7 +103,7 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
                        "[plant.ranges].")
     else:
         out["go"] = True
-        reasons.append(f"{verdict} is within preflight.max_trip_rate {100 * max_rate:.1f} %.")
+        reasons.append(f"{prediction} is within preflight.max_trip_rate {100 * max_rate:.1f} %.")
     return _finish(cfg, out, write)
 
 

@@ -17,7 +17,7 @@ Config (``[basis]``, with ``kind = "rbf"``):
 - ``rbf_width``    width w (state units; scalar or one per grid state;
   default: the grid spacing of each axis).
 
-Also here: the design checks the brief asks for, `coverage` (does the grid
+Also here: the design checks of docs/method.md §6, `coverage` (does the grid
 cover ``{x_r + e : ||e||_P <= eps}`` along the commanded reference?) and
 `residual_eps` (the bound a residual |d| <= d_max needs,
 ``eps > 2 ||P^{1/2} B|| d_max / c_bar``).
@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime.commands import schedule_from_config, tracked_names
 from runtime.config import Config, ConfigError
 
 Array = NDArray[np.float64]
@@ -66,10 +67,12 @@ def rbf_evaluate(x: Array, centres: Array, widths: Array, scale: Array | None = 
     if scale is not None:
         d = d * scale
     d2 = np.einsum("...ki,...ki->...k", d, d)
-    return np.exp(-d2 / (2.0 * widths * widths))
+    act: Array = np.exp(-d2 / (2.0 * widths * widths))
+    return act
 
 
-def grid(centre: Sequence[float], span: Sequence[float], per_axis: Sequence[int]) -> Array:
+def grid(centre: Sequence[float] | Array, span: Sequence[float] | Array,
+         per_axis: Sequence[int]) -> Array:
     """A tensor grid: per_axis[i] points evenly over centre[i] +- span[i]; (prod, len)."""
     axes = [np.linspace(c - s, c + s, k) if k > 1 else np.array([c])
             for c, s, k in zip(centre, span, per_axis, strict=True)]
@@ -122,27 +125,25 @@ def rbf_from_config(cfg: Config, states: Sequence[str]) -> RbfBlock:
 
 
 # ---------------------------------------------------------------- design checks
-def envelope_points(design: Any, cfg: Config, eps: float, count: int = 24,
+def envelope_points(design: Any, cfg: Config, eps: float, reference_step: tuple[Array, Array],
+                    dt: float, count: int = 24,
                     rng: np.random.Generator | None = None) -> Array:
     """Points of {x_r + e : ||e||_P = eps} along the reference the commands drive.
 
-    x_r: the reference model (exact ZOH at 10 ms) driven by `[commands]`
-    (or the operating box of design.state_range when there are none); e: the
-    per-state extreme points of the ellipsoid plus `count` random directions.
+    x_r: the reference model, stepped by `reference_step` = (A_d, B_d) (its exact
+    zero-order hold at `dt`, from `runtime.design.zoh`; passed in so this module does
+    not import the design, which imports it), driven by `[commands]` (or the operating
+    box of design.state_range when there are none); e: the per-state extreme points of
+    the ellipsoid plus `count` random directions.
     """
-    from runtime.design import zoh
-
     rng = np.random.default_rng(3) if rng is None else rng
     n = design.rig.n
     if cfg.has("commands"):
-        from runtime.commands import schedule_from_config, tracked_names
-
         rig = design.rig
         sched = schedule_from_config(cfg, tracked_names(rig.C, rig.states))
-        dt = 0.01
         t = np.arange(0.0, sched.duration, dt)
         c = np.asarray(sched.evaluate(t), dtype=float).reshape(t.size, -1)
-        Ad, Bd = zoh(design.A_r, design.B_r, dt)
+        Ad, Bd = reference_step
         xr = np.zeros((t.size, n))
         for k in range(1, t.size):
             xr[k] = Ad @ xr[k - 1] + Bd @ c[k - 1]
@@ -158,7 +159,8 @@ def envelope_points(design: Any, cfg: Config, eps: float, count: int = 24,
     u /= np.linalg.norm(u, axis=1, keepdims=True)
     rand = eps * np.linalg.solve(L.T, u.T).T
     dirs = np.vstack([np.array(extremes), -np.array(extremes), rand, np.zeros((1, n))])
-    return (xr[:, None, :] + dirs[None, :, :]).reshape(-1, n)
+    pts: Array = (xr[:, None, :] + dirs[None, :, :]).reshape(-1, n)
+    return pts
 
 
 def coverage(centres: Array, widths: Array, scale: Array, points: Array,

@@ -268,7 +268,7 @@ class RunLogWriter:
                     self._wake.wait(0.02)
                     self._wake.clear()
                     continue
-                chunks = []
+                chunks: list[bytes] = []
                 while queue and len(chunks) < 1024:
                     chunks.append(packer.pack(queue.popleft()))
                 fh.write(b"".join(chunks))

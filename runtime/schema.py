@@ -115,8 +115,7 @@ class Key:
     def allowed(self) -> tuple[str, ...]:
         """The allowed values of a CHOICE (resolving ``"module:NAME"``)."""
         if isinstance(self.options, str):
-            module, _, name = self.options.partition(":")
-            return tuple(getattr(importlib.import_module(module), name))
+            return _named(self.options)
         return self.options
 
     def default_text(self) -> str:
@@ -178,8 +177,15 @@ def _sensor_names(raw: dict[str, Any]) -> tuple[str, ...] | None:
     return (*spec.sensor_settings, "delay_ticks", "channels")
 
 
+def _named(ref: str) -> tuple[str, ...]:
+    """A list of names another module owns, as ``"module:NAME"`` (late-bound like CHOICE
+    options: the owner imports this module for its defaults, so no import edge back)."""
+    module, _, name = ref.partition(":")
+    return tuple(getattr(importlib.import_module(module), name))
+
+
 def _rule_ids(raw: dict[str, Any]) -> tuple[str, ...]:
-    return tuple(importlib.import_module("runtime.watchdog").RULE_IDS)
+    return _named("runtime.watchdog:RULE_IDS")
 
 
 # ----------------------------------------------------------------- the declarations

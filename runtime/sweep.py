@@ -63,6 +63,8 @@ from runtime.design import Design, design_from_config
 from runtime.dryrun import weight_norm_limit
 
 Array = NDArray[np.float64]
+Columns = dict[str, NDArray[Any]]
+"""Named per-plant columns: parameters and results (float, or int tick indices)."""
 Progress = Callable[[int, int], None]
 
 RULES = ("margin", "clamp", "nonfinite", "saturation")
@@ -178,7 +180,7 @@ def _ranges(cfg: Config, truth_names: Sequence[str], spec: Any = None,
     return out
 
 
-def draw_plants(cfg: Config, plants: int, seed: int) -> dict[str, Array]:
+def draw_plants(cfg: Config, plants: int, seed: int) -> Columns:
     """The truth of `plants` plants: ranged parameters uniform in [lo, hi], others at truth."""
     from runtime.rig import rig_spec
     from sim_rigs import RIGS
@@ -249,7 +251,7 @@ def _setup(raw: dict[str, Any], settings: SweepSettings) -> _Setup:
     rig = design.rig
     schedule = schedule_from_config(cfg, tracked_names(rig.C, rig.states))
     ticks = max(1, int(round(settings.duration / design.Ts)))
-    t = np.arange(ticks) * design.Ts
+    t = np.arange(ticks, dtype=np.float64) * design.Ts
     cmd = np.ascontiguousarray(schedule.evaluate(t), dtype=float)
     eps_t = eps_schedule(cfg, design, t)
     plant = plant_from_config(cfg, design)
@@ -342,8 +344,8 @@ class _Rules:
         if newly.any():
             first[newly] = k
 
-    def result(self) -> dict[str, Array]:
-        out = {f"first_{r}": v for r, v in self.first.items()}
+    def result(self) -> Columns:
+        out: Columns = {f"first_{r}": v for r, v in self.first.items()}
         ratio = self.max_ratio.copy()
         ratio[self.first["nonfinite"] >= 0] = np.inf
         out["max_ratio"] = ratio
@@ -351,8 +353,8 @@ class _Rules:
 
 
 # ------------------------------------------------------------------ the reference engine
-def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generator,
-                   ) -> dict[str, Array]:
+def _run_reference(setup: _Setup, prm: Columns, rng: np.random.Generator,
+                   ) -> Columns:
     from runtime.law import AdaptiveLaw
     from sim_rigs.plant import RigPlant
 
@@ -394,8 +396,8 @@ def _run_reference(setup: _Setup, prm: dict[str, Array], rng: np.random.Generato
 
 
 # ------------------------------------------------------------------ the compiled engine
-def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.int64],
-                  noise_given: Array | None = None) -> dict[str, Array]:
+def _run_compiled(setup: _Setup, prm: Columns, plant_ids: NDArray[np.int64],
+                  noise_given: Array | None = None) -> Columns:
     """Plants `plant_ids` through `runtime.fast.sweep_kernel` (threads: numba's current count).
 
     Noise: each plant's own stream keyed by (seed, plant id), or `noise_given`
@@ -409,6 +411,7 @@ def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.in
     sens = setup.sensors
     spec = d.rig.spec
     B = len(plant_ids)
+    assert setup.packed is not None, "the fused engine runs only on a packed plant"
     ic, fc = setup.packed
     pcode, pmat = kernel.pack_rig(spec)
     P = kernel.pack_params(spec, {k: np.broadcast_to(np.asarray(prm[k], dtype=float), (B,))
@@ -432,7 +435,7 @@ def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.in
         float(lv["saturation_ticks"]), np.asarray(st.divergence_factor * d.state_range,
                                                   dtype=float),
         float(st.weight_norm_limit), first, max_ratio)
-    out = {f"first_{r}": first[:, j].copy() for j, r in enumerate(fast.SWEEP_RULES)}
+    out: Columns = {f"first_{r}": first[:, j].copy() for j, r in enumerate(fast.SWEEP_RULES)}
     max_ratio[out["first_nonfinite"] >= 0] = np.inf
     out["max_ratio"] = max_ratio
     return out
@@ -444,8 +447,8 @@ def _compiled_threads(workers: int) -> int:
     return max(1, min(int(workers), int(numba.config.NUMBA_NUM_THREADS)))
 
 
-def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: dict[str, Array],
-              chunk_index: int) -> dict[str, Array]:
+def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: Columns,
+              chunk_index: int) -> Columns:
     """Simulate one chunk of plants (in this process); per-plant result arrays.
 
     The compiled engine numbers the chunk's plants 0.. for their noise streams;
@@ -467,8 +470,8 @@ class SweepResult:
 
     design: Design
     settings: SweepSettings
-    truth: dict[str, Array]
-    per_plant: dict[str, Array]
+    truth: Columns
+    per_plant: Columns
     summary: dict[str, Any] = field(default_factory=dict)
 
 
@@ -488,7 +491,7 @@ def _clean(v: Any) -> Any:
     return v
 
 
-def classify(per_plant: dict[str, Array], Ts: float) -> dict[str, Array]:
+def classify(per_plant: Columns, Ts: float) -> Columns:
     """Outcome (0 inside, 1 tripped, 2 diverged), first-out rule index and its time per plant."""
     B = len(per_plant["max_ratio"])
     big = np.iinfo(np.int64).max
@@ -504,8 +507,8 @@ def classify(per_plant: dict[str, Array], Ts: float) -> dict[str, Array]:
             "trip_time": trip_time}
 
 
-def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
-              per_plant: dict[str, Array], wall: float, worst: int = 5) -> dict[str, Any]:
+def summarise(design: Design, settings: SweepSettings, truth: Columns,
+              per_plant: Columns, wall: float, worst: int = 5) -> dict[str, Any]:
     """The report: fractions, trips by rule, worst margin and its distribution, worst cases."""
     Ts = design.Ts
     cls = classify(per_plant, Ts)
@@ -573,8 +576,8 @@ def summarise(design: Design, settings: SweepSettings, truth: dict[str, Array],
     return _clean(summary)
 
 
-def _sweep_compiled(setup: _Setup, truth: dict[str, Array], progress: Progress | None,
-                    ) -> tuple[dict[int, dict[str, Array]], int, float, float]:
+def _sweep_compiled(setup: _Setup, truth: Columns, progress: Progress | None,
+                    ) -> tuple[dict[int, Columns], int, float, float]:
     """All plants through the compiled kernel on numba threads, in plant slices so the
     progress bar moves; returns (results by slice start, slice size, wall, compile) seconds."""
     import numba
@@ -584,7 +587,7 @@ def _sweep_compiled(setup: _Setup, truth: dict[str, Array], progress: Progress |
     threads = _compiled_threads(settings.workers)
     before = numba.get_num_threads()
     numba.set_num_threads(threads)
-    results: dict[int, dict[str, Array]] = {}
+    results: dict[int, Columns] = {}
     try:
         t0 = time.perf_counter()
         short = _Setup(**{**setup.__dict__, "cmd": setup.cmd[:1], "eps_t": setup.eps_t[:1]})

@@ -116,6 +116,7 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
             unit = (names.get("input_units") or [cap.unit("u", 0)])[0]
             ax.set_ylabel(f"inputs [{unit}]" if unit else "inputs")
         elif panel == "eff":
+            assert eff is not None  # the panel is listed only when the column is there
             ax.plot(t_ms, eff, color="tab:green", lw=1, label="gamma * phi_d")
             ax.set_ylabel("learning rate")
             if np.nanmax(np.abs(eff)) > 0 and np.nanmin(eff) > 0:

@@ -75,7 +75,7 @@ class SocketSource(TelemetrySource):
                 pass
             self._writer = None
 
-    async def records(self) -> AsyncIterator[Record]:  # type: ignore[override]
+    async def records(self) -> AsyncIterator[Record]:
         assert self._reader is not None, "open() first"
         unpacker = msgpack.Unpacker(raw=False, strict_map_key=False)
         while True:
@@ -107,7 +107,7 @@ class RecordedSource(TelemetrySource):
         self.description = f"recording {path}" if path else "recording"
         self.replies: list[Record] = []
 
-    async def records(self) -> AsyncIterator[Record]:  # type: ignore[override]
+    async def records(self) -> AsyncIterator[Record]:
         items = self._records
         if items is None:
             assert self.path is not None
@@ -176,7 +176,7 @@ class MqttSource(TelemetrySource):
                 pass
             self._stack = None
 
-    async def records(self) -> AsyncIterator[Record]:  # type: ignore[override]
+    async def records(self) -> AsyncIterator[Record]:
         async for message in self._client.messages:
             try:
                 item = msgpack.unpackb(bytes(message.payload), raw=False, strict_map_key=False)

@@ -44,6 +44,7 @@ from typing import Any
 
 import aiomqtt
 import numpy as np
+from numpy.typing import NDArray
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from drivers.base import STATUS_COMMAND_TIMEOUT, Command, Hello, Sample
@@ -265,9 +266,10 @@ class MqttDeviceTransport(Transport):
             reason = "stopped"
             try:
                 # Commands skip aiomqtt's queue: paho hands them over inside its socket read.
-                client._client.message_callback_add(
-                    self.topics.command,
-                    lambda pc, ud, m, c=client: self._on_paho_command(c, pc, m))
+                def on_command(pc: Any, ud: Any, m: Any, c: aiomqtt.Client = client) -> None:
+                    self._on_paho_command(c, pc, m)
+
+                client._client.message_callback_add(self.topics.command, on_command)
                 # Retain-as-published: a command published retained keeps its flag, so
                 # it is recognised and ignored (a stored command must never act).
                 await client.subscribe(self.topics.command,
@@ -476,7 +478,7 @@ class RigDevice:
         rig_id: str = "pedestal-sim",
         command_timeout_s: float = 0.05,
         faults: FaultSchedule | None = None,
-        output_limits: Sequence[float] | None = None,
+        output_limits: Sequence[float] | NDArray[np.float64] | None = None,
         seed: int = 0,
         realtime: bool = True,
     ) -> None:
@@ -506,7 +508,7 @@ class RigDevice:
         self.samples_sent = 0
         self.timeouts = 0
         self.deadline_misses = 0
-        self.applied = (0.0,) * spec.m
+        self.applied: tuple[float, ...] = (0.0,) * spec.m
         self.status = 0
         self._stop = threading.Event()
         self._lateness = np.zeros(1 << 16)

@@ -140,7 +140,9 @@ class SimLink(Link):
         else:
             u = self.u
         status = STATUS_OK
-        if t - self._last_command_rig_t > self.hello.command_timeout_s:  # type: ignore[union-attr]
+        hello = self.hello
+        assert hello is not None, "the simulated rig says hello when it opens"
+        if t - self._last_command_rig_t > hello.command_timeout_s:
             self.outputs_on = False
             status |= STATUS_COMMAND_TIMEOUT
         if not self.outputs_on:
@@ -148,7 +150,7 @@ class SimLink(Link):
             status |= STATUS_OUTPUTS_OFF
         self.injector.apply(t)
         self.u = self.stepper.step(u, self.period)
-        if any(abs(v) >= lim for v, lim in zip(u, self.hello.output_limits, strict=True)):  # type: ignore[union-attr]
+        if any(abs(v) >= lim for v, lim in zip(u, hello.output_limits, strict=True)):
             status |= STATUS_SATURATED
         self._status = status
         self.tick += 1

@@ -232,7 +232,7 @@ def _factor(where: str, v: Any, states: tuple[str, ...], params: dict[str, Param
     if kind not in FACTOR_KINDS:
         raise RigFileError(f"{where}.kind", f"unknown factor kind {kind!r}.",
                            f"use one of: {', '.join(FACTOR_KINDS)}.")
-    state = _state_index(f"{where}.state", v.get("state"), states)
+    index = _state_index(f"{where}.state", v.get("state"), states)
     k = _num(f"{where}.k", v.get("k", 1.0))
     width: float | str = 1.0
     if kind in ("tanh", "gauss"):
@@ -247,7 +247,7 @@ def _factor(where: str, v: Any, states: tuple[str, ...], params: dict[str, Param
             width = w
         else:
             width = _num(f"{where}.width", w, positive=True)
-    return Factor(kind, state, k, width)
+    return Factor(kind, index, k, width)
 
 
 def rig_from_dict(raw: dict[str, Any], source: str = "") -> RigSpec:

@@ -17,7 +17,8 @@ fractions = st.floats(min_value=1e-6, max_value=1.0 - 1e-6, allow_nan=False)
 
 
 # Source: exact evaluation of the published example phi(s) = s^2/(eps - s),
-# phi_d(s) = (2 eps - s)/(2 (eps - s)^2) at eps = 1 (design brief section 7):
+# phi_d(s) = (2 eps - s)/(2 (eps - s)^2) at eps = 1 (docs/method.md §2.1; the family is
+# the set-theoretic MRAC example of Arabi et al. 2018, from memory):
 # s = 0.9: phi = 0.81/0.1 = 8.1, phi_d = 1.1/(2*0.01) = 55;
 # s = 0.99: phi = 0.9801/0.01 = 98.01, phi_d = 1.01/(2*1e-4) = 5050.
 @pytest.mark.parametrize(
@@ -46,8 +47,8 @@ def test_unknown_barrier_name_lists_the_choices():
 
 
 # Properties a barrier Lyapunov function must have for the set-theoretic law
-# (design brief section 2): phi(0) = 0, phi > 0 on (0, eps), phi -> infinity at eps,
-# phi_d = d phi / d(s^2) > 0 and phi_d(0) = 1/eps.
+# (docs/method.md §2.1, after Tee, Ge and Tay, Automatica 2009): phi(0) = 0,
+# phi > 0 on (0, eps), phi -> infinity at eps, phi_d = d phi / d(s^2) > 0 and phi_d(0) = 1/eps.
 @pytest.mark.parametrize("name", FAMILIES)
 @settings(max_examples=60, deadline=None)
 @given(eps=eps_values, frac=fractions)

@@ -2,7 +2,7 @@
 
 Sources: our own derivation (runtime/bound.py docstring) of
 dV/dt = -phi_d e'Re - s^2 eps'/(eps - s)^2 for the rational barrier; the
-condition eps' >= -(c_bar/2) eps is from the design brief section 2a and is
+condition eps' >= -(c_bar/2) eps follows from it (docs/method.md §7) and is
 checked here by an accurate continuous simulation (scipy solve_ivp) of a
 small plant under the continuous-time barrier law with eps(t).
 """
@@ -66,7 +66,7 @@ def lyapunov_trace(sched: BoundSchedule, T: float) -> tuple[np.ndarray, np.ndarr
 
 
 def test_lyapunov_never_increases_under_an_admissible_schedule():
-    # alpha = c_bar / 2 exactly: the brief's limit (derivation in runtime/bound.py).
+    # alpha = c_bar / 2 exactly: the limit of docs/method.md §7 (derivation in runtime/bound.py).
     sched = BoundSchedule("exponential", eps0=2.0, eps_inf=0.6, alpha=C_BAR / 2)
     assert sched.admissible(C_BAR, np.linspace(0, 20, 2001))
     V, s, eps = lyapunov_trace(sched, 20.0)
@@ -90,7 +90,8 @@ def test_growing_is_always_allowed():
 
 
 def test_exponential_formula_and_rate():
-    # eps(t) = eps_inf + (eps0 - eps_inf) exp(-alpha t) (brief 2a); rate by finite difference.
+    # eps(t) = eps_inf + (eps0 - eps_inf) exp(-alpha t) (docs/method.md §7); rate by finite
+    # difference.
     sched = BoundSchedule("exponential", eps0=3.0, eps_inf=1.0, alpha=0.5)
     t = np.array([0.0, 1.0, 4.0])
     np.testing.assert_allclose(sched.eps(t), 1.0 + 2.0 * np.exp(-0.5 * t))

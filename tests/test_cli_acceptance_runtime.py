@@ -176,10 +176,24 @@ def test_sigint_ends_the_run_with_a_readable_trip_log(tmp_path: Path) -> None:
                              f"log.dir={tmp_path}", *CALM], cwd=ROOT, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     sock = tmp_path / "pedestal-sim.sock"
-    deadline = time.monotonic() + 30
+    deadline = time.monotonic() + 120
     while not sock.exists() and time.monotonic() < deadline and proc.poll() is None:
         time.sleep(0.1)
-    time.sleep(2.0)  # past the spike at 1 s
+    # Wait for the spike's trip on the operator socket (an event, not a fixed 2 s).
+    import socket
+
+    import msgpack
+    tripped = False
+    with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as s:
+        s.connect(str(sock))
+        s.settimeout(60)
+        unpacker = msgpack.Unpacker(raw=False)
+        deadline = time.monotonic() + 120
+        while not tripped and time.monotonic() < deadline:
+            unpacker.feed(s.recv(65536))
+            # the trip message, or the latched first-out in telemetry if it came first
+            tripped = any(m.get("type") == "trip" or m.get("trip") for m in unpacker)
+    assert tripped, "the spike at 1 s never tripped"
     proc.send_signal(signal.SIGINT)
     out, err = proc.communicate(timeout=30)
     assert proc.returncode == 0, err

@@ -6,6 +6,7 @@ live tests against the real runtime socket are in tests/test_dashboard_live.py.
 
 import asyncio
 import math
+import time
 
 import msgpack
 import pytest
@@ -53,11 +54,17 @@ def recording(with_trip: bool = True) -> list[dict]:
     return recs
 
 
+async def until(pilot, predicate, bound_s: float = 60.0) -> None:
+    """Wait for an event on the app (a generous bound, not a deadline)."""
+    end = time.monotonic() + bound_s
+    while not predicate():
+        assert time.monotonic() < end, "the dashboard never got there"
+        await pilot.pause(0.02)
+
+
 async def settle(app: Dashboard, pilot) -> None:
-    for _ in range(50):
-        await pilot.pause(0.05)
-        if app.latest and not app._dirty:
-            return
+    """Wait until the whole recording has been read and drawn."""
+    await until(pilot, lambda: app.status.startswith("end of recording") and not app._dirty)
 
 
 def cells(app: Dashboard, selector: str) -> list[list[str]]:
@@ -109,13 +116,11 @@ def test_arm_on_hardware_asks_first_and_shows_the_cautions():
         async with app.run_test(size=(140, 48)) as pilot:
             await settle(app, pilot)
             await pilot.press("a")
-            await pilot.pause(0.1)
-            assert isinstance(app.screen, ConfirmArm)
+            await until(pilot, lambda: isinstance(app.screen, ConfirmArm))
             text = str(app.screen.query_one("#cautions").render())
             assert "emergency stop" in text and "not a safety-rated function" in text
             await pilot.press("n")
-            await pilot.pause(0.1)
-            assert not isinstance(app.screen, ConfirmArm)
+            await until(pilot, lambda: not isinstance(app.screen, ConfirmArm))
             assert app.status == "arm: cancelled"
             assert source.replies == []  # nothing was sent
     asyncio.run(run())
@@ -129,8 +134,7 @@ def test_values_keep_updating_behind_the_arm_confirmation():
             app.ingest(recs[0])
             app.ingest(recs[1])
             await pilot.press("a")
-            await pilot.pause(0.1)
-            assert isinstance(app.screen, ConfirmArm)
+            await until(pilot, lambda: isinstance(app.screen, ConfirmArm))
             app.ingest(recs[-1])
             app.redraw()  # must not look for the panels on the confirmation screen
             margin = str(app.screen_stack[0].query_one(MarginPanel).render())
@@ -146,7 +150,7 @@ def test_stop_is_one_key_and_reaches_the_source():
         async with app.run_test(size=(140, 48)) as pilot:
             await settle(app, pilot)
             await pilot.press("s")
-            await pilot.pause(0.1)
+            await until(pilot, lambda: source.replies)
             assert [r["op"] for r in source.replies] == ["stop"]
     asyncio.run(run())
 

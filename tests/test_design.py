@@ -201,7 +201,7 @@ def test_zoh_matches_scipy_cont2discrete_and_python_control_c2d(seed, n, m, T):
 @given(seed=seeds, n=st.integers(1, 4))
 def test_eps_from_limits_is_the_largest_ellipsoid_in_the_box(seed, n):
     # Reference: sample the surface e = eps P^(-1/2) v, ||v|| = 1, of {e'Pe <= eps^2}
-    # (support function of an ellipsoid, brief section 2): every sample lies in the box
+    # (support function of an ellipsoid, docs/method.md §3): every sample lies in the box
     # |e_i| <= delta_i, and along the binding state the box is touched (within sampling).
     rng = np.random.default_rng(seed)
     L = rng.normal(size=(n, n))
@@ -288,7 +288,7 @@ def test_explicit_eps_within_the_limits_is_used_and_beyond_them_is_refused(small
 
 def test_step_gain_follows_the_brief_formula_and_refuses_an_unstable_sampled_loop(
         small_rig_raw):
-    # Brief 2b: g = Ts gamma phi_d(0) ||sigma_bar||^2 lambda_max(B'PB), phi_d(0) = 1/eps;
+    # docs/method.md §8: g = Ts gamma phi_d(0) ||sigma_bar||^2 lambda_max(B'PB), phi_d(0) = 1/eps;
     # the regressor bound is checked independently on the corner (1, 1) of the operating
     # box, where sigma = [1, 1, 1, sin 1] is largest for this basis.
     d = design_from_config(Config(raw=small_rig_raw))

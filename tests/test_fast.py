@@ -2,7 +2,7 @@
 
 The reference is `runtime.law.AdaptiveLaw` and `sim_rigs.plant.RigPlant`
 (the readable source of truth); the weight modifiers are checked against the
-formulas of the design brief section 2a, written out again below in plain
+formulas of docs/method.md §4, written out again below in plain
 numpy (projection: Pomet and Praly, IEEE TAC 1992, and Lavretsky and Wise,
 Robust and Adaptive Control, 2013; sigma-modification: Ioannou and Kokotovic;
 e-modification: Narendra and Annaswamy, IEEE TAC 1987).
@@ -127,10 +127,10 @@ def test_frozen_law_holds_the_weights():
     assert np.array_equal(fl.W, w)
 
 
-# ---------------------------------------------------------------- modifiers (brief, section 2a)
+# ------------------------------------------------- modifiers (docs/method.md §4, sources there)
 @dataclasses.dataclass
-class BriefModifiers:
-    """The section 2a formulas in plain numpy, applied in the fast kernel's order."""
+class PublishedModifiers:
+    """The formulas of docs/method.md §4 in plain numpy, applied in the fast kernel's order."""
 
     gamma: np.ndarray
     Ts: float
@@ -165,7 +165,7 @@ class BriefModifiers:
 
 
 @pytest.mark.parametrize("kind", ["sigma", "e", "dead_zone", "projection", "all"])
-def test_modifiers_match_the_brief_formulas(kind):
+def test_modifiers_match_the_published_formulas(kind):
     design = demo_design()
     m = design.rig.m
     xs, cs = closed_loop_states(design, 300, kicks=True)
@@ -179,7 +179,7 @@ def test_modifiers_match_the_brief_formulas(kind):
                     theta_max=tuple(theta)),
     }[kind]
     settings = fast.ModifierSettings(**opts)
-    ref_mod = BriefModifiers(
+    ref_mod = PublishedModifiers(
         gamma=np.asarray(design.gamma, float), Ts=design.Ts, leakage=settings.leakage,
         sigma0=settings.sigma0, mu=settings.mu, dead_zone=settings.dead_zone,
         theta_max=theta if settings.projection else None, eps_p=settings.projection_eps)
@@ -217,7 +217,7 @@ def test_modifier_order_the_kernel_cannot_follow_is_refused():
 
 def test_sigma_modification_decays_weights_geometrically_at_zero_error():
     # With e = 0 the update is pure leakage: W_k+1 = (1 - Ts gamma_i sigma_0) W_k (Euler of
-    # W' = -gamma sigma_0 W; brief section 2a).
+    # W' = -gamma sigma_0 W; docs/method.md §4, Ioannou and Kokotovic).
     design = demo_design()
     fl = fast.FastLaw(design, fast.ModifierSettings(leakage="sigma", sigma0=3.0))
     x = np.zeros(4)

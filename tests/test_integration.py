@@ -217,12 +217,12 @@ import socket, sys, time, os
 import msgpack
 path = sys.argv[sys.argv.index("--socket") + 1]
 out = sys.argv[1]
-deadline = time.monotonic() + 30
+deadline = time.monotonic() + 120
 while not os.path.exists(path) and time.monotonic() < deadline:
     time.sleep(0.05)
 s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
 s.connect(path)
-s.settimeout(2.0)
+s.settimeout(30.0)
 unpacker = msgpack.Unpacker(raw=False)
 kinds = []
 end = time.monotonic() + 1.0

@@ -1,8 +1,9 @@
 """The update law (runtime.law) against the theorem it implements.
 
-The continuous-time closed loop is written out here from the design brief's
-formulas (section 2 and 2a) and integrated accurately with scipy's solve_ivp
-(rtol 1e-9); only P, K1, K2, A_r, B_r, the basis and phi/phi_d come from the
+The continuous-time closed loop is written out here from the formulas of
+docs/method.md §1, §2.2 and §5 (set-theoretic MRAC, Arabi et al. 2018; the MRAC
+form of Lavretsky and Wise 2013; sources from memory) and integrated accurately
+with scipy's solve_ivp (rtol 1e-9); only P, K1, K2, A_r, B_r, the basis and phi/phi_d come from the
 project. On it we check the Lyapunov argument itself: V = phi(||e||_P) +
 tr(W_tilde' Gamma^-1 W_tilde Lam) never increases and equals V(0) minus the
 dissipation integral of phi_d e'Re. Then the sampled `AdaptiveLaw.step` is
@@ -41,9 +42,9 @@ def make_design(raw: dict, **adaptation: object) -> Design:
 
 @dataclass
 class ClosedLoop:
-    """x' = A x + B Lam (u + W*' sigma(x)), u = u_n - W_hat' sigma_bar, brief sections 2, 2a.
+    """x' = A x + B Lam (u + W*' sigma(x)), u = u_n - W_hat' sigma_bar (docs/method.md §1, §5).
 
-    sigma_bar = [sigma; u_n / u_scale] when `augment` (u_scale = 1 is the brief's form;
+    sigma_bar = [sigma; u_n / u_scale] when `augment` (u_scale = 1 is the textbook form;
     the runtime normalises by the input limits). The update law is
     W_hat' = sign * Gamma * phi_d * sigma_bar (e'PB) (phi_d = 1 for the standard law).
     """
@@ -89,7 +90,7 @@ class ClosedLoop:
         xr_dot = d.A_r @ xr + d.B_r @ c
         pd = self.phi_d(s)
         W_dot = self.sign * pd * (self.gamma * sig_bar)[:, None] * (e @ d.PB)[None, :]
-        dissipation = pd * (e @ d.R @ e)  # -dV/dt by the brief's Lyapunov argument
+        dissipation = pd * (e @ d.R @ e)  # -dV/dt by the Lyapunov argument, docs/method.md §2.2
         return np.concatenate([x_dot, xr_dot, W_dot.ravel(), [dissipation]])
 
     def simulate(self, x0: np.ndarray, T: float, points: int = 4001,
@@ -143,7 +144,7 @@ def design(small_rig_raw, request) -> Design:
 
 # --------------------------------------------------------------- the theorem
 def test_barrier_law_lyapunov_function_never_increases(design):
-    # Theorem (brief section 2): V' = -phi_d e'Re <= 0 along the closed loop.
+    # Theorem (docs/method.md §2.2; Arabi et al. 2018): V' = -phi_d e'Re <= 0 along the loop.
     loop = ClosedLoop(design)
     tr = loop.simulate(start_inside(design, 0.3), T=6.0)
     V0 = tr.V[0]
@@ -151,7 +152,7 @@ def test_barrier_law_lyapunov_function_never_increases(design):
     assert tr.V[-1] < 0.95 * V0  # it really decreases (the error was not trivially zero)
     # The identity behind it: V(t) = V(0) - integral of phi_d e'Re.
     np.testing.assert_allclose(tr.V + tr.dissipated, V0, rtol=1e-6)
-    # The runtime's own Lyapunov value (Lam = I) agrees with the brief's formula.
+    # The runtime's own Lyapunov value (Lam = I) agrees with the formula of docs/method.md §2.2.
     law = AdaptiveLaw(design)
     np.testing.assert_allclose(law.lyapunov_value(tr.e, tr.W - W_STAR), tr.V, rtol=1e-9)
 
@@ -166,9 +167,10 @@ def test_flipped_update_sign_makes_the_lyapunov_function_rise(design):
 
 
 def test_barrier_law_keeps_the_error_inside_the_bound_and_the_error_decays(design):
-    # Theorem (brief section 2): ||e(0)||_P < eps implies ||e(t)||_P < eps for all t and
-    # e -> 0. Quantitatively phi(s(t)) <= V(0), so s(t) <= s*, the s where phi(s*) = V(0)
-    # (for the rational family the positive root of s^2 + V0 s - V0 eps = 0).
+    # Theorem (docs/method.md §2.2; Arabi et al. 2018): ||e(0)||_P < eps implies
+    # ||e(t)||_P < eps for all t and e -> 0. Quantitatively phi(s(t)) <= V(0), so
+    # s(t) <= s*, the s where phi(s*) = V(0) (for the rational family the positive root
+    # of s^2 + V0 s - V0 eps = 0).
     eps = design.eps
     loop = ClosedLoop(design)
     tr = loop.simulate(start_inside(design, 0.3), T=10.0)

@@ -80,7 +80,8 @@ def test_leakage_keeps_the_weights_bounded(adapt):
 
 
 def test_leakage_formulas():
-    # W' = gamma (phi_d sigma e'PB - sigma0 W) and gamma (... - mu ||e'PB|| W) (brief 2a).
+    # W' = gamma (phi_d sigma e'PB - sigma0 W) (Ioannou and Kokotovic) and
+    # gamma (... - mu ||e'PB|| W) (Narendra and Annaswamy 1987); docs/method.md §4.
     rng = np.random.default_rng(0)
     W, dW = rng.normal(size=(3, 4, 2)), rng.normal(size=(3, 4, 2))
     ePB = rng.normal(size=(3, 2))

@@ -41,7 +41,7 @@ from sim_rigs import RIGS
 from sim_rigs.device import RigDevice
 from sim_rigs.plant import RigPlant
 
-pytestmark = pytest.mark.timeout(60)
+pytestmark = pytest.mark.timeout(180)
 
 ROOT = Path(__file__).resolve().parents[1]
 # The `corral` console script, run by this interpreter.
@@ -82,7 +82,7 @@ class ServedDevice:
         self.thread.join(10)
 
 
-async def next_message(client: aiomqtt.Client, timeout: float = 3.0) -> aiomqtt.Message:
+async def next_message(client: aiomqtt.Client, timeout: float = 30.0) -> aiomqtt.Message:
     async def first():
         async for m in client.messages:
             return m
@@ -299,7 +299,7 @@ async def test_remote_requests_filtered_and_stop_always(mosquitto):  # noqa: F81
             pub.publish_telemetry({"t": 1.0, "ratio": 0.2})
             pub.publish_trip({"id": 1, "rule": "margin"})
             got = {"mode": None, "telemetry": None, "trip": None}
-            deadline = time.monotonic() + 5
+            deadline = time.monotonic() + 60  # a bound on the event, not a deadline
             while (len(replies) < 4 or None in got.values()) and time.monotonic() < deadline:
                 m = await next_message(c)
                 leaf = m.topic.value.rsplit("/", 1)[1]
@@ -343,7 +343,7 @@ async def test_publisher_will_marks_runtime_disconnected(mosquitto):  # noqa: F8
         async with aiomqtt.Client(mosquitto.host, mosquitto.port,
                                   protocol=aiomqtt.ProtocolVersion.V5) as c:
             await c.subscribe(topics.mode, qos=1)
-            deadline = time.monotonic() + 5
+            deadline = time.monotonic() + 60  # a bound on the event, not a deadline
             while time.monotonic() < deadline:
                 d = msgpack.unpackb((await next_message(c)).payload)
                 if d["mode"] == "disconnected":

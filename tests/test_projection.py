@@ -2,7 +2,7 @@
 
 Source of the properties: Pomet and Praly, IEEE TAC 1992, and Lavretsky and
 Wise, Robust and Adaptive Control (2013), the projection-operator lemma
-(from memory): with the convex f of the brief, (1) a column starting in
+(from memory): with the convex f of docs/method.md §4, (1) a column starting in
 {f <= 1} = {||theta|| <= theta_max} never leaves it, (2) (theta - theta*)'
 (Proj(theta, y) - y) <= 0 for every theta* in {f <= 0}, (3) Proj is
 continuous (locally Lipschitz) in theta.

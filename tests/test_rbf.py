@@ -1,10 +1,11 @@
 """The radial-basis block, its design checks and the two demo dry runs.
 
-Sources: the Gaussian formula sigma_k = exp(-||x - c_k||^2 / (2 w_k^2)) of
-the design brief 2a (evaluated here directly, term by term); the residual
-bound eps > 2 ||P^1/2 B|| d_max / c_bar (brief 2a) with ||P^1/2 B|| from
-scipy.linalg.sqrtm; the theorem that the barrier law keeps ||e||_P < eps
-(brief 2, checked on the demos' dry runs, the fast engine).
+Sources: the Gaussian formula sigma_k = exp(-||x - c_k||^2 / (2 w_k^2))
+(docs/method.md §6; evaluated here directly, term by term); the residual
+bound eps > 2 ||P^1/2 B|| d_max / c_bar (our derivation, docs/method.md §6)
+with ||P^1/2 B|| from scipy.linalg.sqrtm; the theorem that the barrier law keeps
+||e||_P < eps (docs/method.md §2.2, after Arabi et al. 2018 and Tee, Ge and Tay
+2009; checked on the demos' dry runs, the fast engine).
 """
 
 from __future__ import annotations

@@ -272,8 +272,11 @@ def test_cli_errors_are_one_clear_line(corral, runs, tmp_path):
 def test_replays_a_real_time_run_log(corral, tmp_path):
     if not (ROOT / "runtime" / "cmd_run.py").exists():
         pytest.skip("corral run (runtime/cmd_run.py) is not in this checkout yet")
+    # The replay re-checks the recorded ticks against the margin rules; a loaded machine
+    # must not add a loop-timing trip (overrun, stale sample) that no replay can see.
     run = corral("run", DEMO, "--headless", "--duration", "3", "--arm", "--json",
-                 "--set", f"log.dir={tmp_path}")
+                 "--set", f"log.dir={tmp_path}", "--set", "watchdog.overrun_misses=100000",
+                 "--set", "watchdog.stale_periods=50")
     assert run.code == 0, run.stderr
     summary = json.loads(run.stdout)
     rec = read_recording(summary["run_log"])

@@ -19,7 +19,8 @@ def test_every_contract_rule_exists_with_its_default_reaction():
     assert sorted(r.id for r in rules) == sorted(RULE_IDS)
     for r in rules:
         assert r.reaction == DEFAULT_REACTIONS[r.id]
-    # Margin levels default to 0.8 and 0.9 of eps (design brief, section 4).
+    # Margin levels default to 0.8 and 0.9 of eps (our choice: docs/operating.md; a warning
+    # level below the trip level is alarm-management practice, docs/method.md §9).
     by = {r.id: r for r in rules}
     assert by["margin_warning"].threshold == 0.8 and by["margin"].threshold == 0.9
 

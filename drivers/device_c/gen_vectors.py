@@ -19,6 +19,7 @@ from drivers.wire import (
     PROTOCOL_VERSION,
     Fault,
     Heartbeat,
+    Message,
     Stop,
     cobs_encode,
     crc16,
@@ -42,7 +43,7 @@ HELLO = Hello(
 )
 
 
-def _good() -> list[tuple[str, object, int, float]]:
+def _good() -> list[tuple[str, Message, int, float]]:
     return [
         ("hello", HELLO, 0, 0.0),
         ("hello_host", Hello(PROTOCOL_VERSION, "host", (), (), 0.0, (), (), (), 0.0), 3, 1.5),
@@ -57,10 +58,10 @@ def _good() -> list[tuple[str, object, int, float]]:
     ]
 
 
-def _fields(msg: object) -> dict[str, object]:
+def _fields(msg: Message) -> dict[str, object]:
     from dataclasses import asdict
 
-    d = asdict(msg)  # type: ignore[call-overload]
+    d = asdict(msg)
     d.pop("t_host", None)
     return d
 
@@ -76,8 +77,8 @@ def build_vectors() -> dict[str, object]:
                 "fields": _fields(msg),
                 "seq": seq,
                 "t": t,
-                "body_hex": encode_body(msg, seq=seq, t=t).hex(),  # type: ignore[arg-type]
-                "frame_hex": encode_message(msg, seq=seq, t=t).hex(),  # type: ignore[arg-type]
+                "body_hex": encode_body(msg, seq=seq, t=t).hex(),
+                "frame_hex": encode_message(msg, seq=seq, t=t).hex(),
             }
         )
     sample = encode_body(Sample(7, 0.007, (0.1, -0.2), 0))
