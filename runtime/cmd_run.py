@@ -160,7 +160,7 @@ def main(args: argparse.Namespace) -> int:
         loop = asyncio.get_running_loop()
         for sig in (signal.SIGINT, signal.SIGTERM):
             with contextlib.suppress(NotImplementedError, RuntimeError):
-                loop.add_signal_handler(sig, runner.request_stop)
+                loop.add_signal_handler(sig, runner.request_stop, "interrupted")
         watcher = asyncio.create_task(watch_dashboard()) if dash is not None else None
         try:
             return await runner.run()

@@ -60,7 +60,10 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)
         rig = str(cfg.get("rig.name", cfg.get("rig.sim", "rig")))
-        path = Path(str(cfg.get("log.dir", "runs"))) / f"{rig}.sock"
+        from runtime.runinfo import link_identity, run_name
+
+        kind = link_identity(str(cfg.get("rig.link", "sim")))["kind"]
+        path = Path(str(cfg.get("log.dir", "runs"))) / f"{run_name(rig, kind)}.sock"
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
                         "--rig NAME, or --replay FILE")

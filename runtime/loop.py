@@ -62,6 +62,7 @@ from runtime.estimator import Estimator, rate_pairs
 from runtime.fallback import make_fallback, settings_from_config
 from runtime.hostcheck import explain_from_header, pre_arm_check
 from runtime.records import RunLogWriter, TripLog, log_paths
+from runtime.runinfo import RULE_SIGNAL_UNITS, end_record, link_identity, run_name
 from runtime.supervisor import MODE_CODE, Supervisor
 from runtime.telemetry import MqttBridge, TelemetryServer
 from runtime.watchdog import Signals, Watchdog
@@ -281,7 +282,8 @@ def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: 
         raise ConfigError(exc.field, exc.problem, exc.fix) from None
 
 
-def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[str]]:
+def _capture_layout(design: Design, p: int,
+                    rules: Any = ()) -> tuple[list[str], list[int], list[str]]:
     rig = design.rig
     su = ",".join(rig.state_units)
     iu = ",".join(rig.input_units)
@@ -293,6 +295,8 @@ def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[
               ("step_gain", 1, "1"), ("u_cmd", rig.m, iu), ("u", rig.m, iu),
               ("w_norm", 1, "1"), ("sample_age_ms", 1, "ms"), ("lateness_us", 1, "us"),
               ("outputs_on", 1, "1")]
+    # What each watchdog rule judged this tick (`Rule.last_value`), one field per rule.
+    fields += [(f"sig_{r.id}", 1, RULE_SIGNAL_UNITS.get(r.id, "1")) for r in rules]
     return [f[0] for f in fields], [f[1] for f in fields], [f[2] for f in fields]
 
 
@@ -349,7 +353,8 @@ class TickCore:
         self.u_max = np.asarray(rig.input_limits, dtype=float)
 
         # records
-        self.fields, self.widths, self.units = _capture_layout(d, self.p)
+        self.fields, self.widths, self.units = _capture_layout(d, self.p,
+                                                               self.watchdog.rules)
         self.row_len = sum(self.widths)
         offs = np.cumsum([0] + self.widths)
         self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
@@ -364,7 +369,9 @@ class TickCore:
         self.post_later: list[dict[str, Any]] = []
         self.row = np.zeros(self.row_len)
         self.config_hash = cfg.hash()
-        run_path, trip_path = log_paths(log_dir, rig.name)
+        self.link_info = link_identity(settings.link or str(cfg.get("rig.link", "sim")))
+        self.run_name = run_name(rig.name, self.link_info["kind"])
+        run_path, trip_path = log_paths(log_dir, self.run_name)
         self.run_path, self.trip_path = run_path, trip_path
         common = {"rig": rig.name, "config_hash": self.config_hash,
                   "software_version": __version__, "config": cfg.raw, "period": Ts,
@@ -373,14 +380,15 @@ class TickCore:
                   "input_limits": self.u_max.tolist(), "tracked": list(self.tracked),
                   "eps": self.eps0, "bound": self.bound.to_json(),
                   "levels": self.levels(), "simulated": simulated,
+                  "link": self.link_info, "run_name": self.run_name,
+                  "watchdog": self.watchdog.settings(),
                   "hostcheck": settings.hostcheck,
                   # Injected faults as `KIND@SECONDS:...` labels, by where they were set.
                   "faults": (faults.describe() if faults is not None
                              else {"config": [], "command_line": []})}
         self.trip_log = TripLog(trip_path, {**common, "capture_fields": self.fields,
                                             "capture_units": self.units,
-                                            "capture_widths": self.widths,
-                                            "watchdog": self.watchdog.settings()})
+                                            "capture_widths": self.widths})
         self.run_log = RunLogWriter(run_path, {**common, "fields": self.fields,
                                                "widths": self.widths, "units": self.units})
         self._writes: queue.SimpleQueue[Any] = queue.SimpleQueue()
@@ -632,6 +640,8 @@ class TickCore:
         row[sl["sample_age_ms"]] = min(self.est.age, 1e6) * 1e3
         row[sl["lateness_us"]] = self.lateness * 1e6
         row[sl["outputs_on"]] = float(self.outputs_on)
+        for r in self.watchdog.rules:
+            row[sl["sig_" + r.id]] = r.last_value
         self.ring[k % self.pre_n] = row
         self.run_log.append(row.tolist())
         trip = self._pending_trip
@@ -737,8 +747,10 @@ class TickCore:
         rec = {
             "type": "trip", "id": self.trip_id, "t_mono": ctx["t_detect"], "t_wall": time.time(),
             "tick": k, "t": self.t,
-            "first_out": {key: first[key] for key in ("rule", "signal", "value", "threshold")},
-            "later": [{key: e[key] for key in ("rule", "signal", "value", "threshold", "tick")}
+            "first_out": {**{key: first[key] for key in ("rule", "signal", "value", "threshold")},
+                          **self._rule_settings(first["rule"])},
+            "later": [{**{key: e[key] for key in ("rule", "signal", "value", "threshold",
+                                                  "tick")}, **self._rule_settings(e["rule"])}
                       for e in ctx["later"]],
             "action": ctx["action"], "detect_to_action_us": d2a,
             "snapshot": {
@@ -771,6 +783,14 @@ class TickCore:
         self.post_later = []
         if self.post_n == 0:
             self._flush_post()
+
+    def _rule_settings(self, rule_id: str) -> dict[str, Any]:
+        """A rule's on-delay, deadband and reaction (for its trip entry)."""
+        r = self.watchdog.by_id.get(rule_id)
+        if r is None:
+            return {}
+        return {"on_delay_s": r.on_delay, "deadband": r.deadband, "reaction": r.reaction,
+                "capture_field": f"sig_{r.id}"}
 
     def _flush_post(self) -> None:
         if self.post_trip is None:
@@ -815,11 +835,21 @@ class TickCore:
         dashboard owns the terminal) or stderr."""
         return self.settings.console if self.settings.console is not None else sys.stderr
 
-    def close(self) -> None:
-        """Flush the post capture, then close the trip log and run log writers."""
+    def close(self, how: str = "completed", detail: str = "") -> None:
+        """Flush the post capture, write the end record (how the run ended,
+        `runtime.runinfo.END_HOW`), then close the trip log and run log writers."""
         if self.post_trip is not None:
             self._flush_post()
         self._drain_supervisor_events()
+        if how == "completed" and self.trips:
+            how = "tripped_and_stopped"
+        device = getattr(getattr(self.link, "hello", None), "rig_id", None)
+        end = end_record(how, tick=self.tick, trips=len(self.trips), mode=self.sup.mode,
+                         latched=self.sup.latched, detail=detail, rig=self.design.rig.name,
+                         device_rig=device, link=self.link_info)
+        self.end = end
+        self._writes.put(("end", end))
+        self.run_log.append(end)  # type: ignore[arg-type]  # a map after the rows
         self._writes.put(None)
         self._writer.join(10.0)
         self.trip_log.close()
@@ -940,7 +970,7 @@ class Runner:
                               "--set log.dir=runs") from None
         self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
                              self.simulated, self.faults)
-        self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"
+        self.socket_path = self.log_dir / f"{self.core.run_name}.sock"
         rate = cfg.number("telemetry.rate_hz", 25.0, positive=True, unit="Hz")
         self.telemetry = TelemetryServer(self.socket_path, self.core.hello(), self.core.submit,
                                          rate_hz=rate,
@@ -974,9 +1004,13 @@ class Runner:
         """The preflight verdict (go, predicted_trip_rate, reasons, record), when one ran."""
         self.error: BaseException | None = None
         self.ready = threading.Event()
+        self.stop_how = "stopped_by_operator"
+        self.link_lost = False
 
-    def request_stop(self) -> None:
-        """End the run (thread-safe)."""
+    def request_stop(self, how: str = "stopped_by_operator") -> None:
+        """End the run (thread-safe); `how` goes into the end record
+        (``interrupted`` for a signal)."""
+        self.stop_how = how
         ev = self.stop_event
         if ev is not None and self._loop is not None:
             with contextlib.suppress(RuntimeError):
@@ -997,6 +1031,7 @@ class Runner:
         # rig-clocked over a pty: without this a full collection stalled the loop ~15 ms.
         gc.collect()
         gc.freeze()
+        failure: BaseException | None = None
         try:
             async with self.link:
                 async with asyncio.TaskGroup() as tg:
@@ -1016,13 +1051,31 @@ class Runner:
                         tel.cancel()
                         if mqtt is not None:
                             mqtt.cancel()
+        except BaseException as exc:
+            failure = exc
+            raise
         finally:
             sys.setswitchinterval(old_switch)
             gc.unfreeze()
-            self.core.close()
+            self.core.close(*self._how_ended(failure))
         if self.error is not None:
             raise self.error
         return self.summary()
+
+    def _how_ended(self, failure: BaseException | None) -> tuple[str, str]:
+        """How the run ended (`runtime.runinfo.END_HOW`) and a detail line."""
+        from drivers.base import LinkClosed
+
+        err = failure or self.error
+        if isinstance(err, LinkClosed) or (err is None and self.link_lost):
+            return "link_lost", str(err or "the rig closed the link")
+        if isinstance(err, (KeyboardInterrupt, asyncio.CancelledError)):
+            return "interrupted", type(err).__name__
+        if err is not None:
+            return "internal_error", f"{type(err).__name__}: {err}"
+        if self.stop_event is not None and self.stop_event.is_set():
+            return self.stop_how, ""
+        return "completed", ""
 
     def run_preflight(self) -> dict[str, Any]:
         """Preflight (`runtime.preflight.run_preflight`, ``preflight.plants``, default 50 here);
@@ -1180,7 +1233,7 @@ class Runner:
                 await link.send(cmd)
                 core.after_send(t_sent)
         except LinkClosed:
-            pass
+            self.link_lost = True
         finally:
             with contextlib.suppress(Exception):
                 await link.send(Command(core.seq + 1, (0.0,) * core.m, 0))
@@ -1205,4 +1258,7 @@ class Runner:
             "config_hash": core.config_hash,
             "mqtt": self.mqtt.summary if self.mqtt is not None else None,
             "preflight": self.preflight, "hostcheck": self.settings.hostcheck,
+            "link_kind": core.link_info["kind"], "link": core.link_info,
+            "run_name": core.run_name,
+            "ended": getattr(core, "end", {}).get("how"),
         }
