@@ -27,6 +27,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "preflight": ("runtime.cmd_preflight", "go / no-go checks before arming hardware"),
     "hostcheck": ("runtime.cmd_hostcheck", "can this computer hold the loop's period?"),
     "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
+    "report": ("runtime.cmd_report", "one self-contained HTML report of a run"),
 }
 
 

@@ -844,9 +844,19 @@ class TickCore:
         if how == "completed" and self.trips:
             how = "tripped_and_stopped"
         device = getattr(getattr(self.link, "hello", None), "rig_id", None)
+        link_stats: dict[str, Any] = {}
+        with contextlib.suppress(Exception):
+            link_stats = link_stats_now(self.link.stats)
+        stats = self.loop_stats
+        p50, p99, mx = stats.percentiles_us() if stats is not None else (math.nan,) * 3
+        loop = {"ticks": self.tick, "period_s": self.Ts, "lateness_p50_us": _finite(p50),
+                "lateness_p99_us": _finite(p99), "lateness_max_us": _finite(mx),
+                "deadline_misses": stats.misses if stats is not None else 0,
+                "run_log_dropped": self.run_log.dropped, "max_margin_ratio": self.max_ratio}
         end = end_record(how, tick=self.tick, trips=len(self.trips), mode=self.sup.mode,
                          latched=self.sup.latched, detail=detail, rig=self.design.rig.name,
-                         device_rig=device, link=self.link_info)
+                         device_rig=device, link=self.link_info, link_stats=link_stats,
+                         loop=loop)
         self.end = end
         self._writes.put(("end", end))
         self.run_log.append(end)  # type: ignore[arg-type]  # a map after the rows
