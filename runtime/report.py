@@ -35,6 +35,7 @@ from runtime.records import (
     read_trip_log,
 )
 from runtime.runinfo import END_HOW, LINK_KINDS, how_ended, iso_time, say_value
+from runtime.supervisor import MODE_CODE
 
 #: The section ids, in order (tests and readers find them by these ids).
 SECTIONS = ("run", "ended", "config", "design", "preflight", "hostcheck", "margin", "trips",
@@ -160,6 +161,35 @@ def _stats(values: Any) -> tuple[float, float, float]:
     return float(p50), float(p99), float(np.max(arr))
 
 
+def _pointing_error(header: dict[str, Any], cols: dict[str, Any]) -> dict[str, Any]:
+    """``rms_error_final`` and what it measures (``rms_error_final_against``), by the one
+    definition (`runtime.commands.rms_error_final`, over the engaged ticks) when this build
+    has it, else as the run file carries them, else None. Never a second definition here."""
+    out = {"rms_error_final": header.get("rms_error_final"),
+           "rms_error_final_against": header.get("rms_error_final_against")}
+    if out["rms_error_final"] is not None:
+        return out
+    try:
+        from runtime import commands
+
+        fn = commands.rms_error_final  # type: ignore[attr-defined]
+        against = commands.RMS_ERROR_FINAL_AGAINST  # type: ignore[attr-defined]
+    except AttributeError:
+        return out
+    states, tracked = header.get("states") or [], header.get("tracked") or []
+    x, c, t, mode = cols.get("x"), cols.get("c"), cols.get("t"), cols.get("mode")
+    if (x is None or c is None or t is None or mode is None or not tracked
+            or any(name not in states for name in tracked)):
+        return out
+    engaged = mode == MODE_CODE["engaged"]
+    if not np.any(engaged):
+        return out
+    idx = [states.index(name) for name in tracked]
+    out["rms_error_final"] = float(fn(t[engaged], x[engaged][:, idx], c[engaged]))
+    out["rms_error_final_against"] = against
+    return out
+
+
 def report_data(run_log: str | Path) -> dict[str, Any]:
     """What the report shows, as plain values (also the ``--json`` of `corral report`)."""
     run_log = Path(run_log)
@@ -203,9 +233,7 @@ def report_data(run_log: str | Path) -> dict[str, Any]:
         "period_s": period, "torn": torn, "ended": ended,
         "max_margin_ratio": max_ratio, "seconds_at_or_above_warning": above,
         "levels": levels, "eps": header.get("eps"),
-        # The one definition lives with the dry run (rms_error_final_against); a run file
-        # that carries it is shown, none is computed here.
-        "rms_error_final_against": header.get("rms_error_final_against"),
+        **_pointing_error(header, cols),
         "preflight": preflight, "hostcheck": header.get("hostcheck"),
         "trips": [t.summary() for t in trips],
         "events": [{k: v for k, v in ev.items() if k != "preflight"} for ev in events],
@@ -290,9 +318,9 @@ def build_report(run_log: str | Path) -> str:
         "warning / trip level [of eps]": f"{d['levels'].get('warning')} / "
                                           f"{d['levels'].get('trip')}",
         "bound eps at start": d["eps"],
-        "rms_error_final_against (pointing error, from the run file)":
-            d["rms_error_final_against"] if d["rms_error_final_against"] is not None
-            else "not in this run file",
+        "pointing error rms_error_final [rad]": d["rms_error_final"]
+            if d["rms_error_final"] is not None else "not available in this build or file",
+        "rms_error_final_against": d["rms_error_final_against"] or "",
     }) + _margin_figure(cols, header, trips)
     section("margin", "The margin over the whole run", margin)
     tparts = [] if trips else ["<p>No trips.</p>"]

@@ -226,3 +226,22 @@ def test_summary_counts_per_rule_rig_day_and_the_worst_margins(many, capsys):
     assert corral(["trips", str(many), "--summary", "--rule", "stale"]) == 0
     out = capsys.readouterr().out
     assert "2 trip(s)" in out and "stale" in out and "trips per day" in out
+
+
+# ---------------------------------------------------------------- one definition per figure
+def test_dry_run_reports_the_step_gain_before_and_after_the_cap(tmp_path):
+    """The law applies min(g_k, cap) (the method's per-step gain cap, design brief): the
+    peak before the cap and the applied one are both reported and labelled."""
+    from runtime.config import load_config
+    from runtime.dryrun import dry_run
+
+    cfg = load_config(DEMO, ["commands.duration=4", "adaptation.step_gain_cap=0.5"])
+    s = dry_run(cfg).summary
+    assert s["step_gain_cap"] == 0.5
+    assert s["max_step_gain_applied"] == min(s["max_step_gain"], 0.5)
+    assert s["max_step_gain"] > 0.5  # the demo's peak exceeds this cap, so the two differ
+    res = subprocess.run([sys.executable, "-c",
+                          "import sys; from runtime.cli import main; sys.exit(main())",
+                          "dry-run", str(DEMO), "--no-plot", "--out", str(tmp_path), "--set",
+                          "commands.duration=4"], capture_output=True, text=True, cwd=ROOT)
+    assert "peak step gain before the cap" in res.stdout and "applied" in res.stdout
