@@ -206,6 +206,10 @@ def main(args: argparse.Namespace) -> int:
             why = explain_from_header(t["rule"], t["value"], t["threshold"], header, run_loop)
             if why:
                 print(f"    {why}")
+        from runtime.runinfo import END_HOW
+
+        print(f"  ended: {END_HOW.get(str(summary.get('ended')), summary.get('ended'))}; link "
+              f"{summary.get('link_kind')}")
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
         if console_path is not None:
             print(f"  console:  {console_path}")

@@ -358,6 +358,10 @@ class TickCore:
         self.row_len = sum(self.widths)
         offs = np.cumsum([0] + self.widths)
         self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
+        # Where each rule's judged signal goes in the row (one assignment per tick).
+        self._sig_rules = list(self.watchdog.rules)
+        self._sig_at = np.array([self.slot[f"sig_{r.id}"].start for r in self._sig_rules],
+                                dtype=np.intp)
         pre_s = cfg.number("log.pre_capture_s", 1.0, minimum=0.0, unit="s")
         post_s = cfg.number("log.post_capture_s", 1.0, minimum=0.0, unit="s")
         self.pre_n = max(1, int(round(pre_s / Ts)))
@@ -461,7 +465,8 @@ class TickCore:
                 "envelope": np.asarray(d.envelope).tolist(), "eps": self.eps0,
                 "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
-                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck}
+                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck,
+                "link": self.link_info, "run_name": self.run_name}
 
     def _start_fallback(self, kind: str) -> None:
         self.law.frozen = True
@@ -640,8 +645,7 @@ class TickCore:
         row[sl["sample_age_ms"]] = min(self.est.age, 1e6) * 1e3
         row[sl["lateness_us"]] = self.lateness * 1e6
         row[sl["outputs_on"]] = float(self.outputs_on)
-        for r in self.watchdog.rules:
-            row[sl["sig_" + r.id]] = r.last_value
+        row[self._sig_at] = [r.last_value for r in self._sig_rules]
         self.ring[k % self.pre_n] = row
         self.run_log.append(row.tolist())
         trip = self._pending_trip
