@@ -1272,7 +1272,7 @@ class Runner:
             "config_hash": core.config_hash,
             "mqtt": self.mqtt.summary if self.mqtt is not None else None,
             "preflight": self.preflight, "hostcheck": self.settings.hostcheck,
-            "link_kind": core.link_info["kind"], "link": core.link_info,
+            "link_kind": core.link_info["kind"], "link_info": core.link_info,
             "run_name": core.run_name,
             "ended": getattr(core, "end", {}).get("how"),
         }
