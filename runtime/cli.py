@@ -31,6 +31,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "hostcheck": ("runtime.cmd_hostcheck", "can this computer hold the loop's period?"),
     "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
     "config": ("runtime.cmd_config", "print the resolved config: every key, its unit and source"),
+    "report": ("runtime.cmd_report", "one self-contained HTML report of a run"),
 }
 
 

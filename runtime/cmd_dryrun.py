@@ -92,7 +92,9 @@ def main(args: argparse.Namespace) -> int:
         print(f"  rms_error_final = {s['rms_error_final'] * 1e3:.3f} mrad "
               f"({s['rms_error_final_against']})")
         print(f"  weight norm = {s['weight_norm']:.4g}, peak learning rate gamma*phi_d = "
-              f"{s['max_eff_rate']:.4g}, peak step gain = {s['max_step_gain']:.3g}")
+              f"{s['max_eff_rate']:.4g}")
+        print(f"  peak step gain before the cap = {s['max_step_gain']:.3g}, applied "
+              f"{s['max_step_gain_applied']:.3g} (cap {s['step_gain_cap']:g})")
         print(f"  run file: {run_file}")
         if "report" in s:
             print(f"  report:   {s['report']}")

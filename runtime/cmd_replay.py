@@ -77,6 +77,10 @@ def _print_text(out: dict[str, Any]) -> None:
     if out["recorded"].get("logged_trip"):
         print(f"  recorded first-out is from the run's trip log; re-evaluated on the recorded "
               f"ticks: {_trip(out['recorded'].get('reevaluated_trip'))}")
+    for m in out.get("marks") or []:
+        lv = m["levels"]
+        print(f"  marked: {m['kind'].replace('_', ' ')} trip {m['rule']} at {m['t']:.3f} s "
+              f"({m['source']}; trip level {lv['trip']:g}, warning {lv['warning']:g})")
     verdict = ("would trip" if out["would_trip"] else "would not trip")
     if out["trip_avoided"]:
         verdict += " (the recorded trip is avoided)"

@@ -93,7 +93,11 @@ def main(args: argparse.Namespace) -> int:
     seed = int(cfg.number("plant.seed"))
     try:
         # Each fault's axis is resolved against the device's channels here.
-        device = RigDevice(plant, period=design.Ts, rig_id=rig, command_timeout_s=timeout,
+        # Over a pseudo-terminal the served rig names itself as served, so a run through it
+        # is never taken for the in-process simulation (an MQTT rig's name is its topic).
+        device = RigDevice(plant, period=design.Ts,
+                                rig_id=f"{rig}-served" if args.serial else rig,
+                                command_timeout_s=timeout,
                                 faults=schedule, output_limits=design.rig.input_limits,
                                 seed=seed)
     except FaultError as exc:

@@ -193,7 +193,7 @@ def main(args: argparse.Namespace) -> int:
         loop = asyncio.get_running_loop()
         for sig in (signal.SIGINT, signal.SIGTERM):
             with contextlib.suppress(NotImplementedError, RuntimeError):
-                loop.add_signal_handler(sig, runner.request_stop)
+                loop.add_signal_handler(sig, runner.request_stop, "interrupted")
         watcher = asyncio.create_task(watch_dashboard()) if dash is not None else None
         try:
             return await runner.run()
@@ -239,6 +239,10 @@ def main(args: argparse.Namespace) -> int:
             why = explain_from_header(t["rule"], t["value"], t["threshold"], header, run_loop)
             if why:
                 print(f"    {why}")
+        from runtime.runinfo import END_HOW
+
+        print(f"  ended: {END_HOW.get(str(summary.get('ended')), summary.get('ended'))}; link "
+              f"{summary.get('link_kind')}")
         print(f"  trip log: {summary['trip_log']}\n  run log:  {summary['run_log']}")
         if console_path is not None:
             print(f"  console:  {console_path}")

@@ -17,13 +17,13 @@ import argparse
 import json
 import math
 import sys
-import time
 from pathlib import Path
 from typing import Any
 
 from runtime.cli_common import UserError
 from runtime.hostcheck import explain_from_header
 from runtime.records import LogReadError, Trip, find_logs, read_trip_log
+from runtime.runinfo import iso_time, say_value
 
 #: Config sections `--show` prints (when present), in this order.
 KEY_SECTIONS = ("rig", "design", "adaptation", "loop", "watchdog", "reactions", "fallback",
@@ -47,6 +47,21 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="output file (for --comtrade: the base name, no extension)")
     parser.add_argument("--json", action="store_true",
                         help="machine-readable output (the list, or the trip with --show)")
+    act.add_argument("--summary", action="store_true",
+                     help="counts per rule, rig, link kind and day; how the runs ended; "
+                          "the worst margins")
+    flt = parser.add_argument_group("filters (the list and --summary)")
+    flt.add_argument("--since", metavar="WHEN",
+                     help="trips at or after WHEN: ISO 8601 (2026-12-04T09:00, with an "
+                          "offset or local time) or a span back from now (30m, 2h, 3d)")
+    flt.add_argument("--until", metavar="WHEN", help="trips at or before WHEN (as --since)")
+    flt.add_argument("--rule", action="append", default=[], metavar="RULE",
+                     help="only this first-out rule (repeat for more)")
+    flt.add_argument("--rig", action="append", default=[], metavar="NAME",
+                     help="only this rig (or run name; repeat for more)")
+    flt.add_argument("--link", action="append", default=[], metavar="KIND",
+                     choices=("sim", "served_pty", "serial", "mqtt"),
+                     help="only runs over this link kind: sim, served_pty, serial, mqtt")
 
 
 # ---------------------------------------------------------------------------
@@ -126,8 +141,13 @@ def _num(v: Any, digits: int = 4) -> str:
 
 
 def _when(t_wall: float) -> str:
-    return time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(t_wall)) + \
-        f".{int((t_wall % 1) * 1000):03d}"
+    return iso_time(t_wall)
+
+
+def _link(trip: Trip) -> str:
+    from runtime.tripfilter import run_link_kind
+
+    return run_link_kind(trip.header)
 
 
 def list_text(logs: list[Path], trips: list[Trip], torn: dict[Path, bool]) -> str:
@@ -136,13 +156,13 @@ def list_text(logs: list[Path], trips: list[Trip], torn: dict[Path, bool]) -> st
         return "no trip logs (*.trips) found"
     out = []
     if trips:
-        rows = [("TIME", "RIG", "ID", "FIRST-OUT", "VALUE vs THRESHOLD", "ACTION",
-                 "DETECT->ACT us", "")]
+        rows = [("TIME", "RIG", "LINK", "ID", "FIRST-OUT", "WHAT CROSSED", "ACTION",
+                 "DETECT->ACT us", "RUN ENDED", "")]
         for t in trips:
             rows.append((
-                _when(t.t_wall), t.rig, t.key, t.rule,
-                f"{_num(t.value)} vs {_num(t.threshold)}", t.action,
-                _num(t.detect_to_action_us, 3),
+                _when(t.t_wall), t.rig, _link(t), t.key, t.rule,
+                say_value(t.rule, t.value, t.threshold, t.first_out.get("on_delay_s")),
+                t.action, _num(t.detect_to_action_us, 3), str(t.ended.get("how", "?")),
                 "*" if t.cut_short else "",
             ))
         widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
@@ -253,8 +273,15 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
         f"config {trip.config_hash or '?'}",
         f"  at {_when(trip.t_wall)}, tick {trip.tick}"
         + (f", t_mono {trip.t_mono:.6f} s" if isinstance(trip.t_mono, (int, float)) else ""),
+        f"  link: {_link(trip)} ({(trip.header.get('link') or {}).get('spec', '?')}), "
+        f"simulated: {trip.header.get('simulated')}",
         f"  first out: {trip.rule}  {fo.get('signal', '?')} = {_num(trip.value)} "
         f"vs threshold {_num(trip.threshold)}",
+        f"    that is: {say_value(trip.rule, trip.value, trip.threshold, fo.get('on_delay_s'))}"
+        + (f"; on-delay {_num(fo.get('on_delay_s'))} s, deadband {_num(fo.get('deadband'))}"
+           if "on_delay_s" in fo else ""),
+        f"  the run ended: {trip.ended.get('how_text', '?')}"
+        + (f" at {trip.ended['time_iso']}" if trip.ended.get("time_iso") else ""),
     ]
     why = explain_from_header(trip.rule, trip.value, trip.threshold, trip.header,
                               trip.snapshot.get("loop"))
@@ -346,13 +373,44 @@ def _out_path(out: Path | None, trip: Trip, suffix: str) -> Path:
     return out
 
 
+def _filter(args: argparse.Namespace) -> Any:
+    from runtime.runinfo import parse_when
+    from runtime.tripfilter import TripFilter
+
+    out = TripFilter(rules=list(getattr(args, "rule", []) or []),
+                     rigs=list(getattr(args, "rig", []) or []),
+                     links=list(getattr(args, "link", []) or []))
+    for name in ("since", "until"):
+        text = getattr(args, name, None)
+        if text:
+            try:
+                setattr(out, name, parse_when(text))
+            except ValueError as exc:
+                raise UserError(f"--{name}: {exc}") from None
+    from runtime.records import RULES
+
+    bad = [r for r in out.rules if r not in RULES]
+    if bad:
+        raise UserError(f"--rule {bad[0]!r} is not a watchdog rule; use one of "
+                        f"{', '.join(RULES)}")
+    return out
+
+
 def main(args: argparse.Namespace) -> int:
     """List, show, plot or export."""
     logs, trips, torn = _load(args.logs)
     # `is not None`: an empty id (`--show ""`) is a bad id, not a request for the list.
     ident = next((v for v in (args.show, args.plot, args.csv, args.comtrade) if v is not None),
                  None)
+    flt = _filter(args)
+    if getattr(args, "summary", False):
+        from runtime.tripfilter import summarize, summary_text
+
+        summ = summarize(logs, flt.apply(trips), flt)
+        print(json.dumps(summ, indent=2, default=str) if args.json else summary_text(summ))
+        return 0
     if ident is None:
+        trips = flt.apply(trips)
         if args.json:
             print(json.dumps([t.summary() for t in trips], indent=2, default=str))
         else:

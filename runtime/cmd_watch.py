@@ -74,7 +74,10 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)
         rig = rig_name(cfg)
-        path = Path(str(cfg.get("log.dir"))) / f"{rig}.sock"
+        from runtime.runinfo import link_identity, run_name
+
+        kind = link_identity(str(cfg.get("rig.link")))["kind"]
+        path = Path(str(cfg.get("log.dir"))) / f"{run_name(rig, kind)}.sock"
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
                         "--rig NAME, or --replay FILE")

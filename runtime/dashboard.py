@@ -97,7 +97,8 @@ class LearningPanel(Static):
         bar_w = 24
         filled = 0 if frac != frac else max(0, min(bar_w, int(round(frac * bar_w))))
         style = "green" if frac == frac and frac < 0.5 else "yellow" if frac < 1 else "red"
-        text.append(f"step gain g = {view.step_gain_text} of cap {view.cap_text} ")
+        text.append(f"step gain g (before the cap) = {view.step_gain_text} of cap "
+                    f"{view.cap_text} ")
         text.append("[" + "#" * filled + "." * (bar_w - filled) + "]\n", style=style)
         text.append(f"weights ||W_hat|| = {weights[0]}, rate {weights[1]}\n")
         top = max(trace) if trace else 1.0

@@ -212,7 +212,10 @@ def dry_run(cfg: Config, progress: Any = None, engine: str = "fast") -> DryRunRe
         "wall_seconds": wall,
         "realtime_factor": float(ticks * Ts / wall) if wall > 0 else float("inf"),
         "max_eff_rate": float(np.max(cols["eff_rate"])),
+        # g_k before the cap (`LawOutput.step_gain`); the law applies min(g_k, cap).
         "max_step_gain": float(np.max(cols["step_gain"])),
+        "max_step_gain_applied": float(min(np.max(cols["step_gain"]), design.step_gain_cap)),
+        "step_gain_cap": float(design.step_gain_cap),
         "clamp_ticks": int(np.sum(cols["clamped"])),
         "saturation_fraction": float(np.mean(np.any(np.abs(cols["u_raw"])
                                                     > rig.input_limits, axis=1))),

@@ -63,6 +63,7 @@ from runtime.estimator import Estimator, rate_pairs
 from runtime.fallback import make_fallback, settings_from_config
 from runtime.hostcheck import explain_from_header, pre_arm_check
 from runtime.records import RunLogWriter, TripLog, log_paths
+from runtime.runinfo import RULE_SIGNAL_UNITS, end_record, link_identity, run_name
 from runtime.supervisor import MODE_CODE, Supervisor
 from runtime.telemetry import MqttBridge, TelemetryServer
 from runtime.watchdog import Signals, Watchdog, over
@@ -283,7 +284,8 @@ def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: 
         raise ConfigError(exc.field, exc.problem, exc.fix) from None
 
 
-def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[str]]:
+def _capture_layout(design: Design, p: int,
+                    rules: Any = ()) -> tuple[list[str], list[int], list[str]]:
     rig = design.rig
     su = ",".join(rig.state_units)
     iu = ",".join(rig.input_units)
@@ -295,6 +297,8 @@ def _capture_layout(design: Design, p: int) -> tuple[list[str], list[int], list[
               ("step_gain", 1, "1"), ("u_cmd", rig.m, iu), ("u", rig.m, iu),
               ("w_norm", 1, "1"), ("sample_age_ms", 1, "ms"), ("lateness_us", 1, "us"),
               ("outputs_on", 1, "1")]
+    # What each watchdog rule judged this tick (`Rule.last_value`), one field per rule.
+    fields += [(f"sig_{r.id}", 1, RULE_SIGNAL_UNITS.get(r.id, "1")) for r in rules]
     return [f[0] for f in fields], [f[1] for f in fields], [f[2] for f in fields]
 
 
@@ -347,10 +351,15 @@ class TickCore:
         self.u_max = np.asarray(rig.input_limits, dtype=float)
 
         # records
-        self.fields, self.widths, self.units = _capture_layout(d, self.p)
+        self.fields, self.widths, self.units = _capture_layout(d, self.p,
+                                                               self.watchdog.rules)
         self.row_len = sum(self.widths)
         offs = np.cumsum([0] + self.widths)
         self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
+        # Where each rule's judged signal goes in the row (one assignment per tick).
+        self._sig_rules = list(self.watchdog.rules)
+        self._sig_at = np.array([self.slot[f"sig_{r.id}"].start for r in self._sig_rules],
+                                dtype=np.intp)
         pre_s = cfg.number("log.pre_capture_s")
         post_s = cfg.number("log.post_capture_s")
         self.pre_n = max(1, int(round(pre_s / Ts)))
@@ -362,7 +371,9 @@ class TickCore:
         self.post_later: list[dict[str, Any]] = []
         self.row = np.zeros(self.row_len)
         self.config_hash = cfg.hash()
-        run_path, trip_path = log_paths(log_dir, rig.name)
+        self.link_info = link_identity(settings.link or str(cfg.get("rig.link")))
+        self.run_name = run_name(rig.name, self.link_info["kind"])
+        run_path, trip_path = log_paths(log_dir, self.run_name)
         self.run_path, self.trip_path = run_path, trip_path
         common = {"rig": rig.name, "config_hash": self.config_hash,
                   "software_version": __version__, "config": cfg.raw, "period": Ts,
@@ -371,14 +382,15 @@ class TickCore:
                   "input_limits": self.u_max.tolist(), "tracked": list(self.tracked),
                   "eps": self.eps0, "bound": self.bound.to_json(),
                   "levels": self.levels(), "simulated": simulated,
+                  "link": self.link_info, "run_name": self.run_name,
+                  "watchdog": self.watchdog.settings(),
                   "hostcheck": settings.hostcheck,
                   # Injected faults as `KIND@SECONDS:...` labels, by where they were set.
                   "faults": (faults.describe() if faults is not None
                              else {"config": [], "command_line": []})}
         self.trip_log = TripLog(trip_path, {**common, "capture_fields": self.fields,
                                             "capture_units": self.units,
-                                            "capture_widths": self.widths,
-                                            "watchdog": self.watchdog.settings()})
+                                            "capture_widths": self.widths})
         self.run_log = RunLogWriter(run_path, {**common, "fields": self.fields,
                                                "widths": self.widths, "units": self.units})
         self._writes: queue.SimpleQueue[Any] = queue.SimpleQueue()
@@ -465,7 +477,8 @@ class TickCore:
                 "envelope": np.asarray(d.envelope).tolist(), "eps": self.eps0,
                 "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
-                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck}
+                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck,
+                "link": self.link_info, "run_name": self.run_name}
 
     def _start_fallback(self, kind: str) -> None:
         self.law.frozen = True
@@ -708,6 +721,7 @@ class TickCore:
         row[sl["sample_age_ms"]] = min(self.est.age, 1e6) * 1e3
         row[sl["lateness_us"]] = self.lateness * 1e6
         row[sl["outputs_on"]] = float(self.outputs_on)
+        row[self._sig_at] = [r.last_value for r in self._sig_rules]
         self.ring[k % self.pre_n] = row
         self.run_log.append(row.tolist())
         trip = self._pending_trip
@@ -819,8 +833,9 @@ class TickCore:
         rec = {
             "type": "trip", "id": self.trip_id, "t_mono": ctx["t_detect"], "t_wall": time.time(),
             "tick": k, "t": self.t,
-            "first_out": first_out,
-            "later": [{key: e[key] for key in ("rule", "signal", "value", "threshold", "tick")}
+            "first_out": {**first_out, **self._rule_settings(first["rule"])},
+            "later": [{**{key: e[key] for key in ("rule", "signal", "value", "threshold",
+                                                  "tick")}, **self._rule_settings(e["rule"])}
                       for e in ctx["later"]],
             "action": ctx["action"], "detect_to_action_us": d2a,
             "snapshot": {
@@ -854,6 +869,14 @@ class TickCore:
         self.post_later = []
         if self.post_n == 0:
             self._flush_post()
+
+    def _rule_settings(self, rule_id: str) -> dict[str, Any]:
+        """A rule's on-delay, deadband and reaction (for its trip entry)."""
+        r = self.watchdog.by_id.get(rule_id)
+        if r is None:
+            return {}
+        return {"on_delay_s": r.on_delay, "deadband": r.deadband, "reaction": r.reaction,
+                "capture_field": f"sig_{r.id}"}
 
     def _flush_post(self) -> None:
         if self.post_trip is None:
@@ -970,12 +993,32 @@ class TickCore:
         dashboard owns the terminal) or stderr."""
         return self.settings.console if self.settings.console is not None else sys.stderr
 
-    def close(self) -> None:
-        """Flush the post capture, then close the trip log and run log writers."""
+    def close(self, how: str = "completed", detail: str = "") -> None:
+        """Flush the post capture, write the end record (how the run ended,
+        `runtime.runinfo.END_HOW`), then close the trip log and run log writers."""
         if self.post_trip is not None:
             self._flush_post()
         self._drain_supervisor_events()
         self._flush_suppressed()
+        if how == "completed" and self.trips:
+            how = "tripped_and_stopped"
+        device = getattr(getattr(self.link, "hello", None), "rig_id", None)
+        link_stats: dict[str, Any] = {}
+        with contextlib.suppress(Exception):
+            link_stats = link_stats_now(self.link.stats)
+        stats = self.loop_stats
+        p50, p99, mx = stats.percentiles_us() if stats is not None else (math.nan,) * 3
+        loop = {"ticks": self.tick, "period_s": self.Ts, "lateness_p50_us": _finite(p50),
+                "lateness_p99_us": _finite(p99), "lateness_max_us": _finite(mx),
+                "deadline_misses": stats.misses if stats is not None else 0,
+                "run_log_dropped": self.run_log.dropped, "max_margin_ratio": self.max_ratio}
+        end = end_record(how, tick=self.tick, trips=len(self.trips), mode=self.sup.mode,
+                         latched=self.sup.latched, detail=detail, rig=self.design.rig.name,
+                         device_rig=device, link=self.link_info, link_stats=link_stats,
+                         loop=loop)
+        self.end = end
+        self._writes.put(("end", end))
+        self.run_log.append(end)  # type: ignore[arg-type]  # a map after the rows
         self._writes.put(None)
         self._writer.join(10.0)
         self.trip_log.close()
@@ -1230,17 +1273,18 @@ class Runner:
             raise ConfigError("log.dir", f"cannot create the log folder {self.log_dir} "
                               f"({exc.strerror})", "name a folder you can write, e.g. "
                               "--set log.dir=runs") from None
-        self.socket_path = self.log_dir / f"{self.design.rig.name}.sock"
-        if len(os.fsencode(self.socket_path)) > _UNIX_PATH_MAX:
-            raise ConfigError("log.dir", f"the operator socket path {self.socket_path} is "
-                              f"longer than the {_UNIX_PATH_MAX} bytes a Unix socket allows",
-                              "name a shorter folder (or a shorter rig.name).")
         # One owner per rig: before any file of this run exists, so a refused second
         # runtime leaves nothing behind and never touches the first one's socket.
         self.lock = RigLock(self.log_dir / f"{self.design.rig.name}.lock")
         try:
             self.core = TickCore(cfg, self.design, self.link, settings, self.log_dir,
                                  self.simulated, self.faults)
+            # The socket is named after the run (rig and link kind, runtime.runinfo.run_name).
+            self.socket_path = self.log_dir / f"{self.core.run_name}.sock"
+            if len(os.fsencode(self.socket_path)) > _UNIX_PATH_MAX:
+                raise ConfigError("log.dir", f"the operator socket path {self.socket_path} is "
+                                  f"longer than the {_UNIX_PATH_MAX} bytes a Unix socket "
+                                  "allows", "name a shorter folder (or a shorter rig.name).")
         except BaseException:
             self.lock.release()
             raise
@@ -1280,9 +1324,12 @@ class Runner:
         """Each loss of the link: t, tick, detail (``pty closed``, ``broker gone``, ...)."""
         self.last_reconnect_error = ""
         self._sessions = 0
+        self.stop_how = "stopped_by_operator"
 
-    def request_stop(self) -> None:
-        """End the run (thread-safe)."""
+    def request_stop(self, how: str = "stopped_by_operator") -> None:
+        """End the run (thread-safe); `how` goes into the end record
+        (``interrupted`` for a signal)."""
+        self.stop_how = how
         ev = self.stop_event
         if ev is not None and self._loop is not None:
             with contextlib.suppress(RuntimeError):
@@ -1303,6 +1350,7 @@ class Runner:
         # rig-clocked over a pty: without this a full collection stalled the loop ~15 ms.
         gc.collect()
         gc.freeze()
+        failure: BaseException | None = None
         try:
             async with self.link:
                 async with asyncio.TaskGroup() as tg:
@@ -1322,14 +1370,37 @@ class Runner:
                         tel.cancel()
                         if mqtt is not None:
                             mqtt.cancel()
+        except BaseException as exc:
+            failure = exc
+            raise
         finally:
             sys.setswitchinterval(old_switch)
             gc.unfreeze()
-            self.core.close()
+            self.core.close(*self._how_ended(failure))
             self.lock.release()
         if self.error is not None:
             raise self.error
         return self.summary()
+
+    def _how_ended(self, failure: BaseException | None) -> tuple[str, str]:
+        """How the run ended (`runtime.runinfo.END_HOW`) and a detail line."""
+        from drivers.base import LinkClosed
+
+        err = failure or self.error
+        if self.core.internal is not None:
+            exc = self.core.internal
+            return "internal_error", f"{type(exc).__name__}: {exc}"
+        down = bool(self.link_losses) and not self.core.link_up
+        if isinstance(err, LinkClosed) or (err is None and down):
+            detail = self.link_losses[-1]["detail"] if self.link_losses else ""
+            return "link_lost", str(err or detail or "the rig closed the link")
+        if isinstance(err, (KeyboardInterrupt, asyncio.CancelledError)):
+            return "interrupted", type(err).__name__
+        if err is not None:
+            return "internal_error", f"{type(err).__name__}: {err}"
+        if self.stop_event is not None and self.stop_event.is_set():
+            return self.stop_how, ""
+        return "completed", ""
 
     def run_preflight(self) -> dict[str, Any]:
         """Preflight (`runtime.preflight.run_preflight`, ``preflight.run_plants`` plants);
@@ -1616,4 +1687,7 @@ class Runner:
                                if core.internal is not None else None),
             "link_losses": list(self.link_losses),
             "link_up": core.link_up,
+            "link_kind": core.link_info["kind"], "link_info": core.link_info,
+            "run_name": core.run_name,
+            "ended": getattr(core, "end", {}).get("how"),
         }

@@ -7,7 +7,7 @@ through the simulated stand-in of the rig with the configured sample period,
 sensor noise and command latency (`runtime.sweep`), and compares the
 predicted trip rate (tripped + diverged fraction) with
 `preflight.max_trip_rate`. The result is written as JSON into log.dir
-(`preflight-<stamp>.json`) so the run's record can reference it.
+(`preflight-<rig>-<stamp>.json`) so the run's record can reference it.
 
 A go is a statement about the simulated plants the config admits, not about
 the hardware: the device-side command timeout and the watchdog stay the
@@ -46,6 +46,9 @@ def run_preflight(cfg: Config, plants: int | None = None, progress: Progress | N
         "design": None, "sweep": None, "worst_cases": [], "record": None,
         "created_wall": time.time(),
     }
+    from runtime.runinfo import iso_time
+
+    out["created_iso"] = iso_time(out["created_wall"])
     reasons: list[str] = out["reasons"]
     try:
         design = design_from_config(cfg)
@@ -119,10 +122,12 @@ def _finish(cfg: Config, out: dict[str, Any], write: bool) -> dict[str, Any]:
                               f"preflight record ({why}).",
                               "set log.dir to a folder you can write to.") from None
         stamp = time.strftime("%Y%m%d-%H%M%S")
-        path = folder / f"preflight-{stamp}.json"
+        # The rig in the name too, so records of several rigs in one folder tell apart.
+        rig = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in out["rig"])
+        path = folder / f"preflight-{rig}-{stamp}.json"
         k = 1
         while path.exists():
-            path = folder / f"preflight-{stamp}-{k}.json"
+            path = folder / f"preflight-{rig}-{stamp}-{k}.json"
             k += 1
         out["record"] = str(path)
         path.write_text(json.dumps(out, indent=2))

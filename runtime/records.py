@@ -479,6 +479,8 @@ class Trip:
     post: list[Any] | None = None
     events: list[dict[str, Any]] = field(default_factory=list)
     log_torn: bool = False
+    ended: dict[str, Any] = field(default_factory=dict)
+    """The run's end record (`runtime.runinfo.how_ended`; how "cut_short" when missing)."""
     _capture: Capture | None = field(default=None, repr=False)
 
     # -- identity and first-out ------------------------------------------
@@ -644,12 +646,20 @@ class Trip:
 
     def summary(self) -> dict[str, Any]:
         """The one-line facts of a trip as plain JSON values."""
+        from runtime.runinfo import iso_time, say_value
+
         fo = self.first_out
+        raw_link = self.header.get("link")
+        link: dict[str, Any] = raw_link if isinstance(raw_link, dict) else {}
         return {
             "id": self.id, "key": self.key, "file": str(self.source), "rig": self.rig,
-            "time": self.t_wall,
-            "time_iso": time.strftime("%Y-%m-%dT%H:%M:%S", time.localtime(self.t_wall))
-            + f".{int((self.t_wall % 1) * 1000):03d}",
+            "link_kind": link.get("kind", "sim" if self.header.get("simulated") else None),
+            "simulated": link.get("simulated", self.header.get("simulated")),
+            "ended": self.ended.get("how"), "time": self.t_wall,
+            "time_iso": iso_time(self.t_wall),
+            "value_text": say_value(self.rule, self.value, self.threshold,
+                                    fo.get("on_delay_s")),
+            "on_delay_s": fo.get("on_delay_s"),
             "tick": self.tick, "rule": self.rule, "signal": fo.get("signal"),
             "value": self.value, "threshold": self.threshold, "action": self.action,
             "detect_to_action_us": self.detect_to_action_us,
@@ -692,9 +702,13 @@ def read_trip_log(path: str | Path) -> tuple[dict[str, Any], list[Trip], list[di
         elif kind == "event":
             events.append(rec)
     torn = torn or odd > 0
+    from runtime.runinfo import how_ended
+
+    ended = how_ended(records, header)
     for trip in trips:
         trip.events = events
         trip.log_torn = torn
+        trip.ended = ended
     return header, trips, events, torn
 
 

@@ -583,6 +583,8 @@ class ReplayResult:
                          "not_evaluated": UNRECORDED_RULES},
             "fit": self.fit.to_json() if self.fit is not None else None,
             "notes": self.notes,
+            "marks": [{k: v for k, v in m.items() if k not in ("colour", "style")}
+                      for m in replay_marks(self)["marks"]],
         }
 
 
@@ -781,9 +783,52 @@ def _logged_trip(rec: Recording) -> dict[str, Any] | None:
 # Plot
 # ---------------------------------------------------------------------------
 
-def _trip_label(check: WatchdogCheck) -> str:
-    tr = check.trip
-    return "no trip" if tr is None else f"trips: {tr['rule']} at {tr['t']:.3f} s"
+def replay_marks(result: ReplayResult) -> dict[str, Any]:
+    """What the replay plot and text mark: the recorded trip (the trip log's when the run
+    wrote one, else the watchdog re-evaluated on the recorded ticks), the recorded ticks
+    re-checked at the new levels, the replayed trip; each with the levels in force.
+
+    The recorded run's label never says "no trip" when its trip log holds one.
+    """
+    lv0 = result.original_levels
+    lv = result.replayed.check.levels
+    logged = result.logged_trip
+    rec_trip = result.recorded.check.trip
+    marks: list[dict[str, Any]] = []
+
+    def lv_text(levels: dict[str, float]) -> str:
+        return f"trip level {levels['trip']:g}, warning {levels['warning']:g}"
+
+    if logged is not None:
+        rec_label = (f"tripped: {logged['rule']} at {logged['t']:.3f} s, from its trip log; "
+                     f"{lv_text(lv0)}")
+        marks.append({"kind": "recorded", "t": float(logged["t"]), "rule": logged["rule"],
+                      "levels": lv0, "source": "trip log", "colour": "0.25", "style": "-",
+                      "text": f"recorded trip: {logged['rule']}"})
+    elif rec_trip is not None:
+        rec_label = f"trips: {rec_trip['rule']} at {rec_trip['t']:.3f} s; {lv_text(lv0)}"
+        marks.append({"kind": "recorded", "t": float(rec_trip["t"]), "rule": rec_trip["rule"],
+                      "levels": lv0, "source": "watchdog on the recorded ticks",
+                      "colour": "0.25", "style": "-",
+                      "text": f"recorded trip: {rec_trip['rule']}"})
+    else:
+        rec_label = f"no trip; {lv_text(lv0)}"
+    chk = result.rechecked.check.trip
+    if chk is not None and lv != lv0:
+        marks.append({"kind": "recorded_new_levels", "t": float(chk["t"]), "rule": chk["rule"],
+                      "levels": lv, "source": "watchdog on the recorded ticks, new levels",
+                      "colour": "0.55", "style": ":",
+                      "text": f"recorded ticks at new levels: {chk['rule']}"})
+    rep_trip = result.replayed.check.trip
+    if rep_trip is not None:
+        marks.append({"kind": "replayed", "t": float(rep_trip["t"]), "rule": rep_trip["rule"],
+                      "levels": lv, "source": "watchdog on the replayed ticks",
+                      "colour": "tab:purple", "style": "--",
+                      "text": f"replayed trip: {rep_trip['rule']}"})
+        rep_label = f"trips: {rep_trip['rule']} at {rep_trip['t']:.3f} s; {lv_text(lv)}"
+    else:
+        rep_label = f"no trip; {lv_text(lv)}"
+    return {"recorded_label": rec_label, "replayed_label": rep_label, "marks": marks}
 
 
 def plot_replay(result: ReplayResult, path: Path) -> Path:
@@ -804,21 +849,28 @@ def plot_replay(result: ReplayResult, path: Path) -> Path:
     ax = axes[0]
     eng = rec.engaged[start:stop]
     ratio_rec = np.where(eng, rec.ratio[start:stop], np.nan)
-    ax.plot(tr, ratio_rec, color="0.35", lw=1,
-            label=f"recorded ({_trip_label(result.recorded.check)})")
+    marks = replay_marks(result)
+    ax.plot(tr, ratio_rec, color="0.35", lw=1, label=f"recorded ({marks['recorded_label']})")
     ax.plot(result.t, result.columns["ratio"], color="tab:purple", lw=1,
-            label=f"replayed ({_trip_label(result.replayed.check)})")
+            label=f"replayed ({marks['replayed_label']})")
     ax.axhline(1.0, color="tab:red", lw=1.5, label="bound")
     lv, lv0 = result.replayed.check.levels, result.original_levels
-    ax.axhline(lv["trip"], color="tab:red", lw=0.9, ls=":", label=f"trip level {lv['trip']:g}")
+    same = lv0 == lv
+    ax.axhline(lv["trip"], color="tab:red", lw=0.9, ls=":",
+               label=f"trip level {lv['trip']:g} ("
+               + ("recorded run and replay)" if same else "replay)"))
     ax.axhline(lv["warning"], color="tab:olive", lw=0.9, ls=":",
-               label=f"warning {lv['warning']:g}")
-    if lv0 != lv:
+               label=f"warning {lv['warning']:g} ("
+               + ("recorded run and replay)" if same else "replay)"))
+    if not same:
         ax.axhline(lv0["trip"], color="0.5", lw=0.8, ls="--",
-                   label=f"recorded trip level {lv0['trip']:g}")
-    for check, colour in ((result.recorded.check, "0.35"), (result.replayed.check, "tab:purple")):
-        if check.trip is not None:
-            ax.axvline(check.trip["t"], color=colour, lw=1, ls="--")
+                   label=f"trip level {lv0['trip']:g} (recorded run)")
+        ax.axhline(lv0["warning"], color="0.6", lw=0.8, ls="-.",
+                   label=f"warning {lv0['warning']:g} (recorded run)")
+    for m in marks["marks"]:
+        ax.axvline(m["t"], color=m["colour"], lw=1.2, ls=m["style"])
+        ax.annotate(m["text"], xy=(m["t"], 1.0), xycoords=("data", "axes fraction"),
+                    rotation=90, fontsize=7, color=m["colour"], ha="right", va="top")
     top = np.nanmax(np.concatenate([ratio_rec[np.isfinite(ratio_rec)], [1.0],
                                     result.columns["ratio"][np.isfinite(result.columns["ratio"])]]))
     ax.set_ylim(0, min(max(1.1, 1.05 * top), 3.0))

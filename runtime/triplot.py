@@ -13,13 +13,13 @@ What does not live here: reading logs (`runtime.records`), exports
 
 from __future__ import annotations
 
-import time
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from runtime.records import Trip
+from runtime.runinfo import RULE_SIGNALS, iso_time, say_value
 
 _MODE_COLOURS = {"settling": "#e8e8e8", "fallback": "#fde3c8", "stopped": "#f6c9c9"}
 _MODE_NAMES = {"settling": "grey", "fallback": "orange", "stopped": "red"}
@@ -27,6 +27,34 @@ _MODE_NAMES = {"settling": "grey", "fallback": "orange", "stopped": "red"}
 
 def _fmt(v: Any) -> str:
     return f"{v:.4g}" if isinstance(v, (int, float)) else str(v)
+
+
+def rule_series(trip: Trip, rule: str) -> tuple[np.ndarray, float | None, str, str] | None:
+    """What `rule` judged over the capture, in display units: (values, threshold, what it
+    is, unit), or None when the capture does not hold it.
+
+    Logs since the per-rule capture have a ``sig_<rule>`` field. Older logs: the margin
+    rules read the ``ratio`` field and the stale rule the ``sample_age_ms`` field.
+    """
+    cap = trip.capture()
+    word, unit, scale = RULE_SIGNALS.get(rule, (rule, "", 1.0))
+    entry = trip.first_out if rule == trip.rule else next(
+        (r for r in trip.later if r.get("rule") == rule), {})
+    thr = entry.get("threshold")
+    if not isinstance(thr, (int, float)):
+        thr = next((r.get("threshold") for r in trip.header.get("watchdog") or []
+                    if isinstance(r, dict) and r.get("rule") == rule), None)
+    thr_d = float(thr) * scale if isinstance(thr, (int, float)) else None
+    col = cap.numeric(f"sig_{rule}")
+    if col is not None and col.ndim == 1:
+        return col * scale, thr_d, word, unit
+    ratio = cap.numeric("ratio")
+    if rule in ("margin", "margin_warning", "clamp") and ratio is not None:
+        return ratio, thr_d, word, unit
+    age = cap.numeric("sample_age_ms")
+    if rule == "stale" and age is not None:
+        return age * (scale / 1e3), thr_d, word, unit
+    return None
 
 
 def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
@@ -61,6 +89,18 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
             axes_idx.append(states.index(name) if name in states else j)
 
     panels: list[str] = []
+    # The first-out rule's own signal first, its threshold drawn; later rules' signals as
+    # fractions of their thresholds (so one axis holds them all, the limit at 1).
+    first = rule_series(trip, trip.rule)
+    panels.append("first")
+    later = []
+    for entry in trip.later:
+        r = str(entry.get("rule"))
+        ser = rule_series(trip, r)
+        if ser is not None and ser[1]:
+            later.append((r, ser))
+    if later:
+        panels.append("later")
     if ratio is not None:
         panels.append("ratio")
     panels += [f"track{j}" for j in range(len(axes_idx))]
@@ -79,7 +119,31 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
     axes = axes[:, 0]
     levels = trip.levels()
     for ax, panel in zip(axes, panels, strict=True):
-        if panel == "ratio":
+        if panel == "first":
+            word, unit, scale = RULE_SIGNALS.get(trip.rule, (trip.rule, "", 1.0))
+            delay = trip.first_out.get("on_delay_s")
+            if first is not None:
+                vals, thr, word, unit = first
+                ax.plot(t_ms, vals, color="tab:red", lw=1.3, label=f"{trip.rule}: {word}")
+            else:
+                thr = (float(trip.threshold) * scale
+                       if isinstance(trip.threshold, (int, float)) else None)
+                if isinstance(trip.value, (int, float)):
+                    ax.plot([0.0], [float(trip.value) * scale], "o", color="tab:red",
+                            label=f"{trip.rule}: {word} at the trip (not captured per tick "
+                                  "in this log)")
+            if thr is not None:
+                ax.axhline(thr, color="k", ls="--", lw=1,
+                           label=f"threshold {thr:.4g} {unit}".rstrip()
+                           + (f", on-delay {delay:g} s" if isinstance(delay, (int, float))
+                              and delay > 0 else ""))
+            ax.set_ylabel(f"first out\n[{unit}]" if unit else "first out")
+        elif panel == "later":
+            for r, (vals, thr, word, _unit) in later:
+                ax.plot(t_ms, vals / thr, lw=1, label=f"{r}: {word} / limit")
+            ax.axhline(1.0, color="k", ls="--", lw=1, label="limit")
+            ax.set_ylabel("later rules\n[x limit]")
+        elif panel == "ratio":
             ax.plot(t_ms, ratio, color="tab:purple", lw=1.2, label="||e||_P / eps")
             ax.axhline(levels["warning"], color="tab:orange", ls="--", lw=1,
                        label=f"warning {levels['warning']:g}")
@@ -145,9 +209,9 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
     axes[0].annotate("trip", xy=(0.0, 1.0), xycoords=("data", "axes fraction"),
                      color="tab:red", fontsize=8, ha="left", va="bottom")
     fo = trip.first_out
-    when = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(trip.t_wall))
+    when = iso_time(trip.t_wall)
     title = (f"{trip.rig} trip {trip.id}: first out {trip.rule} "
-             f"({fo.get('signal', '?')} = {_fmt(trip.value)} vs {_fmt(trip.threshold)})"
+             f"({say_value(trip.rule, trip.value, trip.threshold, fo.get('on_delay_s'))})"
              f" -> {trip.action}")
     sub = f"{when}, tick {trip.tick}, config {trip.config_hash}"
     if trip.later:

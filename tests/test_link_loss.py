@@ -227,7 +227,7 @@ def test_run_ends_on_sigterm_while_the_broker_is_gone(mosquitto, tmp_path):  # n
          *[a for kv in TOLERANT for a in ("--set", kv)]],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
     try:
-        sock = tmp_path / "pedestal-sim.sock"
+        sock = tmp_path / "pedestal-sim-mqtt.sock"  # runtime.runinfo.run_name
         wait_for("the operator socket", lambda: sock.exists() or run.poll() is not None)
         time.sleep(0.5)
         mosquitto.stop()

@@ -310,3 +310,29 @@ def test_a_logged_trip_is_the_recorded_first_out(corral, tmp_path):
     assert out["recorded"]["trip_source"] == "the run's trip log"
     assert out["recorded"]["trip"]["rule"] == first["rule"]
     assert out["recorded"]["trip"]["t"] == pytest.approx(first["t"])
+
+
+def test_the_plot_and_text_mark_the_recorded_trip_the_replayed_one_and_their_levels(tmp_path):
+    """The reported case: a run that tripped (here on a sensor spike, a rule the replay
+    cannot re-check from the record) must never be labelled "recorded (no trip)"."""
+    from runtime_helpers import run_unpaced
+
+    from runtime.replay import plot_replay, replay_marks
+
+    _, summary = run_unpaced(tmp_path, 2.5, faults=["spike@1.6"])  # engaged at ~0.93 s
+    first = summary["trips"][0]
+    assert first["rule"] == "jump"
+    res = replay(read_recording(summary["run_log"]),
+                 ["watchdog.margin_trip=0.05", "watchdog.margin_warning=0.03"])
+    marks = replay_marks(res)
+    assert "no trip" not in marks["recorded_label"]
+    assert "jump" in marks["recorded_label"] and "trip log" in marks["recorded_label"]
+    rec = next(m for m in marks["marks"] if m["kind"] == "recorded")
+    assert rec["t"] == pytest.approx(first["t"]) and rec["levels"]["trip"] == 0.9
+    # The replay at a margin trip level of 0.05 trips, and is marked with its own levels.
+    replayed = next(m for m in marks["marks"] if m["kind"] == "replayed")
+    assert replayed["levels"]["trip"] == 0.05 and replayed["levels"]["warning"] == 0.03
+    assert "0.05" in marks["replayed_label"]
+    assert res.to_json()["marks"][0]["rule"] == "jump"
+    png = plot_replay(res, tmp_path / "replay.png")
+    assert png.stat().st_size > 0

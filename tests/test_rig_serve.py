@@ -89,7 +89,7 @@ def test_serve_serial_first_line_samples_commands_and_timeout():
 
         async def main():
             async with SerialLink(path) as link:
-                assert link.hello.rig_id == "pedestal-sim"
+                assert link.hello.rig_id == "pedestal-sim-served"
                 assert link.hello.channels == ("az", "el", "az_rate", "el_rate")
                 statuses, after = await drive_then_stop(link)
                 # While commanded the outputs are on (no timeout, not off) ...
@@ -257,7 +257,9 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
              "--json", "--set", f"log.dir={tmp_path}", *extra],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
         try:
-            sock_path = tmp_path / "pedestal-sim.sock"
+            # The run names itself after its link kind (runtime.runinfo.run_name).
+            sock_path = tmp_path / ("pedestal-sim-served.sock" if transport == "serial"
+                                    else "pedestal-sim-mqtt.sock")
             deadline = time.monotonic() + 300  # the preflight first: minutes under load
             while not sock_path.exists() and time.monotonic() < deadline:
                 assert run.poll() is None, run.communicate()[1]

@@ -56,7 +56,7 @@ def test_list_spans_runs_and_marks_the_log_cut_short(logs, capsys):
     assert corral(["trips", str(logs["folder"]), str(logs["other"])]) == 0
     out = capsys.readouterr().out
     lines = out.splitlines()
-    assert lines[0].split()[:4] == ["TIME", "RIG", "ID", "FIRST-OUT"]
+    assert lines[0].split()[:5] == ["TIME", "RIG", "LINK", "ID", "FIRST-OUT"]
     trip_lines = [ln for ln in lines if ".trips:" in ln and not ln.startswith("more")]
     assert len(trip_lines) == 6
     # sorted by wall time: run a (2), run b (3) share the builder's clock; bench is a day later
@@ -67,7 +67,8 @@ def test_list_spans_runs_and_marks_the_log_cut_short(logs, capsys):
     a_lines = [ln for ln in trip_lines if "100000.trips" in ln]
     assert not any(ln.rstrip().endswith("*") for ln in a_lines)
     rec = logs["a"][0][0]
-    assert f"{rec['first_out']['value']:.4g} vs 0.9" in a_lines[0]
+    # the value in words and units (runtime.runinfo.say_value)
+    assert f"{rec['first_out']['value']:.4g} of eps (limit 0.9 of eps)" in a_lines[0]
     assert f"{rec['detect_to_action_us']:.3g}" in a_lines[0]
     assert "cut short" in out and "110000.trips" in out.split("cut short")[1]
     assert "6 trips in 3 logs" in out
