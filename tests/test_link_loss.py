@@ -39,7 +39,7 @@ SERVED = ROOT / "configs" / "pedestal-served.toml"
 TOLERANT = ["watchdog.stale_periods=50", "watchdog.rules.overrun.enabled=false"]
 
 
-def wait_for(what: str, cond: Callable[[], bool], timeout: float = 60.0) -> None:
+def wait_for(what: str, cond: Callable[[], bool], timeout: float = 180.0) -> None:
     """Wait for an event, with a generous bound (not a timing assertion)."""
     deadline = time.monotonic() + timeout
     while not cond():

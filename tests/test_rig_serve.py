@@ -211,6 +211,10 @@ E2E_SLOW = ["--set", "loop.period=0.004", "--set", "adaptation.gamma=0.5"]  # 25
 
 # The preflight sweep runs before the run's socket appears; on a loaded 2-core machine it
 # took well past 15 s, so the waits below are bounds on events, not deadlines.
+LOAD_TOLERANT = ["--set", "watchdog.stale_periods=50", "--set", "watchdog.link_timeout_s=1.0",
+                 "--set", "watchdog.rules.overrun.enabled=false"]
+
+
 @pytest.mark.timeout(600)
 @pytest.mark.parametrize("transport", ["serial", "mqtt"])
 def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path):  # noqa: F811
@@ -234,16 +238,19 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
 
     import msgpack
 
+    # This test is about the link closing the loop, not about this host's timing: on a loaded
+    # 2-core machine the pty can stall for hundreds of milliseconds, so the timing rules are
+    # widened (the timing rules have their own tests and bench/fault_matrix.py).
     if transport == "serial":
         # A short host check before arming (it runs with the preflight on a real link).
-        config, serve_args, extra = SERVED, ["--serial"], ["--set", "watchdog.stale_periods=20",
+        config, serve_args, extra = SERVED, ["--serial"], [*LOAD_TOLERANT,
                                                            "--set", "loop.hostcheck_s=0.5"]
     else:
         # The preflight (run before the first arm on a real link) judges the design
         # slowed to 250 Hz NO-GO (most sampled plants trip); this test is about the
         # link closing the loop, so it arms without it, as an operator may on a sim.
         config, serve_args = CONFIG, ["--mqtt", mosquitto.url, *E2E_SLOW]
-        extra = [*E2E_SLOW, "--no-preflight", "--set", "watchdog.stale_periods=20"]
+        extra = [*E2E_SLOW, "--no-preflight", *LOAD_TOLERANT]
     # The served rig runs until this test ends it (Serve.__exit__), however long the
     # preflight takes; the duration is only a guard against a leaked process.
     with Serve(*serve_args, "--duration", "900", config=config) as serve:
