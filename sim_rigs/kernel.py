@@ -1,7 +1,7 @@
 """The compiled plant: ONE numba kernel that interprets a rig's term table.
 
 `pack_rig(spec)` codes a rig (`sim_rigs.rigfile.RigSpec`) into two flat arrays,
-the way `runtime.fast` codes a basis:
+the way `runtime.kernels.fast` codes a basis:
 
 - ``code`` (int64): header [n, m, T, F, nA, nB, o_terms, o_lam, o_A, o_B, NU, o_fac]
   (states, inputs, terms, factors per term at most, non-zeros of A and B, distinct

@@ -21,8 +21,8 @@ import pytest
 from matplotlib import image as mpimg
 from runtime_helpers import run_unpaced
 
-from runtime.cli import main as corral
-from runtime.report import SECTIONS
+from runtime.cli.main import main as corral
+from runtime.review.report import SECTIONS
 
 
 @pytest.fixture(scope="module")
@@ -88,7 +88,7 @@ def test_the_report_opens_in_a_headless_browser(report, tmp_path):
 def test_report_errors_are_one_line(tmp_path):
     import sys
 
-    entry = "import sys; from runtime.cli import main; sys.exit(main())"
+    entry = "import sys; from runtime.cli.main import main; sys.exit(main())"
     res = subprocess.run([sys.executable, "-c", entry, "report", str(tmp_path / "nope.run")],
                          capture_output=True, text=True)
     assert res.returncode == 2 and "no run log" in res.stderr and "Traceback" not in res.stderr

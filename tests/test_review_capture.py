@@ -18,9 +18,9 @@ from matplotlib import image as mpimg
 from runtime_helpers import run_unpaced
 from test_records import write_trip_log
 
-from runtime.comtrade_export import export_comtrade, export_csv
-from runtime.records import RULES, load_trips
-from runtime.triplot import plot_trip, rule_series
+from runtime.records.logs import RULES, load_trips
+from runtime.review.comtrade_export import export_comtrade, export_csv
+from runtime.review.triplot import plot_trip, rule_series
 
 
 @pytest.fixture(scope="module")

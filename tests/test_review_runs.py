@@ -27,9 +27,16 @@ import pytest
 from runtime_helpers import run_unpaced
 from test_records import make_header, make_trip
 
-from runtime.cli import main as corral
-from runtime.records import TripLog, load_trips, read_stream
-from runtime.runinfo import how_ended, iso_time, link_identity, parse_when, run_name, say_value
+from runtime.cli.main import main as corral
+from runtime.records.logs import TripLog, load_trips, read_stream
+from runtime.records.runinfo import (
+    how_ended,
+    iso_time,
+    link_identity,
+    parse_when,
+    run_name,
+    say_value,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "configs" / "pedestal-sim.toml"
@@ -96,7 +103,7 @@ def test_unpaced_runs_end_completed_or_tripped(tmp_path):
 
 def _start_run(tmp_path: Path, *extra: str) -> subprocess.Popen:
     return subprocess.Popen(
-        [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())",
+        [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())",
          "run", str(DEMO), "--headless", "--arm", "--fault", "spike@0.8", "--set",
          f"log.dir={tmp_path}", *[a for o in CALM for a in ("--set", o)], *extra],
         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
@@ -191,12 +198,12 @@ def test_filters_by_time_rule_rig_and_link(many, capsys):
 
 def test_filter_errors_are_one_line(many):
     res = subprocess.run([sys.executable, "-c",
-                          "import sys; from runtime.cli import main; sys.exit(main())",
+                          "import sys; from runtime.cli.main import main; sys.exit(main())",
                           "trips", str(many), "--since", "lately"], capture_output=True,
                          text=True, cwd=ROOT)
     assert res.returncode == 2 and "--since" in res.stderr and "Traceback" not in res.stderr
     res = subprocess.run([sys.executable, "-c",
-                          "import sys; from runtime.cli import main; sys.exit(main())",
+                          "import sys; from runtime.cli.main import main; sys.exit(main())",
                           "trips", str(many), "--rule", "margn"], capture_output=True,
                          text=True, cwd=ROOT)
     assert res.returncode == 2 and "margin" in res.stderr and "Traceback" not in res.stderr
@@ -233,7 +240,7 @@ def test_dry_run_reports_the_step_gain_before_and_after_the_cap(tmp_path):
     """The law applies min(g_k, cap) (the method's per-step gain cap, design brief): the
     peak before the cap and the applied one are both reported and labelled."""
     from runtime.config import load_config
-    from runtime.dryrun import dry_run
+    from runtime.offline.dryrun import dry_run
 
     cfg = load_config(DEMO, ["commands.duration=4", "adaptation.step_gain_cap=0.5"])
     s = dry_run(cfg).summary
@@ -241,7 +248,7 @@ def test_dry_run_reports_the_step_gain_before_and_after_the_cap(tmp_path):
     assert s["max_step_gain_applied"] == min(s["max_step_gain"], 0.5)
     assert s["max_step_gain"] > 0.5  # the demo's peak exceeds this cap, so the two differ
     res = subprocess.run([sys.executable, "-c",
-                          "import sys; from runtime.cli import main; sys.exit(main())",
+                          "import sys; from runtime.cli.main import main; sys.exit(main())",
                           "dry-run", str(DEMO), "--no-plot", "--out", str(tmp_path), "--set",
                           "commands.duration=4"], capture_output=True, text=True, cwd=ROOT)
     assert "peak step gain before the cap" in res.stdout and "applied" in res.stdout

@@ -18,8 +18,8 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from runtime.config import Config, ConfigError, load_config
-from runtime.design import design_from_config
-from runtime.dryrun import dry_run, plant_from_config
+from runtime.method.design import design_from_config
+from runtime.offline.dryrun import dry_run, plant_from_config
 from sim_rigs import RIGS
 from sim_rigs import kernel as K
 from sim_rigs.plant import RigPlant, SensorModel
@@ -171,7 +171,7 @@ def test_sim_link_and_dry_run_simulate_the_same_plant_tick_by_tick():
     cfg = load_config(ROOT / "configs" / "pedestal-rbf.toml",
                       ["commands.duration=3.0"])
     res = dry_run(cfg)
-    from runtime.loop import make_link
+    from runtime.realtime.loop import make_link
 
     link = make_link(cfg, None, design=res.design)
     u = res.columns["u"]
@@ -263,7 +263,7 @@ dir = "runs"
 
 
 def _corral(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=cwd,
+    return subprocess.run([sys.executable, "-m", "runtime.cli.main", *args], cwd=cwd,
                           capture_output=True, text=True, timeout=600,
                           env={**__import__("os").environ, "PYTHONPATH": str(ROOT)})
 
@@ -326,7 +326,7 @@ def test_plant_truth_and_sensor_keys_of_the_configs_still_override_the_rig_file(
 
 def test_inline_nominal_model_with_plant_terms_dry_runs_and_sweeps(tmp_path):
     # No rig file: rig.A / rig.B / rig.C inline, [plant.params] and [[plant.terms]].
-    from runtime.sweep import run_sweep
+    from runtime.offline.sweep import run_sweep
 
     text = INLINE.replace("LOGDIR", str(tmp_path))
     (tmp_path / "inline.toml").write_text(text)
@@ -393,7 +393,7 @@ dir = "LOGDIR"
 def test_dry_run_and_sweep_flag_weights_past_the_limit():
     # The demo's weights grow to a norm of about 3; a limit of 0.5 must be flagged by both,
     # counted as diverged by the sweep, while the states stay well inside their range.
-    from runtime.sweep import run_sweep
+    from runtime.offline.sweep import run_sweep
 
     cfg = load_config(ROOT / "configs" / "pedestal-sim.toml",
                       ["commands.duration=3.0", "sweep.weight_norm_limit=0.5"])

@@ -35,7 +35,7 @@ pytestmark = pytest.mark.timeout(60)
 
 ROOT = Path(__file__).resolve().parents[1]
 # The `corral` console script, run by this interpreter.
-CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
 CONFIG = ROOT / "configs" / "pedestal-sim.toml"
 SERVED = ROOT / "configs" / "pedestal-served.toml"
 
@@ -264,7 +264,7 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
              "--json", "--set", f"log.dir={tmp_path}", *extra],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
         try:
-            # The run names itself after its link kind (runtime.runinfo.run_name).
+            # The run names itself after its link kind (runtime.records.runinfo.run_name).
             sock_path = tmp_path / ("pedestal-sim-served.sock" if transport == "serial"
                                     else "pedestal-sim-mqtt.sock")
             deadline = time.monotonic() + 300  # the preflight first: minutes under load
@@ -316,11 +316,11 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
 def test_rig_clocked_overrun_counts_late_samples(tmp_path):
     """A served rig whose samples arrive 3 periods late (a `link_delay` fault) makes every
     rig-clocked tick a deadline miss (handled over one period after its expected
-    arrival, runtime.clock.ArrivalTracker), so the overrun rule (25 misses in 1000
+    arrival, runtime.realtime.clock.ArrivalTracker), so the overrun rule (25 misses in 1000
     ticks, the default) trips with its reaction. The stale rule is turned off here:
     it would trip on the same delay and take the first-out place."""
     from runtime.config import load_config
-    from runtime.loop import Runner, RunSettings
+    from runtime.realtime.loop import Runner, RunSettings
 
     with InProcess(tmp_path, ["link_delay@1.2:seconds=0.006"]) as rig:
         assert rig.device.period == 0.002  # the served config's period
