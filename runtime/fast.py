@@ -45,7 +45,7 @@ from numpy.typing import ArrayLike, NDArray
 from runtime.design import Design
 from runtime.law import LawState
 from runtime.watchdog import over
-from sim_rigs.kernel import plant_measure, plant_step, work_width
+from sim_rigs.kernel import plant_measure, work_width  # noqa: F401 - used by the templates
 
 _over = numba.njit(cache=True, inline="always")(over)
 """The watchdog's one rule comparison, compiled for the sweep kernel."""
@@ -299,8 +299,18 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     out[O_CAPPED] = 1.0 if capped else 0.0
 
 
-# ------------------------------------------------------------------ the dry-run loop
-@numba.njit(cache=True)
+# ------------------------------------------------------------------ the loop templates
+# `dry_run_loop` and `sweep_kernel` below are templates, not compiled here: each rig gets
+# its own straight-line `plant_step` generated from its term table, and these two are
+# compiled against it in the rig's generated module (`sim_rigs.kernel.compiled(spec)`,
+# which adds the numba decorators). Call them from there.
+def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Array,
+               dt: float, substeps: int, lsc: Array, dist: Array,
+               work: Array) -> None:  # pragma: no cover - placeholder
+    """Placeholder for the rig's generated step (see `sim_rigs.kernel.step_source`)."""
+    raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_step")
+
+
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,
                  xp: Array, pcode: Any, pmat: Array, prm: Array, limits: Array, substeps: int,
                  noise: Array, resolution: Array, delay: int, meas: Array, ic: Any, fc: Array,
@@ -794,7 +804,6 @@ def stream_normals(state: Array, out: Array) -> None:  # pragma: no cover - jit
     state[0] = s
 
 
-@numba.njit(parallel=True, cache=True)
 def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, prm: Array,
                  plant_ids: Any, seed: int, substeps: int, limits: Array, resolution: Array,
                  noise_sd: Array, delay: int, latency: int, noise_mode: int, given: Array,

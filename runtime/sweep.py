@@ -425,7 +425,7 @@ def _run_compiled(setup: _Setup, prm: dict[str, Array], plant_ids: NDArray[np.in
     levels = np.array([lv["margin"], lv["clamp"], lv["breach"]])
     first = np.empty((B, len(fast.SWEEP_RULES)), dtype=np.int64)
     max_ratio = np.empty(B)
-    fast.sweep_kernel(
+    kernel.compiled(spec).sweep_kernel(
         setup.cmd, setup.eps_t, np.ascontiguousarray(setup.x0, dtype=float), pcode, pmat, P,
         np.ascontiguousarray(plant_ids, dtype=np.int64), int(st.seed), int(st.substeps),
         np.asarray(d.rig.input_limits, dtype=float),

@@ -29,7 +29,11 @@ served device all step plants through these functions.
 
 from __future__ import annotations
 
-import math
+import hashlib
+import importlib.util
+import os
+import sys
+from pathlib import Path
 from typing import Any
 
 import numba
@@ -105,142 +109,6 @@ def pack_params(spec: RigSpec, params: dict[str, Any]) -> Array:
 
 
 @numba.njit(cache=True)
-def plant_prepare(code: Any, mat: Array, prm: Array, lsc: Array,
-                  tc: Array) -> None:  # pragma: no cover - jit
-    """The per-plant constants `plant_deriv` reads, into tc: per input Lambda_j lsc_j, per
-    term coef * param, per distinct factor k (sin, cos) or 1 / width (tanh, gauss) and
-    whether any term with a non-zero coefficient needs it."""
-    m = code[1]
-    T = code[2]
-    F = code[3]
-    o_terms = code[6]
-    o_lam = code[7]
-    NU = code[10]
-    o_fac = code[11]
-    oT = code[4] + code[5]
-    for j in range(m):
-        li = code[o_lam + j]
-        tc[j] = (prm[li] if li >= 0 else 1.0) * lsc[j]
-    for u in range(NU):
-        kind = code[o_fac + 3 * u]
-        if kind == K_TANH or kind == K_GAUSS:
-            wi = code[o_fac + 3 * u + 2]
-            tc[m + T + u] = 1.0 / (prm[wi] if wi >= 0 else mat[oT + T + 2 * u + 1])
-        else:
-            tc[m + T + u] = mat[oT + T + 2 * u]
-        tc[m + T + NU + u] = 0.0
-    for t in range(T):
-        c = o_terms + t * (3 + F)
-        pi = code[c + 1]
-        val = mat[oT + t] * (prm[pi] if pi >= 0 else 1.0)
-        tc[m + t] = val
-        if val != 0.0:
-            for q in range(code[c + 2]):
-                tc[m + T + NU + code[c + 3 + q]] = 1.0
-
-
-@numba.njit(cache=True, inline="always")
-def plant_deriv(x: Array, v: Array, code: Any, mat: Array, tc: Array, dist: Array,
-                dx: Array) -> None:  # pragma: no cover - jit
-    """dx = f(x, v) for one plant: A x + B (Lambda lsc v) + terms + disturbance, with the
-    constants of `plant_prepare` in tc: each distinct factor evaluated once (and only when
-    a term with a non-zero coefficient needs it), then each term a product."""
-    n = code[0]
-    m = code[1]
-    T = code[2]
-    F = code[3]
-    nA = code[4]
-    nB = code[5]
-    o_terms = code[6]
-    o_lam = code[7]
-    o_a = code[8]
-    o_b = code[9]
-    NU = code[10]
-    o_fac = code[11]
-    o_k = m + T
-    o_need = o_k + NU
-    o_val = o_need + NU
-    for u in range(NU):
-        if tc[o_need + u] == 0.0:
-            continue
-        kind = code[o_fac + 3 * u]
-        xs = x[code[o_fac + 3 * u + 1]]
-        if kind == K_X:
-            f = xs
-        elif kind == K_TANH:
-            z = xs * tc[o_k + u]
-            f = 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
-        elif kind == K_COS:
-            f = math.cos(tc[o_k + u] * xs)
-        elif kind == K_SIN:
-            f = math.sin(tc[o_k + u] * xs)
-        elif kind == K_GAUSS:
-            z = xs * tc[o_k + u]
-            f = math.exp(-(z * z))
-        else:
-            f = abs(xs)
-        tc[o_val + u] = f
-    for i in range(n):
-        dx[i] = 0.0
-    for q in range(nA):
-        dx[code[o_a + 2 * q]] += mat[q] * x[code[o_a + 2 * q + 1]]
-    for q in range(nB):
-        j = code[o_b + 2 * q + 1]
-        dx[code[o_b + 2 * q]] += mat[nA + q] * (tc[j] * v[j])
-    for j in range(m):
-        dx[code[o_lam + m + j]] += dist[j]
-    for t in range(T):
-        val = tc[m + t]
-        if val == 0.0:
-            continue
-        c = o_terms + t * (3 + F)
-        for q in range(code[c + 2]):
-            val *= tc[o_val + code[c + 3 + q]]
-        dx[code[c]] += val
-
-
-@numba.njit(cache=True)
-def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Array,
-               dt: float, substeps: int, lsc: Array, dist: Array,
-               work: Array) -> None:  # pragma: no cover - jit
-    """Advance one plant by dt holding u (saturated here); RK4 with substeps.
-
-    `work` is scratch from `work_buffer`; the applied inputs end up in work[5, :m].
-    """
-    n = code[0]
-    m = code[1]
-    v = work[5]
-    tc = work[6]
-    plant_prepare(code, mat, prm, lsc, tc)
-    for j in range(m):
-        uj = u[j]
-        if uj > limits[j]:
-            uj = limits[j]
-        elif uj < -limits[j]:
-            uj = -limits[j]
-        v[j] = uj
-    h = dt / substeps
-    k1 = work[0]
-    k2 = work[1]
-    k3 = work[2]
-    k4 = work[3]
-    tmp = work[4]
-    for _ in range(substeps):
-        plant_deriv(x, v, code, mat, tc, dist, k1)
-        for i in range(n):
-            tmp[i] = x[i] + 0.5 * h * k1[i]
-        plant_deriv(tmp, v, code, mat, tc, dist, k2)
-        for i in range(n):
-            tmp[i] = x[i] + 0.5 * h * k2[i]
-        plant_deriv(tmp, v, code, mat, tc, dist, k3)
-        for i in range(n):
-            tmp[i] = x[i] + h * k3[i]
-        plant_deriv(tmp, v, code, mat, tc, dist, k4)
-        for i in range(n):
-            x[i] = x[i] + (h / 6.0) * (k1[i] + 2 * k2[i] + 2 * k3[i] + k4[i])
-
-
-@numba.njit(cache=True)
 def plant_measure(x: Array, resolution: Array, noise: Array,
                   y: Array) -> None:  # pragma: no cover - jit
     """Sensor reading: each state plus its pre-drawn, pre-scaled noise, then quantised."""
@@ -264,6 +132,181 @@ def work_buffer(spec: RigSpec) -> Array:
     return np.zeros((7, int(work_width(code))))
 
 
+# ------------------------------------------------------------------ the generated plant
+TRANSCENDENTAL = ("sin", "cos", "tanh", "gauss", "abs")
+_TEMPLATES = {"dry_run_loop": "@numba.njit(cache=True)",
+              "sweep_kernel": "@numba.njit(parallel=True, cache=True)"}
+_SOURCES = ("runtime/fast.py", "runtime/watchdog.py", "sim_rigs/kernel.py")
+_COMPILED: dict[str, Any] = {}
+
+
+def _lit(v: float) -> str:
+    return repr(float(v))
+
+
+def step_source(spec: RigSpec) -> str:
+    """Python source of ``plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist,
+    work)`` for this rig: the term table unrolled into straight-line code.
+
+    Per call: the inputs saturated (applied values into work[5, :m]), then the
+    constants of the step (Lambda_j lsc_j v_j pushed through B plus the disturbance, per
+    row; coef * param per term; 1 / width per parameter width; whether a parameterised
+    transcendental factor is needed at all), then RK4 with substeps on scalar locals:
+    each stage evaluates each distinct factor once and adds each term into its row.
+    ``code`` and ``mat`` are accepted and ignored (the rig is in the code itself).
+    """
+    n, m = spec.n, spec.m
+    names = list(spec.params)
+    L: list[str] = ["def plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist, work):"]
+    w = L.append
+    for j in range(m):
+        w(f"    v{j} = u[{j}]")
+        w(f"    if v{j} > limits[{j}]:")
+        w(f"        v{j} = limits[{j}]")
+        w(f"    elif v{j} < -limits[{j}]:")
+        w(f"        v{j} = -limits[{j}]")
+        w(f"    work[5, {j}] = v{j}")
+        e = spec.effectiveness[j]
+        lam = f"prm[{names.index(e)}] * " if e is not None else ""
+        w(f"    g{j} = {lam}lsc[{j}] * v{j}")
+    # the input part of each row (constant over the step)
+    for i in range(n):
+        parts = [f"{_lit(spec.B[i, j])} * g{j}" for j in range(m) if spec.B[i, j] != 0.0]
+        parts += [f"dist[{j}]" for j in range(m) if spec.drives[j] == i]
+        w(f"    q{i} = {' + '.join(parts) if parts else '0.0'}")
+    # distinct factors, term constants
+    fac: dict[tuple[Any, ...], int] = {}
+    users: dict[int, list[int]] = {}
+    term_fac: list[list[str]] = []
+    for t, term in enumerate(spec.terms):
+        if term.param is not None:
+            w(f"    p{t} = {_lit(term.coef)} * prm[{names.index(term.param)}]")
+        else:
+            w(f"    p{t} = {_lit(term.coef)}")
+        refs = []
+        for f in term.factors:
+            if f.kind == "x":
+                refs.append(f"S{f.state}")
+                continue
+            key = (f.kind, f.state, float(f.k), f.width)
+            if key not in fac:
+                fac[key] = len(fac)
+            u = fac[key]
+            users.setdefault(u, []).append(t)
+            refs.append(f"f{u}")
+        term_fac.append(refs)
+    for (kind, state, k, width), u in fac.items():
+        if kind in ("tanh", "gauss"):
+            if isinstance(width, str):
+                w(f"    r{u} = 1.0 / prm[{names.index(width)}]")
+            else:
+                w(f"    r{u} = {_lit(1.0 / float(width))}")
+        guarded = all(spec.terms[t].param is not None for t in users[u])
+        cond = " or ".join(f"p{t} != 0.0" for t in users[u]) if guarded else "True"
+        w(f"    need{u} = {cond}")
+
+    def deriv(src: str, dst: str) -> None:
+        # S{i} in the factor/term text stands for the stage's state
+        for (kind, state, k, width), u in fac.items():
+            s = f"{src}{state}"
+            expr = {"sin": f"math.sin({_lit(k)} * {s})", "cos": f"math.cos({_lit(k)} * {s})",
+                    "tanh": f"math.tanh({s} * r{u})", "abs": f"abs({s})",
+                    "gauss": f"math.exp(-(({s} * r{u}) * ({s} * r{u})))"}[kind]
+            w(f"        f{u} = {expr} if need{u} else 0.0")
+        rows: list[list[str]] = [[] for _ in range(n)]
+        for i in range(n):
+            rows[i] += [f"{_lit(spec.A[i, j])} * {src}{j}" for j in range(n)
+                        if spec.A[i, j] != 0.0]
+            rows[i].append(f"q{i}")
+        for t, term in enumerate(spec.terms):
+            if term.coef == 0.0:
+                continue
+            prod = " * ".join([f"p{t}"] + [r.replace("S", src) if r.startswith("S") else r
+                                           for r in term_fac[t]])
+            rows[term.row].append(prod)
+        for i in range(n):
+            w(f"        {dst}{i} = {' + '.join(rows[i])}")
+
+    w("    h = dt / substeps")
+    w("    hh = 0.5 * h")
+    w("    h6 = h / 6.0")
+    for i in range(n):
+        w(f"    x{i} = x[{i}]")
+    w("    for _ in range(substeps):")
+    deriv("x", "ka")
+    for i in range(n):
+        w(f"        y{i} = x{i} + hh * ka{i}")
+    deriv("y", "kb")
+    for i in range(n):
+        w(f"        y{i} = x{i} + hh * kb{i}")
+    deriv("y", "kc")
+    for i in range(n):
+        w(f"        y{i} = x{i} + h * kc{i}")
+    deriv("y", "kd")
+    for i in range(n):
+        w(f"        x{i} = x{i} + h6 * (ka{i} + 2 * kb{i} + 2 * kc{i} + kd{i})")
+    for i in range(n):
+        w(f"    x[{i}] = x{i}")
+    return "\n".join(L) + "\n"
+
+
+def _cache_dir() -> Path:
+    base = os.environ.get("CORRAL_RIG_CACHE") or os.path.join(
+        os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache"),
+        "corral", "rigs")
+    return Path(base)
+
+
+def module_source(spec: RigSpec) -> str:
+    """The generated module of a rig: its `plant_step` and the loops that call it (the
+    text of `runtime.fast`'s templates, compiled here against this rig's step)."""
+    import inspect
+
+    from runtime import fast
+
+    parts = ['"""Generated by sim_rigs.kernel.module_source for one rig; do not edit."""',
+             "import math  # noqa: F401", "import numba", "import numpy as np  # noqa: F401",
+             "import runtime.fast as _fast",
+             "globals().update({k: v for k, v in vars(_fast).items()"
+             " if not k.startswith('__')})", "",
+             "", "@numba.njit(cache=True)", step_source(spec)]
+    for name, deco in _TEMPLATES.items():
+        parts += ["", deco, inspect.getsource(getattr(fast, name))]
+    return "\n".join(parts)
+
+
+def compiled(spec: RigSpec) -> Any:
+    """The rig's generated module (`plant_step`, `dry_run_loop`, `sweep_kernel`), once a
+    process per rig. The module is written to a file named by a hash of its own text and
+    of the sources its compiled code depends on (`_SOURCES`), so numba's on-disk cache
+    (keyed by file) is never stale: an edit anywhere in them gives a new file."""
+    src = module_source(spec)
+    root = Path(__file__).resolve().parents[1]
+    hsh = hashlib.sha256(src.encode())
+    for rel in _SOURCES:
+        hsh.update((root / rel).read_bytes())
+    hsh.update(numba.__version__.encode())
+    key = hsh.hexdigest()[:20]
+    mod = _COMPILED.get(key)
+    if mod is not None:
+        return mod
+    d = _cache_dir()
+    d.mkdir(parents=True, exist_ok=True)
+    path = d / f"rig_{key}.py"
+    if not path.exists():
+        tmp = d / f".rig_{key}.{os.getpid()}.tmp"
+        tmp.write_text(src)
+        os.replace(tmp, path)
+    name = f"corral_rig_{key}"
+    ispec = importlib.util.spec_from_file_location(name, path)
+    assert ispec is not None and ispec.loader is not None
+    mod = importlib.util.module_from_spec(ispec)
+    sys.modules[name] = mod
+    ispec.loader.exec_module(mod)
+    _COMPILED[key] = mod
+    return mod
+
+
 class CompiledPlant:
     """One plant of a `sim_rigs.plant.RigPlant` stepped by the compiled kernel.
 
@@ -277,6 +320,7 @@ class CompiledPlant:
         self.prm = pack_params(plant.spec, {k: np.ravel(v)[0] for k, v in plant.params.items()})
         self.limits = np.ascontiguousarray(np.ravel(plant.limits), dtype=float)
         self.work = work_buffer(plant.spec)
+        self._step = compiled(plant.spec).plant_step
         self._ones = np.ones(plant.spec.m)
         self._zeros = np.zeros(plant.spec.m)
         self._u = np.zeros(plant.spec.m)
@@ -292,7 +336,7 @@ class CompiledPlant:
         dist = self._zeros if p.disturbance is None else np.ascontiguousarray(
             p.disturbance[0], dtype=float)
         x = np.ascontiguousarray(p.x[0], dtype=float)
-        plant_step(x, self._u, self.code, self.mat, self.prm, self.limits, float(dt),
+        self._step(x, self._u, self.code, self.mat, self.prm, self.limits, float(dt),
                    int(p.substeps), lsc, dist, self.work)
         p.x[0] = x
         return tuple(float(v) for v in self.work[5, :m])
