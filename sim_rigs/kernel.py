@@ -195,7 +195,7 @@ def step_source(spec: RigSpec) -> str:
             users.setdefault(u, []).append(t)
             refs.append(f"f{u}")
         term_fac.append(refs)
-    for (kind, state, k, width), u in fac.items():
+    for (kind, _state, _k, width), u in fac.items():
         if kind in ("tanh", "gauss"):
             if isinstance(width, str):
                 w(f"    r{u} = 1.0 / prm[{names.index(width)}]")
@@ -207,7 +207,7 @@ def step_source(spec: RigSpec) -> str:
 
     def deriv(src: str, dst: str) -> None:
         # S{i} in the factor/term text stands for the stage's state
-        for (kind, state, k, width), u in fac.items():
+        for (kind, state, k, _width), u in fac.items():
             s = f"{src}{state}"
             expr = {"sin": f"math.sin({_lit(k)} * {s})", "cos": f"math.cos({_lit(k)} * {s})",
                     "tanh": f"math.tanh({s} * r{u})", "abs": f"abs({s})",
