@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import hashlib
 import importlib.util
+import math
 import os
 import sys
 from pathlib import Path
@@ -133,7 +134,34 @@ def work_buffer(spec: RigSpec) -> Array:
 
 
 # ------------------------------------------------------------------ the generated plant
-TRANSCENDENTAL = ("sin", "cos", "tanh", "gauss", "abs")
+LANES = 4
+"""Plants the sweep kernel steps together (`step_source` with lanes)."""
+TAYLOR_LIMIT = 0.02
+"""Largest in-step change of an angle k x_s (rad) `trig_near`'s series handles (else exact)."""
+
+
+@numba.njit(cache=True, inline="always")
+def fast_tanh(z: float) -> float:  # pragma: no cover - jit
+    """math.tanh(z), skipping the library call where tanh rounds to +-1 in double precision
+    (|z| > 20: 1 - tanh|z| < 1e-17, below half an ulp of 1)."""
+    if z > 20.0:
+        return 1.0
+    if z < -20.0:
+        return -1.0
+    return math.tanh(z)
+
+
+@numba.njit(cache=True, inline="always")
+def trig_near(a: float, a0: float, c0: float, s0: float) -> tuple[float, float]:
+    """cos(a), sin(a) from c0 = cos(a0), s0 = sin(a0): angle addition with a Taylor series
+    in d = a - a0 (truncation < 1e-18 for |d| <= TAYLOR_LIMIT), exact beyond."""
+    d = a - a0
+    if abs(d) > TAYLOR_LIMIT:
+        return math.cos(a), math.sin(a)
+    d2 = d * d
+    cd = 1.0 + d2 * (-0.5 + d2 * (1.0 / 24.0 - d2 / 720.0))
+    sd = d * (1.0 + d2 * (-1.0 / 6.0 + d2 * (1.0 / 120.0 - d2 / 5040.0)))
+    return c0 * cd - s0 * sd, s0 * cd + c0 * sd
 _TEMPLATES = {"dry_run_loop": "@numba.njit(cache=True)",
               "sweep_kernel": "@numba.njit(parallel=True, cache=True)"}
 _SOURCES = ("runtime/fast.py", "runtime/watchdog.py", "sim_rigs/kernel.py")
@@ -144,109 +172,143 @@ def _lit(v: float) -> str:
     return repr(float(v))
 
 
-def step_source(spec: RigSpec) -> str:
-    """Python source of ``plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist,
-    work)`` for this rig: the term table unrolled into straight-line code.
+def step_source(spec: RigSpec, lanes: int = 0) -> str:
+    """Python source of this rig's step, the term table unrolled into straight-line code.
 
-    Per call: the inputs saturated (applied values into work[5, :m]), then the
-    constants of the step (Lambda_j lsc_j v_j pushed through B plus the disturbance, per
-    row; coef * param per term; 1 / width per parameter width; whether a parameterised
-    transcendental factor is needed at all), then RK4 with substeps on scalar locals:
-    each stage evaluates each distinct factor once and adds each term into its row.
-    ``code`` and ``mat`` are accepted and ignored (the rig is in the code itself).
+    ``lanes == 0``: ``plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist,
+    work)`` for one plant (faults honoured; ``code`` and ``mat`` are accepted and ignored,
+    the rig is in the code itself; the applied inputs go to work[5, :m]).
+    ``lanes == L``: ``plant_step_lanes(X, U, P, lanes, limits, dt, substeps)`` for the L
+    plants P[lanes[l]] with states X[l] and inputs U[l], no faults, their stages
+    interleaved (independent chains: the CPU overlaps one plant's tanh latency with the
+    others' arithmetic).
+
+    Per call: the inputs saturated, then the constants of the step (Lambda_j lsc_j v_j
+    through B plus the disturbance, per row; coef * param per term; 1 / width per width;
+    whether a parameterised non-polynomial factor is needed at all; cos and sin of each
+    angle k x_s at the start), then RK4 with substeps on scalar locals: each stage
+    evaluates each distinct factor once (tanh skipped where it rounds to +-1, sin and cos
+    by angle addition from the start of the step, `trig_near`) and adds each term into
+    its row. Equal to `sim_rigs.plant.RigPlant.step` to rounding (tests/test_rig_plant.py).
     """
     n, m = spec.n, spec.m
     names = list(spec.params)
-    L: list[str] = ["def plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist, work):"]
+    one = lanes == 0
+    LN = [""] if one else [f"_{q}" for q in range(lanes)]
+    if one:
+        L = ["def plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist, work):"]
+    else:
+        L = ["def plant_step_lanes(X, U, P, lanes, limits, dt, substeps):"]
     w = L.append
-    for j in range(m):
-        w(f"    v{j} = u[{j}]")
-        w(f"    if v{j} > limits[{j}]:")
-        w(f"        v{j} = limits[{j}]")
-        w(f"    elif v{j} < -limits[{j}]:")
-        w(f"        v{j} = -limits[{j}]")
-        w(f"    work[5, {j}] = v{j}")
-        e = spec.effectiveness[j]
-        lam = f"prm[{names.index(e)}] * " if e is not None else ""
-        w(f"    g{j} = {lam}lsc[{j}] * v{j}")
-    # the input part of each row (constant over the step)
-    for i in range(n):
-        parts = [f"{_lit(spec.B[i, j])} * g{j}" for j in range(m) if spec.B[i, j] != 0.0]
-        parts += [f"dist[{j}]" for j in range(m) if spec.drives[j] == i]
-        w(f"    q{i} = {' + '.join(parts) if parts else '0.0'}")
-    # distinct factors, term constants
+    # distinct factors (tanh, gauss, abs) and angle pairs (sin, cos of k x_s)
     fac: dict[tuple[Any, ...], int] = {}
-    users: dict[int, list[int]] = {}
+    ang: dict[tuple[int, float], int] = {}
+    fusers: dict[int, list[int]] = {}
+    ausers: dict[int, list[int]] = {}
     term_fac: list[list[str]] = []
     for t, term in enumerate(spec.terms):
-        if term.param is not None:
-            w(f"    p{t} = {_lit(term.coef)} * prm[{names.index(term.param)}]")
-        else:
-            w(f"    p{t} = {_lit(term.coef)}")
         refs = []
         for f in term.factors:
             if f.kind == "x":
                 refs.append(f"S{f.state}")
-                continue
-            key = (f.kind, f.state, float(f.k), f.width)
-            if key not in fac:
-                fac[key] = len(fac)
-            u = fac[key]
-            users.setdefault(u, []).append(t)
-            refs.append(f"f{u}")
-        term_fac.append(refs)
-    for (kind, _state, _k, width), u in fac.items():
-        if kind in ("tanh", "gauss"):
-            if isinstance(width, str):
-                w(f"    r{u} = 1.0 / prm[{names.index(width)}]")
+            elif f.kind in ("sin", "cos"):
+                a = ang.setdefault((f.state, float(f.k)), len(ang))
+                ausers.setdefault(a, []).append(t)
+                refs.append(f"{'si' if f.kind == 'sin' else 'co'}{a}")
             else:
-                w(f"    r{u} = {_lit(1.0 / float(width))}")
-        guarded = all(spec.terms[t].param is not None for t in users[u])
-        cond = " or ".join(f"p{t} != 0.0" for t in users[u]) if guarded else "True"
-        w(f"    need{u} = {cond}")
+                u = fac.setdefault((f.kind, f.state, f.width), len(fac))
+                fusers.setdefault(u, []).append(t)
+                refs.append(f"f{u}")
+        term_fac.append(refs)
+
+    def need(ts: list[int], s: str) -> str:
+        if all(spec.terms[t].param is not None for t in ts):
+            return " or ".join(f"p{t}{s} != 0.0" for t in ts)
+        return "True"
+
+    for s in LN:
+        ln = s[1:]
+        prm = "prm" if one else f"pr{s}"
+        if not one:
+            w(f"    pr{s} = P[lanes[{ln}]]")
+        for i in range(n):
+            w(f"    x{i}{s} = " + (f"x[{i}]" if one else f"X[{ln}, {i}]"))
+        for j in range(m):
+            uj = f"u[{j}]" if one else f"U[{ln}, {j}]"
+            w(f"    v{j}{s} = {uj}")
+            w(f"    if v{j}{s} > limits[{j}]:")
+            w(f"        v{j}{s} = limits[{j}]")
+            w(f"    elif v{j}{s} < -limits[{j}]:")
+            w(f"        v{j}{s} = -limits[{j}]")
+            if one:
+                w(f"    work[5, {j}] = v{j}")
+            e = spec.effectiveness[j]
+            lam = f"{prm}[{names.index(e)}] * " if e is not None else ""
+            w(f"    g{j}{s} = {lam}" + (f"lsc[{j}] * v{j}" if one else f"v{j}{s}"))
+        for i in range(n):
+            parts = [f"{_lit(spec.B[i, j])} * g{j}{s}" for j in range(m) if spec.B[i, j] != 0.0]
+            if one:
+                parts += [f"dist[{j}]" for j in range(m) if spec.drives[j] == i]
+            w(f"    q{i}{s} = {' + '.join(parts) if parts else '0.0'}")
+        for t, term in enumerate(spec.terms):
+            pv = f" * {prm}[{names.index(term.param)}]" if term.param is not None else ""
+            w(f"    p{t}{s} = {_lit(term.coef)}{pv}")
+        for (kind, _state, width), u in fac.items():
+            if kind in ("tanh", "gauss"):
+                wv = f"{prm}[{names.index(width)}]" if isinstance(width, str) else _lit(width)
+                w(f"    r{u}{s} = 1.0 / {wv}")
+            w(f"    need{u}{s} = {need(fusers[u], s)}")
+        for (state, k), a in ang.items():
+            w(f"    nt{a}{s} = {need(ausers[a], s)}")
+            w(f"    z{a}{s} = {_lit(k)} * x{state}{s}")
+            w(f"    cz{a}{s} = math.cos(z{a}{s}) if nt{a}{s} else 0.0")
+            w(f"    sz{a}{s} = math.sin(z{a}{s}) if nt{a}{s} else 0.0")
 
     def deriv(src: str, dst: str) -> None:
-        # S{i} in the factor/term text stands for the stage's state
-        for (kind, state, k, _width), u in fac.items():
-            s = f"{src}{state}"
-            expr = {"sin": f"math.sin({_lit(k)} * {s})", "cos": f"math.cos({_lit(k)} * {s})",
-                    "tanh": f"math.tanh({s} * r{u})", "abs": f"abs({s})",
-                    "gauss": f"math.exp(-(({s} * r{u}) * ({s} * r{u})))"}[kind]
-            w(f"        f{u} = {expr} if need{u} else 0.0")
-        rows: list[list[str]] = [[] for _ in range(n)]
-        for i in range(n):
-            rows[i] += [f"{_lit(spec.A[i, j])} * {src}{j}" for j in range(n)
-                        if spec.A[i, j] != 0.0]
-            rows[i].append(f"q{i}")
-        for t, term in enumerate(spec.terms):
-            if term.coef == 0.0:
-                continue
-            prod = " * ".join([f"p{t}"] + [r.replace("S", src) if r.startswith("S") else r
-                                           for r in term_fac[t]])
-            rows[term.row].append(prod)
-        for i in range(n):
-            w(f"        {dst}{i} = {' + '.join(rows[i])}")
+        for s in LN:
+            for (kind, state, _width), u in fac.items():
+                v = f"{src}{state}{s}"
+                expr = {"tanh": f"fast_tanh({v} * r{u}{s})", "abs": f"abs({v})",
+                        "gauss": f"math.exp(-(({v} * r{u}{s}) * ({v} * r{u}{s})))"}[kind]
+                w(f"        f{u}{s} = {expr} if need{u}{s} else 0.0")
+            for (state, k), a in ang.items():
+                w(f"        if nt{a}{s}:")
+                w(f"            co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
+                  f"z{a}{s}, cz{a}{s}, sz{a}{s})")
+                w("        else:")
+                w(f"            co{a}{s} = 0.0")
+                w(f"            si{a}{s} = 0.0")
+            rows: list[list[str]] = [[] for _ in range(n)]
+            for i in range(n):
+                rows[i] += [f"{_lit(spec.A[i, j])} * {src}{j}{s}" for j in range(n)
+                            if spec.A[i, j] != 0.0]
+                rows[i].append(f"q{i}{s}")
+            for t, term in enumerate(spec.terms):
+                if term.coef == 0.0:
+                    continue
+                fs = [(src + r[1:] if r.startswith("S") else r) + s for r in term_fac[t]]
+                rows[term.row].append(" * ".join([f"p{t}{s}"] + fs))
+            for i in range(n):
+                w(f"        {dst}{i}{s} = {' + '.join(rows[i])}")
 
     w("    h = dt / substeps")
     w("    hh = 0.5 * h")
     w("    h6 = h / 6.0")
-    for i in range(n):
-        w(f"    x{i} = x[{i}]")
     w("    for _ in range(substeps):")
-    deriv("x", "ka")
-    for i in range(n):
-        w(f"        y{i} = x{i} + hh * ka{i}")
-    deriv("y", "kb")
-    for i in range(n):
-        w(f"        y{i} = x{i} + hh * kb{i}")
-    deriv("y", "kc")
-    for i in range(n):
-        w(f"        y{i} = x{i} + h * kc{i}")
-    deriv("y", "kd")
-    for i in range(n):
-        w(f"        x{i} = x{i} + h6 * (ka{i} + 2 * kb{i} + 2 * kc{i} + kd{i})")
-    for i in range(n):
-        w(f"    x[{i}] = x{i}")
+    for src, dst, nxt, c in (("x", "ka", "y", "hh"), ("y", "kb", "y", "hh"),
+                             ("y", "kc", "y", "h"), ("y", "kd", None, None)):
+        deriv(src, dst)
+        if nxt is not None:
+            for s in LN:
+                for i in range(n):
+                    w(f"        y{i}{s} = x{i}{s} + {c} * {dst}{i}{s}")
+    for s in LN:
+        for i in range(n):
+            w(f"        x{i}{s} = x{i}{s} + h6 * (ka{i}{s} + 2 * kb{i}{s} + 2 * kc{i}{s}"
+              f" + kd{i}{s})")
+    for s in LN:
+        for i in range(n):
+            w(f"    x[{i}] = x{i}" if one else f"    X[{s[1:]}, {i}] = x{i}{s}")
     return "\n".join(L) + "\n"
 
 
@@ -269,7 +331,9 @@ def module_source(spec: RigSpec) -> str:
              "import runtime.fast as _fast",
              "globals().update({k: v for k, v in vars(_fast).items()"
              " if not k.startswith('__')})", "",
-             "", "@numba.njit(cache=True)", step_source(spec)]
+             "from sim_rigs.kernel import fast_tanh, trig_near  # noqa: F401",
+             "", "", "@numba.njit(cache=True)", step_source(spec),
+             "", "@numba.njit(cache=True)", step_source(spec, LANES)]
     for name, deco in _TEMPLATES.items():
         parts += ["", deco, inspect.getsource(getattr(fast, name))]
     return "\n".join(parts)
