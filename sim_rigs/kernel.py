@@ -253,16 +253,41 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
         for t, term in enumerate(spec.terms):
             pv = f" * {prm}[{names.index(term.param)}]" if term.param is not None else ""
             w(f"    p{t}{s} = {_lit(term.coef)}{pv}")
+        for u in fac.values():
+            w(f"    need{u}{s} = {need(fusers[u], s)}")
+        for a in ang.values():
+            w(f"    nt{a}{s} = {need(ausers[a], s)}")
+        recip: dict[Any, str] = {}
         for (kind, _state, width), u in fac.items():
             if kind in ("tanh", "gauss"):
+                if width in recip:  # one reciprocal per width
+                    w(f"    r{u}{s} = {recip[width]}")
+                    continue
                 wv = f"{prm}[{names.index(width)}]" if isinstance(width, str) else _lit(width)
-                w(f"    r{u}{s} = 1.0 / {wv}")
-            w(f"    need{u}{s} = {need(fusers[u], s)}")
-        for (state, k), a in ang.items():
-            w(f"    nt{a}{s} = {need(ausers[a], s)}")
+                cond = " or ".join(f"need{o}{s}" for (k2, _s2, w2), o in fac.items()
+                                   if w2 == width and k2 in ("tanh", "gauss"))
+                w(f"    r{u}{s} = 1.0 / {wv} if {cond} else 0.0")
+                recip[width] = f"r{u}{s}"
+        base: dict[int, tuple[float, int]] = {}  # state -> (k, angle) computed exactly
+        for (state, k), a in sorted(ang.items(), key=lambda it: abs(it[0][1])):
             w(f"    z{a}{s} = {_lit(k)} * x{state}{s}")
-            w(f"    cz{a}{s} = math.cos(z{a}{s}) if nt{a}{s} else 0.0")
-            w(f"    sz{a}{s} = math.sin(z{a}{s}) if nt{a}{s} else 0.0")
+            mult = k / base[state][0] if state in base and base[state][0] != 0.0 else 0.0
+            if mult in (2.0, 3.0):  # multiple angle from the base pair: no library call
+                b = base[state][1]
+                c, sn = f"cz{b}{s}", f"sz{b}{s}"
+                if mult == 2.0:
+                    w(f"    cz{a}{s} = {c} * {c} - {sn} * {sn}")
+                    w(f"    sz{a}{s} = 2.0 * {sn} * {c}")
+                else:
+                    w(f"    cz{a}{s} = {c} * ({c} * {c} - 3.0 * {sn} * {sn})")
+                    w(f"    sz{a}{s} = {sn} * (3.0 * {c} * {c} - {sn} * {sn})")
+                continue
+            cond = " or ".join([f"nt{a}{s}"] + [f"nt{o}{s}" for (st2, k2), o in ang.items()
+                                                if st2 == state and o != a and k != 0.0
+                                                and k2 / k in (2.0, 3.0)])
+            w(f"    cz{a}{s} = math.cos(z{a}{s}) if {cond} else 0.0")
+            w(f"    sz{a}{s} = math.sin(z{a}{s}) if {cond} else 0.0")
+            base.setdefault(state, (k, a))
 
     def deriv(src: str, dst: str) -> None:
         for s in LN:
