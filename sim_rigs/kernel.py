@@ -109,7 +109,7 @@ def pack_params(spec: RigSpec, params: dict[str, Any]) -> Array:
     return np.ascontiguousarray(np.stack([np.ravel(c) for c in cols], axis=1))
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def plant_measure(x: Array, resolution: Array, noise: Array,
                   y: Array) -> None:  # pragma: no cover - jit
     """Sensor reading: each state plus its pre-drawn, pre-scaled noise, then quantised."""
