@@ -221,6 +221,32 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
                 refs.append(f"f{u}")
         term_fac.append(refs)
 
+    # angles: per state the smallest |k| is computed exactly (cos, sin at the step start,
+    # then `trig_near` each stage); k = 2 or 3 times it from that pair by the multiple-angle
+    # formulas, at the start and at every stage
+    angles = sorted(ang.items(), key=lambda it: abs(it[0][1]))
+    derived: dict[int, tuple[int, float]] = {}
+    exact_cond: dict[int, str] = {}
+    base: dict[int, tuple[float, int]] = {}
+    for (state, k), a in angles:
+        mult = k / base[state][0] if state in base and base[state][0] != 0.0 else 0.0
+        if mult in (2.0, 3.0):
+            derived[a] = (base[state][1], mult)
+        else:
+            base.setdefault(state, (k, a))
+    for (_state, _k), a in angles:
+        if a not in derived:
+            exact_cond[a] = " or ".join([f"nt{a}{{s}}"] + [f"nt{o}{{s}}" for o, (b, _) in
+                                                            derived.items() if b == a])
+
+    def multiple(c: str, sn: str, mult: float, co: str, si: str, ind: str) -> None:
+        if mult == 2.0:
+            w(f"{ind}{co} = {c} * {c} - {sn} * {sn}")
+            w(f"{ind}{si} = 2.0 * {sn} * {c}")
+        else:
+            w(f"{ind}{co} = {c} * ({c} * {c} - 3.0 * {sn} * {sn})")
+            w(f"{ind}{si} = {sn} * (3.0 * {c} * {c} - {sn} * {sn})")
+
     def need(ts: list[int], s: str) -> str:
         if all(spec.terms[t].param is not None for t in ts):
             return " or ".join(f"p{t}{s} != 0.0" for t in ts)
@@ -268,26 +294,14 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
                                    if w2 == width and k2 in ("tanh", "gauss"))
                 w(f"    r{u}{s} = 1.0 / {wv} if {cond} else 0.0")
                 recip[width] = f"r{u}{s}"
-        base: dict[int, tuple[float, int]] = {}  # state -> (k, angle) computed exactly
-        for (state, k), a in sorted(ang.items(), key=lambda it: abs(it[0][1])):
+        for (state, k), a in angles:
             w(f"    z{a}{s} = {_lit(k)} * x{state}{s}")
-            mult = k / base[state][0] if state in base and base[state][0] != 0.0 else 0.0
-            if mult in (2.0, 3.0):  # multiple angle from the base pair: no library call
-                b = base[state][1]
-                c, sn = f"cz{b}{s}", f"sz{b}{s}"
-                if mult == 2.0:
-                    w(f"    cz{a}{s} = {c} * {c} - {sn} * {sn}")
-                    w(f"    sz{a}{s} = 2.0 * {sn} * {c}")
-                else:
-                    w(f"    cz{a}{s} = {c} * ({c} * {c} - 3.0 * {sn} * {sn})")
-                    w(f"    sz{a}{s} = {sn} * (3.0 * {c} * {c} - {sn} * {sn})")
+            if a in derived:  # multiple angle from the base pair: no library call
+                b, mult = derived[a]
+                multiple(f"cz{b}{s}", f"sz{b}{s}", mult, f"cz{a}{s}", f"sz{a}{s}", "    ")
                 continue
-            cond = " or ".join([f"nt{a}{s}"] + [f"nt{o}{s}" for (st2, k2), o in ang.items()
-                                                if st2 == state and o != a and k != 0.0
-                                                and k2 / k in (2.0, 3.0)])
-            w(f"    cz{a}{s} = math.cos(z{a}{s}) if {cond} else 0.0")
-            w(f"    sz{a}{s} = math.sin(z{a}{s}) if {cond} else 0.0")
-            base.setdefault(state, (k, a))
+            w(f"    cz{a}{s} = math.cos(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
+            w(f"    sz{a}{s} = math.sin(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
 
     def deriv(src: str, dst: str) -> None:
         for s in LN:
@@ -296,8 +310,13 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
                 expr = {"tanh": f"fast_tanh({v} * r{u}{s})", "abs": f"abs({v})",
                         "gauss": f"math.exp(-(({v} * r{u}{s}) * ({v} * r{u}{s})))"}[kind]
                 w(f"        f{u}{s} = {expr} if need{u}{s} else 0.0")
-            for (state, k), a in ang.items():
-                w(f"        if nt{a}{s}:")
+            for (state, k), a in angles:
+                if a in derived:
+                    b, mult = derived[a]
+                    multiple(f"co{b}{s}", f"si{b}{s}", mult, f"co{a}{s}", f"si{a}{s}",
+                             "        ")
+                    continue
+                w(f"        if {exact_cond[a].format(s=s)}:")
                 w(f"            co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
                   f"z{a}{s}, cz{a}{s}, sz{a}{s})")
                 w("        else:")

@@ -414,6 +414,21 @@ def test_dry_run_and_sweep_flag_weights_past_the_limit():
     assert ok["diverged_weights_fraction"] == 0.0
 
 
+def test_dry_run_exit_code_reflects_weight_divergence(tmp_path):
+    # The bound holds (max ratio ~0.69) but the weights pass a limit of 0.5: exit 1, not 0;
+    # without the limit, exit 0.
+    cfg = str(ROOT / "configs" / "pedestal-sim.toml")
+    bad = _corral("dry-run", cfg, "--set", "commands.duration=2.0", "--set",
+                  "sweep.weight_norm_limit=0.5", "--json", "--no-plot", "--out",
+                  str(tmp_path / "a"), cwd=tmp_path)
+    s = json.loads(bad.stdout)
+    assert s["breach_time"] is None and s["weights_diverged_time"] is not None
+    assert bad.returncode == 1
+    good = _corral("dry-run", cfg, "--set", "commands.duration=2.0", "--json", "--no-plot",
+                   "--out", str(tmp_path / "b"), cwd=tmp_path)
+    assert good.returncode == 0, good.stderr
+
+
 def _random_rig(seed: int) -> dict:
     """A seeded random term table: every factor kind, products, shared and multiple angles."""
     rng = np.random.default_rng(seed)
