@@ -311,10 +311,19 @@ def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Ar
     raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_step")
 
 
-def plant_step_lanes(X: Array, U: Array, P: Array, lanes: Any, limits: Array, dt: float,
+def plant_step_lanes(X: Array, U: Array, K: Array, limits: Array, dt: float,
                      substeps: int) -> None:  # pragma: no cover - placeholder
     """Placeholder for the rig's generated lane step (see `sim_rigs.kernel.step_source`)."""
     raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_step_lanes")
+
+
+def plant_setup_lanes(P: Array, lanes: Any, K: Array) -> None:  # pragma: no cover
+    """Placeholder for the rig's generated lane constants (`sim_rigs.kernel.setup_source`)."""
+    raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_setup_lanes")
+
+
+N_KONST = 1
+"""Placeholder: the number of per-plant constants of the rig's generated lane step."""
 
 
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,
@@ -855,6 +864,8 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
         lanes = np.empty(L, dtype=np.int64)
         for ln in range(L):
             lanes[ln] = min(g * L + ln, N - 1)
+        konst = np.zeros((L, N_KONST))
+        plant_setup_lanes(prm, lanes, konst)
         st = np.zeros((L, nst))
         out = np.zeros((L, nout))
         X = np.empty((L, n))
@@ -911,7 +922,7 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
                     if k >= latency:
                         for j in range(m):
                             U[ln, j] = ubuf[ln, ua_s, j]
-                plant_step_lanes(X, U, prm, lanes, limits, fc[F_TS], substeps)
+                plant_step_lanes(X, U, konst, limits, fc[F_TS], substeps)
                 if (k + 1) % DIVERGENCE_EVERY == 0 or k == T - 1:
                     for ln in range(L):
                         for i in range(n):

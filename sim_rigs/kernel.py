@@ -172,6 +172,83 @@ def _lit(v: float) -> str:
     return repr(float(v))
 
 
+def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...], int],
+                     ang: dict[tuple[int, float], int], fusers: dict[int, list[int]],
+                     ausers: dict[int, list[int]]) -> list[tuple[str, str, bool]]:
+    """(name, expression, is flag) of a plant's constants: Lambda_j, coef * param per term,
+    whether each factor / angle is needed, one reciprocal per width."""
+    names = list(spec.params)
+    out: list[tuple[str, str, bool]] = []
+    for j, e in enumerate(spec.effectiveness):
+        out.append((f"lam{j}{s}", f"{prm}[{names.index(e)}]" if e is not None else "1.0", False))
+    for t, term in enumerate(spec.terms):
+        pv = f" * {prm}[{names.index(term.param)}]" if term.param is not None else ""
+        out.append((f"p{t}{s}", f"{_lit(term.coef)}{pv}", False))
+
+    def need(ts: list[int]) -> str:
+        if all(spec.terms[t].param is not None for t in ts):
+            return " or ".join(f"p{t}{s} != 0.0" for t in ts)
+        return "True"
+
+    for u in fac.values():
+        out.append((f"need{u}{s}", need(fusers[u]), True))
+    for a in ang.values():
+        out.append((f"nt{a}{s}", need(ausers[a]), True))
+    recip: dict[Any, str] = {}
+    for (kind, _state, width), u in fac.items():
+        if kind in ("tanh", "gauss"):
+            if width in recip:  # one reciprocal per width
+                out.append((f"r{u}{s}", recip[width], False))
+                continue
+            wv = f"{prm}[{names.index(width)}]" if isinstance(width, str) else _lit(width)
+            cond = " or ".join(f"need{o}{s}" for (k2, _s2, w2), o in fac.items()
+                               if w2 == width and k2 in ("tanh", "gauss"))
+            out.append((f"r{u}{s}", f"1.0 / {wv} if {cond} else 0.0", False))
+            recip[width] = f"r{u}{s}"
+    return out
+
+
+def _factor_tables(spec: RigSpec) -> tuple[Any, ...]:
+    """Distinct factors (tanh, gauss, abs) and angles (sin, cos of k x_s) of the term table,
+    the terms using each, and each term's factor references."""
+    fac: dict[tuple[Any, ...], int] = {}
+    ang: dict[tuple[int, float], int] = {}
+    fusers: dict[int, list[int]] = {}
+    ausers: dict[int, list[int]] = {}
+    term_fac: list[list[str]] = []
+    for t, term in enumerate(spec.terms):
+        refs = []
+        for f in term.factors:
+            if f.kind == "x":
+                refs.append(f"S{f.state}")
+            elif f.kind in ("sin", "cos"):
+                a = ang.setdefault((f.state, float(f.k)), len(ang))
+                ausers.setdefault(a, []).append(t)
+                refs.append(f"{'si' if f.kind == 'sin' else 'co'}{a}")
+            else:
+                u = fac.setdefault((f.kind, f.state, f.width), len(fac))
+                fusers.setdefault(u, []).append(t)
+                refs.append(f"f{u}")
+        term_fac.append(refs)
+    return fac, ang, fusers, ausers, term_fac
+
+
+def setup_source(spec: RigSpec, lanes: int) -> str:
+    """Python source of ``plant_setup_lanes(P, lanes, K)``: the constants of the plants
+    P[lanes[l]] into K[l] (``N_KONST`` of them), once per plant, for `plant_step_lanes`."""
+    fac, ang, fusers, ausers, _ = _factor_tables(spec)
+    L = ["def plant_setup_lanes(P, lanes, K):"]
+    for q in range(lanes):
+        s = f"_{q}"
+        L.append(f"    pr{s} = P[lanes[{q}]]")
+        for i, (name, expr, flag) in enumerate(
+                _plant_constants(spec, s, f"pr{s}", fac, ang, fusers, ausers)):
+            L.append(f"    {name} = {expr}")
+            L.append(f"    K[{q}, {i}] = " + (f"1.0 if {name} else 0.0" if flag else name))
+    n_konst = len(_plant_constants(spec, "", "prm", fac, ang, fusers, ausers))
+    return "\n".join(L) + f"\n\n\nN_KONST = {n_konst}\n"
+
+
 def step_source(spec: RigSpec, lanes: int = 0) -> str:
     """Python source of this rig's step, the term table unrolled into straight-line code.
 
@@ -192,35 +269,14 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
     its row. Equal to `sim_rigs.plant.RigPlant.step` to rounding (tests/test_rig_plant.py).
     """
     n, m = spec.n, spec.m
-    names = list(spec.params)
     one = lanes == 0
     LN = [""] if one else [f"_{q}" for q in range(lanes)]
     if one:
         L = ["def plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist, work):"]
     else:
-        L = ["def plant_step_lanes(X, U, P, lanes, limits, dt, substeps):"]
+        L = ["def plant_step_lanes(X, U, K, limits, dt, substeps):"]
     w = L.append
-    # distinct factors (tanh, gauss, abs) and angle pairs (sin, cos of k x_s)
-    fac: dict[tuple[Any, ...], int] = {}
-    ang: dict[tuple[int, float], int] = {}
-    fusers: dict[int, list[int]] = {}
-    ausers: dict[int, list[int]] = {}
-    term_fac: list[list[str]] = []
-    for t, term in enumerate(spec.terms):
-        refs = []
-        for f in term.factors:
-            if f.kind == "x":
-                refs.append(f"S{f.state}")
-            elif f.kind in ("sin", "cos"):
-                a = ang.setdefault((f.state, float(f.k)), len(ang))
-                ausers.setdefault(a, []).append(t)
-                refs.append(f"{'si' if f.kind == 'sin' else 'co'}{a}")
-            else:
-                u = fac.setdefault((f.kind, f.state, f.width), len(fac))
-                fusers.setdefault(u, []).append(t)
-                refs.append(f"f{u}")
-        term_fac.append(refs)
-
+    fac, ang, fusers, ausers, term_fac = _factor_tables(spec)
     # angles: per state the smallest |k| is computed exactly (cos, sin at the step start,
     # then `trig_near` each stage); k = 2 or 3 times it from that pair by the multiple-angle
     # formulas, at the start and at every stage
@@ -247,16 +303,15 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
             w(f"{ind}{co} = {c} * ({c} * {c} - 3.0 * {sn} * {sn})")
             w(f"{ind}{si} = {sn} * (3.0 * {c} * {c} - {sn} * {sn})")
 
-    def need(ts: list[int], s: str) -> str:
-        if all(spec.terms[t].param is not None for t in ts):
-            return " or ".join(f"p{t}{s} != 0.0" for t in ts)
-        return "True"
-
     for s in LN:
         ln = s[1:]
-        prm = "prm" if one else f"pr{s}"
-        if not one:
-            w(f"    pr{s} = P[lanes[{ln}]]")
+        if one:
+            for name, expr, _flag in _plant_constants(spec, "", "prm", fac, ang, fusers, ausers):
+                w(f"    {name} = {expr}")
+        else:
+            for q, (name, _expr, flag) in enumerate(
+                    _plant_constants(spec, s, "", fac, ang, fusers, ausers)):
+                w(f"    {name} = K[{ln}, {q}]" + (" != 0.0" if flag else ""))
         for i in range(n):
             w(f"    x{i}{s} = " + (f"x[{i}]" if one else f"X[{ln}, {i}]"))
         for j in range(m):
@@ -268,32 +323,12 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
             w(f"        v{j}{s} = -limits[{j}]")
             if one:
                 w(f"    work[5, {j}] = v{j}")
-            e = spec.effectiveness[j]
-            lam = f"{prm}[{names.index(e)}] * " if e is not None else ""
-            w(f"    g{j}{s} = {lam}" + (f"lsc[{j}] * v{j}" if one else f"v{j}{s}"))
+            w(f"    g{j}{s} = lam{j}{s} * " + (f"lsc[{j}] * v{j}" if one else f"v{j}{s}"))
         for i in range(n):
             parts = [f"{_lit(spec.B[i, j])} * g{j}{s}" for j in range(m) if spec.B[i, j] != 0.0]
             if one:
                 parts += [f"dist[{j}]" for j in range(m) if spec.drives[j] == i]
             w(f"    q{i}{s} = {' + '.join(parts) if parts else '0.0'}")
-        for t, term in enumerate(spec.terms):
-            pv = f" * {prm}[{names.index(term.param)}]" if term.param is not None else ""
-            w(f"    p{t}{s} = {_lit(term.coef)}{pv}")
-        for u in fac.values():
-            w(f"    need{u}{s} = {need(fusers[u], s)}")
-        for a in ang.values():
-            w(f"    nt{a}{s} = {need(ausers[a], s)}")
-        recip: dict[Any, str] = {}
-        for (kind, _state, width), u in fac.items():
-            if kind in ("tanh", "gauss"):
-                if width in recip:  # one reciprocal per width
-                    w(f"    r{u}{s} = {recip[width]}")
-                    continue
-                wv = f"{prm}[{names.index(width)}]" if isinstance(width, str) else _lit(width)
-                cond = " or ".join(f"need{o}{s}" for (k2, _s2, w2), o in fac.items()
-                                   if w2 == width and k2 in ("tanh", "gauss"))
-                w(f"    r{u}{s} = 1.0 / {wv} if {cond} else 0.0")
-                recip[width] = f"r{u}{s}"
         for (state, k), a in angles:
             w(f"    z{a}{s} = {_lit(k)} * x{state}{s}")
             if a in derived:  # multiple angle from the base pair: no library call
@@ -377,7 +412,8 @@ def module_source(spec: RigSpec) -> str:
              " if not k.startswith('__')})", "",
              "from sim_rigs.kernel import fast_tanh, trig_near  # noqa: F401",
              "", "", "@numba.njit(cache=True)", step_source(spec),
-             "", "@numba.njit(cache=True)", step_source(spec, LANES)]
+             "", "@numba.njit(cache=True)", step_source(spec, LANES),
+             "", "@numba.njit(cache=True)", setup_source(spec, LANES)]
     for name, deco in _TEMPLATES.items():
         parts += ["", deco, inspect.getsource(getattr(fast, name))]
     return "\n".join(parts)

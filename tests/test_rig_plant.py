@@ -511,5 +511,7 @@ def test_generated_step_and_lanes_match_the_numpy_reference(name, spec, extra):
         refb = RigPlant.create(spec, truth=truth, x0=X0, batch=L, substeps=sub)
         refb.step(U, dt)
         X = X0.copy()
-        mod.plant_step_lanes(X, U, K.pack_params(spec, truth), np.arange(L), limits, dt, sub)
+        konst = np.zeros((L, mod.N_KONST))
+        mod.plant_setup_lanes(K.pack_params(spec, truth), np.arange(L), konst)
+        mod.plant_step_lanes(X, U, konst, limits, dt, sub)
         assert np.allclose(X, refb.x, rtol=1e-12, atol=1e-13)
