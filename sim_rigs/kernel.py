@@ -1,30 +1,25 @@
-"""The compiled plant: ONE numba kernel that interprets a rig's term table.
+"""The compiled plant: numba code generated from a rig's term table, once per rig.
 
-`pack_rig(spec)` codes a rig (`sim_rigs.rigfile.RigSpec`) into two flat arrays,
-the way `runtime.fast` codes a basis:
+`step_source(spec)` writes the rig's RK4 step as straight-line Python (each distinct factor
+evaluated once a stage, each term a multiply-add into its row, A's and B's non-zeros
+unrolled, scalar locals, no interpretation at run time); `step_source(spec, LANES)` the same
+for LANES plants interleaved, with `setup_source` for their per-plant constants. `compiled(spec)`
+puts these and the dry-run loop and sweep kernel templates of `runtime.fast` into one module
+file named by a hash of its text and of the sources its compiled code depends on, imports it
+and lets numba cache it on disk (so a stale kernel is never loaded after an edit). The term
+table stays the single source: `sim_rigs.plant.RigPlant` (numpy) is the reference,
+`tests/test_rig_plant.py` holds the generated code to it with every term kind non-zero, on
+both built-in rigs and on seeded random term tables.
 
-- ``code`` (int64): header [n, m, T, F, nA, nB, o_terms, o_lam, o_A, o_B, NU, o_fac]
-  (states, inputs, terms, factors per term at most, non-zeros of A and B, distinct
-  factors, offsets), then per term [row, param index (-1: none), factor count, the
-  indices of its factors among the distinct ones], per input the effectiveness
-  parameter index (-1: 1), per input the driven row, the (i, j) of A's and B's
-  non-zeros, and per distinct factor (kind, state, width parameter index (-1: the
-  literal));
-- ``mat`` (float64): A's and B's non-zero values, per term its coef, per distinct
-  factor (k, literal width).
+Speed tricks, all exact to rounding: tanh skipped where it rounds to +-1 (`fast_tanh`); sin
+and cos of an angle from their values at the start of the step by angle addition
+(`trig_near`), and of its double or triple by the multiple-angle formulas; a factor computed
+only when a term with a non-zero coefficient needs it (a switched-off stick-slip friction
+costs nothing); one reciprocal per width, so the derivative divides nothing.
 
-`plant_prepare` turns a plant's parameters into constants once a step (coef *
-param per term, k or 1 / width per distinct factor, Lambda_j), so the derivative
-divides nothing; each distinct factor (tanh of a rate, say, shared by a Coulomb
-and a stick-slip term) is evaluated once, and a term whose coefficient is zero (a
-switched-off friction) costs nothing.
-
-`pack_params(spec, params)` gives the parameter vector(s) in `spec.params`
-order. `plant_deriv`, `plant_step` (RK4 with substeps, input saturated) and
-`plant_measure` (noise pre-drawn, then quantised) are the equations of
-`sim_rigs.plant.RigPlant`; `tests/test_rig_plant.py` checks them against it with
-every term kind non-zero. The dry run, the sweep, the in-process link and the
-served device all step plants through these functions.
+`pack_rig(spec)` codes a rig's shape into flat arrays (the loops read its sizes, `work_width`);
+`pack_params(spec, params)` gives the parameter vector(s) in `spec.params` order;
+`plant_measure` is the sensor reading (noise pre-drawn, then quantised), inlined.
 """
 
 from __future__ import annotations
