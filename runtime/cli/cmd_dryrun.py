@@ -98,4 +98,6 @@ def main(args: argparse.Namespace) -> int:
         print(f"  run file: {run_file}")
         if "report" in s:
             print(f"  report:   {s['report']}")
-    return 0 if result.summary["breach_time"] is None else 1
+    # exit 1 when the bound broke or anything diverged (states or weights), 0 otherwise
+    ok = result.summary["breach_time"] is None and not result.summary.get("diverged")
+    return 0 if ok else 1

@@ -46,7 +46,7 @@ from numpy.typing import ArrayLike, NDArray
 from runtime.guard.watchdog import over
 from runtime.method.design import Design
 from runtime.method.law import LawState
-from sim_rigs.kernel import plant_measure, plant_step, work_width
+from sim_rigs.kernel import LANES, plant_measure, work_width  # noqa: F401 - templates
 
 _over = numba.njit(cache=True, inline="always")(over)
 """The watchdog's one rule comparison, compiled for the sweep kernel."""
@@ -300,8 +300,33 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     out[O_CAPPED] = 1.0 if capped else 0.0
 
 
-# ------------------------------------------------------------------ the dry-run loop
-@numba.njit(cache=True)
+# ------------------------------------------------------------------ the loop templates
+# `dry_run_loop` and `sweep_kernel` below are templates, not compiled here: each rig gets
+# its own straight-line `plant_step` generated from its term table, and these two are
+# compiled against it in the rig's generated module (`runtime.kernels.rigloops.compiled`,
+# which adds the numba decorators). Call them from there.
+def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Array,
+               dt: float, substeps: int, lsc: Array, dist: Array,
+               work: Array) -> None:  # pragma: no cover - placeholder
+    """Placeholder for the rig's generated step (see `sim_rigs.kernel.step_source`)."""
+    raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_step")
+
+
+def plant_step_lanes(X: Array, U: Array, K: Array, limits: Array, dt: float,
+                     substeps: int) -> None:  # pragma: no cover - placeholder
+    """Placeholder for the rig's generated lane step (see `sim_rigs.kernel.step_source`)."""
+    raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_step_lanes")
+
+
+def plant_setup_lanes(P: Array, lanes: Any, K: Array) -> None:  # pragma: no cover
+    """Placeholder for the rig's generated lane constants (`sim_rigs.kernel.setup_source`)."""
+    raise RuntimeError("use sim_rigs.kernel.compiled(spec).plant_setup_lanes")
+
+
+N_KONST = 1
+"""Placeholder: the number of per-plant constants of the rig's generated lane step."""
+
+
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,
                  xp: Array, pcode: Any, pmat: Array, prm: Array, limits: Array, substeps: int,
                  noise: Array, resolution: Array, delay: int, meas: Array, ic: Any, fc: Array,
@@ -796,29 +821,30 @@ def stream_normals(state: Array, out: Array) -> None:  # pragma: no cover - jit
     state[0] = s
 
 
-@numba.njit(parallel=True, cache=True)
 def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, prm: Array,
                  plant_ids: Any, seed: int, substeps: int, limits: Array, resolution: Array,
                  noise_sd: Array, delay: int, latency: int, noise_mode: int, given: Array,
                  ic: Any, fc: Array, special: bool, levels: Array, sat_ticks: float,
                  bound: Array, w_limit: float, first: Any,
                  max_ratio: Array) -> None:  # pragma: no cover - jit
-    """N plants x T ticks of the closed loop, each plant on its own (prange over plants).
+    """N plants x T ticks of the closed loop, each plant on its own.
 
-    Per plant b: the rig coded as (pcode, pmat) (`sim_rigs.kernel.pack_rig`), its
-    parameters prm[b], start x0, law state x_r = first reading, W = 0; each tick the law
-    (`law_tick_pedestal` when `special`, else `law_tick`) on the reading `delay` ticks
-    old, the saturated input applied `latency` ticks late to `sim_rigs.kernel.plant_step`,
-    then the next reading (`plant_measure`). Noise: `noise_mode` NOISE_OFF, NOISE_STREAM
-    (plant_ids[b]'s own splitmix64 stream under `seed`, one normal per noisy channel a
-    reading, in channel order, drawn in pairs) or NOISE_GIVEN (`given[b, reading, :]`,
-    standard normals of the noisy channels). Nothing is recorded per tick:
-    `first[b, SWEEP_RULES]` gets the first tick each rule fired (-1: never; levels =
-    margin, clamp, breach ratios, compared as `runtime.guard.watchdog.RULE_BOOK` says; saturation:
-    a raw input beyond its limit for `sat_ticks` ticks in a row, the live rule's on-delay;
-    diverged: |x_i| > bound_i or non-finite after ticks 63, 127, ... and the last;
-    weights: the weight norm non-finite or beyond `w_limit` at the same ticks) and
-    `max_ratio[b]` the largest finite margin ratio (from 0).
+    prange over groups of `sim_rigs.kernel.LANES` plants (a short last group repeats its
+    last plant and discards the copies), stepped together by the rig's generated
+    `plant_step_lanes` (no faults). Per plant b: its parameters prm[b], start x0, law
+    state x_r = first reading, W = 0; each tick the law (`law_tick_pedestal` when
+    `special`, else `law_tick`) on the reading `delay` ticks old, the saturated input
+    applied `latency` ticks late, then the next reading (`plant_measure`). Noise:
+    `noise_mode` NOISE_OFF, NOISE_STREAM (plant_ids[b]'s own splitmix64 stream under
+    `seed`, one normal per noisy channel a reading, in channel order, drawn in pairs) or
+    NOISE_GIVEN (`given[b, reading, :]`, standard normals of the noisy channels). Nothing
+    is recorded per tick: `first[b, SWEEP_RULES]` gets the first tick each rule fired
+    (-1: never; levels = margin, clamp, breach ratios, compared as
+    `runtime.guard.watchdog.RULE_BOOK` says; saturation: a raw input beyond its limit for
+    `sat_ticks` ticks in a row, the live rule's on-delay; diverged: |x_i| > bound_i or
+    non-finite after ticks 63, 127, ... and the last; weights: the weight norm non-finite
+    or beyond `w_limit` at the same ticks) and `max_ratio[b]` the largest finite margin
+    ratio (from 0).
     """
     N = prm.shape[0]
     T = cmd.shape[0]
@@ -827,97 +853,110 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
     nreg = ic[I_NREG]
     nst = n + nreg * m
     nout = OUT_HEADER + 4 * m + 2 * n + nreg
-    dt = fc[F_TS]
     oU = ic[I_OUMAX]
+    L = LANES
+    groups = (N + L - 1) // L
     nz = 0
     for i in range(n):
         if noise_sd[i] > 0.0:
             nz += 1
     nz2 = nz + (nz % 2)
-    for b in numba.prange(N):
-        work = np.zeros((7, work_width(pcode)))
-        st = np.zeros(nst)
-        o = np.zeros(nout)
-        X = np.empty(n)
-        U = np.zeros(m)
-        meas = np.empty((delay + 1, n))
-        ubuf = np.zeros((latency + 1, m))
+    NR = len(SWEEP_RULES)
+    for g in numba.prange(groups):
+        lanes = np.empty(L, dtype=np.int64)
+        for ln in range(L):
+            lanes[ln] = min(g * L + ln, N - 1)
+        konst = np.zeros((L, N_KONST))
+        plant_setup_lanes(prm, lanes, konst)
+        st = np.zeros((L, nst))
+        out = np.zeros((L, nout))
+        X = np.empty((L, n))
+        U = np.zeros((L, m))
+        meas = np.empty((L, delay + 1, n))
+        ubuf = np.zeros((L, latency + 1, m))
         z = np.zeros(max(nz2, 2))
         ns = np.zeros(n)
-        lsc = np.ones(m)
-        dist = np.zeros(m)
-        rs = np.zeros(1, dtype=np.uint64)
-        fb = np.full(len(SWEEP_RULES), -1, dtype=np.int64)
-        run = np.zeros(m, dtype=np.int64)
-        mr = 0.0
-        p = prm[b]
-        for i in range(n):
-            X[i] = x0[i]
-        rs[0] = stream_key(seed, plant_ids[b])
+        rs = np.zeros((L, 1), dtype=np.uint64)
+        fb = np.full((L, NR), -1, dtype=np.int64)
+        run = np.zeros((L, m), dtype=np.int64)
+        mr = np.zeros(L)
+        for ln in range(L):
+            for i in range(n):
+                X[ln, i] = x0[i]
+            rs[ln, 0] = stream_key(seed, plant_ids[lanes[ln]])
         for r in range(T + 1):
             if r > 0:
                 k = r - 1
                 ys = (k - delay) % (delay + 1) if k >= delay else 0
                 us = k % (latency + 1)
                 ua_s = (k - latency) % (latency + 1)
-                y = meas[ys]
-                if special:
-                    law_tick_pedestal(y, cmd[k], eps_t[k], ic, fc, st, o)
-                else:
-                    law_tick(y, cmd[k], eps_t[k], ic, fc, st, o)
-                ratio = o[O_RATIO]
-                if ratio > mr:
-                    mr = ratio
-                if fb[R_MARGIN] < 0 and _over(ratio, levels[0]):
-                    fb[R_MARGIN] = k
-                if fb[R_CLAMP] < 0 and _over(ratio, levels[1]):
-                    fb[R_CLAMP] = k
-                if fb[R_BREACH] < 0 and _over(ratio, levels[2]):
-                    fb[R_BREACH] = k
-                fin = math.isfinite(ratio)
-                sat = False
-                for j in range(m):
-                    ur = o[OUT_HEADER + m + j]
-                    if not math.isfinite(ur):
-                        fin = False
-                    run[j] = run[j] + 1 if _over(abs(ur), fc[oU + j]) else 0
-                    if _over(run[j] + 1e-9, sat_ticks):
-                        sat = True
-                    ubuf[us, j] = o[OUT_HEADER + j]
-                if fb[R_NONFINITE] < 0 and not fin:
-                    fb[R_NONFINITE] = k
-                if fb[R_SATURATION] < 0 and sat:
-                    fb[R_SATURATION] = k
-                if k >= latency:
+                for ln in range(L):
+                    y = meas[ln, ys]
+                    o = out[ln]
+                    f = fb[ln]
+                    if special:
+                        law_tick_pedestal(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
+                    else:
+                        law_tick(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
+                    ratio = o[O_RATIO]
+                    if ratio > mr[ln]:
+                        mr[ln] = ratio
+                    if f[R_MARGIN] < 0 and _over(ratio, levels[0]):
+                        f[R_MARGIN] = k
+                    if f[R_CLAMP] < 0 and _over(ratio, levels[1]):
+                        f[R_CLAMP] = k
+                    if f[R_BREACH] < 0 and _over(ratio, levels[2]):
+                        f[R_BREACH] = k
+                    fin = math.isfinite(ratio)
+                    sat = False
                     for j in range(m):
-                        U[j] = ubuf[ua_s, j]
-                plant_step(X, U, pcode, pmat, p, limits, dt, substeps, lsc, dist, work)
+                        ur = o[OUT_HEADER + m + j]
+                        if not math.isfinite(ur):
+                            fin = False
+                        run[ln, j] = run[ln, j] + 1 if _over(abs(ur), fc[oU + j]) else 0
+                        if _over(run[ln, j] + 1e-9, sat_ticks):
+                            sat = True
+                        ubuf[ln, us, j] = o[OUT_HEADER + j]
+                    if f[R_NONFINITE] < 0 and not fin:
+                        f[R_NONFINITE] = k
+                    if f[R_SATURATION] < 0 and sat:
+                        f[R_SATURATION] = k
+                    if k >= latency:
+                        for j in range(m):
+                            U[ln, j] = ubuf[ln, ua_s, j]
+                plant_step_lanes(X, U, konst, limits, fc[F_TS], substeps)
                 if (k + 1) % DIVERGENCE_EVERY == 0 or k == T - 1:
-                    for i in range(n):
-                        if fb[R_DIVERGED] < 0 and not (abs(X[i]) <= bound[i]):
-                            fb[R_DIVERGED] = k
-                    if fb[R_WEIGHTS] < 0:
-                        w2 = 0.0
-                        for i in range(n, nst):
-                            w2 += st[i] * st[i]
-                        if not (math.sqrt(w2) <= w_limit):
-                            fb[R_WEIGHTS] = k
+                    for ln in range(L):
+                        for i in range(n):
+                            if fb[ln, R_DIVERGED] < 0 and not (abs(X[ln, i]) <= bound[i]):
+                                fb[ln, R_DIVERGED] = k
+                        if fb[ln, R_WEIGHTS] < 0:
+                            w2 = 0.0
+                            for i in range(n, nst):
+                                w2 += st[ln, i] * st[ln, i]
+                            if not (math.sqrt(w2) <= w_limit):
+                                fb[ln, R_WEIGHTS] = k
             # the sensors: reading r
-            if noise_mode == NOISE_STREAM:
-                stream_normals(rs, z[:nz2])
-            q = 0
-            for i in range(n):
-                if noise_sd[i] > 0.0 and noise_mode != NOISE_OFF:
-                    zi = z[q] if noise_mode == NOISE_STREAM else given[b, r, q]
-                    ns[i] = noise_sd[i] * zi
-                    q += 1
-                else:
-                    ns[i] = 0.0
-            yr = meas[r % (delay + 1)]
-            plant_measure(X, resolution, ns, yr)
-            if r == 0:
+            rslot = r % (delay + 1)
+            for ln in range(L):
+                if noise_mode == NOISE_STREAM:
+                    stream_normals(rs[ln], z[:nz2])
+                q = 0
                 for i in range(n):
-                    st[i] = yr[i]
-        for j in range(len(SWEEP_RULES)):
-            first[b, j] = fb[j]
-        max_ratio[b] = mr
+                    if noise_sd[i] > 0.0 and noise_mode != NOISE_OFF:
+                        zi = z[q] if noise_mode == NOISE_STREAM else given[lanes[ln], r, q]
+                        ns[i] = noise_sd[i] * zi
+                        q += 1
+                    else:
+                        ns[i] = 0.0
+                yr = meas[ln, rslot]
+                plant_measure(X[ln], resolution, ns, yr)
+                if r == 0:
+                    for i in range(n):
+                        st[ln, i] = yr[i]
+        for ln in range(L):
+            b = g * L + ln
+            if b < N:
+                for j in range(NR):
+                    first[b, j] = fb[ln, j]
+                max_ratio[b] = mr[ln]

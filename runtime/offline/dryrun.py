@@ -276,7 +276,7 @@ def _run_fast(design: Design, settings: Any, plant: Any, cmd: NDArray[np.float64
               eps_t: NDArray[np.float64], cols: dict[str, NDArray[np.float64]],
               progress: Any) -> tuple[float, float]:
     """The compiled loop (`runtime.kernels.fast.dry_run_loop`); returns (wall, compile) seconds."""
-    from runtime.kernels import fast
+    from runtime.kernels import fast, rigloops
     from sim_rigs import kernel
 
     ticks = len(cmd)
@@ -287,6 +287,7 @@ def _run_fast(design: Design, settings: Any, plant: Any, cmd: NDArray[np.float64
     spec = plant.spec
     work = kernel.work_buffer(spec)
     pcode, pmat = kernel.pack_rig(spec)
+    loop = rigloops.compiled(spec).dry_run_loop
     prm = kernel.pack_params(spec, {k: np.ravel(v)[0] for k, v in plant.params.items()})
     limits = np.ascontiguousarray(plant.limits, dtype=float)
     xp = np.array(plant.x[0], dtype=float)
@@ -306,7 +307,7 @@ def _run_fast(design: Design, settings: Any, plant: Any, cmd: NDArray[np.float64
            cols["clamped"])
 
     def run(k0: int, k1: int) -> None:
-        fast.dry_run_loop(k0, k1, cmd, eps_t, dist, lsc, xp, pcode, pmat, prm, limits,
+        loop(k0, k1, cmd, eps_t, dist, lsc, xp, pcode, pmat, prm, limits,
                           substeps, noise, res, delay, meas, ic, fc, st, out, work, *rec)
 
     c0 = time.perf_counter()

@@ -404,7 +404,7 @@ def _run_compiled(setup: _Setup, prm: Columns, plant_ids: NDArray[np.int64],
     Noise: each plant's own stream keyed by (seed, plant id), or `noise_given`
     (B, ticks + 1, 4) standard normals (tests use it to replay another engine's draws).
     """
-    from runtime.kernels import fast
+    from runtime.kernels import fast, rigloops
     from sim_rigs import kernel
 
     d = setup.design
@@ -426,7 +426,7 @@ def _run_compiled(setup: _Setup, prm: Columns, plant_ids: NDArray[np.int64],
     levels = np.array([lv["margin"], lv["clamp"], lv["breach"]])
     first = np.empty((B, len(fast.SWEEP_RULES)), dtype=np.int64)
     max_ratio = np.empty(B)
-    fast.sweep_kernel(
+    rigloops.compiled(spec).sweep_kernel(
         setup.cmd, setup.eps_t, np.ascontiguousarray(setup.x0, dtype=float), pcode, pmat, P,
         np.ascontiguousarray(plant_ids, dtype=np.int64), int(st.seed), int(st.substeps),
         np.asarray(d.rig.input_limits, dtype=float),
