@@ -38,6 +38,7 @@ from runtime.realtime.links import (
 from runtime.realtime.runner import EXIT_INTERNAL_TRIP, RigBusy, RigLock, Runner
 from runtime.realtime.settings import (
     RunSettings,
+    TickSettings,
     log_dir_from_config,
     mqtt_telemetry_settings,
     operator_settings,
@@ -45,5 +46,6 @@ from runtime.realtime.settings import (
 from runtime.realtime.tick import TickCore
 
 __all__ = ["EXIT_INTERNAL_TRIP", "LawAdapter", "RigBusy", "RigLock", "RunSettings", "Runner",
-           "TickCore", "command_timeout", "is_simulated", "link_stats_now", "log_dir_from_config",
-           "loss_detail", "make_link", "mqtt_telemetry_settings", "operator_settings"]
+           "TickCore", "TickSettings", "command_timeout", "is_simulated", "link_stats_now",
+           "log_dir_from_config", "loss_detail", "make_link", "mqtt_telemetry_settings",
+           "operator_settings"]

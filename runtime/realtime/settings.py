@@ -7,7 +7,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+from numpy.typing import NDArray
+
 from runtime.config import Config, ConfigError
+from runtime.method.design import Design
 
 
 # ------------------------------------------------------------------ run settings
@@ -32,6 +36,49 @@ class RunSettings:
     console: Any = None
     """Where progress and trip lines go (a text file while a dashboard owns the terminal);
     None = stderr."""
+
+@dataclass(frozen=True)
+class TickSettings:
+    """The config keys the tick reads, read once (`from_config`) and typed.
+
+    The parts that own a section read it themselves from the config (the command
+    schedule, the bound, the watchdog rules, the fallbacks, the law's options)."""
+
+    law: str
+    """``loop.law``: which implementation of the adaptive law runs."""
+    jump_limit: NDArray[np.float64]
+    """``watchdog.jump_limit`` per state (default half the state limits)."""
+    estimator_cutoff_hz: float
+    settle_time: float
+    settle_rate_tol: float
+    disarm_action: str
+    stop_action: str
+    engage_slew: float
+    pre_capture_s: float
+    post_capture_s: float
+    events_per_s: float
+    """Most operator events written to the trip log per second (the rest counted)."""
+    rig_link: str
+    """``rig.link``: the link when the run names none."""
+
+    @classmethod
+    def from_config(cls, cfg: Config, design: Design) -> TickSettings:
+        """Read every key the tick needs (errors name the key, as the reads always did)."""
+        return cls(
+            law=str(cfg.choice("loop.law")),
+            jump_limit=cfg.vector("watchdog.jump_limit", design.rig.n,
+                                  (0.5 * design.limits).tolist(), positive=True),
+            estimator_cutoff_hz=cfg.number("estimator.cutoff_hz"),
+            settle_time=cfg.number("supervisor.settle_time"),
+            settle_rate_tol=cfg.number("supervisor.settle_rate_tol"),
+            disarm_action=cfg.choice("supervisor.disarm_action"),
+            stop_action=cfg.choice("supervisor.stop_action"),
+            engage_slew=cfg.number("supervisor.engage_slew"),
+            pre_capture_s=cfg.number("log.pre_capture_s"),
+            post_capture_s=cfg.number("log.post_capture_s"),
+            events_per_s=cfg.number("log.events_per_s"),
+            rig_link=str(cfg.get("rig.link")),
+        )
 
 
 def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: str | None,

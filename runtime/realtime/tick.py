@@ -33,7 +33,7 @@ from runtime.realtime.estimator import Estimator, rate_pairs
 from runtime.realtime.hostcheck import explain_from_header
 from runtime.realtime.law_adapter import LawAdapter
 from runtime.realtime.links import link_stats_now
-from runtime.realtime.settings import RunSettings
+from runtime.realtime.settings import RunSettings, TickSettings
 from runtime.realtime.telemetry import TelemetryServer
 from runtime.records.logs import RunLogWriter, TripLog, log_paths
 from runtime.records.runinfo import end_record, link_identity, run_name
@@ -48,6 +48,8 @@ class TickCore:
     def __init__(self, cfg: Config, design: Design, link: Link, settings: RunSettings,
                  log_dir: Path, simulated: bool, faults: Any = None) -> None:
         self.cfg = cfg
+        ts = TickSettings.from_config(cfg, design)
+        self.tick_settings = ts
         self.design = d = design
         self.link = link
         self.settings = settings
@@ -60,8 +62,7 @@ class TickCore:
         schedule = schedule_from_config(cfg, self.tracked)
         n_cmd = int(round(schedule.duration / Ts)) + 1
         self.cmd_table = np.ascontiguousarray(schedule.evaluate(np.arange(n_cmd) * Ts))
-        self.law = LawAdapter(d, str(cfg.choice("loop.law")),
-                              cfg)
+        self.law = LawAdapter(d, ts.law, cfg)
         # The bound eps(t), t = seconds since the law engaged (constant design.eps when
         # [adaptation.bound] is absent). The law, the margin rules (the ratio is
         # ||e||_P / eps_k), telemetry, trip snapshots and the run log all use eps_k.
@@ -70,20 +71,18 @@ class TickCore:
         self.eps0 = float(self.bound.eps(0.0))
         self.eps_now = self.eps0
         channels = len(link.hello.channels) if link.hello is not None else rig.n
-        jump = cfg.vector("watchdog.jump_limit", rig.n, (0.5 * d.limits).tolist(),
-                          positive=True)
-        self.est = Estimator(rig.A, Ts, jump, channels=channels,
-                             cutoff_hz=cfg.number("estimator.cutoff_hz"))
+        self.est = Estimator(rig.A, Ts, ts.jump_limit, channels=channels,
+                             cutoff_hz=ts.estimator_cutoff_hz)
         self.watchdog = Watchdog.from_config(cfg, Ts, d.clamp_margin)
         self.sup = Supervisor(
-            settle_time=cfg.number("supervisor.settle_time"),
-            settle_rate_tol=cfg.number("supervisor.settle_rate_tol"),
+            settle_time=ts.settle_time,
+            settle_rate_tol=ts.settle_rate_tol,
             rate_states=tuple(j for _, j in rate_pairs(rig.A)),
-            disarm_action=cfg.choice("supervisor.disarm_action"),
-            stop_action=cfg.choice("supervisor.stop_action"),
+            disarm_action=ts.disarm_action,
+            stop_action=ts.stop_action,
         )
         self.fb_settings = settings_from_config(cfg, self.p)
-        self.engage_slew = cfg.number("supervisor.engage_slew")
+        self.engage_slew = ts.engage_slew
         self.c_offset: Array | None = None
         self.fb: Any = None
         self.sig = Signals()
@@ -99,8 +98,8 @@ class TickCore:
         self._sig_rules = list(self.watchdog.rules)
         self._sig_at = np.array([self.slot[f"sig_{r.id}"].start for r in self._sig_rules],
                                 dtype=np.intp)
-        pre_s = cfg.number("log.pre_capture_s")
-        post_s = cfg.number("log.post_capture_s")
+        pre_s = ts.pre_capture_s
+        post_s = ts.post_capture_s
         self.pre_n = max(1, int(round(pre_s / Ts)))
         self.post_n = int(round(post_s / Ts))
         self.ring = np.zeros((self.pre_n, self.row_len))
@@ -110,7 +109,7 @@ class TickCore:
         self.post_later: list[dict[str, Any]] = []
         self.row = np.zeros(self.row_len)
         self.config_hash = cfg.hash()
-        self.link_info = link_identity(settings.link or str(cfg.get("rig.link")))
+        self.link_info = link_identity(settings.link or ts.rig_link)
         self.run_name = run_name(rig.name, self.link_info["kind"])
         run_path, trip_path = log_paths(log_dir, self.run_name)
         self.run_path, self.trip_path = run_path, trip_path
@@ -137,7 +136,7 @@ class TickCore:
                                         daemon=True)
         self._writer.start()
         self.trips_written = 0
-        self.events_per_s = cfg.number("log.events_per_s")
+        self.events_per_s = ts.events_per_s
         """Most operator events written to the trip log per second (the rest counted)."""
         self._ev_window_t = -math.inf
         self._ev_count = 0
