@@ -28,6 +28,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "watch": ("runtime.cmd_watch", "open the live dashboard on a running rig"),
     "sweep": ("runtime.cmd_sweep", "run many uncertain plants, report the bound statistics"),
     "preflight": ("runtime.cmd_preflight", "go / no-go checks before arming hardware"),
+    "tune": ("runtime.cmd_tune", "search gains, clamp and eps that keep every swept plant inside"),
+    "compare": ("runtime.cmd_compare", "barrier law against the standard law over the same plants"),
     "hostcheck": ("runtime.cmd_hostcheck", "can this computer hold the loop's period?"),
     "replay": ("runtime.cmd_replay", "re-run a recorded run with other settings"),
     "config": ("runtime.cmd_config", "print the resolved config: every key, its unit and source"),
