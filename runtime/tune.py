@@ -116,7 +116,7 @@ def _trip_level(cfg: Config) -> float:
     return float(cfg.number("watchdog.margin_trip"))
 
 
-def evaluate(cfg: Config, overrides: list[str], plants: int, seed: int,
+def evaluate(cfg: Config, overrides: list[str], plants: int,
              number: int = 0, settings: dict[str, Any] | None = None) -> Candidate:
     """Judge one setting: design, verdict (nominal dry run), sweep over `plants` plants."""
     from runtime.sweep import run_sweep
@@ -143,7 +143,7 @@ def evaluate(cfg: Config, overrides: list[str], plants: int, seed: int,
         if nominal is None or nominal >= _trip_level(trial):
             cand.why = "the nominal dry run reaches the trip level"
             return cand
-        s = run_sweep(trial, plants=plants, seed=seed).summary
+        s = run_sweep(trial, plants=plants).summary  # the config's sweep seed: same plants
         cand.trip_rate = float(s["trip_fraction"] + s["diverged_fraction"])
         cand.bound_held_fraction = float(s["bound_held_fraction"])
         w = s["worst_margin_ratio"]
@@ -218,7 +218,7 @@ def tune(cfg: Config, *, trials: int = 40, seconds: float | None = None, plants:
             p = trial.suggest_categorical("period_factor", list(PERIOD_FACTORS))
             settings["period"] = _round(p * Ts0)
             overrides.append(f"loop.period={settings['period']!r}")
-        cand = evaluate(cfg, overrides, plants, seed, trial.number + 1, settings)
+        cand = evaluate(cfg, overrides, plants, trial.number + 1, settings)
         candidates.append(cand)
         for name, value in zip(("trip_rate", "bound_broken", "margin_over_trip"),
                                _constraints(cand, trip), strict=True):
@@ -255,7 +255,7 @@ def tune(cfg: Config, *, trials: int = 40, seconds: float | None = None, plants:
     ranked = sorted((c for c in candidates if c.feasible),
                     key=lambda c: (c.tracking_error, c.worst_margin_ratio))
     for cand in ranked[:CONFIRM_TRIES]:
-        conf = confirm(cfg, cand, seed)
+        conf = confirm(cfg, cand)
         if progress:
             progress(f"confirm trial {cand.number}: {conf['plants']} plants, trip rate "
                      f"{100 * conf['trip_rate']:.1f} % -> {'ok' if conf['ok'] else 'refused'}")
@@ -268,7 +268,7 @@ def tune(cfg: Config, *, trials: int = 40, seconds: float | None = None, plants:
     return result
 
 
-def confirm(cfg: Config, cand: Candidate, seed: int) -> dict[str, Any]:
+def confirm(cfg: Config, cand: Candidate) -> dict[str, Any]:
     """The sweep `corral preflight` runs (preflight.plants, its duration), on the candidate."""
     from runtime.sweep import run_sweep
 
@@ -284,8 +284,26 @@ def confirm(cfg: Config, cand: Candidate, seed: int) -> dict[str, Any]:
 
 
 # ------------------------------------------------------------------ the tuned file
+def _toml_value(v: Any) -> str:
+    """A parsed --set value written back as TOML."""
+    import json
+
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int | float):
+        return repr(v)
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + " }"
+    return json.dumps(str(v))
+
+
 def _override_pairs(overrides: list[str]) -> list[tuple[str, str]]:
-    return [(o.partition("=")[0], o.partition("=")[2]) for o in overrides]
+    from runtime.config import parse_value
+
+    return [(o.partition("=")[0].strip(), _toml_value(parse_value(o.partition("=")[2].strip())))
+            for o in overrides]
 
 
 def write_tuned(source: Path, overrides: list[str], out: Path) -> Path:
