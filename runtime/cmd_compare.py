@@ -18,6 +18,10 @@ from runtime.compare import compare, plot_compare, table
 from runtime.config import load_config, rig_name
 
 
+def _say(line: str) -> None:
+    print(line, file=sys.stderr, flush=True)
+
+
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Arguments of `corral compare`."""
     common_config_args(parser)
@@ -42,9 +46,8 @@ def main(args: argparse.Namespace) -> int:
     cfg = load_config(args.config, args.overrides)
     folder = output_folder(args.out if args.out is not None else
                            Path(str(cfg.get("log.dir"))) / "compare", "--out")
-    say = (lambda line: print(line, file=sys.stderr, flush=True))
     rows = compare(cfg, plants=args.plants, dry_runs=args.dry_runs,
-                   tune_trials=args.tune_trials, progress=say)
+                   tune_trials=args.tune_trials, progress=_say)
     name = rig_name(cfg)
     plot = plot_compare(rows, folder / f"compare-{Path(args.config).stem}.png",
                         f"{name}: barrier law against the standard law, {args.plants} plants "

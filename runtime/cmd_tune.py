@@ -21,6 +21,10 @@ from runtime.design import design_from_config
 from runtime.tune import plot_window, tradeoff_table, tune, write_tuned
 
 
+def _say(line: str) -> None:
+    print(line, file=sys.stderr, flush=True)
+
+
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Arguments of `corral tune`."""
     common_config_args(parser)
@@ -61,10 +65,9 @@ def main(args: argparse.Namespace) -> int:
     out = args.out if args.out is not None else (
         Path(str(cfg.get("log.dir"))) / "tune" / f"{stem}-tuned.toml")
     output_folder(out.parent, "--out")
-    say = (lambda line: print(line, file=sys.stderr, flush=True))
     result = tune(cfg, trials=args.trials, seconds=args.seconds, plants=args.plants,
                   seed=args.seed, per_group=args.per_group, tune_period=args.period,
-                  tune_eps=not args.keep_eps, tune_clamp=not args.keep_clamp, progress=say)
+                  tune_eps=not args.keep_eps, tune_clamp=not args.keep_clamp, progress=_say)
     trip = float(cfg.number("watchdog.margin_trip"))
     plot = plot_window(result, out.with_suffix(".png"), trip)
     best = result.best
