@@ -354,7 +354,10 @@ def plot_window(result: TuneResult, path: Path, trip: float) -> Path:
 
     key = f"gamma_{result.groups[0][0]}" if len(result.groups) == 1 else None
     fig, ax = plt.subplots(figsize=(7, 4))
-    xs_ok, ys_ok, xs_no, ys_no = [], [], [], []
+    xs_ok: list[float] = []
+    ys_ok: list[float] = []
+    xs_no: list[float] = []
+    ys_no: list[float] = []
     for c in result.candidates:
         g = (c.settings.get(key) if key else
              max(v for k, v in c.settings.items() if k.startswith("gamma_")))
@@ -371,7 +374,7 @@ def plot_window(result: TuneResult, path: Path, trip: float) -> Path:
         b = result.best
         gb = (b.settings.get(key) if key else
               max(v for k, v in b.settings.items() if k.startswith("gamma_")))
-        ax.scatter([gb], [b.worst_margin_ratio], s=160, facecolors="none",
+        ax.scatter([float(gb or 0.0)], [float(b.worst_margin_ratio or 0.0)], s=160, facecolors="none",
                    edgecolors="black", label="chosen")
     ax.axhline(trip, color="tab:orange", ls="--", label=f"trip level {trip:g}")
     ax.axhline(1.0, color="black", lw=0.8, label="bound")
