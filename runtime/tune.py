@@ -363,7 +363,7 @@ def plot_window(result: TuneResult, path: Path, trip: float) -> Path:
              max(v for k, v in c.settings.items() if k.startswith("gamma_")))
         y = c.worst_margin_ratio if c.worst_margin_ratio is not None else c.nominal_margin_ratio
         y = 1.5 if y is None or not math.isfinite(y) else min(y, 1.5)
-        (xs_ok if c.feasible else xs_no).append(g)
+        (xs_ok if c.feasible else xs_no).append(float(g or 0.0))
         (ys_ok if c.feasible else ys_no).append(y)
     ax.scatter(xs_no, ys_no, marker="x", color="tab:red", label="trips or breaks the bound")
     ax.scatter(xs_ok, ys_ok, marker="o", color="tab:green", label="every plant inside")
@@ -374,8 +374,8 @@ def plot_window(result: TuneResult, path: Path, trip: float) -> Path:
         b = result.best
         gb = (b.settings.get(key) if key else
               max(v for k, v in b.settings.items() if k.startswith("gamma_")))
-        ax.scatter([float(gb or 0.0)], [float(b.worst_margin_ratio or 0.0)], s=160, facecolors="none",
-                   edgecolors="black", label="chosen")
+        ax.scatter([float(gb or 0.0)], [float(b.worst_margin_ratio or 0.0)], s=160,
+                   facecolors="none", edgecolors="black", label="chosen")
     ax.axhline(trip, color="tab:orange", ls="--", label=f"trip level {trip:g}")
     ax.axhline(1.0, color="black", lw=0.8, label="bound")
     ax.set_xscale("log")
