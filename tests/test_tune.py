@@ -116,3 +116,12 @@ def test_tune_cli_json_and_tuned_file_passes_preflight(tmp_path: Path) -> None:
     pre = subprocess.run([sys.executable, "-m", "runtime.cli", "preflight", str(out),
                           "--plants", "20"], capture_output=True, text=True, cwd=ROOT)
     assert pre.returncode == 0, pre.stdout[-2000:]
+
+
+def test_regressor_groups_follow_the_config() -> None:
+    # configs/pedestal-rbf.toml: 8 named terms, a 7 x 7 radial-basis grid, 2 inputs
+    # (unknown_effectiveness augments the regressor with one entry per input)
+    design = design_from_config(load_config(ROOT / "configs" / "pedestal-rbf.toml"))
+    from runtime.tune import regressor_groups
+
+    assert regressor_groups(design) == [("terms", 0, 8), ("rbf", 8, 57), ("inputs", 57, 59)]
