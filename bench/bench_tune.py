@@ -11,8 +11,8 @@ import time
 from pathlib import Path
 
 from runtime.config import load_config
-from runtime.sweep import run_sweep
-from runtime.tune import tune
+from runtime.offline.sweep import run_sweep
+from runtime.offline.tune import tune
 
 ROOT = Path(__file__).resolve().parent.parent
 TRIALS, PLANTS = 12, 16

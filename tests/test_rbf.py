@@ -14,10 +14,10 @@ import numpy as np
 import pytest
 import scipy.linalg as sla
 
-from runtime.basis import basis_from_config
 from runtime.config import Config, load_config
-from runtime.design import design_from_config
-from runtime.rbf import grid, rbf_evaluate, residual_eps
+from runtime.method.basis import basis_from_config
+from runtime.method.design import design_from_config
+from runtime.method.rbf import grid, rbf_evaluate, residual_eps
 
 STATES = ("az", "el", "az_rate", "el_rate")
 
@@ -93,7 +93,7 @@ def test_residual_condition_value_and_report(rbf_cfg):
 
 @pytest.mark.parametrize("path", ["configs/pedestal-rbf.toml", "configs/pedestal-narrowing.toml"])
 def test_demo_is_feasible_and_its_dry_run_keeps_the_bound(path):
-    from runtime.dryrun import dry_run
+    from runtime.offline.dryrun import dry_run
 
     cfg = load_config(path)
     d = design_from_config(cfg)
@@ -111,7 +111,7 @@ def test_rbf_demo_needs_the_network(rbf_cfg):
     # every one inside: the demo is not vacuous. (Over the uncertainty, not on the nominal
     # plant: with design.limits at 0.03 rad the nominal plant alone is held by the named
     # terms, at 0.02 rad no setting kept the swept plants inside; see the config's comment.)
-    from runtime.sweep import run_sweep
+    from runtime.offline.sweep import run_sweep
 
     terms = run_sweep(rbf_cfg.with_overrides(['basis.kind="terms"']), plants=24).summary
     net = run_sweep(rbf_cfg, plants=24).summary

@@ -1,6 +1,6 @@
 """corral tune and corral compare, held against the sweep and the dry run they are built on.
 
-References: the feasible gain window comes from a grid sweep (`runtime.sweep.run_grid`,
+References: the feasible gain window comes from a grid sweep (`runtime.offline.sweep.run_grid`,
 the engine `corral sweep --grid` runs, independent of the optimiser); the comparison's
 figures from individual `run_sweep` and `dry_run` calls on the same plants. The matched
 gain gamma / eps is phi_d(0) = 1/eps of the rational barrier (exact formula, design brief).
@@ -14,11 +14,11 @@ from pathlib import Path
 
 import pytest
 
-from runtime.compare import compare, dry_run_plant
 from runtime.config import load_config
-from runtime.design import design_from_config
-from runtime.sweep import SweepSettings, draw_plants, run_grid, run_sweep
-from runtime.tune import tune, write_tuned
+from runtime.method.design import design_from_config
+from runtime.offline.compare import compare, dry_run_plant
+from runtime.offline.sweep import SweepSettings, draw_plants, run_grid, run_sweep
+from runtime.offline.tune import tune, write_tuned
 
 ROOT = Path(__file__).resolve().parent.parent
 PITCH = ROOT / "configs" / "pitch-stand.toml"
@@ -122,6 +122,6 @@ def test_regressor_groups_follow_the_config() -> None:
     # configs/pedestal-rbf.toml: 8 named terms, a 7 x 7 radial-basis grid, 2 inputs
     # (unknown_effectiveness augments the regressor with one entry per input)
     design = design_from_config(load_config(ROOT / "configs" / "pedestal-rbf.toml"))
-    from runtime.tune import regressor_groups
+    from runtime.offline.tune import regressor_groups
 
     assert regressor_groups(design) == [("terms", 0, 8), ("rbf", 8, 57), ("inputs", 57, 59)]
