@@ -151,7 +151,7 @@ def _chunk_task(raw: dict[str, Any], settings: SweepSettings, prm: Columns, inde
 def fingerprint(raw: dict[str, Any], settings: SweepSettings, chunk: int) -> str:
     """What makes two runs the same sweep: the config, the settings that change results,
     and the chunk layout (worker and thread counts do not)."""
-    fields = {k: v for k, v in dataclasses.asdict(settings).items() if k not in ("workers",)}
+    fields = {k: v for k, v in dataclasses.asdict(settings).items() if k not in ("workers", "chunk")}
     text = json.dumps([raw, fields, int(chunk)], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
@@ -203,8 +203,13 @@ class PartialFile:
         item = {"start": int(start),
                 "columns": {k: {"dtype": str(v.dtype), "values": v.tolist()}
                             for k, v in cols.items()}}
-        with self.path.open("a") as fh:
-            fh.write(json.dumps(item) + "\n")
+        with self.path.open("rb+") as fh:
+            fh.seek(0, 2)
+            if fh.tell():
+                fh.seek(-1, 2)
+                if fh.read(1) != b"\n":  # after a torn line: start on a line of its own
+                    fh.write(b"\n")
+            fh.write((json.dumps(item) + "\n").encode())
             fh.flush()
 
 
