@@ -151,7 +151,8 @@ def _chunk_task(raw: dict[str, Any], settings: SweepSettings, prm: Columns, inde
 def fingerprint(raw: dict[str, Any], settings: SweepSettings, chunk: int) -> str:
     """What makes two runs the same sweep: the config, the settings that change results,
     and the chunk layout (worker and thread counts do not)."""
-    fields = {k: v for k, v in dataclasses.asdict(settings).items() if k not in ("workers", "chunk")}
+    fields = {k: v for k, v in dataclasses.asdict(settings).items()
+              if k not in ("workers", "chunk")}
     text = json.dumps([raw, fields, int(chunk)], sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
