@@ -234,7 +234,8 @@ def run_sweep_chunked(cfg: Config, client: Any, plants: int | None = None,
     workers = worker_count(client)
     done_chunks: dict[int, Columns] = {}
     cs = min(settings.chunk, max(1, -(-N // (4 * workers)))) if chunk is None else settings.chunk
-    out_file = PartialFile(resume or partial) if (resume or partial) else None
+    where = resume or partial
+    out_file = PartialFile(where) if where is not None else None
     if resume is not None:
         assert out_file is not None
         # the chunk size is part of the fingerprint: try the file's own
