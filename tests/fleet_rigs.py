@@ -1,7 +1,7 @@
 """Serve simulated rigs' telemetry on a broker through the runtime's own MQTT bridge.
 
 ``python tests/fleet_rigs.py HOST PORT RIG=STATE [RIG=STATE ...]``
-(``--tls CA --user U --password-env VAR`` for a locked broker)
+(``--tls CA [--cert PEM --key PEM] --user U --password-env VAR`` for a locked broker)
 
 Each rig is a `runtime.telemetry.MqttBridge` (what `corral run --telemetry-mqtt` runs: decimated
 telemetry, the retained hello and mode, the mode topic's last will, trip summaries) fed with
@@ -58,7 +58,8 @@ async def serve(args: argparse.Namespace) -> None:
     for item in args.rigs:
         rig, _, state = item.partition("=")
         settings = MqttSettings(host=args.host, port=args.port, rig=rig, tls=bool(args.tls),
-                                ca_file=args.tls, username=args.user,
+                                ca_file=args.tls, cert_file=args.cert, key_file=args.key,
+                                username=args.user,
                                 password=os.environ.get(args.password_env or "", None))
         hello = {"rig": rig, "levels": {"warning": 0.8, "trip": 0.9}, "eps": 0.1,
                  "period": 0.001, "simulated": True}
@@ -91,6 +92,8 @@ def main() -> None:
     p.add_argument("port", type=int)
     p.add_argument("rigs", nargs="+")
     p.add_argument("--tls", default=None, metavar="CA")
+    p.add_argument("--cert", default=None)
+    p.add_argument("--key", default=None)
     p.add_argument("--user", default=None)
     p.add_argument("--password-env", default=None)
     args = p.parse_args()

@@ -165,21 +165,27 @@ def test_five_rigs_on_one_broker_in_the_fleet_view(mosquitto):  # noqa: F811
 USERS = {"fleet": "fleet-secret"}
 
 
-def test_the_fleet_reads_a_broker_with_a_password_and_tls():
-    # The watcher's side of a lab's broker: password file and TLS listener (tests/mqtt_broker.py)
+def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certificates():
+    # A lab's broker (tests/mqtt_broker.py): password file, TLS listener, client
+    # certificates required. The runtime's bridge publishes, the fleet view and the
+    # one-rig watcher read, each logging in with a password and presenting a certificate.
+    from runtime.watch_sources import MqttSource
+
     with tempfile.TemporaryDirectory(prefix="corral-fleet-") as folder:
-        broker = Broker(Path(folder), users=USERS, tls=True)
+        broker = Broker(Path(folder), users=USERS, tls=True, client_certs=True)
         broker.start()
         try:
-            ca = str(Path(folder) / "ca.crt")
+            ca, cert, key = (str(Path(folder) / n) for n in ("ca.crt", "client.crt",
+                                                              "client.key"))
+            login = dict(username="fleet", password=USERS["fleet"], tls=True, ca_file=ca)
             env = {**os.environ, "FLEET_PW": USERS["fleet"]}
             proc = serve(broker, "rig-a=running", "rig-b=warning",
-                         extra=("--tls", ca, "--user", "fleet", "--password-env", "FLEET_PW"),
-                         env=env)
+                         extra=("--tls", ca, "--cert", cert, "--key", key, "--user", "fleet",
+                                "--password-env", "FLEET_PW"), env=env)
             try:
-                async def main():
-                    source = FleetSource(broker.host, broker.port, username="fleet",
-                                         password=USERS["fleet"], tls=True, ca_file=ca)
+                async def fleet_view():
+                    source = FleetSource(broker.host, broker.port, cert_file=cert,
+                                         key_file=key, **login)
                     fleet = FleetState()
                     async with source:
                         async for rig, rec in source.fleet_records():
@@ -189,7 +195,25 @@ def test_the_fleet_reads_a_broker_with_a_password_and_tls():
                                 break
                     return [r[0] for r in fleet_rows(fleet)]
 
-                assert asyncio.run(asyncio.wait_for(main(), 120)) == ["rig-b", "rig-a"]
+                async def one_rig():
+                    source = MqttSource(broker.host, broker.port, "rig-b", cert_file=cert,
+                                        key_file=key, **login)
+                    async with source:
+                        async for rec in source.records():
+                            if rec.get("type") == "telemetry":
+                                return rec["ratio"]
+
+                async def without_certificate():
+                    source = FleetSource(broker.host, broker.port, **login)
+                    async with source:
+                        pass
+
+                assert asyncio.run(asyncio.wait_for(fleet_view(), 120)) == ["rig-b", "rig-a"]
+                assert asyncio.run(asyncio.wait_for(one_rig(), 120)) == 0.85
+                from aiomqtt import MqttError
+
+                with pytest.raises((MqttError, OSError)):
+                    asyncio.run(asyncio.wait_for(without_certificate(), 120))
             finally:
                 proc.terminate()
                 proc.wait(timeout=30)
