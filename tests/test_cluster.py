@@ -139,3 +139,24 @@ def test_cluster_without_dask_is_one_line(tmp_path):
     assert proc.returncode != 0
     assert "Traceback" not in proc.stderr
     assert "pip install -e '.[cluster]'" in proc.stderr
+
+
+def test_the_command_line_gives_the_same_statistics_on_a_cluster(tmp_path):
+    # `corral sweep ... --cluster local:2 --json` against the same sweep without --cluster
+    def sweep(*extra):
+        proc = subprocess.run(
+            [sys.executable, "-m", "runtime.cli", "sweep", DEMO, "--plants", "60",
+             "--duration", "0.3", "--seed", "3", "--json", "--no-plot", "--out", str(tmp_path),
+             *extra], capture_output=True, text=True, timeout=900,
+            env={**os.environ, "PYTHONPATH": os.getcwd()})
+        assert proc.returncode in (0, 1), proc.stderr
+        return json.loads(proc.stdout[proc.stdout.index("{"):])
+
+    here = sweep()
+    there = sweep("--cluster", "local:2")
+    timing = {"wall_seconds", "plant_steps_per_second", "workers", "chunk", "compile_seconds",
+              "cluster", "engine", "report_file"}
+    assert {k: v for k, v in here.items() if k not in timing} == \
+        {k: v for k, v in there.items() if k not in timing}
+    assert there["cluster"]["workers"] == 2 and there["cluster"]["partial_file"] is None
+    assert not list(tmp_path.glob("*.partial.jsonl"))  # removed once every chunk was in
