@@ -92,7 +92,7 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
         path = Path(str(cfg.get("log.dir"))) / f"{rig}.sock"
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
-                        "--rig NAME, or --replay FILE")
+                        "--rig NAME (or --mqtt alone for every rig), or --replay FILE")
     deadline = time.monotonic() + max(0.0, getattr(args, "wait", 0.0))
     while not Path(path).exists() and time.monotonic() < deadline:
         time.sleep(0.05)

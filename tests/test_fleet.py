@@ -219,3 +219,17 @@ def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certific
                 proc.wait(timeout=30)
         finally:
             broker.stop()
+
+
+def test_watch_with_mqtt_and_no_rig_is_the_fleet():
+    import argparse
+
+    from runtime.cmd_watch import add_arguments, make_source
+    from runtime.watch_sources import MqttSource
+
+    p = argparse.ArgumentParser()
+    add_arguments(p)
+    fleet = make_source(p.parse_args(["--mqtt", "127.0.0.1:1883", "--prefix", "lab/corral"]))
+    assert isinstance(fleet, FleetSource) and fleet.prefix == "lab/corral"
+    one = make_source(p.parse_args(["--mqtt", "127.0.0.1:1883", "--rig", "r1"]))
+    assert isinstance(one, MqttSource) and not isinstance(one, FleetSource)
