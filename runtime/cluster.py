@@ -30,6 +30,7 @@ import contextlib
 import dataclasses
 import hashlib
 import json
+import os
 import time
 from collections.abc import Callable, Hashable, Iterator, Sequence
 from pathlib import Path
@@ -212,6 +213,7 @@ class PartialFile:
                     fh.write(b"\n")
             fh.write((json.dumps(item) + "\n").encode())
             fh.flush()
+            os.fsync(fh.fileno())
 
 
 # ------------------------------------------------------------------ the sweep
@@ -238,6 +240,9 @@ def run_sweep_chunked(cfg: Config, client: Any, plants: int | None = None,
     out_file = PartialFile(where) if where is not None else None
     if resume is not None:
         assert out_file is not None
+        if not Path(resume).is_file():
+            raise ClusterError(f"--resume {resume}: no such file; give the partial results "
+                               "file an interrupted sweep printed")
         # the chunk size is part of the fingerprint: try the file's own
         with Path(resume).open() as fh:
             try:
@@ -245,7 +250,7 @@ def run_sweep_chunked(cfg: Config, client: Any, plants: int | None = None,
                 cs = int(head.get("chunk", cs)) if isinstance(head, dict) else cs
             except ValueError:
                 pass
-        size, done_chunks = out_file.read(fingerprint(cfg.raw, settings, cs), N)
+        _size, done_chunks = out_file.read(fingerprint(cfg.raw, settings, cs), N)
     print_ = fingerprint(cfg.raw, settings, cs)
     if out_file is not None and resume is None:
         out_file.start(print_, N, cs)

@@ -160,3 +160,8 @@ def test_the_command_line_gives_the_same_statistics_on_a_cluster(tmp_path):
         {k: v for k, v in there.items() if k not in timing}
     assert there["cluster"]["workers"] == 2 and there["cluster"]["partial_file"] is None
     assert not list(tmp_path.glob("*.partial.jsonl"))  # removed once every chunk was in
+
+
+def test_resume_from_a_missing_file_is_one_line(cfg, tmp_path):
+    with pytest.raises(ClusterError, match="no such file"):
+        run_sweep_chunked(cfg, None, plants=10, duration=0.1, resume=tmp_path / "none.jsonl")
