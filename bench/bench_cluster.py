@@ -3,7 +3,7 @@
 Usage: python bench/bench_cluster.py [--plants 2000] [--duration 2] [--chunk 250]
        [--config configs/pedestal-sim.toml]
 
-Baseline, measured in the same run: the same plants through `runtime.cluster` with no
+Baseline, measured in the same run: the same plants through `runtime.offline.cluster` with no
 cluster (the chunks one after another in this process, one numba thread: what one worker
 does). Then `--cluster local:1` and `local:2` (LocalCluster of worker processes, one
 numba thread each), each after a warm-up sweep so the workers have loaded the compiled
@@ -22,8 +22,8 @@ import time
 import numba
 import numpy as np
 
-from runtime.cluster import open_client, run_sweep_chunked
 from runtime.config import load_config
+from runtime.offline.cluster import open_client, run_sweep_chunked
 
 
 def rate(cfg, client, plants, duration, chunk):

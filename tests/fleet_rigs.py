@@ -3,7 +3,8 @@
 ``python tests/fleet_rigs.py HOST PORT RIG=STATE [RIG=STATE ...]``
 (``--tls CA [--cert PEM --key PEM] --user U --password-env VAR`` for a locked broker)
 
-Each rig is a `runtime.telemetry.MqttBridge` (what `corral run --telemetry-mqtt` runs: decimated
+Each rig is a `runtime.realtime.telemetry.MqttBridge` (what `corral run --telemetry-mqtt`
+runs: decimated
 telemetry, the retained hello and mode, the mode topic's last will, trip summaries) fed with
 telemetry maps of the documented shape (docs/telemetry.md) at 50 Hz, a rig's state one of:
 
@@ -28,7 +29,7 @@ import time
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from drivers.mqtt_link import MqttSettings  # noqa: E402
-from runtime.telemetry import MqttBridge  # noqa: E402
+from runtime.realtime.telemetry import MqttBridge  # noqa: E402
 
 TRIP = {"id": 1, "rule": "margin", "tick": 4321, "t": 4.321, "action": "fallback",
         "value": 0.93, "threshold": 0.9}

@@ -1,7 +1,7 @@
 """Sweeps on a Dask cluster of processes: the same plants give the same results as the local
 run; a killed worker's chunks run again; an interrupted sweep resumes from its partial file.
 
-Reference for "the same": the local sweep (`runtime.sweep.run_sweep`), itself held to the
+Reference for "the same": the local sweep (`runtime.offline.sweep.run_sweep`), itself held to the
 single-plant dry run and the numpy reference in tests/test_sweep.py. The re-run of a lost
 worker's tasks is the Dask scheduler's documented behaviour (tasks in memory or processing on
 a worker that leaves are rescheduled); here it is exercised by killing a worker process.
@@ -19,11 +19,11 @@ import numpy as np
 import pytest
 
 from runtime.config import load_config
-from runtime.sweep import run_sweep
+from runtime.offline.sweep import run_sweep
 
 distributed = pytest.importorskip("distributed")
 
-from runtime.cluster import (  # noqa: E402
+from runtime.offline.cluster import (  # noqa: E402
     ClusterError,
     PartialFile,
     open_client,

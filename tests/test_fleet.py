@@ -1,8 +1,9 @@
 """The fleet view: five rigs on one real mosquitto, read through textual's pilot; the
 ordering by urgency as a pure function.
 
-The rigs are the runtime's own MQTT bridge (`runtime.telemetry.MqttBridge`, what `corral run
---telemetry-mqtt` runs) fed with telemetry maps of the documented shape (tests/fleet_rigs.py).
+The rigs are the runtime's own MQTT bridge (`runtime.realtime.telemetry.MqttBridge`, what
+`corral run --telemetry-mqtt` runs) fed with telemetry maps of the documented shape
+(tests/fleet_rigs.py).
 A rig killed with SIGKILL leaves its broker to publish its last will (MQTT 5.0, section 3.1.2.5:
 the Will Message is published when the network connection is closed without a DISCONNECT);
 the fleet shows it as silent. Ordering rule (trips first, then lost contact, then warnings,
@@ -23,7 +24,7 @@ from pathlib import Path
 import pytest
 from mqtt_broker import Broker, make_certificates, mosquitto  # noqa: F401  (the fixture)
 
-from runtime.fleet import (
+from runtime.dashboard.fleet import (
     RANK_LINK,
     RANK_QUIET,
     RANK_RUNNING,
@@ -35,7 +36,7 @@ from runtime.fleet import (
     make_app,
     urgency,
 )
-from runtime.watch_sources import FleetSource
+from runtime.dashboard.sources import FleetSource
 
 HELLO = {"type": "hello", "levels": {"warning": 0.8, "trip": 0.9}}
 
@@ -169,7 +170,7 @@ def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certific
     # A lab's broker (tests/mqtt_broker.py): password file, TLS listener, client
     # certificates required. The runtime's bridge publishes, the fleet view and the
     # one-rig watcher read, each logging in with a password and presenting a certificate.
-    from runtime.watch_sources import MqttSource
+    from runtime.dashboard.sources import MqttSource
 
     with tempfile.TemporaryDirectory(prefix="corral-fleet-") as folder:
         broker = Broker(Path(folder), users=USERS, tls=True, client_certs=True)
@@ -225,7 +226,7 @@ def test_watch_with_mqtt_and_no_rig_is_the_fleet():
     import argparse
 
     from runtime.cmd_watch import add_arguments, make_source
-    from runtime.watch_sources import MqttSource
+    from runtime.dashboard.sources import MqttSource
 
     p = argparse.ArgumentParser()
     add_arguments(p)
