@@ -225,7 +225,7 @@ def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certific
 def test_watch_with_mqtt_and_no_rig_is_the_fleet():
     import argparse
 
-    from runtime.cmd_watch import add_arguments, make_source
+    from runtime.cli.cmd_watch import add_arguments, make_source
     from runtime.dashboard.sources import MqttSource
 
     p = argparse.ArgumentParser()
