@@ -395,6 +395,8 @@ class TickCore:
         self.durable_trip_id = 0
         """Highest trip id whose record is on disk (fsynced): nothing announces a later one."""
         self.internal: BaseException | None = None
+        self.device_status = 0
+        """The status bits of the last sample (telemetry ``status``; docs/wire-protocol.md)."""
         """The exception that ended the run through the `internal` trip (None: none)."""
 
         # live state
@@ -465,7 +467,8 @@ class TickCore:
                 "envelope": np.asarray(d.envelope).tolist(), "eps": self.eps0,
                 "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
-                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck}
+                "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck,
+                "status_flags": list(getattr(self.link.hello, "status_flags", ()) or ())}
 
     def _start_fallback(self, kind: str) -> None:
         self.law.frozen = True
@@ -542,6 +545,8 @@ class TickCore:
             for op, reply in reqs:
                 self._handle_request(op, reply)
 
+        if sample is not None:
+            self.device_status = int(sample.status)
         x = self.est.update(sample, now)
         self.x = x
         if sample is not None:
@@ -1015,7 +1020,8 @@ class TickCore:
                      "lateness_p99_us": _finite(p99),
                      "deadline_misses": stats.misses if stats is not None else 0,
                      "ticks": self.tick},
-            "link": link, "trip": self.current_trip if self.sup.latched else None,
+            "link": link, "status": self.device_status,
+            "trip": self.current_trip if self.sup.latched else None,
             "trips": list(self.trips[-20:]),
         }
 
@@ -1305,6 +1311,11 @@ class Runner:
         gc.freeze()
         try:
             async with self.link:
+                # The device's own status flags are known once its hello has come.
+                flags = list(getattr(self.link.hello, "status_flags", ()) or ())
+                self.telemetry.hello["status_flags"] = flags
+                if self.mqtt is not None:
+                    self.mqtt.hello["status_flags"] = flags
                 async with asyncio.TaskGroup() as tg:
                     tel = tg.create_task(self.telemetry.serve(), name="telemetry")
                     mqtt = (tg.create_task(self.mqtt.run(), name="mqtt-telemetry")
