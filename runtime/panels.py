@@ -269,6 +269,8 @@ def trace_lines(values: Sequence[float], width: int, height: int, top: float,
 
 
 # -- the margin chart over time -----------------------------------------------
+CHART_LABEL = 13
+"""Width of the margin chart's row labels ("0.90 trip ┤")."""
 LEVEL_RULE = "┄"
 BOUND_RULE = "━"
 
@@ -300,33 +302,48 @@ def chart_levels(warning: float, trip: float) -> list[tuple[float, str]]:
     return [(1.0, "bound"), (trip, "trip"), (warning, "warn")]
 
 
+def chart_band(height: int, warning: float, trip: float) -> float:
+    """The ratio one chart row spans: the whole range 0..1 when the rows allow it,
+    else the smallest gap between the levels, so bound, trip and warning always fall
+    on rows of their own (the chart then shows the top of the range, where they are)."""
+    full = 1.0 / max(1, height - 1)
+    gaps = [g for g in (1.0 - trip, trip - warning) if g > 0]
+    return min(full, min(gaps)) if gaps else full
+
+
 def margin_chart(times: Sequence[float], ratios: Sequence[float], t_end: float,
                  window_s: float, width: int, height: int, warning: float,
                  trip: float) -> list[str]:
     """The margin ratio over the last `window_s` seconds as text rows, top row first.
 
-    Rows span ``[0, 1 + 1/height)`` so the bound (1) sits inside the top row. Every
-    row is prefixed by an 11-character label; a row that holds a level (bound, trip,
-    warning) is labelled with that level's own value and name, and shows the level
-    as a rule where the trace does not reach it. The last two rows are the time axis:
-    ``-N s`` at the left edge, the middle, and ``now`` at the right.
+    Row r spans ``[top - (r + 1) d, top - r d)`` with ``d = chart_band(...)`` and
+    ``top = 1 + d``, so the bound (1) is the bottom edge of the top row and each
+    level is the bottom edge of its own row. Every row starts with a
+    `CHART_LABEL`-character label; a level's row is labelled with that level's own
+    value and name and shows the level as a rule where the trace does not reach it.
+    Each column is the largest ratio in its slice of time (`resample_max`), drawn
+    in eighths of a row. The last two rows are the time axis: ``-N s`` at the left,
+    the middle, and ``now`` at the right.
     """
-    label_w = 11
+    label_w = CHART_LABEL
     plot_w = max(4, width - label_w)
     cols = resample_max(times, ratios, t_end, window_s, plot_w)
-    top = 1.0 + 1.0 / height
-    band = top / height
+    d = chart_band(height, warning, trip)
+    top = 1.0 + d
     rules = chart_levels(warning, trip)
+
+    def row_of(v: float) -> int:
+        return math.ceil((top - v) / d - 1e-9) - 1
+
     rows: list[str] = []
     for r in range(height):
-        hi = top - r * band
-        lo = hi - band
-        here = [(v, name) for v, name in rules if lo <= v < hi]
+        lo = top - (r + 1) * d
+        here = [(v, name) for v, name in rules if row_of(v) == r]
         if here:
             label = "/".join(f"{v:.2f}" for v, _ in here) + " " + "/".join(n for _, n in here)
             fill = BOUND_RULE if any(name == "bound" for _, name in here) else LEVEL_RULE
         else:
-            label = f"{(lo + hi) / 2:.2f}" if r % 2 == 0 else ""
+            label = f"{max(lo, 0.0):.2f}" if (r % 2 == 1 or r == height - 1) else ""
             fill = " "
         label = label[:label_w - 2].rjust(label_w - 2) + " ┤"
         chars = []
@@ -334,7 +351,7 @@ def margin_chart(times: Sequence[float], ratios: Sequence[float], t_end: float,
             if math.isnan(v):
                 chars.append(fill)
                 continue
-            frac = (v - lo) / band
+            frac = (v + 1e-9 - lo) / d
             if frac >= 1:
                 chars.append(BLOCKS[-1])
             elif frac > 0:
@@ -381,6 +398,9 @@ def strip_lines(values: Sequence[float], width: int, height: int) -> tuple[list[
     lo, hi = strip_scale(values)
     shifted = [v - lo for v in values]
     rows = trace_lines(shifted, width, height, hi - lo)
+    vals = [v for v in values if not math.isnan(v)]
+    if vals and max(vals) - min(vals) <= 1e-9 * max(1.0, abs(max(vals))):
+        return rows, f"constant {fmt(vals[0], 4)}"
     return rows, f"{fmt(lo, 3)} .. {fmt(hi, 3)}"
 
 
