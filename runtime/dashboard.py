@@ -60,7 +60,17 @@ COMPACT_WIDTH, COMPACT_HEIGHT = 120, 40
 """Below either, the dashboard shows only the glance strip, the margin chart and events."""
 
 
-class MarginPanel(Static):
+class _Panel(Static):
+    """A panel whose drawing depends on its size: a new size asks for a redraw."""
+
+    def on_resize(self, event: events.Resize) -> None:
+        """Draw again at the new size (the glance strip above may have grown)."""
+        dash = self.app
+        if isinstance(dash, Dashboard):
+            dash._dirty = True
+
+
+class MarginPanel(_Panel):
     """||e||_P / eps now and over the last WINDOW_S seconds against its levels."""
 
     DEFAULT_CSS = """
@@ -95,7 +105,7 @@ class MarginPanel(Static):
         self.update(text)
 
 
-class AxisPanel(Static):
+class AxisPanel(_Panel):
     """Per tracked axis: command (c), reference model (r) and measured (y) over time."""
 
     DEFAULT_CSS = """
@@ -115,7 +125,7 @@ class AxisPanel(Static):
         self.update(text)
 
 
-class EventPanel(Static):
+class EventPanel(_Panel):
     """Mode changes, requests and trips, time-stamped, marked until acknowledged."""
 
     DEFAULT_CSS = """
@@ -134,7 +144,7 @@ class EventPanel(Static):
         self.update(text)
 
 
-class LearningPanel(Static):
+class LearningPanel(_Panel):
     """Effective learning rate gamma*phi_d, phi_d, per-step gain against its cap, weights."""
 
     DEFAULT_CSS = """

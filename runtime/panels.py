@@ -303,12 +303,18 @@ def chart_levels(warning: float, trip: float) -> list[tuple[float, str]]:
 
 
 def chart_band(height: int, warning: float, trip: float) -> float:
-    """The ratio one chart row spans: the whole range 0..1 when the rows allow it,
-    else the smallest gap between the levels, so bound, trip and warning always fall
-    on rows of their own (the chart then shows the top of the range, where they are)."""
-    full = 1.0 / max(1, height - 1)
+    """The ratio one chart row spans.
+
+    The whole range 0..1 when the rows allow it; else the smallest gap between the
+    levels, so bound, trip and warning fall on rows of their own (the chart then shows
+    the top of the range, where they are); and never so fine that the warning level
+    falls below the last row (on very few rows two levels then share one).
+    """
+    rows_below = max(1, height - 1)
+    full = 1.0 / rows_below
     gaps = [g for g in (1.0 - trip, trip - warning) if g > 0]
-    return min(full, min(gaps)) if gaps else full
+    d = min(full, min(gaps)) if gaps else full
+    return max(d, (1.0 - min(warning, trip)) / rows_below)
 
 
 def margin_chart(times: Sequence[float], ratios: Sequence[float], t_end: float,
@@ -340,7 +346,8 @@ def margin_chart(times: Sequence[float], ratios: Sequence[float], t_end: float,
         lo = top - (r + 1) * d
         here = [(v, name) for v, name in rules if row_of(v) == r]
         if here:
-            label = "/".join(f"{v:.2f}" for v, _ in here) + " " + "/".join(n for _, n in here)
+            label = (f"{here[0][0]:.2f} {here[0][1]}" if len(here) == 1
+                     else "/".join(f"{v:.2f}" for v, _ in here))
             fill = BOUND_RULE if any(name == "bound" for _, name in here) else LEVEL_RULE
         else:
             label = f"{max(lo, 0.0):.2f}" if (r % 2 == 1 or r == height - 1) else ""
