@@ -361,7 +361,7 @@ def margin_chart(times: Sequence[float], ratios: Sequence[float], t_end: float,
             frac = (v + 1e-9 - lo) / d
             if frac >= 1:
                 chars.append(BLOCKS[-1])
-            elif frac > 0:
+            elif frac > 1e-6:
                 chars.append(BLOCKS[max(1, int(frac * 8))])
             else:
                 chars.append(fill)

@@ -195,14 +195,18 @@ def test_chart_columns_keep_the_largest_ratio_of_their_time_slice():
     assert math.isnan(panels.resample_max([], [], 2.0, 2.0, 1)[0])
 
 
-def test_a_bar_at_the_trip_level_fills_the_rows_up_to_the_trip_row():
+def test_a_bar_at_the_trip_level_fills_the_rows_up_to_the_trip_rule():
     # Six rows (an 80x24 terminal): rows of 0.1, each level the bottom edge of its row.
-    rows = panels.margin_chart([1.0], [0.9], 1.0, 1.0, panels.CHART_LABEL + 1, 6, 0.8, 0.9)
     assert panels.chart_band(6, 0.8, 0.9) == pytest.approx(0.1)
-    col = [r[-1] for r in rows[:6]]
+    w = panels.CHART_LABEL + 1
+    rows = panels.margin_chart([1.0], [0.9], 1.0, 1.0, w, 6, 0.8, 0.9)
     trip_row = next(i for i, r in enumerate(rows) if " trip ┤" in r)
-    assert col[trip_row] == panels.BLOCKS[-1]  # U+2588 full block: reaches the level
-    assert col[trip_row - 1] == panels.BOUND_RULE  # and not the bound's row above it
+    col = [r[-1] for r in rows[:6]]
+    assert col[trip_row + 1] == panels.BLOCKS[-1]  # U+2588 full block up to the level
+    assert col[trip_row] == panels.LEVEL_RULE  # exactly at it: nothing above the rule
+    # Half way between trip and bound: half of the trip row (U+2584 lower half block).
+    rows = panels.margin_chart([1.0], [0.95], 1.0, 1.0, w, 6, 0.8, 0.9)
+    assert rows[trip_row][-1] == "▄" and rows[trip_row - 1][-1] == panels.BOUND_RULE
 
 
 def test_the_learning_strip_stays_readable_when_the_rate_is_constant():
