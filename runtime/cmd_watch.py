@@ -44,6 +44,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="replay speed (1 = as recorded, 0 = at once)")
     parser.add_argument("--wait", type=float, default=0.0, metavar="S",
                         help="wait up to S seconds for the runtime's socket to appear")
+    parser.add_argument("--progress", type=Path, metavar="FILE",
+                        help="with --socket: open the dashboard at once and show FILE's last "
+                        "lines (the runtime's console: preflight progress) until the socket "
+                        "is up")
 
 
 def make_source(args: argparse.Namespace) -> TelemetrySource:
@@ -78,6 +82,8 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
                         "--rig NAME, or --replay FILE")
+    if getattr(args, "progress", None) is not None:
+        return SocketSource(path)  # the dashboard waits for it, showing the progress
     deadline = time.monotonic() + max(0.0, getattr(args, "wait", 0.0))
     while not Path(path).exists() and time.monotonic() < deadline:
         time.sleep(0.05)
@@ -94,6 +100,14 @@ def main(args: argparse.Namespace) -> int:
     source = make_source(args)
 
     async def run() -> None:
+        progress = getattr(args, "progress", None)
+        if progress is not None and isinstance(source, SocketSource):
+            try:
+                await Dashboard(source, progress=progress,
+                                wait_s=max(1.0, float(args.wait))).run_async()
+            finally:
+                await source.close()
+            return
         async with source:
             await Dashboard(source).run_async()
 
