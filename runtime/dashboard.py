@@ -14,6 +14,7 @@ and MQTT (`runtime.watch_sources`).
 from __future__ import annotations
 
 import asyncio
+import time
 from collections import deque
 from collections.abc import Sequence
 from pathlib import Path
@@ -441,7 +442,7 @@ class Dashboard(App[None]):
             self.status = f"{rec.get('op', '?')}: {ok}. {rec.get('message', '')}".strip()
         elif kind == "trip":
             self.status = "TRIP: " + panels.trip_line(rec)
-        line = panels.event_line(rec)
+        line = panels.event_line(rec, time.time())
         if line is not None:
             self.events.append(line)
             if len(self.events) > 500:

@@ -529,12 +529,15 @@ def preflight_line(hello: Record) -> str:
 
 
 # -- the event list -------------------------------------------------------------
-def event_line(rec: Record) -> str | None:
-    """One record (event, trip, reply) as a time-stamped line; None for other records."""
+def event_line(rec: Record, received: float | None = None) -> str | None:
+    """One record (event, trip, reply) as a time-stamped line; None for other records.
+
+    The stamp is the record's own wall time (``t_wall``), else `received` (when the
+    dashboard got it: trip summaries and replies carry none)."""
     import time as _time
 
     kind = rec.get("type")
-    t_wall = rec.get("t_wall")
+    t_wall = rec.get("t_wall", received)
     stamp = (_time.strftime("%H:%M:%S", _time.localtime(float(t_wall)))
              if isinstance(t_wall, (int, float)) else "--:--:--")
     if kind == "event":

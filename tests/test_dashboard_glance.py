@@ -229,6 +229,17 @@ def test_device_flags_map_names_to_bits_from_eight():
     assert panels.device_flags({}, {"status": 0xFFFF}) == []
 
 
+def test_event_lines_are_stamped_with_their_own_time_else_the_arrival():
+    import time
+
+    t = time.mktime((2026, 12, 4, 21, 30, 5, 0, 0, -1))
+    assert panels.event_line({"type": "event", "t_wall": t, "kind": "mode",
+                              "detail": "idle -> settling"}) == "21:30:05 mode: idle -> settling"
+    line = panels.event_line({"type": "trip", **TRIP}, received=t)
+    assert line == "21:30:05 TRIP margin: 0.913 vs 0.9 -> baseline (tick 3960)"
+    assert panels.event_line({"type": "telemetry"}) is None
+
+
 def test_event_rows_mark_what_is_not_acknowledged():
     lines = ["a", "b", "c"]
     assert panels.event_rows(lines, 1, 3) == ["events: 2 to acknowledge (k)", "! b", "! c"]
