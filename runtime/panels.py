@@ -430,7 +430,7 @@ def axis_traces(hello: Record, history: Sequence[Record], width: int,
         if name not in states:
             continue
         i = list(states).index(name)
-        series = {"c": [], "r": [], "y": []}
+        series: dict[str, list[float]] = {"c": [], "r": [], "y": []}
         for rec in recs:
             c, xr, x = rec.get("c") or [], rec.get("xr") or [], rec.get("x") or []
             series["c"].append(_num(c[j]) if j < len(c) else math.nan)
