@@ -4,7 +4,7 @@ large one (200x50), driven by textual's own test pilot (`App.run_test`).
 What must be on screen at both sizes (issue 13): the margin ratio, the mode, the latch,
 the first-out trip with its explanation in words, and the margin chart's levels on rows
 labelled with their own values. The words of a timing trip come from
-`runtime.hostcheck.explain_trip` (one source of those words); the checks here read the
+`runtime.realtime.hostcheck.explain_trip` (one source of those words); the checks here read the
 text actually drawn on the screen, not a widget's own content.
 """
 
@@ -15,10 +15,10 @@ import math
 
 import pytest
 
-from runtime import panels
-from runtime.dashboard import ConfirmArm, Dashboard
-from runtime.hostcheck import explain_trip
-from runtime.watch_sources import RecordedSource
+from runtime.dashboard import panels
+from runtime.dashboard.app import ConfirmArm, Dashboard
+from runtime.dashboard.sources import RecordedSource
+from runtime.realtime.hostcheck import explain_trip
 from tests.test_dashboard import HELLO, TRIP, settle, telemetry, until
 
 SIZES = [(80, 24), (200, 50)]
@@ -110,7 +110,9 @@ def test_events_are_acknowledged_with_one_key():
             await settle(app, pilot)
             assert app.acknowledged == 0 and len(app.events) == 2
             await pilot.press("k")
+            await pilot.pause(0.3)
             await until(pilot, lambda: not app._dirty)
+            await pilot.pause(0.2)
             text = "\n".join(screen_text(app))
             assert "events: 2, all acknowledged" in text
             assert "! " not in text
@@ -142,19 +144,14 @@ def test_device_status_flags_show_when_the_hello_declares_them():
     recs = recording(None, hello)
     recs[-1] = dict(recs[-1], status=0x100 | 0x08)  # bit 8: the first declared flag
 
-    async def run():
-        app = Dashboard(RecordedSource(records=recs, speed=0))
-        async with app.run_test(size=(80, 24)) as pilot:
-            await settle(app, pilot)
-            text = "\n".join(screen_text(app))
-            assert "device: ESTOP SET, interlock clear" in text
-    asyncio.run(run())
+    _, rows = asyncio.run(_shown((80, 24), recs))
+    assert "device: ESTOP SET, interlock clear" in "\n".join(rows)
 
 
 def test_startup_progress_shows_while_the_runtime_is_not_there_yet(tmp_path):
     progress = tmp_path / "run.console"
     progress.write_text("corral: preflight: sweeping 200 simulated plants before arming\n")
-    from runtime.watch_sources import SocketSource
+    from runtime.dashboard.sources import SocketSource
 
     async def run():
         app = Dashboard(SocketSource(tmp_path / "absent.sock"), progress=progress,

@@ -12,7 +12,7 @@ from __future__ import annotations
 import pytest
 
 from bench.fault_matrix import MATRIX
-from runtime.records import read_trip_log
+from runtime.records.logs import read_trip_log
 from tests.runtime_helpers import run_unpaced
 
 AT = 1.0
