@@ -47,7 +47,7 @@ import numpy as np
 from numpy.typing import NDArray
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
-from drivers.base import STATUS_COMMAND_TIMEOUT, Command, Hello, Sample
+from drivers.base import STATUS_COMMAND_TIMEOUT, STATUS_OUTPUTS_OFF, Command, Hello, Sample
 from drivers.mqtt_link import (
     HOST_HELLO_RIG_ID,
     LinkClosed,
@@ -65,6 +65,7 @@ from drivers.mqtt_link import (
 from drivers.serial_link import DeviceEndpoint
 from drivers.wire import (
     PROTOCOL_VERSION,
+    STATUS_DEVICE_BASE_BIT,
     CommandGuard,
     Stop,
     WireError,
@@ -75,6 +76,9 @@ from sim_rigs.faults import LINK_KINDS, FaultInjector, FaultSchedule
 from sim_rigs.kernel import CompiledPlant
 
 _RING = 4096
+ESTOP_FLAG = "estop"
+"""The served rig's declared status flag: its (simulated) emergency-stop input."""
+ESTOP_BIT = 1 << STATUS_DEVICE_BASE_BIT
 REALTIME_PRIORITY = 40
 """SCHED_FIFO priority of the device's threads when permitted (a real rig has its own CPU)."""
 SWITCH_INTERVAL_S = 100e-6
@@ -501,7 +505,11 @@ class RigDevice:
             units=spec.state_units, sample_rate_hz=1.0 / self.period, output_names=spec.inputs,
             output_limits=limits, output_units=spec.input_units,
             command_timeout_s=float(command_timeout_s),
+            status_flags=(ESTOP_FLAG,),
         )
+        self.estop_pressed = False
+        """The simulated emergency-stop input: while True the outputs are off and every
+        sample carries the ``estop`` status flag (bit `ESTOP_BIT`)."""
         self.transport: Transport | None = None
         self.seq = 0
         self.ticks = 0
@@ -615,6 +623,9 @@ class RigDevice:
         elif not down and not tr.connected:
             tr.reconnect()
         u, status = tr.outputs(now)
+        if self.estop_pressed:
+            # A pressed e-stop removes power whatever the host commands.
+            u, status = (0.0,) * len(u), status | STATUS_OUTPUTS_OFF | ESTOP_BIT
         if status & STATUS_COMMAND_TIMEOUT:
             self.timeouts += 1
         self.applied, self.status = u, status

@@ -53,6 +53,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="replay speed (1 = as recorded, 0 = at once)")
     parser.add_argument("--wait", type=float, default=0.0, metavar="S",
                         help="wait up to S seconds for the runtime's socket to appear")
+    parser.add_argument("--progress", type=Path, metavar="FILE",
+                        help="with --socket: open the dashboard at once and show FILE's last "
+                        "lines (the runtime's console: preflight progress) until the socket "
+                        "is up")
 
 
 def mqtt_options(args: argparse.Namespace) -> tuple[str, int, dict[str, Any]]:
@@ -95,7 +99,9 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
         path = Path(str(cfg.get("log.dir"))) / f"{run_name(rig, kind)}.sock"
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
-                        "--rig NAME (or --mqtt alone for every rig), or --replay FILE")
+                         "--rig NAME (or --mqtt alone for every rig), or --replay FILE")
+    if getattr(args, "progress", None) is not None:
+        return SocketSource(path)  # the dashboard waits for it, showing the progress
     deadline = time.monotonic() + max(0.0, getattr(args, "wait", 0.0))
     while not Path(path).exists() and time.monotonic() < deadline:
         time.sleep(0.05)
@@ -114,6 +120,14 @@ def main(args: argparse.Namespace) -> int:
     async def run() -> None:
         if isinstance(source, FleetSource):
             await run_fleet(source)
+            return
+        progress = getattr(args, "progress", None)
+        if progress is not None and isinstance(source, SocketSource):
+            try:
+                await Dashboard(source, progress=progress,
+                                wait_s=max(1.0, float(args.wait))).run_async()
+            finally:
+                await source.close()
             return
         async with source:
             await Dashboard(source).run_async()

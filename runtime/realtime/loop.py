@@ -407,6 +407,8 @@ class TickCore:
         self.durable_trip_id = 0
         """Highest trip id whose record is on disk (fsynced): nothing announces a later one."""
         self.internal: BaseException | None = None
+        self.device_status = 0
+        """The status bits of the last sample (telemetry ``status``; docs/wire-protocol.md)."""
         """The exception that ended the run through the `internal` trip (None: none)."""
 
         # live state
@@ -478,7 +480,8 @@ class TickCore:
                 "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
                 "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck,
-                "link": self.link_info, "run_name": self.run_name}
+                "link": self.link_info, "run_name": self.run_name,
+                "status_flags": list(getattr(self.link.hello, "status_flags", ()) or ())}
 
     def _start_fallback(self, kind: str) -> None:
         self.law.frozen = True
@@ -555,6 +558,8 @@ class TickCore:
             for op, reply in reqs:
                 self._handle_request(op, reply)
 
+        if sample is not None:
+            self.device_status = int(sample.status)
         x = self.est.update(sample, now)
         self.x = x
         if sample is not None:
@@ -1058,7 +1063,8 @@ class TickCore:
                      "lateness_p99_us": _finite(p99),
                      "deadline_misses": stats.misses if stats is not None else 0,
                      "ticks": self.tick},
-            "link": link, "trip": self.current_trip if self.sup.latched else None,
+            "link": link, "status": self.device_status,
+            "trip": self.current_trip if self.sup.latched else None,
             "trips": list(self.trips[-20:]),
         }
 
@@ -1354,6 +1360,11 @@ class Runner:
         failure: BaseException | None = None
         try:
             async with self.link:
+                # The device's own status flags are known once its hello has come.
+                flags = list(getattr(self.link.hello, "status_flags", ()) or ())
+                self.telemetry.hello["status_flags"] = flags
+                if self.mqtt is not None:
+                    self.mqtt.hello["status_flags"] = flags
                 async with asyncio.TaskGroup() as tg:
                     tel = tg.create_task(self.telemetry.serve(), name="telemetry")
                     mqtt = (tg.create_task(self.mqtt.run(), name="mqtt-telemetry")
