@@ -69,11 +69,16 @@ MATRIX: dict[str, tuple[str, tuple[str, ...], str]] = {
 
 
 SERVED = ROOT / "configs" / "pedestal-served.toml"
-TOLERANT = ["watchdog.stale_periods=50", "watchdog.rules.overrun.enabled=false"]
-"""The served links run with the link tests' tolerant timing (tests/test_link_loss.py):
-stale after 50 periods (100 ms at 500 Hz), the host overrun rule off, so this loaded
-2-core machine's own stalls do not trip first. The served fault sizes are scaled to it."""
-SERVED_AT = 3.0
+TOLERANT = ["watchdog.stale_periods=10", "watchdog.rules.overrun.enabled=false"]
+"""The served links run with tolerant timing, as the link tests do on this loaded machine
+(tests/test_link_loss.py): the host overrun rule off and the stale rule widened so the
+2-core machine's own stalls do not trip first. Widened to 10 periods (20 ms at 500 Hz),
+not the link tests' 50 (100 ms): with 100 ms, every lost-data kind (corrupt, malformed,
+link_delay, a frozen reading) tripped `predicted_crossing` on the held estimate 18-75 ms
+into the fault, before `stale` could (measured with this script; docs/faults.md). The
+``none`` row checks that no fault trips nothing at this setting. The served fault sizes
+are scaled to it."""
+SERVED_AT = 6.0
 """Device time of the fault on the served links (the host connects, settles and arms first)."""
 SERVED_AFTER = 2.0
 """Seconds the host runs after the fault starts."""
@@ -82,12 +87,12 @@ SERVED_AFTER = 2.0
 # runs as in MATRIX. ``None`` text: a matrix row the script performs itself.
 SERVED_SPECS: dict[str, tuple[str | None, tuple[str, ...], str]] = {
     "none": ("", (), "no fault: the served recipe with the tolerant timing"),
-    "delay": ("delay:ticks=100", ("stale",), "readings 100 periods (200 ms) old"),
-    "link_delay": ("link_delay:seconds=0.3", ("stale",), "every sample 300 ms late"),
-    "burst": ("burst:ticks=100", ("stale", "seq_gap"),
-              "samples held 100 periods, then only the newest"),
-    "overrun": ("overrun:seconds=0.15", ("stale", "link_loss"),
-                "the device's clock stalls 150 ms every period (a host overrun is the "
+    "delay": ("delay:ticks=25", ("stale",), "readings 25 periods (50 ms) old"),
+    "link_delay": ("link_delay:seconds=0.05", ("stale",), "every sample 50 ms late"),
+    "burst": ("burst:ticks=25", ("stale", "seq_gap"),
+              "samples held 25 periods, then only the newest"),
+    "overrun": ("overrun:seconds=0.05", ("stale", "link_loss"),
+                "the device's clock stalls 50 ms every period (a host overrun is the "
                 "tick's own rule: the sim row)"),
     "malformed": ("malformed", ("link_loss", "stale"),
                   "a sample one reading short: refused against the hello"),
