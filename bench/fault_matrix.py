@@ -23,6 +23,7 @@ import re
 import sys
 import tempfile
 from pathlib import Path
+from typing import Any
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
@@ -130,7 +131,7 @@ class _Background:
             self.error = exc
 
 
-def run_served(kind: str, link: str, base: Path, broker: object | None = None) -> dict:
+def run_served(kind: str, link: str, base: Path, broker: Any = None) -> dict:
     """One row on a served link: `corral rig serve` (a subprocess, its own clock, the fault
     at device time SERVED_AT) and the runtime rig-clocked over ``serial:`` (a real
     pseudo-terminal) or ``mqtt://`` (a real mosquitto), in real time.
@@ -151,7 +152,7 @@ def run_served(kind: str, link: str, base: Path, broker: object | None = None) -
         head, _, tail = text.partition(":")
         fault_args = ["--fault", f"{head}@{SERVED_AT}" + (f":{tail}" if tail else "")]
     where = (["--serial", "--pty-link", str(d / "rig.tty")] if link == "serial"
-             else ["--mqtt", broker.url])  # type: ignore[attr-defined]
+             else ["--mqtt", broker.url])
     cmd = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())",
            "rig", "serve", str(SERVED), *where, *fault_args,
            *[a for kv in TOLERANT for a in ("--set", kv)]]
@@ -165,7 +166,7 @@ def run_served(kind: str, link: str, base: Path, broker: object | None = None) -
             return {"rule": None, "after_ms": None, "action": None,
                     "error": "rig serve printed nothing"}
         url = (f"serial:{first}" if link == "serial"
-               else f"mqtt://{broker.url}/pedestal-sim")  # type: ignore[attr-defined]
+               else f"mqtt://{broker.url}/pedestal-sim")
         cfg = load_config(SERVED, [f"log.dir={d}", *TOLERANT, "supervisor.settle_time=0.2",
                                    "log.pre_capture_s=0.2", "log.post_capture_s=0.1"])
         runner = Runner(cfg, RunSettings(duration=None, auto_arm=True, link=url,
@@ -190,7 +191,7 @@ def run_served(kind: str, link: str, base: Path, broker: object | None = None) -
             if kind == "device_kill":
                 dev.send_signal(signal.SIGKILL)
             elif kind == "broker_restart":
-                broker.restart()  # type: ignore[attr-defined]
+                broker.restart()
         end = t_fault + SERVED_AFTER
         while time.monotonic() < end and bg.thread.is_alive():
             time.sleep(0.05)
@@ -247,6 +248,10 @@ def run_one(kind: str, text: str, base: Path) -> dict:
     return _first(summary)
 
 
+Row = tuple[str, str, dict, tuple[str, ...], str, "str | None"]
+"""kind, link, result, right first-outs, why, fault text (None: run by the script)."""
+
+
 def verdict(res: dict, right: tuple[str, ...], text: str | None) -> str:
     """right / MISSED / WRONG / below threshold / not applicable, for one row."""
     if text is None and not right:
@@ -262,18 +267,20 @@ def verdict(res: dict, right: tuple[str, ...], text: str | None) -> str:
     return f"WRONG (expected {' or '.join(right) or 'none'})"
 
 
-def table(rows: list[tuple[str, str, dict, tuple[str, ...], str, str | None]]) -> str:
+def table(rows: list[Row]) -> str:
     lines = ["| kind | link | first-out | time to trip | action | verdict | fault |",
              "|---|---|---|---|---|---|---|"]
     for kind, link, res, right, why, text in rows:
         rule = res["rule"] or ("" if text is None and not right else "none")
         after = "" if res["after_ms"] is None else f"{res['after_ms']:.0f} ms"
+        if res.get("retries"):
+            after += f" (run {res['retries'] + 1}: load tripped first before)"
         lines.append(f"| {kind} | {link} | {rule} | {after} | {res['action'] or ''} | "
                      f"{verdict(res, right, text)} | {why} |")
     return "\n".join(lines)
 
 
-def bad_rows(rows: list[tuple[str, str, dict, tuple[str, ...], str, str | None]]) -> list:
+def bad_rows(rows: list[Row]) -> list[Row]:
     """Rows whose verdict is not right / below threshold / not applicable."""
     return [r for r in rows if verdict(r[2], r[3], r[5]) not in
             ("right", "no trip (below threshold by design)", "not applicable")]
@@ -288,7 +295,7 @@ def main() -> int:
                     help="links to run (default: all three; serial serves the rig over a "
                          "pty, mqtt through a mosquitto this script starts)")
     args = ap.parse_args()
-    rows = []
+    rows: list[Row] = []
     with tempfile.TemporaryDirectory() as tmp:
         broker = None
         try:
@@ -304,6 +311,7 @@ def main() -> int:
                 for kind in kinds:
                     if args.only and kind not in args.only:
                         continue
+                    text: str | None
                     if link == "sim":
                         text, right, why = MATRIX[kind]
                         res = run_one(kind, text, Path(tmp))
@@ -312,7 +320,14 @@ def main() -> int:
                         if text is None and not right:
                             res = {"rule": None, "after_ms": None, "action": None}
                         else:
-                            res = run_served(kind, link, Path(tmp), broker)
+                            # A trip before the fault is this loaded machine's, not the
+                            # fault's: run the row again (at most twice; the table says so).
+                            for attempt in range(3):
+                                res = run_served(kind, link, Path(tmp) / f"try{attempt}",
+                                                 broker)
+                                if not res.get("before"):
+                                    break
+                            res["retries"] = attempt
                     rows.append((kind, link, res, right, why, text))
                     print(f"{kind:20s} {link:6s} {res['rule']!s:20s} "
                           f"{res['after_ms']!s:>10.10s} ms {res['action']!s} "
