@@ -65,9 +65,11 @@ MQTT_ROWS = ["corrupt", "duplicate", "broker_restart"]
 
 
 def _served_row(kind: str, link: str, tmp_path, broker=None) -> None:
-    from bench.fault_matrix import run_served, served_spec
+    from bench.fault_matrix import realtime_broker, run_served, served_spec
 
-    _, right, _ = served_spec(kind)
+    _, right, _ = served_spec(kind, link)
+    if broker is not None:
+        realtime_broker(broker)
     res = run_served(kind, link, tmp_path, broker)
     assert res.get("error") in (None, ""), res
     assert res["rule"] is not None, f"{kind} on {link}: no trip"
