@@ -25,7 +25,7 @@ ROOT = Path(__file__).resolve().parents[1]
 DRY = """
 import json
 from runtime.config import load_config
-from runtime.dryrun import dry_run
+from runtime.offline.dryrun import dry_run
 c = load_config({config!r})
 best = 0.0
 for _ in range(3):
@@ -37,7 +37,7 @@ print(json.dumps([best, r.summary["max_margin_ratio"]]))
 SWEEP = """
 import json
 from runtime.config import load_config
-from runtime.sweep import run_sweep
+from runtime.offline.sweep import run_sweep
 c = load_config({config!r})
 r = run_sweep(c, plants={plants}, duration={duration}, workers=2, engine="compiled")
 print(json.dumps([r.summary["plant_steps_per_second"], r.summary["worst_margin_ratio"]]))

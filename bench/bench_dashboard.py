@@ -26,8 +26,8 @@ DEMO = ROOT / "configs" / "pedestal-sim.toml"
 
 DASHBOARD = """
 import asyncio, sys
-from runtime.dashboard import Dashboard
-from runtime.watch_sources import SocketSource
+from runtime.dashboard.app import Dashboard
+from runtime.dashboard.sources import SocketSource
 async def main():
     async with SocketSource(sys.argv[1]) as src:
         app = Dashboard(src)
@@ -40,7 +40,7 @@ asyncio.run(main())
 
 def one_run(seconds: float, attached: bool) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
-        cmd = [sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--headless", "--arm",
+        cmd = [sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), "--headless", "--arm",
                "--duration", str(seconds), "--json", "--set", f"log.dir={tmp}",
                "--set", "watchdog.overrun_misses=100000"]
         run = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,

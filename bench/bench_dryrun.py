@@ -22,7 +22,7 @@ import time
 from pathlib import Path
 
 from runtime.config import load_config
-from runtime.dryrun import dry_run
+from runtime.offline.dryrun import dry_run
 
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "pedestal-sim.toml"
 
@@ -30,10 +30,10 @@ COLD = """
 import json, time
 t0 = time.perf_counter()
 from runtime.config import load_config
-from runtime.dryrun import dry_run
+from runtime.offline.dryrun import dry_run
 imp = time.perf_counter() - t0
 s = dry_run(load_config({path!r}, ["commands.duration=0.01"])).summary
-from runtime.fast import warm_up
+from runtime.kernels.fast import warm_up
 law = warm_up()
 print(json.dumps({{"import": imp, "compile": s["compile_seconds"], "law": law}}))
 """
@@ -85,7 +85,7 @@ def main() -> None:
         cold = cold_compile()
         print(f"cold cache: numba compile of the dry-run kernels {cold['compile']:.2f} s, "
               f"of the stand-alone law tick (FastLaw) {cold['law']:.2f} s more "
-              f"(import of runtime.dryrun {cold['import']:.2f} s)")
+              f"(import of runtime.offline.dryrun {cold['import']:.2f} s)")
 
 
 if __name__ == "__main__":

@@ -1,13 +1,13 @@
 """The platform floor: timer lateness of the runtime's clock on this host, quiet and loaded.
 
-Paces an empty tick with `runtime.clock.DeadlineClock` (the clock `corral run`
+Paces an empty tick with `runtime.realtime.clock.DeadlineClock` (the clock `corral run`
 and `corral hostcheck` use) at the config's period and prints lateness p50 /
 p99 / max, the worst stall and the deadline misses, first with nothing added,
 then while N CPU hogs (plain busy loops at normal priority, each ending by
 itself after the run, bounded) compete for the cores; each case at SCHED_FIFO
 when this process may use it and at normal priority (``loop.realtime = false``),
 so the effect of priority rights shows beside the load's. The verdict column is
-`runtime.hostcheck.verdict` at the config's thresholds. Figures only; no
+`runtime.realtime.hostcheck.verdict` at the config's thresholds. Figures only; no
 assertions.
 
     python bench/bench_host.py                   # 5 s per case, hogs = cores
@@ -37,7 +37,7 @@ def hogs(n: int, seconds: float) -> list[subprocess.Popen]:
 
 def main() -> int:
     from runtime.config import load_config
-    from runtime.hostcheck import host_facts, measure, thresholds_from_config, verdict
+    from runtime.realtime.hostcheck import host_facts, measure, thresholds_from_config, verdict
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--config", default=str(ROOT / "configs" / "pedestal-sim.toml"))
@@ -56,7 +56,7 @@ def main() -> int:
           f"{facts['load_1min']:.2f} (1 min) at start; governor "
           f"{facts['governor'] or 'not exposed'}; SCHED_FIFO "
           f"{'possible' if facts['realtime_rights']['sched_fifo_possible'] else 'refused'}")
-    print(f"clock: runtime.clock.DeadlineClock at {th.period_s * 1e3:g} ms, empty tick, "
+    print(f"clock: runtime.realtime.clock.DeadlineClock at {th.period_s * 1e3:g} ms, empty tick, "
           f"{args.seconds:g} s per case; thresholds stale {th.stale_periods:g} periods "
           f"(stall budget {th.stall_budget_s * 1e3:.2f} ms), overrun {th.overrun_misses:g} "
           f"in {th.overrun_window}")

@@ -19,9 +19,9 @@ from pathlib import Path
 import numpy as np
 
 from runtime.config import load_config
-from runtime.design import Design, design_from_config
-from runtime.fast import FastLaw, warm_up
-from runtime.law import AdaptiveLaw
+from runtime.kernels.fast import FastLaw, warm_up
+from runtime.method.design import Design, design_from_config
+from runtime.method.law import AdaptiveLaw
 
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "pedestal-sim.toml"
 STATES = ("az", "el", "az_rate", "el_rate")

@@ -44,9 +44,9 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def main() -> int:
-    from runtime.clock import naive_asyncio_lateness
     from runtime.config import load_config
-    from runtime.loop import Runner, RunSettings
+    from runtime.realtime.clock import naive_asyncio_lateness
+    from runtime.realtime.loop import Runner, RunSettings
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seconds", type=float, default=10.0)
@@ -118,7 +118,7 @@ def main() -> int:
 
 
 # ------------------------------------------------------------------ --link serial
-CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
 
 
 def _pct(a: Any) -> str:
@@ -132,7 +132,7 @@ def _pct(a: Any) -> str:
 def _floor_child(kind: str, seconds: float) -> dict[str, Any]:
     """No corral code: a SCHED_FIFO thread sleeping to 1 ms deadlines ("sleep"), or a
     pseudo-terminal one-way delay with both ends at SCHED_FIFO ("pty"); delays in us."""
-    from runtime.clock import try_realtime
+    from runtime.realtime.clock import try_realtime
 
     if kind == "sleep":
         try_realtime(40)
@@ -181,7 +181,7 @@ def _floor(kind: str, seconds: float) -> list[float]:
 def bench_serial(args: argparse.Namespace) -> int:
     """Rig-clocked run against `corral rig serve --serial`; prints the figures."""
     from runtime.config import load_config
-    from runtime.loop import Runner, RunSettings
+    from runtime.realtime.loop import Runner, RunSettings
 
     tmp = tempfile.mkdtemp(prefix="corral-bench-")
     serve = subprocess.Popen([*CORRAL, "rig", "serve", args.config, "--serial", "--json",

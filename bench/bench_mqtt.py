@@ -133,7 +133,7 @@ def main() -> None:
         broker.start()
         try:
             serve = subprocess.Popen(
-                [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())",
+                [sys.executable, "-m", "runtime.cli",
                  "rig", "serve", str(root / "configs" / "pedestal-sim.toml"), "--mqtt",
                  broker.url, "--set", f"loop.period={1.0 / RATE_HZ}", "--set",
                  "adaptation.gamma=0.5", "--duration", str(seconds + 3), "--json"],

@@ -1,4 +1,5 @@
-"""Sweep throughput: plant-steps per second of `runtime.sweep` engines vs per-plant scipy solve_ivp.
+"""Sweep throughput: plant-steps per second of `runtime.offline.sweep` engines vs per-plant
+scipy solve_ivp.
 
 Usage: python bench/bench_sweep.py [--plants 2000,8000] [--duration 5] [--workers 2]
        [--substeps 4,1] [--reference-plants 200] [--repeat 2] [--ivp-plants 3]
@@ -35,15 +36,15 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from runtime.config import load_config
-from runtime.design import design_from_config
-from runtime.dryrun import plant_from_config
-from runtime.law import AdaptiveLaw
-from runtime.sweep import draw_plants, run_sweep
+from runtime.method.design import design_from_config
+from runtime.method.law import AdaptiveLaw
+from runtime.offline.dryrun import plant_from_config
+from runtime.offline.sweep import draw_plants, run_sweep
 
 
 def ivp_rate(cfg, plants: int, duration: float) -> tuple[float, float]:
     """Plant-steps per second of per-plant solve_ivp (RK45, ZOH per tick); and worst ratio."""
-    from runtime.commands import schedule_from_config, tracked_names
+    from runtime.method.commands import schedule_from_config, tracked_names
     from sim_rigs.plant import RigPlant
 
     d = design_from_config(cfg)
@@ -73,7 +74,7 @@ def ivp_rate(cfg, plants: int, duration: float) -> tuple[float, float]:
 
 def cold_compile(config: str) -> float | None:
     """Seconds to compile the sweep kernel with an empty numba cache (fresh subprocess)."""
-    code = ("from runtime.config import load_config; from runtime.sweep import run_sweep; "
+    code = ("from runtime.config import load_config; from runtime.offline.sweep import run_sweep; "
             f"r = run_sweep(load_config({config!r}, []), plants=1, duration=0.01, workers=1, "
             "engine='compiled'); print(r.summary['compile_seconds'])")
     with tempfile.TemporaryDirectory() as tmp:

@@ -29,8 +29,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from runtime.config import load_config  # noqa: E402
-from runtime.loop import Runner, RunSettings  # noqa: E402
-from runtime.records import load_trips  # noqa: E402
+from runtime.realtime.loop import Runner, RunSettings  # noqa: E402
+from runtime.records.logs import load_trips  # noqa: E402
 
 DEMO = ROOT / "configs" / "pedestal-sim.toml"
 AT = 1.5

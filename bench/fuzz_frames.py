@@ -130,7 +130,7 @@ def adopt(link: Any, hello: Hello = HELLO) -> None:
 
 
 def _estimator() -> Any:
-    from runtime.estimator import Estimator
+    from runtime.realtime.estimator import Estimator
 
     A = np.array([[0, 0, 1, 0], [0, 0, 0, 1], [0, 0, -1, 0], [0, 0, 0, -1]], dtype=float)
     return Estimator(A, 1.0 / RATE, np.full(4, 0.5), channels=4)

@@ -3,7 +3,7 @@
 What lives here: `load_config` (file + `--set key=value` overrides), the
 `ConfigError` that names the field and the fix, and small typed readers the
 other modules use to pull validated values out of the raw table. What does
-not: the design math (`runtime.design`) and rig models (`sim_rigs`); they
+not: the design math (`runtime.method.design`) and rig models (`sim_rigs`); they
 raise `ConfigError` through the readers here when a value is unusable.
 
 Every key is declared once in `runtime.schema` (type, unit, range, default,

@@ -56,7 +56,7 @@ EPS = "eps"
 PAIR = "pair"
 """``[lo, hi]`` with lo <= hi."""
 SEGMENTS = "segments"
-"""A list of command segments ``{at, kind, ...}`` (checked by `runtime.commands`)."""
+"""A list of command segments ``{at, kind, ...}`` (checked by `runtime.method.commands`)."""
 TABLES = "tables"
 """An array of tables (``[[faults]]``, checked by `sim_rigs.faults`)."""
 CHECKED = "checked"
@@ -185,7 +185,7 @@ def _named(ref: str) -> tuple[str, ...]:
 
 
 def _rule_ids(raw: dict[str, Any]) -> tuple[str, ...]:
-    return _named("runtime.watchdog:RULE_IDS")
+    return _named("runtime.guard.watchdog:RULE_IDS")
 
 
 # ----------------------------------------------------------------- the declarations
@@ -243,7 +243,7 @@ KEYS: tuple[Key, ...] = (
     key("adaptation.law", CHOICE, "barrier", doc="barrier-modified or standard MRAC",
         options=("barrier", "standard")),
     key("adaptation.barrier", CHOICE, "rational", doc="barrier family",
-        options="runtime.barrier:BARRIERS"),
+        options="runtime.method.barrier:BARRIERS"),
     key("adaptation.gamma", VECTOR, REQUIRED, "1/s", "adaptation gain, one or per regressor",
         positive=True),
     key("adaptation.eps", EPS, "from_limits", "||e||_P",
@@ -257,7 +257,7 @@ KEYS: tuple[Key, ...] = (
     key("adaptation.input_regressor_scale", CHECKED, "u_max", "input units",
         "divides the nominal input in the augmented regressor: u_max, none or numbers"),
     key("adaptation.leakage", CHOICE, "none", doc="leakage modification",
-        options="runtime.modifiers:LEAKAGES"),
+        options="runtime.method.modifiers:LEAKAGES"),
     key("adaptation.sigma0", NUMBER, Required("with leakage = \"sigma\""), "1/s",
         "sigma-modification rate", positive=True),
     key("adaptation.mu", NUMBER, Required("with leakage = \"e\""), "1",
@@ -273,10 +273,10 @@ KEYS: tuple[Key, ...] = (
         "assumed bound on what the basis leaves unexplained", minimum=0.0),
     key("adaptation.bound", TABLE, OPTIONAL, doc="a time-varying bound eps(t) (else constant)"),
     key("adaptation.bound.kind", CHOICE, "constant", doc="shape of eps(t)",
-        options="runtime.bound:KINDS"),
+        options="runtime.method.bound:KINDS"),
     key("adaptation.bound.on_violation", CHOICE, "refuse",
         doc="a schedule narrowing faster than c_bar/2: refuse or slow it",
-        options="runtime.bound:ON_VIOLATION"),
+        options="runtime.method.bound:ON_VIOLATION"),
     key("adaptation.bound.eps0", NUMBER, Derived("adaptation.eps"), "||e||_P",
         "bound at t = 0", positive=True),
     key("adaptation.bound.eps_inf", NUMBER, Required("exponential, widen_on_command"),
@@ -350,7 +350,7 @@ KEYS: tuple[Key, ...] = (
         positive=True),
     key("operator.request_burst", NUMBER, 20.0, "requests", "burst allowance", minimum=1.0),
     # [watchdog]
-    key("watchdog", TABLE, OPTIONAL, doc="rule thresholds (runtime/watchdog.py)"),
+    key("watchdog", TABLE, OPTIONAL, doc="rule thresholds (runtime/guard/watchdog.py)"),
     key("watchdog.margin_warning", NUMBER, 0.8, "||e||_P/eps", "warning level", positive=True),
     key("watchdog.margin_trip", NUMBER, 0.9, "||e||_P/eps", "margin trip level",
         positive=True, maximum=1.0),
@@ -375,7 +375,7 @@ KEYS: tuple[Key, ...] = (
     key("watchdog.rules", TABLE, OPTIONAL, doc="per-rule settings [watchdog.rules.<id>]"),
     key("watchdog.rules.*", TABLE, OPTIONAL, doc="settings of one rule"),
     key("watchdog.rules.*.reaction", CHOICE, Derived("the rule's DEFAULT_REACTIONS"),
-        doc="what a trip does", options="runtime.watchdog:REACTIONS"),
+        doc="what a trip does", options="runtime.guard.watchdog:REACTIONS"),
     key("watchdog.rules.*.on_delay_s", NUMBER, Derived("the rule's own (0)"), "s",
         "time over the threshold before it trips", minimum=0.0),
     key("watchdog.rules.*.deadband", NUMBER, Derived("the rule's own"), "signal units",
@@ -447,7 +447,8 @@ KEYS: tuple[Key, ...] = (
     key("sweep.seed", INTEGER, Derived("plant.seed"), doc="draw seed", minimum=0),
     key("sweep.workers", INTEGER, Derived("the CPU count"), doc="worker processes", minimum=1),
     key("sweep.chunk", INTEGER, 8000, "plants", "plants per work item", minimum=1),
-    key("sweep.engine", CHOICE, "auto", doc="sweep engine", options="runtime.sweep:ENGINES"),
+    key("sweep.engine", CHOICE, "auto", doc="sweep engine",
+        options="runtime.offline.sweep:ENGINES"),
     key("sweep.latency_ticks", INTEGER, 0, "ticks", "input delay in the sweep's plants",
         minimum=0, maximum=1000),
     key("sweep.noise", FLAG, True, doc="sensor noise in the sweep's plants"),

@@ -21,7 +21,7 @@ pseudo-terminal, behind a stable symlink so a host can reopen it after a
 disconnect) and `MqttDeviceTransport` (device side of the rig topics, with a
 last will marking it offline). What does not live here: the wire codec
 (`drivers.wire`), the host links (`drivers.serial_link`, `drivers.mqtt_link`),
-the command line (`runtime.cmd_rig`).
+the command line (`runtime.cli.cmd_rig`).
 """
 
 from __future__ import annotations

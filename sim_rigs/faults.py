@@ -34,7 +34,7 @@ channel.
 
 What lives here: `Fault`, `parse_fault`, `FaultSchedule`, `FaultInjector`.
 What does not: the plant (`sim_rigs.pedestal`), the link (`sim_rigs.link`)
-and the watchdog that should catch each fault (`runtime.watchdog`).
+and the watchdog that should catch each fault (`runtime.guard.watchdog`).
 """
 
 from __future__ import annotations

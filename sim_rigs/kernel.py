@@ -1,35 +1,35 @@
-"""The compiled plant: ONE numba kernel that interprets a rig's term table.
+"""The compiled plant: numba code generated from a rig's term table, once per rig.
 
-`pack_rig(spec)` codes a rig (`sim_rigs.rigfile.RigSpec`) into two flat arrays,
-the way `runtime.fast` codes a basis:
+`step_source(spec)` writes the rig's RK4 step as straight-line Python (each distinct factor
+evaluated once a stage, each term a multiply-add into its row, A's and B's non-zeros
+unrolled, scalar locals, no interpretation at run time); `step_source(spec, LANES)` the same
+for LANES plants interleaved, with `setup_source` for their per-plant constants. `compiled(spec)`
+puts these and the dry-run loop and sweep kernel templates of `runtime.kernels.fast` into one module
+file named by a hash of its text and of the sources its compiled code depends on, imports it
+and lets numba cache it on disk (so a stale kernel is never loaded after an edit). The term
+table stays the single source: `sim_rigs.plant.RigPlant` (numpy) is the reference,
+`tests/test_rig_plant.py` holds the generated code to it with every term kind non-zero, on
+both built-in rigs and on seeded random term tables.
 
-- ``code`` (int64): header [n, m, T, F, nA, nB, o_terms, o_lam, o_A, o_B, NU, o_fac]
-  (states, inputs, terms, factors per term at most, non-zeros of A and B, distinct
-  factors, offsets), then per term [row, param index (-1: none), factor count, the
-  indices of its factors among the distinct ones], per input the effectiveness
-  parameter index (-1: 1), per input the driven row, the (i, j) of A's and B's
-  non-zeros, and per distinct factor (kind, state, width parameter index (-1: the
-  literal));
-- ``mat`` (float64): A's and B's non-zero values, per term its coef, per distinct
-  factor (k, literal width).
+Speed tricks, all exact to rounding: tanh skipped where it rounds to +-1 (`fast_tanh`); sin
+and cos of an angle from their values at the start of the step by angle addition
+(`trig_near`), and of its double or triple by the multiple-angle formulas; a factor computed
+only when a term with a non-zero coefficient needs it (a switched-off stick-slip friction
+costs nothing); one reciprocal per width, so the derivative divides nothing.
 
-`plant_prepare` turns a plant's parameters into constants once a step (coef *
-param per term, k or 1 / width per distinct factor, Lambda_j), so the derivative
-divides nothing; each distinct factor (tanh of a rate, say, shared by a Coulomb
-and a stick-slip term) is evaluated once, and a term whose coefficient is zero (a
-switched-off friction) costs nothing.
-
-`pack_params(spec, params)` gives the parameter vector(s) in `spec.params`
-order. `plant_deriv`, `plant_step` (RK4 with substeps, input saturated) and
-`plant_measure` (noise pre-drawn, then quantised) are the equations of
-`sim_rigs.plant.RigPlant`; `tests/test_rig_plant.py` checks them against it with
-every term kind non-zero. The dry run, the sweep, the in-process link and the
-served device all step plants through these functions.
+`pack_rig(spec)` codes a rig's shape into flat arrays (the loops read its sizes, `work_width`);
+`pack_params(spec, params)` gives the parameter vector(s) in `spec.params` order;
+`plant_measure` is the sensor reading (noise pre-drawn, then quantised), inlined.
 """
 
 from __future__ import annotations
 
+import hashlib
+import importlib.util
 import math
+import os
+import sys
+from pathlib import Path
 from typing import Any
 
 import numba
@@ -104,143 +104,7 @@ def pack_params(spec: RigSpec, params: dict[str, Any]) -> Array:
     return np.ascontiguousarray(np.stack([np.ravel(c) for c in cols], axis=1))
 
 
-@numba.njit(cache=True)
-def plant_prepare(code: Any, mat: Array, prm: Array, lsc: Array,
-                  tc: Array) -> None:  # pragma: no cover - jit
-    """The per-plant constants `plant_deriv` reads, into tc: per input Lambda_j lsc_j, per
-    term coef * param, per distinct factor k (sin, cos) or 1 / width (tanh, gauss) and
-    whether any term with a non-zero coefficient needs it."""
-    m = code[1]
-    T = code[2]
-    F = code[3]
-    o_terms = code[6]
-    o_lam = code[7]
-    NU = code[10]
-    o_fac = code[11]
-    oT = code[4] + code[5]
-    for j in range(m):
-        li = code[o_lam + j]
-        tc[j] = (prm[li] if li >= 0 else 1.0) * lsc[j]
-    for u in range(NU):
-        kind = code[o_fac + 3 * u]
-        if kind == K_TANH or kind == K_GAUSS:
-            wi = code[o_fac + 3 * u + 2]
-            tc[m + T + u] = 1.0 / (prm[wi] if wi >= 0 else mat[oT + T + 2 * u + 1])
-        else:
-            tc[m + T + u] = mat[oT + T + 2 * u]
-        tc[m + T + NU + u] = 0.0
-    for t in range(T):
-        c = o_terms + t * (3 + F)
-        pi = code[c + 1]
-        val = mat[oT + t] * (prm[pi] if pi >= 0 else 1.0)
-        tc[m + t] = val
-        if val != 0.0:
-            for q in range(code[c + 2]):
-                tc[m + T + NU + code[c + 3 + q]] = 1.0
-
-
 @numba.njit(cache=True, inline="always")
-def plant_deriv(x: Array, v: Array, code: Any, mat: Array, tc: Array, dist: Array,
-                dx: Array) -> None:  # pragma: no cover - jit
-    """dx = f(x, v) for one plant: A x + B (Lambda lsc v) + terms + disturbance, with the
-    constants of `plant_prepare` in tc: each distinct factor evaluated once (and only when
-    a term with a non-zero coefficient needs it), then each term a product."""
-    n = code[0]
-    m = code[1]
-    T = code[2]
-    F = code[3]
-    nA = code[4]
-    nB = code[5]
-    o_terms = code[6]
-    o_lam = code[7]
-    o_a = code[8]
-    o_b = code[9]
-    NU = code[10]
-    o_fac = code[11]
-    o_k = m + T
-    o_need = o_k + NU
-    o_val = o_need + NU
-    for u in range(NU):
-        if tc[o_need + u] == 0.0:
-            continue
-        kind = code[o_fac + 3 * u]
-        xs = x[code[o_fac + 3 * u + 1]]
-        if kind == K_X:
-            f = xs
-        elif kind == K_TANH:
-            z = xs * tc[o_k + u]
-            f = 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
-        elif kind == K_COS:
-            f = math.cos(tc[o_k + u] * xs)
-        elif kind == K_SIN:
-            f = math.sin(tc[o_k + u] * xs)
-        elif kind == K_GAUSS:
-            z = xs * tc[o_k + u]
-            f = math.exp(-(z * z))
-        else:
-            f = abs(xs)
-        tc[o_val + u] = f
-    for i in range(n):
-        dx[i] = 0.0
-    for q in range(nA):
-        dx[code[o_a + 2 * q]] += mat[q] * x[code[o_a + 2 * q + 1]]
-    for q in range(nB):
-        j = code[o_b + 2 * q + 1]
-        dx[code[o_b + 2 * q]] += mat[nA + q] * (tc[j] * v[j])
-    for j in range(m):
-        dx[code[o_lam + m + j]] += dist[j]
-    for t in range(T):
-        val = tc[m + t]
-        if val == 0.0:
-            continue
-        c = o_terms + t * (3 + F)
-        for q in range(code[c + 2]):
-            val *= tc[o_val + code[c + 3 + q]]
-        dx[code[c]] += val
-
-
-@numba.njit(cache=True)
-def plant_step(x: Array, u: Array, code: Any, mat: Array, prm: Array, limits: Array,
-               dt: float, substeps: int, lsc: Array, dist: Array,
-               work: Array) -> None:  # pragma: no cover - jit
-    """Advance one plant by dt holding u (saturated here); RK4 with substeps.
-
-    `work` is scratch from `work_buffer`; the applied inputs end up in work[5, :m].
-    """
-    n = code[0]
-    m = code[1]
-    v = work[5]
-    tc = work[6]
-    plant_prepare(code, mat, prm, lsc, tc)
-    for j in range(m):
-        uj = u[j]
-        if uj > limits[j]:
-            uj = limits[j]
-        elif uj < -limits[j]:
-            uj = -limits[j]
-        v[j] = uj
-    h = dt / substeps
-    k1 = work[0]
-    k2 = work[1]
-    k3 = work[2]
-    k4 = work[3]
-    tmp = work[4]
-    for _ in range(substeps):
-        plant_deriv(x, v, code, mat, tc, dist, k1)
-        for i in range(n):
-            tmp[i] = x[i] + 0.5 * h * k1[i]
-        plant_deriv(tmp, v, code, mat, tc, dist, k2)
-        for i in range(n):
-            tmp[i] = x[i] + 0.5 * h * k2[i]
-        plant_deriv(tmp, v, code, mat, tc, dist, k3)
-        for i in range(n):
-            tmp[i] = x[i] + h * k3[i]
-        plant_deriv(tmp, v, code, mat, tc, dist, k4)
-        for i in range(n):
-            x[i] = x[i] + (h / 6.0) * (k1[i] + 2 * k2[i] + 2 * k3[i] + k4[i])
-
-
-@numba.njit(cache=True)
 def plant_measure(x: Array, resolution: Array, noise: Array,
                   y: Array) -> None:  # pragma: no cover - jit
     """Sensor reading: each state plus its pre-drawn, pre-scaled noise, then quantised."""
@@ -264,6 +128,320 @@ def work_buffer(spec: RigSpec) -> Array:
     return np.zeros((7, int(work_width(code))))
 
 
+# ------------------------------------------------------------------ the generated plant
+LANES = 4
+"""Plants the sweep kernel steps together (`step_source` with lanes)."""
+TAYLOR_LIMIT = 0.02
+"""Largest in-step change of an angle k x_s (rad) `trig_near`'s series handles (else exact)."""
+
+
+@numba.njit(cache=True, inline="always")
+def fast_tanh(z: float) -> float:  # pragma: no cover - jit
+    """math.tanh(z), skipping the library call where tanh rounds to +-1 in double precision
+    (|z| > 20: 1 - tanh|z| < 1e-17, below half an ulp of 1)."""
+    if z > 20.0:
+        return 1.0
+    if z < -20.0:
+        return -1.0
+    return math.tanh(z)
+
+
+@numba.njit(cache=True, inline="always")
+def trig_near(a: float, a0: float, c0: float, s0: float) -> tuple[float, float]:
+    """cos(a), sin(a) from c0 = cos(a0), s0 = sin(a0): angle addition with a Taylor series
+    in d = a - a0 (truncation < 1e-18 for |d| <= TAYLOR_LIMIT), exact beyond."""
+    d = a - a0
+    if abs(d) > TAYLOR_LIMIT:
+        return math.cos(a), math.sin(a)
+    d2 = d * d
+    cd = 1.0 + d2 * (-0.5 + d2 * (1.0 / 24.0 - d2 / 720.0))
+    sd = d * (1.0 + d2 * (-1.0 / 6.0 + d2 * (1.0 / 120.0 - d2 / 5040.0)))
+    return c0 * cd - s0 * sd, s0 * cd + c0 * sd
+_SOURCES = ("sim_rigs/kernel.py",)
+_COMPILED: dict[str, Any] = {}
+
+
+def _lit(v: float) -> str:
+    return repr(float(v))
+
+
+def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...], int],
+                     ang: dict[tuple[int, float], int], fusers: dict[int, list[int]],
+                     ausers: dict[int, list[int]]) -> list[tuple[str, str, bool]]:
+    """(name, expression, is flag) of a plant's constants: Lambda_j, coef * param per term,
+    whether each factor / angle is needed, one reciprocal per width."""
+    names = list(spec.params)
+    out: list[tuple[str, str, bool]] = []
+    for j, e in enumerate(spec.effectiveness):
+        out.append((f"lam{j}{s}", f"{prm}[{names.index(e)}]" if e is not None else "1.0", False))
+    for t, term in enumerate(spec.terms):
+        pv = f" * {prm}[{names.index(term.param)}]" if term.param is not None else ""
+        out.append((f"p{t}{s}", f"{_lit(term.coef)}{pv}", False))
+
+    def need(ts: list[int]) -> str:
+        if all(spec.terms[t].param is not None for t in ts):
+            return " or ".join(f"p{t}{s} != 0.0" for t in ts)
+        return "True"
+
+    for u in fac.values():
+        out.append((f"need{u}{s}", need(fusers[u]), True))
+    for a in ang.values():
+        out.append((f"nt{a}{s}", need(ausers[a]), True))
+    recip: dict[Any, str] = {}
+    for (kind, _state, width), u in fac.items():
+        if kind in ("tanh", "gauss"):
+            if width in recip:  # one reciprocal per width
+                out.append((f"r{u}{s}", recip[width], False))
+                continue
+            wv = f"{prm}[{names.index(width)}]" if isinstance(width, str) else _lit(width)
+            cond = " or ".join(f"need{o}{s}" for (k2, _s2, w2), o in fac.items()
+                               if w2 == width and k2 in ("tanh", "gauss"))
+            out.append((f"r{u}{s}", f"1.0 / {wv} if {cond} else 0.0", False))
+            recip[width] = f"r{u}{s}"
+    return out
+
+
+def _factor_tables(spec: RigSpec) -> tuple[Any, ...]:
+    """Distinct factors (tanh, gauss, abs) and angles (sin, cos of k x_s) of the term table,
+    the terms using each, and each term's factor references."""
+    fac: dict[tuple[Any, ...], int] = {}
+    ang: dict[tuple[int, float], int] = {}
+    fusers: dict[int, list[int]] = {}
+    ausers: dict[int, list[int]] = {}
+    term_fac: list[list[str]] = []
+    for t, term in enumerate(spec.terms):
+        refs = []
+        for f in term.factors:
+            if f.kind == "x":
+                refs.append(f"S{f.state}")
+            elif f.kind in ("sin", "cos"):
+                a = ang.setdefault((f.state, float(f.k)), len(ang))
+                ausers.setdefault(a, []).append(t)
+                refs.append(f"{'si' if f.kind == 'sin' else 'co'}{a}")
+            else:
+                u = fac.setdefault((f.kind, f.state, f.width), len(fac))
+                fusers.setdefault(u, []).append(t)
+                refs.append(f"f{u}")
+        term_fac.append(refs)
+    return fac, ang, fusers, ausers, term_fac
+
+
+def setup_source(spec: RigSpec, lanes: int) -> str:
+    """Python source of ``plant_setup_lanes(P, lanes, K)``: the constants of the plants
+    P[lanes[l]] into K[l] (``N_KONST`` of them), once per plant, for `plant_step_lanes`."""
+    fac, ang, fusers, ausers, _ = _factor_tables(spec)
+    L = ["def plant_setup_lanes(P, lanes, K):"]
+    for q in range(lanes):
+        s = f"_{q}"
+        L.append(f"    pr{s} = P[lanes[{q}]]")
+        for i, (name, expr, flag) in enumerate(
+                _plant_constants(spec, s, f"pr{s}", fac, ang, fusers, ausers)):
+            L.append(f"    {name} = {expr}")
+            L.append(f"    K[{q}, {i}] = " + (f"1.0 if {name} else 0.0" if flag else name))
+    n_konst = len(_plant_constants(spec, "", "prm", fac, ang, fusers, ausers))
+    return "\n".join(L) + f"\n\n\nN_KONST = {n_konst}\n"
+
+
+def step_source(spec: RigSpec, lanes: int = 0) -> str:
+    """Python source of this rig's step, the term table unrolled into straight-line code.
+
+    ``lanes == 0``: ``plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist,
+    work)`` for one plant (faults honoured; ``code`` and ``mat`` are accepted and ignored,
+    the rig is in the code itself; the applied inputs go to work[5, :m]).
+    ``lanes == L``: ``plant_step_lanes(X, U, P, lanes, limits, dt, substeps)`` for the L
+    plants P[lanes[l]] with states X[l] and inputs U[l], no faults, their stages
+    interleaved (independent chains: the CPU overlaps one plant's tanh latency with the
+    others' arithmetic).
+
+    Per call: the inputs saturated, then the constants of the step (Lambda_j lsc_j v_j
+    through B plus the disturbance, per row; coef * param per term; 1 / width per width;
+    whether a parameterised non-polynomial factor is needed at all; cos and sin of each
+    angle k x_s at the start), then RK4 with substeps on scalar locals: each stage
+    evaluates each distinct factor once (tanh skipped where it rounds to +-1, sin and cos
+    by angle addition from the start of the step, `trig_near`) and adds each term into
+    its row. Equal to `sim_rigs.plant.RigPlant.step` to rounding (tests/test_rig_plant.py).
+    """
+    n, m = spec.n, spec.m
+    one = lanes == 0
+    LN = [""] if one else [f"_{q}" for q in range(lanes)]
+    if one:
+        L = ["def plant_step(x, u, code, mat, prm, limits, dt, substeps, lsc, dist, work):"]
+    else:
+        L = ["def plant_step_lanes(X, U, K, limits, dt, substeps):"]
+    w = L.append
+    fac, ang, fusers, ausers, term_fac = _factor_tables(spec)
+    # angles: per state the smallest |k| is computed exactly (cos, sin at the step start,
+    # then `trig_near` each stage); k = 2 or 3 times it from that pair by the multiple-angle
+    # formulas, at the start and at every stage
+    angles = sorted(ang.items(), key=lambda it: abs(it[0][1]))
+    derived: dict[int, tuple[int, float]] = {}
+    exact_cond: dict[int, str] = {}
+    base: dict[int, tuple[float, int]] = {}
+    for (state, k), a in angles:
+        mult = k / base[state][0] if state in base and base[state][0] != 0.0 else 0.0
+        if mult in (2.0, 3.0):
+            derived[a] = (base[state][1], mult)
+        else:
+            base.setdefault(state, (k, a))
+    for (_state, _k), a in angles:
+        if a not in derived:
+            exact_cond[a] = " or ".join([f"nt{a}{{s}}"] + [f"nt{o}{{s}}" for o, (b, _) in
+                                                            derived.items() if b == a])
+
+    def multiple(c: str, sn: str, mult: float, co: str, si: str, ind: str) -> None:
+        if mult == 2.0:
+            w(f"{ind}{co} = {c} * {c} - {sn} * {sn}")
+            w(f"{ind}{si} = 2.0 * {sn} * {c}")
+        else:
+            w(f"{ind}{co} = {c} * ({c} * {c} - 3.0 * {sn} * {sn})")
+            w(f"{ind}{si} = {sn} * (3.0 * {c} * {c} - {sn} * {sn})")
+
+    for s in LN:
+        ln = s[1:]
+        if one:
+            for name, expr, _flag in _plant_constants(spec, "", "prm", fac, ang, fusers, ausers):
+                w(f"    {name} = {expr}")
+        else:
+            for q, (name, _expr, flag) in enumerate(
+                    _plant_constants(spec, s, "", fac, ang, fusers, ausers)):
+                w(f"    {name} = K[{ln}, {q}]" + (" != 0.0" if flag else ""))
+        for i in range(n):
+            w(f"    x{i}{s} = " + (f"x[{i}]" if one else f"X[{ln}, {i}]"))
+        for j in range(m):
+            uj = f"u[{j}]" if one else f"U[{ln}, {j}]"
+            w(f"    v{j}{s} = {uj}")
+            w(f"    if v{j}{s} > limits[{j}]:")
+            w(f"        v{j}{s} = limits[{j}]")
+            w(f"    elif v{j}{s} < -limits[{j}]:")
+            w(f"        v{j}{s} = -limits[{j}]")
+            if one:
+                w(f"    work[5, {j}] = v{j}")
+            w(f"    g{j}{s} = lam{j}{s} * " + (f"lsc[{j}] * v{j}" if one else f"v{j}{s}"))
+        for i in range(n):
+            parts = [f"{_lit(spec.B[i, j])} * g{j}{s}" for j in range(m) if spec.B[i, j] != 0.0]
+            if one:
+                parts += [f"dist[{j}]" for j in range(m) if spec.drives[j] == i]
+            w(f"    q{i}{s} = {' + '.join(parts) if parts else '0.0'}")
+        for (state, k), a in angles:
+            w(f"    z{a}{s} = {_lit(k)} * x{state}{s}")
+            if a in derived:  # multiple angle from the base pair: no library call
+                b, mult = derived[a]
+                multiple(f"cz{b}{s}", f"sz{b}{s}", mult, f"cz{a}{s}", f"sz{a}{s}", "    ")
+                continue
+            w(f"    cz{a}{s} = math.cos(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
+            w(f"    sz{a}{s} = math.sin(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
+
+    def deriv(src: str, dst: str) -> None:
+        for s in LN:
+            for (kind, state, _width), u in fac.items():
+                v = f"{src}{state}{s}"
+                expr = {"tanh": f"fast_tanh({v} * r{u}{s})", "abs": f"abs({v})",
+                        "gauss": f"math.exp(-(({v} * r{u}{s}) * ({v} * r{u}{s})))"}[kind]
+                w(f"        f{u}{s} = {expr} if need{u}{s} else 0.0")
+            for (state, k), a in angles:
+                if a in derived:
+                    b, mult = derived[a]
+                    multiple(f"co{b}{s}", f"si{b}{s}", mult, f"co{a}{s}", f"si{a}{s}",
+                             "        ")
+                    continue
+                w(f"        if {exact_cond[a].format(s=s)}:")
+                w(f"            co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
+                  f"z{a}{s}, cz{a}{s}, sz{a}{s})")
+                w("        else:")
+                w(f"            co{a}{s} = 0.0")
+                w(f"            si{a}{s} = 0.0")
+            rows: list[list[str]] = [[] for _ in range(n)]
+            for i in range(n):
+                rows[i] += [f"{_lit(spec.A[i, j])} * {src}{j}{s}" for j in range(n)
+                            if spec.A[i, j] != 0.0]
+                rows[i].append(f"q{i}{s}")
+            for t, term in enumerate(spec.terms):
+                if term.coef == 0.0:
+                    continue
+                fs = [(src + r[1:] if r.startswith("S") else r) + s for r in term_fac[t]]
+                rows[term.row].append(" * ".join([f"p{t}{s}"] + fs))
+            for i in range(n):
+                w(f"        {dst}{i}{s} = {' + '.join(rows[i])}")
+
+    w("    h = dt / substeps")
+    w("    hh = 0.5 * h")
+    w("    h6 = h / 6.0")
+    w("    for _ in range(substeps):")
+    for src, dst, nxt, c in (("x", "ka", "y", "hh"), ("y", "kb", "y", "hh"),
+                             ("y", "kc", "y", "h"), ("y", "kd", None, None)):
+        deriv(src, dst)
+        if nxt is not None:
+            for s in LN:
+                for i in range(n):
+                    w(f"        y{i}{s} = x{i}{s} + {c} * {dst}{i}{s}")
+    for s in LN:
+        for i in range(n):
+            w(f"        x{i}{s} = x{i}{s} + h6 * (ka{i}{s} + 2 * kb{i}{s} + 2 * kc{i}{s}"
+              f" + kd{i}{s})")
+    for s in LN:
+        for i in range(n):
+            w(f"    x[{i}] = x{i}" if one else f"    X[{s[1:]}, {i}] = x{i}{s}")
+    return "\n".join(L) + "\n"
+
+
+def _cache_dir() -> Path:
+    base = os.environ.get("CORRAL_RIG_CACHE") or os.path.join(
+        os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache"),
+        "corral", "rigs")
+    return Path(base)
+
+
+def module_source(spec: RigSpec, prelude: str = "", extra: str = "") -> str:
+    """The generated module of a rig: `prelude`, its `plant_step`, `plant_step_lanes` and
+    `plant_setup_lanes`, then `extra` (code a caller compiles against this rig's step: the
+    runtime's dry-run loop and sweep kernel, `runtime.kernels.rigloops`)."""
+    parts = ['"""Generated by sim_rigs.kernel.module_source for one rig; do not edit."""',
+             "import math  # noqa: F401", "import numba", "import numpy as np  # noqa: F401",
+             prelude, "",
+             "from sim_rigs.kernel import fast_tanh, trig_near  # noqa: F401",
+             "", "", "@numba.njit(cache=True)", step_source(spec),
+             "", "@numba.njit(cache=True)", step_source(spec, LANES),
+             "", "@numba.njit(cache=True)", setup_source(spec, LANES), extra]
+    return "\n".join(parts)
+
+
+def load_generated(src: str, sources: tuple[Path, ...]) -> Any:
+    """Import generated source `src` as a module, once a process. The module is written to
+    a file named by a hash of its text, of the files its compiled code depends on
+    (`sources`) and of numba's version, so numba's on-disk cache (keyed by file) is never
+    stale: an edit anywhere in them gives a new file."""
+    hsh = hashlib.sha256(src.encode())
+    for path in sources:
+        hsh.update(path.read_bytes())
+    hsh.update(numba.__version__.encode())
+    key = hsh.hexdigest()[:20]
+    mod = _COMPILED.get(key)
+    if mod is not None:
+        return mod
+    d = _cache_dir()
+    d.mkdir(parents=True, exist_ok=True)
+    path = d / f"rig_{key}.py"
+    if not path.exists():
+        tmp = d / f".rig_{key}.{os.getpid()}.tmp"
+        tmp.write_text(src)
+        os.replace(tmp, path)
+    name = f"corral_rig_{key}"
+    ispec = importlib.util.spec_from_file_location(name, path)
+    assert ispec is not None and ispec.loader is not None
+    mod = importlib.util.module_from_spec(ispec)
+    sys.modules[name] = mod
+    ispec.loader.exec_module(mod)
+    _COMPILED[key] = mod
+    return mod
+
+
+def compiled(spec: RigSpec) -> Any:
+    """The rig's generated plant module (`plant_step`, `plant_step_lanes`,
+    `plant_setup_lanes`), compiled once and cached on disk (`load_generated`)."""
+    root = Path(__file__).resolve().parents[1]
+    return load_generated(module_source(spec), tuple(root / rel for rel in _SOURCES))
+
+
 class CompiledPlant:
     """One plant of a `sim_rigs.plant.RigPlant` stepped by the compiled kernel.
 
@@ -277,6 +455,7 @@ class CompiledPlant:
         self.prm = pack_params(plant.spec, {k: np.ravel(v)[0] for k, v in plant.params.items()})
         self.limits = np.ascontiguousarray(np.ravel(plant.limits), dtype=float)
         self.work = work_buffer(plant.spec)
+        self._step = compiled(plant.spec).plant_step
         self._ones = np.ones(plant.spec.m)
         self._zeros = np.zeros(plant.spec.m)
         self._u = np.zeros(plant.spec.m)
@@ -292,7 +471,7 @@ class CompiledPlant:
         dist = self._zeros if p.disturbance is None else np.ascontiguousarray(
             p.disturbance[0], dtype=float)
         x = np.ascontiguousarray(p.x[0], dtype=float)
-        plant_step(x, self._u, self.code, self.mat, self.prm, self.limits, float(dt),
+        self._step(x, self._u, self.code, self.mat, self.prm, self.limits, float(dt),
                    int(p.substeps), lsc, dist, self.work)
         p.x[0] = x
         return tuple(float(v) for v in self.work[5, :m])

@@ -86,7 +86,7 @@ class CliResult:
 
 def _corral_command() -> list[str]:
     script = Path(sys.executable).with_name("corral")
-    return [str(script)] if script.exists() else [sys.executable, "-m", "runtime.cli"]
+    return [str(script)] if script.exists() else [sys.executable, "-m", "runtime.cli.main"]
 
 
 @pytest.fixture

@@ -6,7 +6,7 @@ import asyncio
 from pathlib import Path
 
 from runtime.config import load_config
-from runtime.loop import Runner, RunSettings
+from runtime.realtime.loop import Runner, RunSettings
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "configs" / "pedestal-sim.toml"

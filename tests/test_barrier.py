@@ -1,4 +1,5 @@
-"""Barrier families (runtime.barrier): exact values, the properties the theory needs, the clamp."""
+"""Barrier families (runtime.method.barrier): exact values, the properties the theory needs,
+the clamp."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.barrier import BARRIERS, RationalBarrier, clamped_phi_d, get_barrier
+from runtime.method.barrier import BARRIERS, RationalBarrier, clamped_phi_d, get_barrier
 
 FAMILIES = sorted(BARRIERS)
 eps_values = st.floats(min_value=1e-3, max_value=1e3, allow_nan=False)

@@ -1,6 +1,6 @@
-"""The time-varying bound eps(t): the rate condition, derived in runtime/bound.py, checked.
+"""The time-varying bound eps(t): the rate condition, derived in runtime/method/bound.py, checked.
 
-Sources: our own derivation (runtime/bound.py docstring) of
+Sources: our own derivation (runtime/method/bound.py docstring) of
 dV/dt = -phi_d e'Re - s^2 eps'/(eps - s)^2 for the rational barrier; the
 condition eps' >= -(c_bar/2) eps follows from it (docs/method.md §7) and is
 checked here by an accurate continuous simulation (scipy solve_ivp) of a
@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from runtime.bound import BoundSchedule, schedule_from_config
 from runtime.config import Config, ConfigError, load_config
-from runtime.design import design_from_config, lqr, lyapunov
+from runtime.method.bound import BoundSchedule, schedule_from_config
+from runtime.method.design import design_from_config, lqr, lyapunov
 
 # a small plant: double integrator, x' = A x + B (u + W' sigma(x)), sigma = [x1, x2, 1]
 A = np.array([[0.0, 1.0], [0.0, 0.0]])
@@ -66,7 +66,8 @@ def lyapunov_trace(sched: BoundSchedule, T: float) -> tuple[np.ndarray, np.ndarr
 
 
 def test_lyapunov_never_increases_under_an_admissible_schedule():
-    # alpha = c_bar / 2 exactly: the limit of docs/method.md §7 (derivation in runtime/bound.py).
+    # alpha = c_bar / 2 exactly: the limit of docs/method.md §7 (derivation in
+    # runtime/method/bound.py).
     sched = BoundSchedule("exponential", eps0=2.0, eps_inf=0.6, alpha=C_BAR / 2)
     assert sched.admissible(C_BAR, np.linspace(0, 20, 2001))
     V, s, eps = lyapunov_trace(sched, 20.0)

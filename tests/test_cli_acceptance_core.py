@@ -1,6 +1,6 @@
 """Acceptance checks of bad input to `corral design`, `dry-run`, `sweep`, `preflight`, `replay`
 and `trips`: each case a user can hit ends with one clear stderr line naming the field or file
-and the fix, exit status 2, and no traceback. Run as real processes (`python -m runtime.cli`).
+and the fix, exit status 2, and no traceback. Run as real processes (`python -m runtime.cli.main`).
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ DEMO = "configs/pedestal-sim.toml"
 
 
 def corral(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=cwd,
+    return subprocess.run([sys.executable, "-m", "runtime.cli.main", *args], cwd=cwd,
                           capture_output=True, text=True, timeout=120)
 
 

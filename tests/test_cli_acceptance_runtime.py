@@ -1,6 +1,6 @@
 """Acceptance of `corral run`, `corral rig serve` and `corral watch` as an operator meets them.
 
-Through real subprocesses (`python -m runtime.cli`), a real pseudo-terminal and a real
+Through real subprocesses (`python -m runtime.cli.main`), a real pseudo-terminal and a real
 mosquitto broker: the JSON summary contract of the runtime and links issues, and bad input
 that must end in one `corral:` line on stderr, a non-zero status and no traceback.
 
@@ -34,7 +34,7 @@ LINK_KEYS = ("frames_in", "frames_out", "crc_errors", "gaps", "duplicates", "lat
 
 
 def corral(*args: str, timeout: float = 40) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=ROOT,
+    return subprocess.run([sys.executable, "-m", "runtime.cli.main", *args], cwd=ROOT,
                           capture_output=True, text=True, timeout=timeout)
 
 
@@ -132,7 +132,7 @@ def test_rig_serve_bad_input_ends_in_one_line(extra: list[str], words: list[str]
 
 def serve(*args: str) -> tuple[subprocess.Popen[str], str]:
     """Start `corral rig serve`; return it and its first output line."""
-    proc = subprocess.Popen([sys.executable, "-m", "runtime.cli", "rig", "serve", SERVED,
+    proc = subprocess.Popen([sys.executable, "-m", "runtime.cli.main", "rig", "serve", SERVED,
                              *args], cwd=ROOT, stdout=subprocess.PIPE,
                             stderr=subprocess.DEVNULL, text=True)
     assert proc.stdout is not None
@@ -171,7 +171,7 @@ def test_served_rig_over_mqtt_closes_the_loop(tmp_path: Path, mosquitto) -> None
 
 
 def test_sigint_ends_the_run_with_a_readable_trip_log(tmp_path: Path) -> None:
-    proc = subprocess.Popen([sys.executable, "-m", "runtime.cli", "run", SIM, "--headless",
+    proc = subprocess.Popen([sys.executable, "-m", "runtime.cli.main", "run", SIM, "--headless",
                              "--arm", "--json", "--fault", "spike@1", "--set",
                              f"log.dir={tmp_path}", *CALM], cwd=ROOT, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)

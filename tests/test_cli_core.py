@@ -121,12 +121,12 @@ def test_cli_without_a_command_prints_help_and_exits_2(corral):
 
 
 def test_python_dash_m_entry_reports_user_errors_in_one_line(tmp_path):
-    # `python -m runtime.cli` must behave like the `corral` script (no traceback, exit 2).
+    # `python -m runtime.cli.main` must behave like the `corral` script (no traceback, exit 2).
     import subprocess
     import sys
 
     missing = tmp_path / "nothing.toml"
-    proc = subprocess.run([sys.executable, "-m", "runtime.cli", "design", str(missing)],
+    proc = subprocess.run([sys.executable, "-m", "runtime.cli.main", "design", str(missing)],
                           cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
     lines = proc.stderr.strip().splitlines()

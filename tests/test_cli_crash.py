@@ -12,7 +12,7 @@ ROOT = Path(__file__).resolve().parents[1]
 # module whose main raises, through the real entry point.
 SCRIPT = """
 import sys, types
-import runtime.cli as cli
+import runtime.cli.main as cli
 mod = types.ModuleType("runtime.cmd_boom")
 mod.add_arguments = lambda p: None
 def main(args):

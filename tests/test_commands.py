@@ -1,12 +1,13 @@
-"""Command profiles (runtime.commands): smooth slews, steps, sines, holds, and segment errors."""
+"""Command profiles (runtime.method.commands): smooth slews, steps, sines, holds, and segment
+errors."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from runtime.commands import schedule_from_config, tracked_names
 from runtime.config import Config, ConfigError
+from runtime.method.commands import schedule_from_config, tracked_names
 
 
 def schedule(**commands):

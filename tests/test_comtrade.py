@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 from test_records import make_header, make_trip, write_trip_log
 
-from runtime.comtrade_export import export_comtrade, export_csv, trip_channels
-from runtime.records import RULES, TripLog, load_trips
+from runtime.records.logs import RULES, TripLog, load_trips
+from runtime.review.comtrade_export import export_comtrade, export_csv, trip_channels
 
 
 @pytest.fixture

@@ -246,12 +246,12 @@ def test_call_sites_carry_no_default_the_schema_holds():
 
 
 def test_a_recording_reader_sees_only_declared_keys_on_the_design_and_plant_paths():
-    from runtime.design import design_from_config
-    from runtime.dryrun import plant_from_config
-    from runtime.fallback import settings_from_config
-    from runtime.modifiers import modifiers_from_config
-    from runtime.sweep import SweepSettings
-    from runtime.watchdog import Watchdog
+    from runtime.guard.fallback import settings_from_config
+    from runtime.guard.watchdog import Watchdog
+    from runtime.method.design import design_from_config
+    from runtime.method.modifiers import modifiers_from_config
+    from runtime.offline.dryrun import plant_from_config
+    from runtime.offline.sweep import SweepSettings
 
     seen: list[str] = []
 

@@ -55,7 +55,7 @@ def test_an_alias_reaches_every_reader_under_the_one_key():
     cfg = load_config(DEMO, ["watchdog.saturation_time=0.2"])
     assert cfg.get("watchdog.saturation_s") == 0.2
     assert cfg.get("watchdog.saturation_time", None) is None
-    from runtime.watchdog import Watchdog
+    from runtime.guard.watchdog import Watchdog
 
     wd = Watchdog.from_config(cfg, 0.001, 0.02)
     rules = {r["rule"]: r for r in wd.settings()}

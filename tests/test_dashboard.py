@@ -12,9 +12,9 @@ import msgpack
 import pytest
 from textual.widgets import DataTable
 
-from runtime import panels
-from runtime.dashboard import ConfirmArm, Dashboard, MarginPanel, SupervisorPanel
-from runtime.watch_sources import RecordedSource
+from runtime.dashboard import panels
+from runtime.dashboard.app import ConfirmArm, Dashboard, MarginPanel, SupervisorPanel
+from runtime.dashboard.sources import RecordedSource
 
 HELLO = {
     "type": "hello", "rig": "bench-a", "states": ["az", "el", "az_rate", "el_rate"],

@@ -15,8 +15,8 @@ import pytest
 from mqtt_broker import mosquitto  # noqa: F401  (fixture: a real mosquitto broker)
 from textual.widgets import DataTable
 
-from runtime.dashboard import ConfirmArm, Dashboard, SupervisorPanel
-from runtime.watch_sources import SocketSource
+from runtime.dashboard.app import ConfirmArm, Dashboard, SupervisorPanel
+from runtime.dashboard.sources import SocketSource
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "configs" / "pedestal-sim.toml"
@@ -37,7 +37,7 @@ def live_run(tmp_path):
     """A simulated real-time run, armed at start, with a spike at 2 s (a `jump` trip)."""
     # --duration is a guard against a leaked process (stop_run ends the run), long
     # enough that a loaded machine never reaches it mid-test.
-    cmd = [sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--headless", "--arm",
+    cmd = [sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), "--headless", "--arm",
            "--duration", "600", "--fault", "spike@2", "--set", f"log.dir={tmp_path}",
            # a loaded CI machine must not trip the overrun rule on its own
            "--set", "watchdog.overrun_misses=100000", "--set", "watchdog.stale_periods=50"]
@@ -121,7 +121,7 @@ def test_keys_reach_the_supervisor_through_a_live_runtime(live_run):
 
 def test_watch_refuses_a_missing_socket_in_one_line(tmp_path):
     proc = subprocess.run(
-        [sys.executable, "-m", "runtime.cli", "watch", "--socket", str(tmp_path / "x.sock")],
+        [sys.executable, "-m", "runtime.cli.main", "watch", "--socket", str(tmp_path / "x.sock")],
         cwd=ROOT, capture_output=True, text=True, timeout=60,
         env={**os.environ, "TERM": "dumb"})
     assert proc.returncode == 2
@@ -131,9 +131,9 @@ def test_watch_refuses_a_missing_socket_in_one_line(tmp_path):
 def test_dashboard_follows_a_rig_over_mqtt(tmp_path, mosquitto):  # noqa: F811
     """`corral watch --mqtt` in the pilot: a run publishing telemetry through a real
     mosquitto broker shows up, and the stop key reaches it through the broker."""
-    from runtime.watch_sources import MqttSource
+    from runtime.dashboard.sources import MqttSource
 
-    cmd = [sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--headless", "--arm",
+    cmd = [sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), "--headless", "--arm",
            "--duration", "600", "--telemetry-mqtt", mosquitto.url, "--set", f"log.dir={tmp_path}",
            "--set", "watchdog.overrun_misses=100000", "--set", "watchdog.stale_periods=50"]
     proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,

@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from runtime.config import load_config
-from runtime.dryrun import dry_run
+from runtime.offline.dryrun import dry_run
 
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "pedestal-sim.toml"
 

@@ -1,4 +1,4 @@
-"""Design functions (runtime.design) against closed forms, scipy and python-control."""
+"""Design functions (runtime.method.design) against closed forms, scipy and python-control."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from runtime.config import Config, ConfigError
-from runtime.design import (
+from runtime.method.design import (
     controllability_rank,
     design_from_config,
     eps_from_limits,

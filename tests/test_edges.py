@@ -22,16 +22,16 @@ from pathlib import Path
 import pytest
 
 from runtime.config import ConfigError, load_config
-from runtime.loop import EXIT_INTERNAL_TRIP, RigBusy, Runner, RunSettings
-from runtime.records import load_trips, read_run_log, read_trip_log
-from runtime.telemetry import TelemetryClient
+from runtime.realtime.loop import EXIT_INTERNAL_TRIP, RigBusy, Runner, RunSettings
+from runtime.realtime.telemetry import TelemetryClient
+from runtime.records.logs import load_trips, read_run_log, read_trip_log
 from tests.runtime_helpers import BASE, DEMO, ROOT, run_unpaced, runner
 
 SETS = [a for kv in BASE for a in ("--set", kv)]
 
 
 def corral(*args: str) -> list[str]:
-    return [sys.executable, "-m", "runtime.cli", "run", str(DEMO), *args, *SETS]
+    return [sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), *args, *SETS]
 
 
 # ------------------------------------------------------------------ 1. last line of defence
@@ -198,7 +198,7 @@ def test_lock_is_released_at_the_end_and_by_a_killed_owner(tmp_path):
     # A SIGKILLed owner leaves the lock file but not the lock (the kernel drops it).
     lock_path = str(tmp_path / "pedestal-sim.lock")
     code = (f"import sys, time; sys.path.insert(0, {str(ROOT)!r})\n"
-            "from runtime.loop import RigLock\n"
+            "from runtime.realtime.loop import RigLock\n"
             "from pathlib import Path\n"
             f"lock = RigLock(Path({lock_path!r})); print('held', flush=True); time.sleep(60)")
     holder = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
@@ -245,7 +245,7 @@ def test_nul_byte_in_log_dir_is_a_one_line_error(tmp_path):
     assert '\ndir = "runs"' in text
     cfg = tmp_path / "nul.toml"
     cfg.write_text(text.replace('\ndir = "runs"', '\ndir = "a\\u0000b"'))
-    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(cfg), "--headless",
+    out = subprocess.run([sys.executable, "-m", "runtime.cli.main", "run", str(cfg), "--headless",
                           "--duration", "1"], capture_output=True, text=True, timeout=60,
                          cwd=ROOT)
     assert out.returncode == 2 and "Traceback" not in out.stderr

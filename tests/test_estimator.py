@@ -8,7 +8,7 @@ not look stale after an hour because of it. A real stall must still show.
 import numpy as np
 
 from drivers.base import Sample
-from runtime.estimator import Estimator
+from runtime.realtime.estimator import Estimator
 from sim_rigs import RIGS
 
 nominal_model = RIGS["pedestal"].nominal_model

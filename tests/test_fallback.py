@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 
 from runtime.config import load_config
-from runtime.design import design_from_config
-from runtime.fallback import DEFAULTS, make_fallback, settings_from_config
-from runtime.records import read_run_log
+from runtime.guard.fallback import DEFAULTS, make_fallback, settings_from_config
+from runtime.method.design import design_from_config
+from runtime.records.logs import read_run_log
 from tests.runtime_helpers import DEMO, run_unpaced
 
 

@@ -1,6 +1,6 @@
 """The compiled fast path agrees with the numpy reference tick by tick.
 
-The reference is `runtime.law.AdaptiveLaw` and `sim_rigs.plant.RigPlant`
+The reference is `runtime.method.law.AdaptiveLaw` and `sim_rigs.plant.RigPlant`
 (the readable source of truth); the weight modifiers are checked against the
 formulas of docs/method.md §4, written out again below in plain
 numpy (projection: Pomet and Praly, IEEE TAC 1992, and Lavretsky and Wise,
@@ -17,11 +17,11 @@ import numba
 import numpy as np
 import pytest
 
-from runtime import fast
 from runtime.config import load_config
-from runtime.design import design_from_config
-from runtime.dryrun import dry_run
-from runtime.law import AdaptiveLaw
+from runtime.kernels import fast
+from runtime.method.design import design_from_config
+from runtime.method.law import AdaptiveLaw
+from runtime.offline.dryrun import dry_run
 from sim_rigs import RIGS
 from sim_rigs.plant import RigPlant, SensorModel
 
@@ -194,8 +194,8 @@ def test_modifiers_match_the_published_formulas(kind):
      "adaptation.projection=true", "adaptation.theta_max=[0.3, 0.5]"),
 ])
 def test_modifiers_match_runtime_modifiers(overrides):
-    # The numpy modifiers of runtime.modifiers (an independent implementation) as reference.
-    from runtime.modifiers import modifiers_from_config
+    # The numpy modifiers of runtime.method.modifiers (an independent implementation) as reference.
+    from runtime.method.modifiers import modifiers_from_config
 
     cfg = load_config(DEMO, list(overrides))
     design = design_from_config(cfg)
@@ -207,7 +207,7 @@ def test_modifiers_match_runtime_modifiers(overrides):
 
 
 def test_modifier_order_the_kernel_cannot_follow_is_refused():
-    from runtime.modifiers import DeadZone, Projection, SigmaModification
+    from runtime.method.modifiers import DeadZone, Projection, SigmaModification
 
     with pytest.raises(ValueError, match="order"):
         fast.ModifierSettings.from_modifiers([Projection([1.0, 1.0]), DeadZone(0.1)], 2)
@@ -379,7 +379,7 @@ def specialised_vs_general(design, xs, cs, eps_t=None, settings=None):
 ])
 def test_specialised_law_tick_matches_the_general_kernel(overrides):
     # The source of truth for law_tick_pedestal is law_tick (itself checked against
-    # runtime.law.AdaptiveLaw above); kicks push the error past the clamp and the cap.
+    # runtime.method.law.AdaptiveLaw above); kicks push the error past the clamp and the cap.
     design = demo_design(*overrides)
     xs, cs = closed_loop_states(design, 400, kicks=True)
     t = np.arange(400) * design.Ts

@@ -13,7 +13,7 @@ import pytest
 from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
 
 from bench.fault_matrix import MATRIX
-from runtime.records import read_trip_log
+from runtime.records.logs import read_trip_log
 from tests.runtime_helpers import run_unpaced
 
 AT = 1.0

@@ -2,7 +2,7 @@
 
 Runs the real tick (estimator, supervisor, law, watchdog, fallbacks, records)
 against the simulated pedestal, unpaced, and reads the trip log back with
-runtime.records.
+runtime.records.logs.
 """
 
 from __future__ import annotations
@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 
-from runtime.records import read_run_log, read_trip_log
+from runtime.records.logs import read_run_log, read_trip_log
 from sim_rigs.faults import FaultError, FaultSchedule, parse_fault
 from tests.runtime_helpers import run_unpaced
 

@@ -4,7 +4,7 @@ timing trips put into words.
 The verdict is a pure function of the figures, so it is checked on made-up hosts without
 any timing. The limits it judges against are the watchdog's own: the stale rule trips at a
 sample (stale_periods + 0.5) periods old and the overrun rule at overrun_misses misses in
-the window (`runtime.watchdog.build_rules`); the tests read them from there, not from a
+the window (`runtime.guard.watchdog.build_rules`); the tests read them from there, not from a
 second copy. The arithmetic of each expected limit is written out beside the check. The
 measured figures are only checked for type and sign (no timing assertions).
 """
@@ -19,16 +19,16 @@ import os
 import pytest
 
 from runtime.config import load_config
-from runtime.hostcheck import (
+from runtime.guard.watchdog import build_rules
+from runtime.realtime.hostcheck import (
     Thresholds,
     explain_from_header,
     explain_trip,
     thresholds_from_config,
     verdict,
 )
-from runtime.loop import Runner, RunSettings
-from runtime.records import read_run_log, read_trip_log
-from runtime.watchdog import build_rules
+from runtime.realtime.loop import Runner, RunSettings
+from runtime.records.logs import read_run_log, read_trip_log
 from tests.runtime_helpers import BASE, DEMO, run_unpaced
 
 QUIET = {"lateness_p50_us": 2.0, "lateness_p99_us": 30.0, "worst_stall_ms": 0.8,

@@ -237,8 +237,8 @@ def test_latencies_are_trimmed_to_the_newest_half():
 
 def test_free_running_sim_link_queues_through_the_inbox_and_fails_on_close():
     from runtime.config import load_config
-    from runtime.design import design_from_config
-    from runtime.dryrun import plant_from_config
+    from runtime.method.design import design_from_config
+    from runtime.offline.dryrun import plant_from_config
     from sim_rigs.link import SimLink
 
     cfg = load_config(Path(__file__).resolve().parent.parent / "configs" / "pedestal-sim.toml")

@@ -16,8 +16,8 @@ import numpy as np
 import pytest
 
 from runtime.config import load_config
-from runtime.loop import Runner, RunSettings
-from runtime.records import read_run_log, read_trip_log
+from runtime.realtime.loop import Runner, RunSettings
+from runtime.records.logs import read_run_log, read_trip_log
 from tests.runtime_helpers import BASE, DEMO, ROOT
 
 NARROWING = ROOT / "configs" / "pedestal-narrowing.toml"
@@ -44,7 +44,7 @@ def test_narrowing_bound_reaches_law_run_log_and_telemetry(tmp_path):
     k0 = int(cols["tick"][engaged][0])
     t_since = (cols["tick"][engaged] - k0) * r.design.Ts
     eps_log = cols["eps"][engaged]
-    # The schedule's closed form, eps_inf + (eps0 - eps_inf) exp(-alpha t) (runtime/bound.py
+    # The schedule's closed form, eps_inf + (eps0 - eps_inf) exp(-alpha t) (runtime/method/bound.py
     # docstring), from the config's own numbers; eps0 defaults to the design's eps.
     raw = load_config(NARROWING, []).raw["adaptation"]["bound"]
     eps0, eps_inf, alpha = r.design.eps, raw["eps_inf"], raw["alpha"]
@@ -160,7 +160,7 @@ async def _next(it, kind: str, timeout: float = 10.0, pred=lambda r: True) -> di
 
 @pytest.mark.parametrize("allow_arm", [False, True])
 def test_mqtt_telemetry_and_remote_requests(tmp_path, mosquitto, allow_arm):  # noqa: F811
-    from runtime.watch_sources import MqttSource
+    from runtime.dashboard.sources import MqttSource
 
     extra = ['link.mqtt.remote_requests=["arm"]'] if allow_arm else []
     cfg = load_config(DEMO, [*BASE, f"log.dir={tmp_path}", *extra])
@@ -171,7 +171,7 @@ def test_mqtt_telemetry_and_remote_requests(tmp_path, mosquitto, allow_arm):  # 
     async def scenario():
         task = asyncio.create_task(r.run())
         try:
-            # The dashboard's own MQTT source (runtime.watch_sources) reads what we publish.
+            # The dashboard's own MQTT source (runtime.dashboard.sources) reads what we publish.
             async with MqttSource(mosquitto.host, mosquitto.port, rig) as src:
                 it = src.records().__aiter__()
                 hello = await _next(it, "hello")
@@ -247,7 +247,7 @@ def test_run_stops_when_the_dashboard_exits_and_keeps_its_lines_off_the_terminal
     env = {**os.environ, "CORRAL_DASHBOARD_CMD": f"{sys.executable} {script} {seen}"}
     sets = [a for kv in [*BASE, f"log.dir={tmp_path}"] for a in ("--set", kv)]
     # No --duration: only the dashboard's exit can end this run (the timeout is a guard).
-    proc = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--arm",
+    proc = subprocess.run([sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), "--arm",
                            "--json", "--fault", "spike@0.5:size=0.3", *sets],
                           capture_output=True, text=True, timeout=120, env=env, cwd=ROOT)
     assert proc.returncode == 0, proc.stderr
@@ -273,7 +273,7 @@ class _Serve:
         import sys
 
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "runtime.cli", "rig", "serve", str(DEMO), "--serial",
+            [sys.executable, "-m", "runtime.cli.main", "rig", "serve", str(DEMO), "--serial",
              "--duration", "60"],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
         self.path = self.proc.stdout.readline().strip()
@@ -297,7 +297,7 @@ SERVED = ["watchdog.stale_periods=20", "preflight.plants=4", "preflight.duration
 
 @pytest.mark.parametrize("gamma_ok", [True, False])
 def test_preflight_gates_the_first_arm_on_a_served_rig(tmp_path, gamma_ok):
-    from runtime.telemetry import TelemetryClient
+    from runtime.realtime.telemetry import TelemetryClient
 
     serve = _Serve()
     try:
@@ -353,11 +353,11 @@ def test_no_preflight_for_the_simulated_rig(tmp_path):
 
 # ------------------------------------------------------------------ rig-clocked lateness
 def test_arrival_tracker_worked_example():
-    """`runtime.clock.ArrivalTracker` against its rule, worked by hand (our own rule,
+    """`runtime.realtime.clock.ArrivalTracker` against its rule, worked by hand (our own rule,
     docs/operating.md "Rig-clocked timing"): expected arrival = device time + the
     smallest transit seen; a miss is a sample handled over one period after it, plus
     one per sample the sequence skipped."""
-    from runtime.clock import ArrivalTracker
+    from runtime.realtime.clock import ArrivalTracker
 
     T = 0.001
     tr = ArrivalTracker(T, creep=0.0)
@@ -379,7 +379,7 @@ def test_arrival_tracker_worked_example():
 
 
 def test_arrival_tracker_creep_absorbs_a_slow_device_clock_but_not_a_stall():
-    from runtime.clock import ArrivalTracker
+    from runtime.realtime.clock import ArrivalTracker
 
     T = 0.001
     tr = ArrivalTracker(T)  # default creep 500 ppm

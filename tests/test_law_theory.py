@@ -1,4 +1,4 @@
-"""The update law (runtime.law) against the theorem it implements.
+"""The update law (runtime.method.law) against the theorem it implements.
 
 The continuous-time closed loop is written out here from the formulas of
 docs/method.md §1, §2.2 and §5 (set-theoretic MRAC, Arabi et al. 2018; the MRAC
@@ -19,10 +19,10 @@ import pytest
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
 
-from runtime.barrier import BARRIERS, get_barrier
 from runtime.config import Config
-from runtime.design import Design, design_from_config
-from runtime.law import AdaptiveLaw, LawState
+from runtime.method.barrier import BARRIERS, get_barrier
+from runtime.method.design import Design, design_from_config
+from runtime.method.law import AdaptiveLaw, LawState
 
 # The unknown weights on sigma = [bias, pos, vel, sin(pos)] of the small test rig:
 # a destabilising stiffness and damping plus a bias and a nonlinear term.

@@ -25,15 +25,20 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGES = ("runtime", "drivers", "sim_rigs")
 
-# The numeric method: pure, no I/O, no clocks (DEVELOPERS.md, "The numeric core is pure").
-METHOD = (
-    "runtime.design", "runtime.law", "runtime.barrier", "runtime.basis", "runtime.rbf",
-    "runtime.modifiers", "runtime.bound", "runtime.commands",
-)
+# The rooms of runtime/ (DEVELOPERS.md, "Where each part lives").
+METHOD = ("runtime.method", "runtime.method.*")          # the numeric method: pure, no clocks
+GUARD = ("runtime.guard", "runtime.guard.*")             # rules, modes, fallbacks: decisions
+KERNELS = ("runtime.kernels", "runtime.kernels.*")       # the compiled fast path
+OFFLINE = ("runtime.offline", "runtime.offline.*")       # simulated time
+REALTIME = ("runtime.realtime", "runtime.realtime.*")    # the live loop and its I/O
+RECORDS = ("runtime.records", "runtime.records.*")
+REVIEW = ("runtime.review", "runtime.review.*")
+DASHBOARD = ("runtime.dashboard", "runtime.dashboard.*")
+CLI = ("runtime.cli", "runtime.cli.*")
 # Event loops, transports and screens: never anywhere below the method, even indirectly.
 LIVE_IO = ("asyncio*", "serial*", "aiomqtt*", "paho*", "textual*", "socket*", "selectors*")
 # File and process I/O: not in the method modules themselves (configs are read by
-# runtime.config; records are written by runtime.records).
+# runtime.config; records are written by runtime.records.logs).
 FILE_IO = ("io", "pathlib", "shutil", "tempfile", "tomllib", "msgpack*", "subprocess",
            "threading", "multiprocessing*", "mmap")
 
@@ -58,6 +63,20 @@ RULES = (
          METHOD, LIVE_IO, transitive=True),
     Rule("the method modules do no file or process I/O themselves",
          METHOD, FILE_IO),
+    Rule("the guard's decisions import no event loop, transport or screen, even indirectly",
+         GUARD, LIVE_IO, transitive=True),
+    Rule("the guard's decisions do no file or process I/O themselves", GUARD, FILE_IO),
+    Rule("the compiled kernels import no event loop, transport or screen, even indirectly",
+         KERNELS, LIVE_IO, transitive=True),
+    Rule("the method knows no room built on it",
+         METHOD, (*KERNELS, *OFFLINE, *REALTIME, *RECORDS, *REVIEW, *DASHBOARD, *CLI, *GUARD)),
+    Rule("the guard and the kernels know neither offline work, the live loop nor the people",
+         (*GUARD, *KERNELS), (*OFFLINE, *REALTIME, *RECORDS, *REVIEW, *DASHBOARD, *CLI)),
+    Rule("offline work never reaches into the live loop, the dashboard or the command line",
+         OFFLINE, (*REALTIME, *DASHBOARD, *CLI)),
+    Rule("the live loop never imports the dashboard (it runs in its own process) or the CLI",
+         REALTIME, (*DASHBOARD, *CLI)),
+    Rule("only the command line imports the command line", ("runtime", "runtime.[!c]*"), CLI),
 )
 
 
@@ -197,10 +216,10 @@ def test_our_modules_import_each_other_without_cycles() -> None:
 
 
 def test_the_method_modules_open_no_files() -> None:
-    """No builtin `open(...)` in the method modules (file I/O without an import)."""
+    """No builtin `open(...)` in the method or guard modules (file I/O without an import)."""
     mods = our_modules()
     bad = []
-    for name in METHOD:
+    for name in sorted(m for m in mods if matches(m, (*METHOD, *GUARD))):
         tree = ast.parse(mods[name].read_text(encoding="utf-8"))
         bad += [f"{name}:{n.lineno}" for n in ast.walk(tree)
                 if isinstance(n, ast.Call) and isinstance(n.func, ast.Name)
@@ -216,8 +235,8 @@ from ..drivers import wire
 
 def later():
     import asyncio
-    from runtime.law import step
-    return importlib.import_module("runtime.loop")
+    from runtime.method.law import step
+    return importlib.import_module("runtime.realtime.loop")
 
 if __name__ == "__main__":
     import textual
@@ -226,12 +245,12 @@ if __name__ == "__main__":
 
 def test_the_walker_sees_deferred_and_relative_imports() -> None:
     """A forbidden import hidden in a function, and relative imports, are edges."""
-    known = {"pkg.sub.sibling", "pkg.drivers.wire", "runtime.law", "runtime.loop"}
+    known = {"pkg.sub.sibling", "pkg.drivers.wire", "runtime.method.law", "runtime.realtime.loop"}
     got = imports_of("pkg.sub.mod", SAMPLE, is_package=False, known=known)
-    assert {"numpy", "asyncio", "runtime.law", "runtime.loop", "pkg.sub.sibling",
+    assert {"numpy", "asyncio", "runtime.method.law", "runtime.realtime.loop", "pkg.sub.sibling",
             "pkg.drivers.wire"} <= got
     assert "textual" not in got  # the program entry point is not an import
-    graph = {"pkg.sub.mod": got, "runtime.law": set()}
+    graph = {"pkg.sub.mod": got, "runtime.method.law": set()}
     rule = Rule("no asyncio", ("pkg.*",), ("asyncio",))
     assert violations(graph, rule) == ["pkg.sub.mod -> asyncio"]
 

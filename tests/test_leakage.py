@@ -18,9 +18,9 @@ import numpy as np
 import pytest
 
 from runtime.config import Config
-from runtime.design import design_from_config, zoh
-from runtime.law import AdaptiveLaw, law_from_config
-from runtime.modifiers import DeadZone, EModification, SigmaModification
+from runtime.method.design import design_from_config, zoh
+from runtime.method.law import AdaptiveLaw, law_from_config
+from runtime.method.modifiers import DeadZone, EModification, SigmaModification
 
 D = 0.5
 

@@ -45,7 +45,7 @@ pytestmark = pytest.mark.timeout(180)
 
 ROOT = Path(__file__).resolve().parents[1]
 # The `corral` console script, run by this interpreter.
-CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
 
 
 def aio(fn):

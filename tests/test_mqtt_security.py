@@ -232,7 +232,7 @@ def test_a_locked_broker_lets_only_the_owners_publish(locked_broker):
 
 def test_corral_run_warns_about_an_anonymous_broker(mosquitto):  # noqa: F811
     assert asyncio.run(admits_anonymous(open_settings(mosquitto)))
-    from runtime.cmd_run import ANONYMOUS_BROKER_WARNING
+    from runtime.cli.cmd_run import ANONYMOUS_BROKER_WARNING
 
     assert "ANONYMOUS" in ANONYMOUS_BROKER_WARNING
     _ = aiomqtt  # (the client library the probe uses)

@@ -21,8 +21,8 @@ from pathlib import Path
 import msgpack
 import pytest
 
-from runtime.records import read_trip_log
-from runtime.telemetry import TokenBucket
+from runtime.realtime.telemetry import TokenBucket
+from runtime.records.logs import read_trip_log
 from tests.runtime_helpers import BASE, DEMO, ROOT
 
 SETS = [a for kv in BASE for a in ("--set", kv)]
@@ -31,7 +31,7 @@ NOBODY = 65534
 
 
 def start(log_dir: Path, *sets: str, umask: int | None = None) -> subprocess.Popen[str]:
-    cmd = [sys.executable, "-m", "runtime.cli", "run", str(DEMO), "--headless", "--json",
+    cmd = [sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), "--headless", "--json",
            "--duration", "60", "--set", f"log.dir={log_dir}", *SETS]
     for kv in sets:
         cmd += ["--set", kv]
@@ -233,7 +233,7 @@ def test_fifty_thousand_requests_do_not_starve_the_tick_and_the_log_stays_bounde
 def test_operator_settings_errors_are_one_line(tmp_path):
     for kv, field in (("operator.socket_group=no-such-group-xyz", "operator.socket_group"),
                       ("operator.allowed_uids=[-1]", "operator.allowed_uids")):
-        out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(DEMO),
+        out = subprocess.run([sys.executable, "-m", "runtime.cli.main", "run", str(DEMO),
                               "--headless", "--duration", "1", "--set", f"log.dir={tmp_path}",
                               "--set", kv], capture_output=True, text=True, timeout=60,
                              cwd=ROOT)

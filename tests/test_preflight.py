@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from runtime.config import load_config
-from runtime.preflight import run_preflight
+from runtime.offline.preflight import run_preflight
 
 DEMO = "configs/pedestal-sim.toml"
 
@@ -92,7 +92,7 @@ def test_no_go_when_gamma_is_too_small_to_hold_the_bound(benign):
 
 
 def test_cli_json_contract_and_exit_codes(benign, tmp_path, capsys):
-    from runtime.cli import main
+    from runtime.cli.main import main
 
     path = tmp_path / "benign.toml"
     rc = main(["preflight", str(path), "--json", "--set", f"log.dir={tmp_path}"])

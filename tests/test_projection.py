@@ -1,4 +1,4 @@
-"""The projection operator (runtime.modifiers.Projection) by property tests.
+"""The projection operator (runtime.method.modifiers.Projection) by property tests.
 
 Source of the properties: Pomet and Praly, IEEE TAC 1992, and Lavretsky and
 Wise, Robust and Adaptive Control (2013), the projection-operator lemma
@@ -14,7 +14,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.modifiers import Projection
+from runtime.method.modifiers import Projection
 
 N, M = 5, 2
 floats = st.floats(-10.0, 10.0, allow_nan=False, allow_infinity=False)

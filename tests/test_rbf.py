@@ -14,10 +14,10 @@ import numpy as np
 import pytest
 import scipy.linalg as sla
 
-from runtime.basis import basis_from_config
 from runtime.config import Config, load_config
-from runtime.design import design_from_config
-from runtime.rbf import grid, rbf_evaluate, residual_eps
+from runtime.method.basis import basis_from_config
+from runtime.method.design import design_from_config
+from runtime.method.rbf import grid, rbf_evaluate, residual_eps
 
 STATES = ("az", "el", "az_rate", "el_rate")
 
@@ -93,7 +93,7 @@ def test_residual_condition_value_and_report(rbf_cfg):
 
 @pytest.mark.parametrize("path", ["configs/pedestal-rbf.toml", "configs/pedestal-narrowing.toml"])
 def test_demo_is_feasible_and_its_dry_run_keeps_the_bound(path):
-    from runtime.dryrun import dry_run
+    from runtime.offline.dryrun import dry_run
 
     cfg = load_config(path)
     d = design_from_config(cfg)
@@ -108,7 +108,7 @@ def test_demo_is_feasible_and_its_dry_run_keeps_the_bound(path):
 
 def test_rbf_demo_needs_the_network(rbf_cfg):
     # the same plant with the named terms only leaves the bound: the demo is not vacuous
-    from runtime.dryrun import dry_run
+    from runtime.offline.dryrun import dry_run
 
     res = dry_run(rbf_cfg.with_overrides(['basis.kind="terms"']))
     assert res.summary["max_margin_ratio"] >= 1.0

@@ -21,7 +21,7 @@ import msgpack
 import numpy as np
 import pytest
 
-from runtime.records import (
+from runtime.records.logs import (
     RUNLOG_FORMAT,
     TRIPS_FORMAT,
     RunLogWriter,
@@ -190,7 +190,7 @@ def test_truncation_anywhere_in_the_last_record_keeps_the_others(tmp_path):
 
 
 def test_a_log_cut_inside_its_header_is_a_clear_error_not_a_crash(tmp_path):
-    from runtime.records import LogReadError
+    from runtime.records.logs import LogReadError
 
     src = tmp_path / "h.trips"
     TripLog(src, make_header()).close()
@@ -227,7 +227,7 @@ def test_records_survive_a_sigkill_of_the_writer(tmp_path):
         import numpy as np
         sys.path.insert(0, {str(Path(__file__).parent)!r})
         from test_records import make_header, make_trip
-        from runtime.records import TripLog
+        from runtime.records.logs import TripLog
         rng = np.random.default_rng(5)
         log = TripLog({str(path)!r}, make_header())
         i = 0
@@ -349,7 +349,7 @@ def test_run_log_queue_of_one_counts_every_drop_while_writer_is_busy(tmp_path):
 def test_flattened_rows_with_widths_mode_codes_and_joined_units(tmp_path):
     """The loop may store capture rows flat (capture_widths), modes as integer codes
     (index into idle, settling, engaged, fallback, stopped) and vector units joined by commas."""
-    from runtime.comtrade_export import trip_channels
+    from runtime.review.comtrade_export import trip_channels
 
     rng = np.random.default_rng(6)
     rec, post = make_trip(1, 4000, rng)

@@ -19,9 +19,9 @@ import numpy as np
 import pytest
 
 from runtime.config import load_config
-from runtime.design import design_from_config
-from runtime.dryrun import dry_run, read_run_file, write_run_file
-from runtime.replay import (
+from runtime.method.design import design_from_config
+from runtime.offline.dryrun import dry_run, read_run_file, write_run_file
+from runtime.review.replay import (
     RunFileError,
     config_with_overrides,
     fit_plant,
@@ -63,7 +63,7 @@ def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 def _demo_levels() -> tuple[float, float]:
     raw = tomllib.loads(DEMO.read_text())
     wd = raw.get("watchdog", {})
-    from runtime.watchdog import DEFAULTS
+    from runtime.guard.watchdog import DEFAULTS
 
     return (float(wd.get("margin_warning", DEFAULTS["margin_warning"])),
             float(wd.get("margin_trip", DEFAULTS["margin_trip"])))
@@ -271,7 +271,7 @@ def test_cli_errors_are_one_clear_line(corral, runs, tmp_path):
 # ---------------------------------------------------------------- a real-time run log
 def test_replays_a_real_time_run_log(corral, tmp_path):
     if not (ROOT / "runtime" / "cmd_run.py").exists():
-        pytest.skip("corral run (runtime/cmd_run.py) is not in this checkout yet")
+        pytest.skip("corral run (runtime/cli/cmd_run.py) is not in this checkout yet")
     # The replay re-checks the recorded ticks against the margin rules; a loaded machine
     # must not add a loop-timing trip (overrun, stale sample) that no replay can see.
     run = corral("run", DEMO, "--headless", "--duration", "3", "--arm", "--json",
@@ -297,7 +297,7 @@ def test_replays_a_real_time_run_log(corral, tmp_path):
 
 def test_a_logged_trip_is_the_recorded_first_out(corral, tmp_path):
     if not (ROOT / "runtime" / "cmd_run.py").exists():
-        pytest.skip("corral run (runtime/cmd_run.py) is not in this checkout yet")
+        pytest.skip("corral run (runtime/cli/cmd_run.py) is not in this checkout yet")
     # A disturbance torque far beyond what the law can absorb makes the loop trip.
     run = corral("run", DEMO, "--headless", "--duration", "3", "--arm", "--json",
                  "--fault", "disturbance_step@2.5:axis=el,size=40",
@@ -310,3 +310,29 @@ def test_a_logged_trip_is_the_recorded_first_out(corral, tmp_path):
     assert out["recorded"]["trip_source"] == "the run's trip log"
     assert out["recorded"]["trip"]["rule"] == first["rule"]
     assert out["recorded"]["trip"]["t"] == pytest.approx(first["t"])
+
+
+def test_the_plot_and_text_mark_the_recorded_trip_the_replayed_one_and_their_levels(tmp_path):
+    """The reported case: a run that tripped (here on a sensor spike, a rule the replay
+    cannot re-check from the record) must never be labelled "recorded (no trip)"."""
+    from runtime_helpers import run_unpaced
+
+    from runtime.review.replay import plot_replay, replay_marks
+
+    _, summary = run_unpaced(tmp_path, 2.5, faults=["spike@1.6"])  # engaged at ~0.93 s
+    first = summary["trips"][0]
+    assert first["rule"] == "jump"
+    res = replay(read_recording(summary["run_log"]),
+                 ["watchdog.margin_trip=0.05", "watchdog.margin_warning=0.03"])
+    marks = replay_marks(res)
+    assert "no trip" not in marks["recorded_label"]
+    assert "jump" in marks["recorded_label"] and "trip log" in marks["recorded_label"]
+    rec = next(m for m in marks["marks"] if m["kind"] == "recorded")
+    assert rec["t"] == pytest.approx(first["t"]) and rec["levels"]["trip"] == 0.9
+    # The replay at a margin trip level of 0.05 trips, and is marked with its own levels.
+    replayed = next(m for m in marks["marks"] if m["kind"] == "replayed")
+    assert replayed["levels"]["trip"] == 0.05 and replayed["levels"]["warning"] == 0.03
+    assert "0.05" in marks["replayed_label"]
+    assert res.to_json()["marks"][0]["rule"] == "jump"
+    png = plot_replay(res, tmp_path / "replay.png")
+    assert png.stat().st_size > 0

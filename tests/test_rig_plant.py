@@ -18,8 +18,8 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from runtime.config import Config, ConfigError, load_config
-from runtime.design import design_from_config
-from runtime.dryrun import dry_run, plant_from_config
+from runtime.method.design import design_from_config
+from runtime.offline.dryrun import dry_run, plant_from_config
 from sim_rigs import RIGS
 from sim_rigs import kernel as K
 from sim_rigs.plant import RigPlant, SensorModel
@@ -126,15 +126,19 @@ def test_compiled_kernel_matches_the_numpy_reference_with_every_term_kind_nonzer
         plant = RigPlant.create(spec, x0=x0, substeps=3)
         plant.disturbance = rng.normal(size=(1, 2))
         plant.lam_scale = rng.uniform(0.5, 1.0, size=(1, 2))
-        # the derivative, term by term
-        dx = np.zeros(4)
-        code, mat = K.pack_rig(spec)
+        # the derivative: one RK4 substep of the generated step against the reference's
+        # deriv (dt tiny, so x1 = x0 + dt * f(x0) to first order is not what is checked:
+        # the whole step is, below, and here each row of f through a one-substep step of
+        # a vanishing dt recovers f to ~1e-7)
         prm = K.pack_params(spec, spec.truth_defaults)
         v = np.clip(u, -5, 5)
-        tc = K.work_buffer(spec)[6]
-        K.plant_prepare(code, mat, prm, plant.lam_scale[0], tc)
-        K.plant_deriv(x0, v, code, mat, tc, plant.disturbance[0], dx)
-        assert np.allclose(dx, plant.deriv(x0[None, :], v[None, :])[0], rtol=1e-13, atol=1e-13)
+        dt = 1e-8
+        xs = x0.copy()
+        K.compiled(spec).plant_step(xs, u, None, None, prm, np.full(2, 5.0), dt, 1,
+                                    plant.lam_scale[0], plant.disturbance[0],
+                                    K.work_buffer(spec))
+        dx = (xs - x0) / dt
+        assert np.allclose(dx, plant.deriv(x0[None, :], v[None, :])[0], rtol=1e-6, atol=1e-6)
         # a step with saturation
         cp = K.CompiledPlant(RigPlant.create(spec, x0=x0, substeps=3))
         cp.plant.disturbance = plant.disturbance
@@ -171,7 +175,7 @@ def test_sim_link_and_dry_run_simulate_the_same_plant_tick_by_tick():
     cfg = load_config(ROOT / "configs" / "pedestal-rbf.toml",
                       ["commands.duration=3.0"])
     res = dry_run(cfg)
-    from runtime.loop import make_link
+    from runtime.realtime.loop import make_link
 
     link = make_link(cfg, None, design=res.design)
     u = res.columns["u"]
@@ -263,7 +267,7 @@ dir = "runs"
 
 
 def _corral(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=cwd,
+    return subprocess.run([sys.executable, "-m", "runtime.cli.main", *args], cwd=cwd,
                           capture_output=True, text=True, timeout=600,
                           env={**__import__("os").environ, "PYTHONPATH": str(ROOT)})
 
@@ -326,7 +330,7 @@ def test_plant_truth_and_sensor_keys_of_the_configs_still_override_the_rig_file(
 
 def test_inline_nominal_model_with_plant_terms_dry_runs_and_sweeps(tmp_path):
     # No rig file: rig.A / rig.B / rig.C inline, [plant.params] and [[plant.terms]].
-    from runtime.sweep import run_sweep
+    from runtime.offline.sweep import run_sweep
 
     text = INLINE.replace("LOGDIR", str(tmp_path))
     (tmp_path / "inline.toml").write_text(text)
@@ -393,7 +397,7 @@ dir = "LOGDIR"
 def test_dry_run_and_sweep_flag_weights_past_the_limit():
     # The demo's weights grow to a norm of about 3; a limit of 0.5 must be flagged by both,
     # counted as diverged by the sweep, while the states stay well inside their range.
-    from runtime.sweep import run_sweep
+    from runtime.offline.sweep import run_sweep
 
     cfg = load_config(ROOT / "configs" / "pedestal-sim.toml",
                       ["commands.duration=3.0", "sweep.weight_norm_limit=0.5"])
@@ -408,3 +412,106 @@ def test_dry_run_and_sweep_flag_weights_past_the_limit():
     ok = run_sweep(load_config(ROOT / "configs" / "pedestal-sim.toml"), plants=4, duration=3.0,
                    workers=1).summary
     assert ok["diverged_weights_fraction"] == 0.0
+
+
+def test_dry_run_exit_code_reflects_weight_divergence(tmp_path):
+    # The bound holds (max ratio ~0.69) but the weights pass a limit of 0.5: exit 1, not 0;
+    # without the limit, exit 0.
+    cfg = str(ROOT / "configs" / "pedestal-sim.toml")
+    bad = _corral("dry-run", cfg, "--set", "commands.duration=2.0", "--set",
+                  "sweep.weight_norm_limit=0.5", "--json", "--no-plot", "--out",
+                  str(tmp_path / "a"), cwd=tmp_path)
+    s = json.loads(bad.stdout)
+    assert s["breach_time"] is None and s["weights_diverged_time"] is not None
+    assert bad.returncode == 1
+    good = _corral("dry-run", cfg, "--set", "commands.duration=2.0", "--json", "--no-plot",
+                   "--out", str(tmp_path / "b"), cwd=tmp_path)
+    assert good.returncode == 0, good.stderr
+
+
+def _random_rig(seed: int) -> dict:
+    """A seeded random term table: every factor kind, products, shared and multiple angles."""
+    rng = np.random.default_rng(seed)
+    n = 3
+    states = [{"name": f"s{i}", "unit": "1", "limit": 3.0} for i in range(n)]
+    A = rng.normal(size=(n, n)).round(3).tolist()
+    B = [[round(float(rng.normal()), 3)] for _ in range(n)]
+    params = {f"q{t}": round(float(rng.uniform(-1, 1)), 3) for t in range(12)}
+    params |= {"wid": 0.2, "lam": 0.75}
+    kinds = ["x", "sin", "cos", "tanh", "gauss", "abs"]
+    terms = []
+    for t in range(12):
+        factors = []
+        for _ in range(int(rng.integers(0, 3))):
+            kind = kinds[int(rng.integers(len(kinds)))]
+            st = f"s{int(rng.integers(n))}"
+            if kind == "x":
+                factors.append(st)
+            elif kind in ("sin", "cos"):
+                factors.append({"kind": kind, "state": st, "k": float(rng.choice([1.0, 2.0, 3.0,
+                                                                                  0.7]))})
+            elif kind in ("tanh", "gauss"):
+                factors.append({"kind": kind, "state": st,
+                                "width": "wid" if rng.random() < 0.5 else 0.4})
+            else:
+                factors.append(f"abs:{st}")
+        terms.append({"row": f"s{int(rng.integers(n))}", "param": f"q{t}",
+                      "coef": round(float(rng.uniform(-2, 2)), 3), "factors": factors})
+    # the angle-addition shortcuts: a base angle and its double and triple on one state
+    terms += [{"row": "s0", "param": "q0", "factors": [{"kind": "cos", "state": "s1", "k": 1.0}]},
+              {"row": "s2", "param": "q1", "factors": [{"kind": "sin", "state": "s1", "k": 2.0}]},
+              {"row": "s1", "param": "q2", "factors": [{"kind": "cos", "state": "s1", "k": 3.0}]}]
+    return {"name": f"random-{seed}", "state": states,
+            "input": [{"name": "u", "unit": "1", "limit": 2.0, "effectiveness": "lam",
+                       "drives": "s2"}],
+            "nominal": {"A": A, "B": B, "C": [[1.0, 0.0, 0.0]]},
+            "params": params, "term": terms}
+
+
+def _rigs_for_generated_code() -> list:
+    ped = RIGS["pedestal"]
+    return [("every-term", rig_from_dict(ALL_KINDS), None),
+            ("pedestal-stick-slip", ped, {"stribeck_az": 0.3, "stribeck_el": 0.25}),
+            ("pedestal", ped, None),
+            ("pitch-stand", RIGS["pitch-stand"], None),
+            ("random-1", rig_from_dict(_random_rig(1)), None),
+            ("random-2", rig_from_dict(_random_rig(2)), None)]
+
+
+@pytest.mark.parametrize("name,spec,extra", _rigs_for_generated_code(),
+                         ids=[r[0] for r in _rigs_for_generated_code()])
+def test_generated_step_and_lanes_match_the_numpy_reference(name, spec, extra):
+    # Reference: RigPlant (numpy) on the same term table, every parameter non-zero (the
+    # pedestal's stick-slip switched on in one case, off in another: the skipped factors).
+    # dt = 1 ms (angle-addition series) and 50 ms (angles move past its limit: exact path).
+    rng = np.random.default_rng(7)
+    mod = K.compiled(spec)
+    n, m = spec.n, spec.m
+    limits = np.asarray(spec.input_limits, dtype=float)
+    base = dict(spec.truth_defaults) | (extra or {})
+    for dt, sub in ((1e-3, 1), (1e-3, 3), (5e-2, 2)):
+        # one plant, with disturbance and effectiveness-loss faults
+        x0 = rng.uniform(-1, 1, n)
+        u = rng.uniform(-1.3, 1.3, m) * limits  # beyond the limits now and then
+        ref = RigPlant.create(spec, truth=base, x0=x0, substeps=sub)
+        ref.disturbance = rng.normal(size=(1, m))
+        ref.lam_scale = rng.uniform(0.5, 1.0, size=(1, m))
+        v = ref.step(u, dt)
+        x = x0.copy()
+        work = K.work_buffer(spec)
+        mod.plant_step(x, u, None, None, K.pack_params(spec, base), limits, dt, sub,
+                       ref.lam_scale[0], ref.disturbance[0], work)
+        assert np.allclose(work[5, :m], v[0])
+        assert np.allclose(x, ref.x[0], rtol=1e-12, atol=1e-13)
+        # K.LANES plants at once, each its own parameters (+-30 %), no faults
+        L = K.LANES
+        truth = {k: val * rng.uniform(0.7, 1.3, L) for k, val in base.items()}
+        X0 = rng.uniform(-1, 1, (L, n))
+        U = rng.uniform(-1.3, 1.3, (L, m)) * limits
+        refb = RigPlant.create(spec, truth=truth, x0=X0, batch=L, substeps=sub)
+        refb.step(U, dt)
+        X = X0.copy()
+        konst = np.zeros((L, mod.N_KONST))
+        mod.plant_setup_lanes(K.pack_params(spec, truth), np.arange(L), konst)
+        mod.plant_step_lanes(X, U, konst, limits, dt, sub)
+        assert np.allclose(X, refb.x, rtol=1e-12, atol=1e-13)

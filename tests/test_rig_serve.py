@@ -35,7 +35,7 @@ pytestmark = pytest.mark.timeout(60)
 
 ROOT = Path(__file__).resolve().parents[1]
 # The `corral` console script, run by this interpreter.
-CORRAL = [sys.executable, "-c", "import sys; from runtime.cli import main; sys.exit(main())"]
+CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
 CONFIG = ROOT / "configs" / "pedestal-sim.toml"
 SERVED = ROOT / "configs" / "pedestal-served.toml"
 
@@ -89,7 +89,7 @@ def test_serve_serial_first_line_samples_commands_and_timeout():
 
         async def main():
             async with SerialLink(path) as link:
-                assert link.hello.rig_id == "pedestal-sim"
+                assert link.hello.rig_id == "pedestal-sim-served"
                 assert link.hello.channels == ("az", "el", "az_rate", "el_rate")
                 statuses, after = await drive_then_stop(link)
                 # While commanded the outputs are on (no timeout, not off) ...
@@ -211,6 +211,10 @@ E2E_SLOW = ["--set", "loop.period=0.004", "--set", "adaptation.gamma=0.5"]  # 25
 
 # The preflight sweep runs before the run's socket appears; on a loaded 2-core machine it
 # took well past 15 s, so the waits below are bounds on events, not deadlines.
+LOAD_TOLERANT = ["--set", "watchdog.stale_periods=50", "--set", "watchdog.link_timeout_s=1.0",
+                 "--set", "watchdog.rules.overrun.enabled=false"]
+
+
 @pytest.mark.timeout(600)
 @pytest.mark.parametrize("transport", ["serial", "mqtt"])
 def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path):  # noqa: F811
@@ -234,16 +238,19 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
 
     import msgpack
 
+    # This test is about the link closing the loop, not about this host's timing: on a loaded
+    # 2-core machine the pty can stall for hundreds of milliseconds, so the timing rules are
+    # widened (the timing rules have their own tests and bench/fault_matrix.py).
     if transport == "serial":
         # A short host check before arming (it runs with the preflight on a real link).
-        config, serve_args, extra = SERVED, ["--serial"], ["--set", "watchdog.stale_periods=20",
+        config, serve_args, extra = SERVED, ["--serial"], [*LOAD_TOLERANT,
                                                            "--set", "loop.hostcheck_s=0.5"]
     else:
         # The preflight (run before the first arm on a real link) judges the design
         # slowed to 250 Hz NO-GO (most sampled plants trip); this test is about the
         # link closing the loop, so it arms without it, as an operator may on a sim.
         config, serve_args = CONFIG, ["--mqtt", mosquitto.url, *E2E_SLOW]
-        extra = [*E2E_SLOW, "--no-preflight", "--set", "watchdog.stale_periods=20"]
+        extra = [*E2E_SLOW, "--no-preflight", *LOAD_TOLERANT]
     # The served rig runs until this test ends it (Serve.__exit__), however long the
     # preflight takes; the duration is only a guard against a leaked process.
     with Serve(*serve_args, "--duration", "900", config=config) as serve:
@@ -257,7 +264,9 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
              "--json", "--set", f"log.dir={tmp_path}", *extra],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
         try:
-            sock_path = tmp_path / "pedestal-sim.sock"
+            # The run names itself after its link kind (runtime.records.runinfo.run_name).
+            sock_path = tmp_path / ("pedestal-sim-served.sock" if transport == "serial"
+                                    else "pedestal-sim-mqtt.sock")
             deadline = time.monotonic() + 300  # the preflight first: minutes under load
             while not sock_path.exists() and time.monotonic() < deadline:
                 assert run.poll() is None, run.communicate()[1]
@@ -307,11 +316,11 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
 def test_rig_clocked_overrun_counts_late_samples(tmp_path):
     """A served rig whose samples arrive 3 periods late (a `link_delay` fault) makes every
     rig-clocked tick a deadline miss (handled over one period after its expected
-    arrival, runtime.clock.ArrivalTracker), so the overrun rule (25 misses in 1000
+    arrival, runtime.realtime.clock.ArrivalTracker), so the overrun rule (25 misses in 1000
     ticks, the default) trips with its reaction. The stale rule is turned off here:
     it would trip on the same delay and take the first-out place."""
     from runtime.config import load_config
-    from runtime.loop import Runner, RunSettings
+    from runtime.realtime.loop import Runner, RunSettings
 
     with InProcess(tmp_path, ["link_delay@1.2:seconds=0.006"]) as rig:
         assert rig.device.period == 0.002  # the served config's period

@@ -11,14 +11,14 @@ import subprocess
 import sys
 import time
 
-from runtime.records import load_trips
+from runtime.records.logs import load_trips
 from tests.runtime_helpers import BASE, DEMO, runner
 
 SETS = [a for kv in BASE for a in ("--set", kv)]
 
 
 def corral(*args):
-    return [sys.executable, "-m", "runtime.cli", "run", str(DEMO), *args, *SETS]
+    return [sys.executable, "-m", "runtime.cli.main", "run", str(DEMO), *args, *SETS]
 
 
 def test_headless_json_summary_with_a_fault(tmp_path):

@@ -10,8 +10,8 @@ import asyncio
 
 import numpy as np
 
-from runtime.supervisor import Supervisor
-from runtime.telemetry import TelemetryClient
+from runtime.guard.supervisor import Supervisor
+from runtime.realtime.telemetry import TelemetryClient
 from tests.runtime_helpers import runner
 
 

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 from runtime.config import load_config
-from runtime.design import design_from_config
-from runtime.sweep import (
+from runtime.method.design import design_from_config
+from runtime.offline.sweep import (
     RULES,
     SweepSettings,
     _Rules,
@@ -49,7 +49,7 @@ def test_batch_equals_each_plant_alone_through_the_same_code_path(cfg, batch):
 
 
 def test_compiled_engine_matches_the_numpy_reference_law_and_plant(cfg, batch):
-    # Reference: runtime.law.AdaptiveLaw.step + sim_rigs.plant.RigPlant.step over the batch.
+    # Reference: runtime.method.law.AdaptiveLaw.step + sim_rigs.plant.RigPlant.step over the batch.
     ref = run_sweep(cfg, plants=6, seed=11, duration=2.0, workers=1, engine="compiled")
     np.testing.assert_allclose(ref.per_plant["max_ratio"], batch.per_plant["max_ratio"],
                                rtol=1e-9)
@@ -65,8 +65,8 @@ def test_worker_count_does_not_change_noise_free_results(cfg, batch):
 
 @pytest.mark.parametrize("i", [0, 3])
 def test_plant_agrees_with_the_single_plant_dry_run(cfg, batch, i):
-    # The dry run (runtime.dryrun, compiled single-plant engine) with plant i's truth.
-    from runtime.dryrun import dry_run
+    # The dry run (runtime.offline.dryrun, compiled single-plant engine) with plant i's truth.
+    from runtime.offline.dryrun import dry_run
 
     truth = {k: float(v[i]) for k, v in batch.truth.items()}
     sets = [f"plant.truth.{k}={v!r}" for k, v in truth.items()] + ["commands.duration=2.0"]
@@ -96,15 +96,15 @@ def test_rule_bookkeeping_against_a_plain_loop(cfg):
     UR[50:300, 1, 2] = -12.5        # plant 2 saturated 250 ticks only (0.25 s < 0.5 s)
     R[:, 3] = 0.1
     R[400, 3] = np.nan              # plant 3 goes non-finite at tick 400
-    from runtime.sweep import _setup
-    from runtime.watchdog import Signals, build_rules
+    from runtime.guard.watchdog import Signals, build_rules
+    from runtime.offline.sweep import _setup
 
     rules = _Rules(B, design, st, _setup(cfg.raw, st).levels)
     for k0 in range(0, K, 64):      # fed in blocks, as the engines do
         rules.block(k0, R[k0:k0 + 64], UR[k0:k0 + 64])
     res = rules.result()
-    # Reference: the live watchdog's own rules (runtime.watchdog), fed tick by tick the way
-    # the runtime feeds them (runtime.loop: seconds at the limit, |u| >= limit).
+    # Reference: the live watchdog's own rules (runtime.guard.watchdog), fed tick by tick the way
+    # the runtime feeds them (runtime.realtime.loop: seconds at the limit, |u| >= limit).
     Ts = design.Ts
     for b in range(B):
         live = {r.id: r for r in build_rules(cfg, Ts, design.clamp_margin)}
@@ -115,7 +115,7 @@ def test_rule_bookkeeping_against_a_plain_loop(cfg):
             sat_time = np.where(np.abs(UR[k, :, b]) >= design.rig.input_limits,
                                 sat_time + Ts, 0.0)
             sig = Signals(t=k * Ts, tick=k, engaged=True, ratio=r,
-                          clamped=not (r <= 1 - design.clamp_margin),  # as runtime.law
+                          clamped=not (r <= 1 - design.clamp_margin),  # as runtime.method.law
                           nonfinite=not np.isfinite(r), sat_time=float(np.max(sat_time)))
             for rid in RULES:
                 if live[rid].evaluate(sig) and exp[rid] < 0:
@@ -143,7 +143,7 @@ def test_grid_reports_refused_settings_and_the_best(cfg):
 
 
 def test_cli_json_has_the_contract_keys(tmp_path, capsys):
-    from runtime.cli import main
+    from runtime.cli.main import main
 
     rc = main(["sweep", DEMO, "--plants", "3", "--duration", "0.5", "--workers", "1",
                "--out", str(tmp_path), "--json", "--set", f"log.dir={tmp_path}"])
@@ -159,7 +159,7 @@ def test_cli_json_has_the_contract_keys(tmp_path, capsys):
 
 
 def test_cli_grid_json_structure(tmp_path, capsys):
-    from runtime.cli import main
+    from runtime.cli.main import main
 
     main(["sweep", DEMO, "--plants", "2", "--duration", "0.3", "--workers", "1", "--no-plot",
           "--grid", "adaptation.gamma=1,2", "--grid", "adaptation.clamp_margin=0.02,0.05",
@@ -171,7 +171,7 @@ def test_cli_grid_json_structure(tmp_path, capsys):
 
 
 def test_bad_grid_is_one_line_error(capsys):
-    from runtime.cli import main
+    from runtime.cli.main import main
 
     assert main(["sweep", DEMO, "--grid", "adaptation.gamma"]) == 2
     err = capsys.readouterr().err
@@ -216,7 +216,7 @@ def test_compiled_engine_matches_the_reference_engine_noise_off(cfg, extra):
 def test_compiled_engine_matches_the_reference_engine_with_the_same_noise():
     # The reference engine (RigPlant.measure) draws rng.standard_normal((B, 4)) per reading
     # from default_rng([seed, chunk]); replaying those draws into the kernel gives the same noise.
-    from runtime.sweep import _run_compiled, _setup
+    from runtime.offline.sweep import _run_compiled, _setup
 
     c = load_config(DEMO, ["sweep.latency_ticks=1"])
     st = SweepSettings.from_config(c, plants=5, seed=3, duration=1.0, workers=1, engine="reference")
@@ -235,7 +235,8 @@ def test_compiled_engine_matches_the_reference_engine_with_the_same_noise():
 
 
 def test_compiled_engine_runs_modifiers_and_radial_basis_like_the_reference():
-    # The reference engine: runtime.law.AdaptiveLaw (with runtime.modifiers) + RigPlant.step.
+    # The reference engine: runtime.method.law.AdaptiveLaw (with runtime.method.modifiers)
+    # + RigPlant.step.
     for extra in (['adaptation.leakage="e"', "adaptation.mu=0.5", "adaptation.projection=true",
                    "adaptation.theta_max=[2.0, 2.0]"],
                   ['basis.kind="rbf"', 'basis.terms=["bias", "cos:el"]',
@@ -284,7 +285,7 @@ def test_auto_picks_the_compiled_engine(cfg):
 def test_default_substeps_keep_steps_at_most_one_millisecond_and_agree_with_four():
     # RK4's global error is O(h^4) (Butcher, Numerical Methods for ODEs): at 1 kHz one
     # substep already resolves this plant, so the worst ratio barely moves.
-    from runtime.sweep import default_substeps
+    from runtime.offline.sweep import default_substeps
 
     demo = load_config(DEMO, QUIET)
     assert SweepSettings.from_config(demo, plants=1).substeps == 1  # demo: 1 kHz

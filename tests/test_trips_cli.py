@@ -1,6 +1,6 @@
 """`corral trips`: listing across runs, logs cut short, show, plot, exports, clear id errors.
 
-Most tests call the command in-process (`runtime.cli.main`); the error-path
+Most tests call the command in-process (`runtime.cli.main.main`); the error-path
 and the real-run tests start the real `corral` process.
 """
 
@@ -16,12 +16,12 @@ import msgpack
 import pytest
 from test_records import DEMO, ROOT, make_header, make_trip, write_trip_log
 
-from runtime.cli import main as corral
-from runtime.records import TripLog
+from runtime.cli.main import main as corral
+from runtime.records.logs import TripLog
 
-# The console script's own code path (`python -m runtime.cli` would load the CLI twice, as
-# __main__ and as runtime.cli, so its UserError would not be the one the commands raise).
-ENTRY = "import sys; from runtime.cli import main; sys.exit(main())"
+# The console script's own code path (`python -m runtime.cli.main` would load the CLI twice, as
+# __main__ and as runtime.cli.main, so its UserError would not be the one the commands raise).
+ENTRY = "import sys; from runtime.cli.main import main; sys.exit(main())"
 
 
 def run_cli(*argv: str) -> subprocess.CompletedProcess:
@@ -56,7 +56,7 @@ def test_list_spans_runs_and_marks_the_log_cut_short(logs, capsys):
     assert corral(["trips", str(logs["folder"]), str(logs["other"])]) == 0
     out = capsys.readouterr().out
     lines = out.splitlines()
-    assert lines[0].split()[:4] == ["TIME", "RIG", "ID", "FIRST-OUT"]
+    assert lines[0].split()[:5] == ["TIME", "RIG", "LINK", "ID", "FIRST-OUT"]
     trip_lines = [ln for ln in lines if ".trips:" in ln and not ln.startswith("more")]
     assert len(trip_lines) == 6
     # sorted by wall time: run a (2), run b (3) share the builder's clock; bench is a day later
@@ -67,7 +67,8 @@ def test_list_spans_runs_and_marks_the_log_cut_short(logs, capsys):
     a_lines = [ln for ln in trip_lines if "100000.trips" in ln]
     assert not any(ln.rstrip().endswith("*") for ln in a_lines)
     rec = logs["a"][0][0]
-    assert f"{rec['first_out']['value']:.4g} vs 0.9" in a_lines[0]
+    # the value in words and units (runtime.records.runinfo.say_value)
+    assert f"{rec['first_out']['value']:.4g} of eps (limit 0.9 of eps)" in a_lines[0]
     assert f"{rec['detect_to_action_us']:.3g}" in a_lines[0]
     assert "cut short" in out and "110000.trips" in out.split("cut short")[1]
     assert "6 trips in 3 logs" in out
@@ -157,9 +158,10 @@ def test_a_log_with_only_a_torn_header_among_others_does_not_hide_them(logs, cap
     assert "5 trips in 3 logs" in out and "120000.trips" in out
 
 
-@pytest.mark.skipif(importlib.util.find_spec("runtime.loop") is None
-                    or importlib.util.find_spec("runtime.cmd_run") is None,
-                    reason="needs the real-time loop: runtime/loop.py and runtime/cmd_run.py "
+@pytest.mark.skipif(importlib.util.find_spec("runtime.realtime.loop") is None
+                    or importlib.util.find_spec("runtime.cli.cmd_run") is None,
+                    reason="needs the real-time loop: runtime/realtime/loop.py and "
+                           "runtime/cli/cmd_run.py "
                            "(`corral run`) are not in the tree yet")
 def test_trips_of_a_real_run_with_a_fault(tmp_path):
     """`corral run` on the demo with a spike fault, then `corral trips` on its log folder."""

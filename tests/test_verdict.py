@@ -1,4 +1,4 @@
-"""The sampled-data check and the design verdict (runtime.design, runtime.verdict).
+"""The sampled-data check and the design verdict (runtime.method.design, runtime.offline.verdict).
 
 Outside references:
 - Symplectic Euler on the harmonic oscillator x'' = -w^2 x is stable exactly for
@@ -23,12 +23,12 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from runtime import fast
 from runtime.config import Config, load_config
-from runtime.design import SAMPLED_LIMIT, design_from_config, sampled_spectral_radius
-from runtime.dryrun import dry_run
-from runtime.law import AdaptiveLaw
-from runtime.verdict import FEASIBLE, REFUSED, decide
+from runtime.kernels import fast
+from runtime.method.design import SAMPLED_LIMIT, design_from_config, sampled_spectral_radius
+from runtime.method.law import AdaptiveLaw
+from runtime.offline.dryrun import dry_run
+from runtime.offline.verdict import FEASIBLE, REFUSED, decide
 
 ROOT = Path(__file__).resolve().parents[1]
 GAMMAS = (0.25, 0.5, 1, 2, 4, 8, 16, 32, 64, 128, 256)

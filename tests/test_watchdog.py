@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 from runtime.config import load_config
-from runtime.watchdog import DEFAULT_REACTIONS, RULE_IDS, Signals, Watchdog, build_rules
+from runtime.guard.watchdog import DEFAULT_REACTIONS, RULE_IDS, Signals, Watchdog, build_rules
 from tests.runtime_helpers import DEMO
 
 

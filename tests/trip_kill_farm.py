@@ -20,8 +20,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from runtime.config import load_config  # noqa: E402
-from runtime.design import design_from_config  # noqa: E402
-from runtime.loop import LawAdapter, Runner, RunSettings  # noqa: E402
+from runtime.method.design import design_from_config  # noqa: E402
+from runtime.realtime.loop import LawAdapter, Runner, RunSettings  # noqa: E402
 
 DEMO = ROOT / "configs" / "pedestal-sim.toml"
 BASE = ["supervisor.settle_time=0.2", "watchdog.overrun_misses=100000",

@@ -1,0 +1,49 @@
+"""The dry-run loop and the sweep kernel compiled against one rig's generated plant step.
+
+`runtime.kernels.fast` holds the loops as plain Python templates (`dry_run_loop`,
+`sweep_kernel`) that call `plant_step` / `plant_step_lanes` by name; `compiled(spec)` puts
+their text after the rig's generated step (`sim_rigs.kernel.module_source`) in one module, so
+numba inlines the rig's straight-line code into the loops. The module file is named by a hash
+of its text and of every file its compiled code depends on (`SOURCES`), so an edit to any of
+them compiles afresh instead of loading a stale kernel from numba's cache. A jitted helper
+in another file that the loops call must join `SOURCES`.
+"""
+
+from __future__ import annotations
+
+import inspect
+from pathlib import Path
+from typing import Any
+
+from runtime.kernels import fast
+from sim_rigs import kernel
+from sim_rigs.rigfile import RigSpec
+
+TEMPLATES = {"dry_run_loop": "@numba.njit(cache=True)",
+             "sweep_kernel": "@numba.njit(parallel=True, cache=True)"}
+"""The loops of `runtime.kernels.fast` compiled per rig, with their numba decorators."""
+
+_ROOT = Path(__file__).resolve().parents[2]
+SOURCES = ("runtime/kernels/fast.py", "runtime/guard/watchdog.py", "sim_rigs/kernel.py",
+           "runtime/kernels/rigloops.py")
+
+
+PRELUDE = ("import runtime.kernels.fast as _fast\n"
+           "globals().update({k: v for k, v in vars(_fast).items() if not k.startswith('__')})")
+"""The names of `runtime.kernels.fast` the loops use (its placeholders of the plant step
+are then replaced by the rig's generated ones, which follow)."""
+
+
+def loops_source() -> str:
+    """The loop templates with their numba decorators."""
+    parts = []
+    for name, deco in TEMPLATES.items():
+        parts += ["", "", deco, inspect.getsource(getattr(fast, name))]
+    return "\n".join(parts)
+
+
+def compiled(spec: RigSpec) -> Any:
+    """The rig's generated module with its plant step and the runtime's loops
+    (`plant_step`, `dry_run_loop`, `sweep_kernel`, ...), once a process per rig."""
+    return kernel.load_generated(kernel.module_source(spec, PRELUDE, loops_source()),
+                                 tuple(_ROOT / rel for rel in SOURCES))

@@ -1,0 +1,742 @@
+"""Crash-safe records: the run log, the trip log, and their readers.
+
+Lives here:
+- `RunLogWriter`: every tick as one positional msgpack list after a schema
+  header, written by a background thread from a bounded queue. `append` never
+  blocks the tick; when the queue is full the row is dropped and counted.
+- `TripLog`: the append-only trip log. Every record (header, trip, post-trip
+  capture, operator event) is one msgpack map written with write + flush +
+  os.fsync at once, so everything appended before a crash or a kill reads back.
+- Readers: `read_stream` (header, records, torn flag), `load_trips` (trips of
+  many logs, post captures merged, sorted by wall time), `read_run_log`.
+  A torn last record (a crash mid-write) is detected and skipped, never fatal.
+- `Trip` and `Capture`: a trip as a reviewer sees it, and its pre/post capture
+  as named columns (used by `corral trips`, the plot and the exports).
+
+What does not live here: deciding when to trip (`runtime.guard.watchdog`), the loop
+that fills these records (`runtime.realtime.loop`), plots and exports
+(`runtime.review.triplot`, `runtime.review.comtrade_export`), the command line
+(`runtime.cli.cmd_trips`). The file formats are the shared contract in the
+design notes; this module is their only writer.
+"""
+
+from __future__ import annotations
+
+import collections
+import math
+import os
+import threading
+import time
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+from numpy.typing import NDArray
+
+from runtime.guard.watchdog import RULE_IDS
+
+TRIPS_FORMAT = "corral-trips"
+RUNLOG_FORMAT = "corral-runlog"
+FORMAT_VERSION = 1
+TRIPS_SUFFIX = ".trips"
+RUNLOG_SUFFIX = ".run"
+
+#: Watchdog rule ids, in the order the contract lists them (one list: the watchdog's).
+RULES: tuple[str, ...] = RULE_IDS
+#: Supervisor modes, in the order used when a mode is recorded as an integer code.
+MODES: tuple[str, ...] = ("idle", "settling", "engaged", "fallback", "stopped")
+#: Margin levels (fractions of eps) when neither the log nor its config names them.
+DEFAULT_LEVELS = {"warning": 0.8, "trip": 0.9}
+
+
+class LogReadError(Exception):
+    """A log that cannot be read at all (missing, not a corral log)."""
+
+
+# ---------------------------------------------------------------------------
+# Writing
+# ---------------------------------------------------------------------------
+
+def _plain(obj: Any) -> Any:
+    """msgpack fallback: numpy arrays and scalars, paths and tuples as plain values."""
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, (set, frozenset)):
+        return sorted(obj)
+    raise TypeError(f"cannot record a {type(obj).__name__}")
+
+
+def _packer() -> msgpack.Packer:
+    return msgpack.Packer(default=_plain, use_bin_type=True)
+
+
+def log_paths(log_dir: str | Path, rig: str, stamp: str | None = None) -> tuple[Path, Path]:
+    """The run log and trip log paths of one run, claimed so no other run gets them.
+
+    `<dir>/<rig>-<YYYYmmdd-HHMMSS>-<pid>.run|.trips`; when that trip log already exists (a
+    second run in the same second from the same process) a sequence suffix ``-2``, ``-3``
+    ... is added. The trip log is created empty here with O_EXCL, so two runs never share
+    a trip file (and trip ids stay unique per file) nor a run log.
+    """
+    stamp = stamp or time.strftime("%Y%m%d-%H%M%S")
+    stem = f"{rig}-{stamp}-{os.getpid()}"
+    for n in range(1, 10_000):
+        base = Path(log_dir) / (stem if n == 1 else f"{stem}-{n}")
+        # Not with_suffix: a dot in the rig name would be taken for a suffix.
+        trips = Path(f"{base}{TRIPS_SUFFIX}")
+        try:
+            fd = os.open(trips, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            continue
+        os.close(fd)
+        return Path(f"{base}{RUNLOG_SUFFIX}"), trips
+    raise FileExistsError(f"no free trip log name for {stem} in {log_dir}")
+
+
+def _fsync_dir(path: Path) -> None:
+    """Make a new file's directory entry durable (POSIX; ignored where unsupported)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _complete_length(path: Path) -> int:
+    """Byte length of the complete records at the start of a log (the torn tail excluded)."""
+    with open(path, "rb") as fh:
+        data = fh.read()
+    unpacker = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=0)
+    unpacker.feed(data)
+    end = 0
+    try:
+        for _ in unpacker:
+            end = unpacker.tell()
+    except (ValueError, msgpack.UnpackException):
+        pass
+    return end
+
+
+class TripLog:
+    """The append-only trip log: each record durable before `append` returns.
+
+    Parameters
+    ----------
+    path : the `.trips` file. Created with `header` (fsynced, directory fsynced);
+        an existing log is continued after its last complete record.
+    header : the header map (rig, config_hash, software_version, config,
+        capture_fields, capture_units, ...); type/format/version/started_wall
+        are filled in when absent.
+
+    Example
+    -------
+    >>> log = TripLog(tmp / "rig.trips", {"rig": "pedestal-sim"})   # doctest: +SKIP
+    >>> log.append({"type": "event", "kind": "arm", "detail": "", "tick": 0})  # doctest: +SKIP
+    """
+
+    def __init__(self, path: str | Path, header: dict[str, Any]) -> None:
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.header = {"type": "header", "format": TRIPS_FORMAT, "version": FORMAT_VERSION,
+                       "started_wall": time.time(), **header}
+        self._lock = threading.Lock()
+        self._packer = _packer()
+        self.records = 0
+        existed = self.path.exists() and self.path.stat().st_size > 0
+        if existed:
+            good = _complete_length(self.path)
+            if good < self.path.stat().st_size:
+                # A torn tail from an earlier crash: cut it so new records stay readable.
+                os.truncate(self.path, good)
+            existed = good > 0
+        self._fh = open(self.path, "ab")  # noqa: SIM115 - held open for the run
+        if not existed:
+            self._write(self.header)
+            _fsync_dir(self.path.parent)
+
+    def _write(self, obj: dict[str, Any]) -> None:
+        blob = self._packer.pack(obj)
+        with self._lock:
+            self._fh.write(blob)
+            self._fh.flush()
+            os.fsync(self._fh.fileno())
+
+    def append(self, record: dict[str, Any]) -> None:
+        """Write one record (a "trip", "post" or "event" map) durably: write, flush, fsync."""
+        if self._fh.closed:
+            raise ValueError(f"trip log {self.path} is closed")
+        self._write(record)
+        self.records += 1
+
+    def event(self, kind: str, detail: str = "", tick: int = -1,
+              t_mono: float | None = None) -> dict[str, Any]:
+        """Append an operator event (arm, disarm, reset, stop, mode, refused, ...); returns it."""
+        rec = {"type": "event", "t_mono": time.monotonic() if t_mono is None else t_mono,
+               "t_wall": time.time(), "tick": int(tick), "kind": kind, "detail": detail}
+        self.append(rec)
+        return rec
+
+    def close(self) -> None:
+        """Close the file (every record is already on disk)."""
+        with self._lock:
+            if not self._fh.closed:
+                self._fh.close()
+
+    def __enter__(self) -> TripLog:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class RunLogWriter:
+    """Every tick to disk without ever blocking the tick.
+
+    `append(row)` puts the positional row on a bounded queue and returns; a
+    writer thread packs rows in batches, writes them, and flushes about every
+    `flush_interval` seconds. When the queue is full (the disk is slower than
+    the loop) the row is dropped and counted in `.dropped`. `close()` drains
+    what is queued, flushes, fsyncs and joins the thread.
+
+    The header gets type/format/version/started_wall when absent; it should
+    carry "fields", "widths", "units" (one per field), "period" and the config.
+    """
+
+    def __init__(self, path: str | Path, header: dict[str, Any], queue_size: int = 65536,
+                 flush_interval: float = 0.5) -> None:
+        if queue_size < 1:
+            raise ValueError("queue_size must be at least 1")
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.header = {"type": "header", "format": RUNLOG_FORMAT, "version": FORMAT_VERSION,
+                       "started_wall": time.time(), **header}
+        self.queue_size = int(queue_size)
+        self.flush_interval = float(flush_interval)
+        self.dropped = 0
+        self.appended = 0
+        self.written = 0
+        self.error: BaseException | None = None
+        self._queue: collections.deque[Any] = collections.deque()
+        self._wake = threading.Event()
+        self._closing = False
+        self._thread = threading.Thread(target=self._run, name=f"runlog:{self.path.name}",
+                                        daemon=True)
+        self._thread.start()
+
+    def append(self, row: Sequence[Any]) -> bool:
+        """Queue one tick row; False (and `.dropped` += 1) when the queue is full. Never blocks."""
+        if self._closing or len(self._queue) >= self.queue_size:
+            self.dropped += 1
+            return False
+        self._queue.append(row)
+        self.appended += 1
+        return True
+
+    @property
+    def pending(self) -> int:
+        """Rows queued but not yet written."""
+        return len(self._queue)
+
+    def _run(self) -> None:
+        packer = _packer()
+        try:
+            fh = open(self.path, "wb")  # noqa: SIM115 - owned by this thread
+        except OSError as exc:
+            self.error = exc
+            return
+        try:
+            fh.write(packer.pack(self.header))
+            fh.flush()
+            last_flush = time.monotonic()
+            queue = self._queue
+            while True:
+                if not queue:
+                    if self._closing:
+                        break
+                    self._wake.wait(0.02)
+                    self._wake.clear()
+                    continue
+                chunks: list[bytes] = []
+                while queue and len(chunks) < 1024:
+                    chunks.append(packer.pack(queue.popleft()))
+                fh.write(b"".join(chunks))
+                self.written += len(chunks)
+                now = time.monotonic()
+                if now - last_flush >= self.flush_interval:
+                    fh.flush()
+                    last_flush = now
+            fh.flush()
+            try:
+                os.fsync(fh.fileno())
+            except OSError:
+                pass  # a pipe or a special file: nothing to sync
+        except BaseException as exc:  # noqa: BLE001 - reported through .error, never raised
+            self.error = exc
+        finally:
+            fh.close()
+
+    def close(self, timeout: float | None = None) -> None:
+        """Drain the queue, flush, fsync and stop the writer thread."""
+        self._closing = True
+        self._wake.set()
+        self._thread.join(timeout)
+
+    def __enter__(self) -> RunLogWriter:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+# ---------------------------------------------------------------------------
+# Reading
+# ---------------------------------------------------------------------------
+
+def read_stream(path: str | Path) -> tuple[dict[str, Any] | None, list[Any], bool]:
+    """Read a msgpack log: (header map or None, the records after it, torn).
+
+    `torn` is True when bytes after the last complete record were skipped (a
+    crash mid-write, or garbage). Trip logs give maps; run logs give lists.
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            data = fh.read()
+    except FileNotFoundError as exc:
+        raise LogReadError(f"no such log: {path}") from exc
+    except IsADirectoryError as exc:
+        raise LogReadError(f"{path} is a folder, not a log file") from exc
+    unpacker = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=0)
+    unpacker.feed(data)
+    objs: list[Any] = []
+    end = 0
+    try:
+        for obj in unpacker:
+            objs.append(obj)
+            end = unpacker.tell()
+    except (ValueError, msgpack.UnpackException):
+        pass  # garbage after the last good record: counted as torn below
+    torn = end < len(data)
+    header = None
+    if objs and isinstance(objs[0], dict) and objs[0].get("type") == "header":
+        header = objs.pop(0)
+    return header, objs, torn
+
+
+def find_logs(paths: Iterable[str | Path], suffix: str = TRIPS_SUFFIX) -> list[Path]:
+    """Files as given, folders searched (recursively) for `*<suffix>`; missing paths raise."""
+    out: list[Path] = []
+    for p in map(Path, paths):
+        if p.is_dir():
+            out.extend(sorted(p.rglob(f"*{suffix}")))
+        elif p.exists():
+            out.append(p)
+        else:
+            raise LogReadError(f"no such log or folder: {p}")
+    seen: set[Path] = set()
+    unique = []
+    for p in out:
+        key = p.resolve()
+        if key not in seen:
+            seen.add(key)
+            unique.append(p)
+    return unique
+
+
+@dataclass
+class Capture:
+    """A trip's pre/post capture as columns, with the trip instant located.
+
+    `columns[name]` is (N,) or (N, width) float, or an object array for text
+    fields (a mode name). `t` is seconds relative to the trip instant (the trip
+    tick is at t = 0); `trip_index` is that row.
+    """
+
+    fields: list[str]
+    units: dict[str, Any]
+    columns: dict[str, NDArray[Any]]
+    t: NDArray[np.float64]
+    trip_index: int
+    n_pre: int
+    period: float
+
+    def __len__(self) -> int:
+        return len(self.t)
+
+    def numeric(self, name: str) -> NDArray[np.float64] | None:
+        """A column as floats, or None when absent or not numeric."""
+        col = self.columns.get(name)
+        if col is None or col.dtype == object:
+            return None
+        return col
+
+    def unit(self, name: str, j: int | None = None) -> str:
+        """The unit of a field (of element j of a vector field)."""
+        u = self.units.get(name, "")
+        if isinstance(u, (list, tuple)):
+            if j is not None and j < len(u):
+                return str(u[j])
+            return str(u[0]) if u and len(set(map(str, u))) == 1 else ""
+        u = str(u or "")
+        if j is not None and "," in u:
+            parts = [s.strip() for s in u.split(",")]
+            return parts[j] if j < len(parts) else ""
+        return u
+
+
+def _column(values: list[Any]) -> NDArray[Any]:
+    """One field's values over the rows as a float array (N,) / (N, w), else object."""
+    if values and all(isinstance(v, (list, tuple)) for v in values):
+        widths = {len(v) for v in values}
+        if len(widths) == 1:
+            try:
+                return np.array([[math.nan if x is None else x for x in v] for v in values],
+                                dtype=float).reshape(len(values), widths.pop())
+            except (TypeError, ValueError):
+                pass
+        return np.array(values + [None], dtype=object)[:-1]
+    try:
+        return np.array([math.nan if v is None else v for v in values], dtype=float)
+    except (TypeError, ValueError):
+        return np.array(values + [None], dtype=object)[:-1]
+
+
+def _period(header: dict[str, Any]) -> float:
+    for key in ("period", "capture_period"):
+        if isinstance(header.get(key), (int, float)) and header[key] > 0:
+            return float(header[key])
+    loop = (header.get("config") or {}).get("loop") or {}
+    p = loop.get("period") if isinstance(loop, dict) else None
+    return float(p) if isinstance(p, (int, float)) and p > 0 else 0.001
+
+
+def build_capture(header: dict[str, Any], record: dict[str, Any],
+                  post: list[Any] | None) -> Capture:
+    """The capture of one trip: pre rows then post rows, as named columns."""
+    fields = [str(f) for f in header.get("capture_fields") or []]
+    units_list = list(header.get("capture_units") or [])
+    units = {f: (units_list[i] if i < len(units_list) else "") for i, f in enumerate(fields)}
+    widths = header.get("capture_widths")
+    pre = [r for r in (record.get("pre") or []) if isinstance(r, (list, tuple))]
+    post_rows = [r for r in (post or []) if isinstance(r, (list, tuple))]
+
+    def split(row: Sequence[Any]) -> list[Any] | None:
+        if len(row) == len(fields):
+            return list(row)
+        if widths and len(widths) == len(fields) and len(row) == sum(widths):
+            out, k = [], 0
+            for w in widths:
+                out.append(row[k] if w == 1 else list(row[k:k + w]))
+                k += w
+            return out
+        return None
+
+    pre_s = [s for s in map(split, pre) if s is not None]
+    post_s = [s for s in map(split, post_rows) if s is not None]
+    rows = pre_s + post_s
+    columns = {f: _column([r[i] for r in rows]) for i, f in enumerate(fields)} if rows else {
+        f: np.zeros(0) for f in fields}
+    n = len(rows)
+    trip_index = max(len(pre_s) - 1, 0)
+    tick_col = columns.get("tick")
+    if tick_col is not None and tick_col.dtype != object and n:
+        hits = np.flatnonzero(tick_col == record.get("tick", -1))
+        if hits.size:
+            trip_index = int(hits[0])
+    period = _period(header)
+    t_col = columns.get("t")
+    if t_col is not None and t_col.dtype != object and t_col.ndim == 1 and n:
+        t = t_col - t_col[min(trip_index, n - 1)]
+        steps = np.diff(t_col)
+        steps = steps[np.isfinite(steps) & (steps > 0)]
+        if steps.size:
+            period = float(np.median(steps))
+    else:
+        t = (np.arange(n) - trip_index) * period
+    return Capture(fields=fields, units=units, columns=columns, t=np.asarray(t, dtype=float),
+                   trip_index=min(trip_index, max(n - 1, 0)), n_pre=len(pre_s), period=period)
+
+
+@dataclass
+class Trip:
+    """One trip as read from a log: the record, its post capture, the run's header."""
+
+    record: dict[str, Any]
+    header: dict[str, Any]
+    source: Path
+    post: list[Any] | None = None
+    events: list[dict[str, Any]] = field(default_factory=list)
+    log_torn: bool = False
+    ended: dict[str, Any] = field(default_factory=dict)
+    """The run's end record (`runtime.records.runinfo.how_ended`; how "cut_short" when missing)."""
+    _capture: Capture | None = field(default=None, repr=False)
+
+    # -- identity and first-out ------------------------------------------
+    @property
+    def id(self) -> int:
+        return int(self.record.get("id", 0))
+
+    @property
+    def key(self) -> str:
+        """`FILE:N`, the id `corral trips` accepts."""
+        return f"{self.source.name}:{self.id}"
+
+    @property
+    def first_out(self) -> dict[str, Any]:
+        return dict(self.record.get("first_out") or {})
+
+    @property
+    def rule(self) -> str:
+        return str(self.first_out.get("rule", "?"))
+
+    @property
+    def value(self) -> float | None:
+        return self.first_out.get("value")
+
+    @property
+    def threshold(self) -> float | None:
+        return self.first_out.get("threshold")
+
+    @property
+    def later(self) -> list[dict[str, Any]]:
+        return list(self.record.get("later") or [])
+
+    @property
+    def action(self) -> str:
+        return str(self.record.get("action", "?"))
+
+    @property
+    def detect_to_action_us(self) -> float | None:
+        return self.record.get("detect_to_action_us")
+
+    @property
+    def tick(self) -> int:
+        return int(self.record.get("tick", -1))
+
+    @property
+    def t_wall(self) -> float:
+        return float(self.record.get("t_wall", self.header.get("started_wall", 0.0)) or 0.0)
+
+    @property
+    def t_mono(self) -> float | None:
+        return self.record.get("t_mono")
+
+    @property
+    def snapshot(self) -> dict[str, Any]:
+        return dict(self.record.get("snapshot") or {})
+
+    # -- the run it belongs to --------------------------------------------
+    @property
+    def rig(self) -> str:
+        return str(self.record.get("rig") or self.header.get("rig") or "?")
+
+    @property
+    def config_hash(self) -> str:
+        return str(self.record.get("config_hash") or self.header.get("config_hash") or "")
+
+    @property
+    def software_version(self) -> str:
+        return str(self.record.get("software_version") or self.header.get("software_version")
+                   or "")
+
+    @property
+    def config(self) -> dict[str, Any]:
+        return dict(self.header.get("config") or {})
+
+    @property
+    def capture_fields(self) -> list[str]:
+        return list(self.header.get("capture_fields") or [])
+
+    @property
+    def capture_units(self) -> list[Any]:
+        return list(self.header.get("capture_units") or [])
+
+    @property
+    def cut_short(self) -> bool:
+        """The log was cut short: a torn tail, or the post-trip capture never arrived."""
+        return self.log_torn or self.post is None
+
+    def capture(self) -> Capture:
+        """The pre/post capture as columns (built once)."""
+        if self._capture is None:
+            self._capture = build_capture(self.header, self.record, self.post)
+        return self._capture
+
+    def modes(self) -> list[str]:
+        """The supervisor mode at each captured row, as a name ("" where unknown).
+
+        Integer codes index the header's "modes" list, else `MODES`.
+        """
+        col = self.capture().columns.get("mode")
+        if col is None:
+            return []
+        order = [str(m) for m in self.header.get("modes") or MODES]
+        out = []
+        for v in col.tolist():
+            if isinstance(v, str):
+                out.append(v)
+            elif isinstance(v, (int, float)) and math.isfinite(v) and 0 <= int(v) < len(order):
+                out.append(order[int(v)])
+            else:
+                out.append("")
+        return out
+
+    def levels(self) -> dict[str, float]:
+        """Margin warning and trip levels (fractions of eps) the run used."""
+        lv = dict(DEFAULT_LEVELS)
+        head = self.header.get("levels")
+        if isinstance(head, dict):
+            lv.update({k: float(v) for k, v in head.items() if k in lv})
+            return lv
+        wd = self.config.get("watchdog")
+        if isinstance(wd, dict):
+            margin = wd.get("margin")
+            if isinstance(margin, dict):
+                for k in lv:
+                    for name in (k, f"{k}_level", "level" if k == "trip" else ""):
+                        if isinstance(margin.get(name), (int, float)):
+                            lv[k] = float(margin[name])
+                            break
+            for k in lv:
+                for name in (f"margin_{k}", f"{k}_level"):
+                    if isinstance(wd.get(name), (int, float)):
+                        lv[k] = float(wd[name])
+        if self.rule == "margin" and isinstance(self.threshold, (int, float)):
+            lv["trip"] = float(self.threshold)
+        return lv
+
+    def names(self) -> dict[str, list[str]]:
+        """State, input and tracked-output names and units (header first, else the config)."""
+        h = self.header
+        out: dict[str, list[str]] = {}
+        for key in ("states", "state_units", "inputs", "input_units", "tracked"):
+            if isinstance(h.get(key), list):
+                out[key] = [str(v) for v in h[key]]
+        if "input_limits" in h and isinstance(h["input_limits"], list):
+            out["input_limits"] = [str(v) for v in h["input_limits"]]
+        if {"states", "inputs", "tracked", "input_limits"} <= out.keys() or not self.config:
+            return out
+        try:  # derive from the config that ran
+            from runtime.config import Config
+            from runtime.method.commands import tracked_names
+            from runtime.method.design import rig_model
+
+            rig = rig_model(Config(raw=self.config))
+            out.setdefault("states", list(rig.states))
+            out.setdefault("state_units", list(rig.state_units))
+            out.setdefault("inputs", list(rig.inputs))
+            out.setdefault("input_units", list(rig.input_units))
+            out.setdefault("input_limits", [str(v) for v in np.asarray(rig.input_limits)])
+            out.setdefault("tracked", list(tracked_names(rig.C, rig.states)))
+        except Exception:  # noqa: BLE001 - names are a nicety; a foreign config must not break review
+            pass
+        return out
+
+    def summary(self) -> dict[str, Any]:
+        """The one-line facts of a trip as plain JSON values."""
+        from runtime.records.runinfo import iso_time, say_value
+
+        fo = self.first_out
+        raw_link = self.header.get("link")
+        link: dict[str, Any] = raw_link if isinstance(raw_link, dict) else {}
+        return {
+            "id": self.id, "key": self.key, "file": str(self.source), "rig": self.rig,
+            "link_kind": link.get("kind", "sim" if self.header.get("simulated") else None),
+            "simulated": link.get("simulated", self.header.get("simulated")),
+            "ended": self.ended.get("how"), "time": self.t_wall,
+            "time_iso": iso_time(self.t_wall),
+            "value_text": say_value(self.rule, self.value, self.threshold,
+                                    fo.get("on_delay_s")),
+            "on_delay_s": fo.get("on_delay_s"),
+            "tick": self.tick, "rule": self.rule, "signal": fo.get("signal"),
+            "value": self.value, "threshold": self.threshold, "action": self.action,
+            "detect_to_action_us": self.detect_to_action_us,
+            "later": [str(r.get("rule")) for r in self.later],
+            "config_hash": self.config_hash, "cut_short": self.cut_short,
+            "post_capture": self.post is not None,
+        }
+
+
+def read_trip_log(path: str | Path) -> tuple[dict[str, Any], list[Trip], list[dict[str, Any]],
+                                             bool]:
+    """One trip log: (header, trips with their post captures, operator events, torn)."""
+    path = Path(path)
+    header, records, torn = read_stream(path)
+    if header is None:
+        if not records and torn:
+            raise LogReadError(f"{path}: the log was cut short before its header was complete")
+        if not records:
+            raise LogReadError(f"{path}: empty log")
+        raise LogReadError(f"{path}: not a corral trip log (no header)")
+    if header.get("format") not in (None, TRIPS_FORMAT):
+        raise LogReadError(f"{path}: not a trip log (format {header.get('format')!r})")
+    trips: list[Trip] = []
+    by_id: dict[int, Trip] = {}
+    events: list[dict[str, Any]] = []
+    odd = 0
+    for rec in records:
+        if not isinstance(rec, dict):
+            odd += 1
+            continue
+        kind = rec.get("type")
+        if kind == "trip":
+            trip = Trip(record=rec, header=header, source=path)
+            trips.append(trip)
+            by_id[trip.id] = trip
+        elif kind == "post":
+            target = by_id.get(int(rec.get("trip_id", -1)))
+            if target is not None:
+                target.post = list(target.post or []) + list(rec.get("rows") or [])
+        elif kind == "event":
+            events.append(rec)
+    torn = torn or odd > 0
+    from runtime.records.runinfo import how_ended
+
+    ended = how_ended(records, header)
+    for trip in trips:
+        trip.events = events
+        trip.log_torn = torn
+        trip.ended = ended
+    return header, trips, events, torn
+
+
+def load_trips(paths: Iterable[str | Path]) -> list[Trip]:
+    """Every trip in the given logs (files, or folders searched for *.trips), by wall time."""
+    trips: list[Trip] = []
+    for path in find_logs(paths):
+        _, found, _, _ = read_trip_log(path)
+        trips.extend(found)
+    trips.sort(key=lambda tr: (tr.t_wall, str(tr.source), tr.id))
+    return trips
+
+
+def read_run_log(path: str | Path) -> tuple[dict[str, Any], dict[str, NDArray[Any]]]:
+    """A run log: (header, one array per field: (N,) or (N, width)); a torn tail is skipped."""
+    path = Path(path)
+    header, records, _ = read_stream(path)
+    if header is None or "fields" not in header:
+        raise LogReadError(f"{path}: not a corral run log (no header with fields)")
+    names = list(header["fields"])
+    widths = list(header.get("widths") or [1] * len(names))
+    total = sum(widths)
+    rows = [r for r in records if isinstance(r, (list, tuple)) and len(r) == total]
+    out: dict[str, NDArray[Any]] = {}
+    col = 0
+    for name, w in zip(names, widths, strict=True):
+        vals = [r[col] if w == 1 else list(r[col:col + w]) for r in rows]
+        arr = _column(vals) if rows else np.zeros((0,) if w == 1 else (0, w))
+        out[name] = arr
+        col += w
+    return header, out
