@@ -2,6 +2,7 @@
 
     python bench/fault_matrix.py            # print the table
     python bench/fault_matrix.py --write    # also write it into docs/faults.md
+    python bench/fault_matrix.py --link mqtt --only corrupt --write   # one row again
 
 Each kind runs on the demo config (simulated pedestal, armed, settled) with the fault at
 ``AT`` seconds, through the runtime's real tick, watchdog and trip log; the first trip's
@@ -9,9 +10,12 @@ rule, its time after the fault starts and its action are read back from the trip
 Every kind runs unpaced (`Runner.run_ticks`: the same ticks as fast as the machine
 allows) except ``overrun``, which needs the host clock and runs in real time.
 
-Links: ``sim`` (the in-process rig) today. The served device over a pseudo-terminal and
-MQTT (and the link-loss kinds there: device killed, broker restart) are listed as waiting
-in docs/faults.md until their injectors land.
+Links: ``sim`` (the in-process rig), ``serial`` (`corral rig serve --serial`, a real
+pseudo-terminal) and ``mqtt`` (`corral rig serve --mqtt` through a mosquitto this script
+starts); the served links run in real time with tolerant timing (`TOLERANT`), the
+device's fault at device time `SERVED_AT`, plus the rows the script performs itself:
+``device_kill`` (SIGKILL) and ``broker_restart``. ``--link`` and ``--only`` rerun a part;
+``--write`` merges those rows into the table.
 """
 
 from __future__ import annotations
