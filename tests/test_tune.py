@@ -3,7 +3,7 @@
 References: the feasible gain window comes from a grid sweep (`runtime.offline.sweep.run_grid`,
 the engine `corral sweep --grid` runs, independent of the optimiser); the comparison's
 figures from individual `run_sweep` and `dry_run` calls on the same plants. The matched
-gain gamma / eps is phi_d(0) = 1/eps of the rational barrier (exact formula, design brief).
+gain gamma / eps is phi_d(0) = 1/eps of the rational barrier (exact formula, docs/method.md §2.1).
 """
 
 from __future__ import annotations

@@ -50,7 +50,7 @@ LEVEL_STYLE = {
 }
 
 REFRESH_HZ = 10.0
-"""Redraws per second at most (traces are the costly part; the design brief says <= 10 Hz)."""
+"""Redraws per second at most (traces are the costly part; kept at <= 10 Hz, docs/telemetry.md)."""
 WINDOW_S = 30.0
 """The margin chart's time axis: the last WINDOW_S seconds."""
 HISTORY = 4096
