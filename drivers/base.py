@@ -51,6 +51,9 @@ class Hello:
     session: int = 0
     """Protocol v2 session token: from a host, the session it asks for; from a device,
     the session it granted (the one whose commands it obeys; 0 = none)."""
+    status_flags: tuple[str, ...] = ()
+    """The device's own status inputs (an e-stop, an interlock), by name: the one at
+    index k is status bit ``8 + k`` of every sample and heartbeat (at most 24)."""
 
 
 @dataclass(slots=True)

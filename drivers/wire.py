@@ -36,6 +36,12 @@ from drivers.base import (
     Sample,
 )
 
+STATUS_DEVICE_BASE_BIT = 8
+"""Status bit of the first device-declared status flag (hello ``status_flags``)."""
+
+MAX_STATUS_FLAGS = 24
+"""Most status flags a hello may declare (bits 8..31)."""
+
 PROTOCOL_VERSION = 2
 """Wire protocol version carried in every hello. Bumped on any incompatible change.
 
@@ -232,6 +238,8 @@ def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]
     if isinstance(msg, Stop):
         return [KIND_STOP, msg.seq % SEQ_MOD, float(msg.t), int(msg.code)]
     if isinstance(msg, Hello):
+        flags: list[object] = ([[str(f) for f in msg.status_flags]] if msg.status_flags
+                               else [])
         return [
             KIND_HELLO,
             seq % SEQ_MOD,
@@ -246,6 +254,7 @@ def message_array(msg: Message, *, seq: int = 0, t: float = 0.0) -> list[object]
             [str(u) for u in msg.output_units],
             float(msg.command_timeout_s),
             int(msg.session) % SEQ_MOD,
+            *flags,
         ]
     raise TypeError(f"not a wire message: {type(msg).__name__}")
 
@@ -356,6 +365,7 @@ def decode_array(arr: object) -> tuple[Message, int, float]:
             output_units=_strlist(arr[10], "output_units"),
             command_timeout_s=_num(arr[11], "command_timeout_s"),
             session=_session(arr, 12),
+            status_flags=_strlist(arr[13], "status_flags") if len(arr) > 13 else (),
         )
         _check_hello(msg)
     return msg, seq, t
@@ -369,6 +379,8 @@ def _check_hello(h: Hello) -> None:
     """A device hello must describe a usable rig; a host hello (no channels) carries none."""
     if len(h.channels) > MAX_CHANNELS or len(h.output_limits) > MAX_CHANNELS:
         raise DecodeError(f"hello announces more than {MAX_CHANNELS} channels or outputs")
+    if len(h.status_flags) > MAX_STATUS_FLAGS:
+        raise DecodeError(f"hello declares more than {MAX_STATUS_FLAGS} status flags")
     if not math.isfinite(h.command_timeout_s) or h.command_timeout_s < 0:
         raise DecodeError("hello command_timeout_s must be finite and not negative")
     if not h.channels:

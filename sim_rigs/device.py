@@ -9,11 +9,12 @@ it applies the held command (zero-order hold, through the device-side
 ``STATUS_COMMAND_TIMEOUT``), steps the physics, reads the sensors and sends
 one sample (angles and rates as ``y``). The fault schedule of
 `sim_rigs.faults` acts on the plant and the readings; the link kinds act on
-the frames: ``corrupt`` (flip bytes of every ``every``-th frame; over MQTT the
-message header, since TCP never delivers flipped bits), ``drop`` (``count``
-samples never sent, their seq skipped), ``link_delay`` (frames held back
-``seconds``), ``disconnect`` (the pseudo-terminal closed, or the MQTT
-connection dropped with the offline status published, until the fault ends).
+the frames through the same `sim_rigs.faults.FaultInjector.on_link` as the
+in-process link (``corrupt`` flips bytes of the frame: over MQTT the message
+header, since TCP never delivers flipped bits; ``drop``, ``duplicate``,
+``burst``, ``insertion``, ``link_delay``; ``overrun`` stalls the device's
+clock); ``disconnect`` closes the pseudo-terminal, or drops the MQTT
+connection with the offline status published, until the fault ends.
 
 Transports: `PtyTransport` (the device owns the master of a fresh
 pseudo-terminal, behind a stable symlink so a host can reopen it after a
@@ -47,7 +48,7 @@ import numpy as np
 from numpy.typing import NDArray
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
-from drivers.base import STATUS_COMMAND_TIMEOUT, Command, Hello, Sample
+from drivers.base import STATUS_COMMAND_TIMEOUT, STATUS_OUTPUTS_OFF, Command, Hello, Sample
 from drivers.mqtt_link import (
     HOST_HELLO_RIG_ID,
     LinkClosed,
@@ -65,6 +66,7 @@ from drivers.mqtt_link import (
 from drivers.serial_link import DeviceEndpoint
 from drivers.wire import (
     PROTOCOL_VERSION,
+    STATUS_DEVICE_BASE_BIT,
     CommandGuard,
     Stop,
     WireError,
@@ -75,6 +77,9 @@ from sim_rigs.faults import LINK_KINDS, FaultInjector, FaultSchedule
 from sim_rigs.kernel import CompiledPlant
 
 _RING = 4096
+ESTOP_FLAG = "estop"
+"""The served rig's declared status flag: its (simulated) emergency-stop input."""
+ESTOP_BIT = 1 << STATUS_DEVICE_BASE_BIT
 REALTIME_PRIORITY = 40
 """SCHED_FIFO priority of the device's threads when permitted (a real rig has its own CPU)."""
 SWITCH_INTERVAL_S = 100e-6
@@ -467,6 +472,14 @@ def _try_fifo(priority: int = REALTIME_PRIORITY) -> bool:
     return True
 
 
+@dataclass
+class LinkFaultCounts:
+    """Counters `FaultInjector.on_link` keeps on the device side."""
+
+    crc_errors: int = 0
+    duplicates: int = 0
+
+
 class RigDevice:
     """A simulated rig as a device on its own real-time clock (see the module docstring)."""
 
@@ -501,7 +514,11 @@ class RigDevice:
             units=spec.state_units, sample_rate_hz=1.0 / self.period, output_names=spec.inputs,
             output_limits=limits, output_units=spec.input_units,
             command_timeout_s=float(command_timeout_s),
+            status_flags=(ESTOP_FLAG,),
         )
+        self.estop_pressed = False
+        """The simulated emergency-stop input: while True the outputs are off and every
+        sample carries the ``estop`` status flag (bit `ESTOP_BIT`)."""
         self.transport: Transport | None = None
         self.seq = 0
         self.ticks = 0
@@ -518,9 +535,9 @@ class RigDevice:
         self._sent_seq = [-1] * _RING
         self._answered: set[int] = set()
         self.missed_commands = 0
-        self._delay_line: collections.deque[tuple[float, Sample, int]] = collections.deque()
-        self._dropped_for: dict[int, int] = {}
-        self._corrupt_count: dict[int, int] = {}
+        self.injector.wire = True
+        self.link_faults = LinkFaultCounts()
+        """What the link faults did on the way out (duplicates sent)."""
 
     # ---- transports
     def serve_pty(self, link_path: str) -> str:
@@ -615,6 +632,9 @@ class RigDevice:
         elif not down and not tr.connected:
             tr.reconnect()
         u, status = tr.outputs(now)
+        if self.estop_pressed:
+            # A pressed e-stop removes power whatever the host commands.
+            u, status = (0.0,) * len(u), status | STATUS_OUTPUTS_OFF | ESTOP_BIT
         if status & STATUS_COMMAND_TIMEOUT:
             self.timeouts += 1
         self.applied, self.status = u, status
@@ -622,37 +642,17 @@ class RigDevice:
         self.stepper.step(u, self.period)
         y = self.injector.measure(t, self.plant.measure()[0])
         self.seq = (self.seq + 1) & 0xFFFFFFFF
+        sample: Sample | None = None
         if y is not None:
             # A delayed reading is timestamped when it was measured (as on the in-process
             # rig): stamped "now" the delay fault was invisible to the stale rule.
             t_measured = t - self.injector.delay_ticks(t) * self.period
             sample = Sample(self.seq, t_measured, tuple(float(v) for v in y), status)
-            corrupt = 0
-            delay = 0.0
-            send = True
-            for i, f in enumerate(self.schedule.faults):
-                if f.kind not in LINK_KINDS or not f.active(t):
-                    continue
-                if f.kind == "drop":
-                    n = self._dropped_for.get(i, 0)
-                    if n < int(f.param("count")):
-                        self._dropped_for[i] = n + 1
-                        send = False
-                elif f.kind == "corrupt":
-                    c = self._corrupt_count.get(i, 0)
-                    self._corrupt_count[i] = c + 1
-                    if c % max(1, int(f.param("every"))) == 0:
-                        corrupt = 1
-                elif f.kind == "link_delay":
-                    delay = max(delay, float(f.param("seconds")))
-            if send:
-                if delay > 0 or self._delay_line:
-                    self._delay_line.append((now + delay, sample, corrupt))
-                else:
-                    self._emit(tr, sample, corrupt, now)
-        while self._delay_line and self._delay_line[0][0] <= now:
-            _, s, c = self._delay_line.popleft()
-            self._emit(tr, s, c, now)
+        # The link and host kinds: the same injector as the in-process link (one
+        # definition of each fault); a corrupt frame goes out with flipped bytes.
+        out = self.injector.on_link(t, sample, self.link_faults, self.period)
+        if out is not None:
+            self._emit(tr, out, 1 if self.injector.corrupt_last else 0, now)
 
     def _emit(self, tr: Transport, sample: Sample, corrupt: int, now: float) -> None:
         if isinstance(tr, PtyTransport):

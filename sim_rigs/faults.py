@@ -283,6 +283,12 @@ class FaultInjector:
         """Samples each link fault has seen since it started (by fault index)."""
         self._late: list[Any] = []
         self._last_sample: Any = None
+        self.wire = False
+        """True for a served device that sends real frames: a ``corrupt`` frame is sent
+        with flipped bytes (`corrupt_last`) for the receiver's CRC to catch, instead of
+        being counted and discarded here as the in-process link does."""
+        self.corrupt_last = False
+        """Whether the frame `on_link` just returned is to be corrupted (``wire`` only)."""
 
     def active(self, t: float) -> list[str]:
         """Labels of the faults in force at t."""
@@ -316,11 +322,14 @@ class FaultInjector:
         """The sample (a `drivers.base.Sample`) as the receiver gets it at rig time t through
         the link faults in force (None: nothing arrives this period). Counts what a real
         receiver would count in `stats` (crc_errors, duplicates). Also the host kinds:
-        ``overrun`` stalls here, inside the tick."""
+        ``overrun`` stalls here, inside the tick (on a served device: the device's clock
+        stalls). One definition of each link kind: the in-process link and the served
+        device (`sim_rigs.device`, ``wire`` set) both call this."""
         import dataclasses
         import time
 
         out = sample
+        self.corrupt_last = False
         for i, f in enumerate(self.schedule.faults):
             if not f.active(t) or f.kind not in LINK_KINDS + HOST_KINDS:
                 continue
@@ -336,8 +345,11 @@ class FaultInjector:
                     out = None
             elif kind == "corrupt":
                 if n % int(f.param("every")) == 0:
-                    stats.crc_errors += 1
-                    out = None
+                    if self.wire:
+                        self.corrupt_last = True
+                    else:
+                        stats.crc_errors += 1
+                        out = None
             elif kind == "duplicate":
                 if n % int(f.param("every")) == 0 and self._last_sample is not None:
                     stats.duplicates += 1

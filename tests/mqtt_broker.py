@@ -44,7 +44,8 @@ class Broker:
     """One mosquitto process with its own config, log and (optional) password file."""
 
     def __init__(self, folder: Path, *, users: dict[str, str] | None = None,
-                 tcp_nodelay: bool = False, acl: str | None = None, tls: bool = False) -> None:
+                 tcp_nodelay: bool = False, acl: str | None = None, tls: bool = False,
+                 client_certs: bool = False) -> None:
         binary = mosquitto_binary()
         if binary is None:
             raise RuntimeError("mosquitto is not installed (apt-get install mosquitto)")
@@ -59,6 +60,9 @@ class Broker:
         """Text of an ACL file (mosquitto's ``acl_file`` format), or None for none."""
         self.tls = tls
         """The listener speaks TLS on a certificate made here (`ca_file` is its CA)."""
+        self.client_certs = client_certs
+        """With `tls`: the listener requires a client certificate signed by the same CA
+        (``client.crt``/``client.key`` in the folder)."""
         self.ca_file: Path | None = None
         if tls:
             self.ca_file = make_certificates(folder)
@@ -77,6 +81,7 @@ class Broker:
             f"listener {self.port} 127.0.0.1",
             *([f"cafile {self.folder / 'ca.crt'}", f"certfile {self.folder / 'server.crt'}",
                f"keyfile {self.folder / 'server.key'}"] if self.tls else []),
+            *(["require_certificate true"] if self.tls and self.client_certs else []),
             "persistence false",
             f"log_dest file {self.log_path}",
             "log_type error",
@@ -148,7 +153,8 @@ class Broker:
 
 def make_certificates(folder: Path) -> Path:
     """A throw-away CA and a server certificate for 127.0.0.1 (openssl CLI, made at test
-    time); returns the CA certificate's path (``ca.crt``; ``server.crt``/``server.key``)."""
+    time); returns the CA certificate's path (``ca.crt``; ``server.crt``/``server.key``,
+    ``client.crt``/``client.key``)."""
     def ssl(*args: str) -> None:
         subprocess.run(["openssl", *args], cwd=folder, check=True, capture_output=True)
 
@@ -159,6 +165,10 @@ def make_certificates(folder: Path) -> Path:
     (folder / "san.ext").write_text("subjectAltName=IP:127.0.0.1\n")
     ssl("x509", "-req", "-in", "server.csr", "-CA", "ca.crt", "-CAkey", "ca.key",
         "-CAcreateserial", "-out", "server.crt", "-days", "2", "-extfile", "san.ext")
+    # a client certificate from the same CA, for listeners that require one
+    ssl("req", *ec, "-keyout", "client.key", "-out", "client.csr", "-subj", "/CN=corral client")
+    ssl("x509", "-req", "-in", "client.csr", "-CA", "ca.crt", "-CAkey", "ca.key",
+        "-CAcreateserial", "-out", "client.crt", "-days", "2")
     return folder / "ca.crt"
 
 

@@ -220,3 +220,4 @@ def test_c_header_constants_match_python():
         assert val(defs[f"KIND_{kind}"]) == getattr(wire, f"KIND_{kind}"), kind
     assert val(defs["PROTOCOL_VERSION"]) == wire.PROTOCOL_VERSION
     assert val(defs["MAX_FRAME"]) == wire.MAX_FRAME
+    assert val(defs["STATUS_DEVICE_BASE_BIT"]) == wire.STATUS_DEVICE_BASE_BIT

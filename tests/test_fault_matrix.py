@@ -9,7 +9,11 @@ The full table with times is bench/fault_matrix.py's (docs/faults.md).
 
 from __future__ import annotations
 
+import tempfile
+from pathlib import Path
+
 import pytest
+from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
 
 from bench.fault_matrix import MATRIX
 from runtime.records.logs import read_trip_log
@@ -50,3 +54,61 @@ def test_corrupt_frames_are_counted_as_crc_errors_and_lost(tmp_path):
 def test_duplicates_are_counted(tmp_path):
     r, _ = run_unpaced(tmp_path, 1.5, ["duplicate@1.0:every=10,duration=0.1"])
     assert r.link.stats.duplicates == 10
+
+
+# ---------------------------------------------------------------- the served links
+# A few rows of the matrix on the real parts: `corral rig serve` in a subprocess over a real
+# pseudo-terminal and through a real mosquitto (tests/mqtt_broker.py), the runtime
+# rig-clocked in this process with the matrix's tolerant timing (bench/fault_matrix.py
+# TOLERANT). Only the first-out is checked (no timings); every wait is for an event with a
+# generous bound. Expected first-outs as above (common practice of first-out alarm review).
+
+SERIAL_ROWS = [
+    # Known defect, open in the fault-matrix work: a single sample dropped by the served
+    # device over the pty was seen to end with no trip at all (seq_gap expected).
+    pytest.param("drop", marks=pytest.mark.xfail(
+        reason="served drop over the pty: no seq_gap trip seen; under investigation",
+        strict=False)),
+    "malformed", "device_kill"]
+MQTT_ROWS = ["corrupt", "duplicate", "broker_restart"]
+
+
+def _served_row(kind: str, link: str, tmp_path, broker=None) -> None:
+    from bench.fault_matrix import realtime_broker, run_served, served_spec
+
+    _, right, _ = served_spec(kind, link)
+    if broker is not None:
+        realtime_broker(broker)
+    # A short folder: the operator socket lives in log.dir (AF_UNIX paths are short).
+    with tempfile.TemporaryDirectory(prefix="fm-") as short:
+        res = run_served(kind, link, Path(short), broker)
+    assert res.get("error") in (None, ""), res
+    assert res["rule"] is not None, f"{kind} on {link}: no trip"
+    if res.get("before"):
+        pytest.skip(f"{kind} on {link}: this loaded machine tripped {res['rule']} before "
+                    f"the fault (not what this row checks)")
+    assert res["rule"] in right, (kind, link, res)
+
+
+@pytest.mark.timeout(300)
+@pytest.mark.parametrize("kind", SERIAL_ROWS)
+def test_served_rows_over_a_pty_trip_with_their_first_out(tmp_path, kind):
+    _served_row(kind, "serial", tmp_path)
+
+
+@pytest.mark.timeout(300)
+@pytest.mark.parametrize("kind", MQTT_ROWS)
+def test_served_rows_over_mqtt_trip_with_their_first_out(tmp_path, kind, mosquitto):  # noqa: F811
+    _served_row(kind, "mqtt", tmp_path, mosquitto)
+
+
+def test_the_served_device_and_the_in_process_link_share_one_injector():
+    # One definition of each link fault: the device keeps no copy of its own.
+    import inspect
+
+    import sim_rigs.device as device
+
+    src = inspect.getsource(device.RigDevice._tick)
+    assert "on_link" in src
+    for kind in ("\"drop\"", "\"corrupt\"", "\"link_delay\"", "\"duplicate\""):
+        assert kind not in src, kind

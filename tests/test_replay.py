@@ -270,8 +270,6 @@ def test_cli_errors_are_one_clear_line(corral, runs, tmp_path):
 
 # ---------------------------------------------------------------- a real-time run log
 def test_replays_a_real_time_run_log(corral, tmp_path):
-    if not (ROOT / "runtime" / "cmd_run.py").exists():
-        pytest.skip("corral run (runtime/cli/cmd_run.py) is not in this checkout yet")
     # The replay re-checks the recorded ticks against the margin rules; a loaded machine
     # must not add a loop-timing trip (overrun, stale sample) that no replay can see.
     run = corral("run", DEMO, "--headless", "--duration", "3", "--arm", "--json",
@@ -296,8 +294,6 @@ def test_replays_a_real_time_run_log(corral, tmp_path):
 
 
 def test_a_logged_trip_is_the_recorded_first_out(corral, tmp_path):
-    if not (ROOT / "runtime" / "cmd_run.py").exists():
-        pytest.skip("corral run (runtime/cli/cmd_run.py) is not in this checkout yet")
     # A disturbance torque far beyond what the law can absorb makes the loop trip.
     run = corral("run", DEMO, "--headless", "--duration", "3", "--arm", "--json",
                  "--fault", "disturbance_step@2.5:axis=el,size=40",

@@ -237,7 +237,7 @@ def test_summary_counts_per_rule_rig_day_and_the_worst_margins(many, capsys):
 
 # ---------------------------------------------------------------- one definition per figure
 def test_dry_run_reports_the_step_gain_before_and_after_the_cap(tmp_path):
-    """The law applies min(g_k, cap) (the method's per-step gain cap, design brief): the
+    """The law applies min(g_k, cap) (the per-step gain cap, docs/method.md §8): the
     peak before the cap and the applied one are both reported and labelled."""
     from runtime.config import load_config
     from runtime.offline.dryrun import dry_run

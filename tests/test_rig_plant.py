@@ -416,9 +416,10 @@ def test_dry_run_and_sweep_flag_weights_past_the_limit():
 
 def test_dry_run_exit_code_reflects_weight_divergence(tmp_path):
     # The bound holds (max ratio ~0.69) but the weights pass a limit of 0.5: exit 1, not 0;
-    # without the limit, exit 0.
+    # without the limit, exit 0. The design verdict's own nominal dry run sees the same
+    # divergence and refuses, so --force runs it anyway (the exit code is what is checked).
     cfg = str(ROOT / "configs" / "pedestal-sim.toml")
-    bad = _corral("dry-run", cfg, "--set", "commands.duration=2.0", "--set",
+    bad = _corral("dry-run", cfg, "--force", "--set", "commands.duration=2.0", "--set",
                   "sweep.weight_norm_limit=0.5", "--json", "--no-plot", "--out",
                   str(tmp_path / "a"), cwd=tmp_path)
     s = json.loads(bad.stdout)

@@ -334,3 +334,35 @@ def test_rig_clocked_overrun_counts_late_samples(tmp_path):
     assert trips[0]["action"] == "baseline"  # the rule's default reaction (docs/operating.md)
     assert trips[0]["value"] >= 25
     assert summary["deadline_misses"] >= 25
+
+
+def test_served_rig_declares_its_estop_and_reports_it_in_the_status_bits(tmp_path):
+    # docs/wire-protocol.md section 5: declared flag k is status bit 8 + k.
+    from drivers.wire import STATUS_DEVICE_BASE_BIT
+
+    with InProcess(tmp_path) as rig:
+
+        async def main():
+            async with SerialLink(rig.path) as link:
+                assert link.hello.status_flags == ("estop",)
+                bit = 1 << STATUS_DEVICE_BASE_BIT
+                s = await link.receive()
+                assert not s.status & bit
+                rig.device.estop_pressed = True
+                for _ in range(2000):  # until a sample taken after the press arrives
+                    s = await link.receive()
+                    await link.send(Command(s.seq, (3.0, -4.0)))
+                    if s.status & bit:
+                        break
+                assert s.status & bit
+                await asyncio.sleep(0.02)
+                assert rig.device.applied == (0.0, 0.0)  # a pressed e-stop removes power
+                rig.device.estop_pressed = False
+                for _ in range(2000):
+                    s = await link.receive()
+                    await link.send(Command(s.seq, (3.0, -4.0)))
+                    if not s.status & bit:
+                        break
+                assert not s.status & bit
+
+        asyncio.run(main())

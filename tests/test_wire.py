@@ -430,3 +430,34 @@ def test_spec_bits_match_drivers_base():
     for name in ("STATUS_SATURATED", "STATUS_COMMAND_TIMEOUT", "STATUS_FAULT",
                  "STATUS_OUTPUTS_OFF", "FLAG_OUTPUTS_ON", "FLAG_FALLBACK", "FLAG_STOP"):
         assert f"| 0x{getattr(base, name):02X} | `{name}` |" in text, name
+
+
+def test_hello_status_flags_round_trip_and_stay_optional():
+    # docs/wire-protocol.md section 5: a device's own status inputs, by name, at bits 8 + k.
+    from drivers.base import Hello
+    from drivers.wire import (
+        MAX_STATUS_FLAGS,
+        STATUS_DEVICE_BASE_BIT,
+        DecodeError,
+        decode_body,
+        encode_body,
+        message_array,
+    )
+
+    plain = Hello(2, "r", ("az",), ("rad",), 100.0, ("v",), (1.0,), ("V",), 0.1, 0)
+    assert len(message_array(plain)) == 13  # without flags, byte-identical to before
+    flagged = Hello(2, "r", ("az",), ("rad",), 100.0, ("v",), (1.0,), ("V",), 0.1, 0,
+                    ("estop", "interlock"))
+    assert len(message_array(flagged)) == 14
+    assert decode_body(encode_body(flagged)).status_flags == ("estop", "interlock")
+    assert decode_body(encode_body(plain)).status_flags == ()
+    # The base bit sits above the four fixed bits of section 5 (0x01..0x08).
+    assert STATUS_DEVICE_BASE_BIT == 8 and STATUS_DEVICE_BASE_BIT + MAX_STATUS_FLAGS == 32
+    too_many = Hello(2, "r", ("az",), ("rad",), 100.0, ("v",), (1.0,), ("V",), 0.1, 0,
+                     tuple(f"f{k}" for k in range(MAX_STATUS_FLAGS + 1)))
+    with pytest.raises(DecodeError, match="status flags"):
+        decode_body(encode_body(too_many))
+    bad = message_array(flagged)
+    bad[13] = ["estop", 3]
+    with pytest.raises(DecodeError, match="status_flags"):
+        decode_body(msgpack.packb(bad))

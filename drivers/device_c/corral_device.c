@@ -39,7 +39,7 @@ static void write_hello(corral_mp_writer *w, uint32_t seq, double t, const corra
 {
     /* names arrays are not modified; the cast only drops const for the helper */
     corral_hello *hh = (corral_hello *)h;
-    write_head(w, 13, CORRAL_KIND_HELLO, seq, t);
+    write_head(w, h->n_status_flags ? 14u : 13u, CORRAL_KIND_HELLO, seq, t);
     corral_mp_write_uint(w, h->protocol);
     corral_mp_write_str(w, h->rig_id);
     write_names(w, hh->channels, h->n_channels);
@@ -50,6 +50,9 @@ static void write_hello(corral_mp_writer *w, uint32_t seq, double t, const corra
     write_names(w, hh->output_units, h->n_output_units);
     corral_mp_write_double(w, h->command_timeout_s);
     corral_mp_write_uint(w, h->session);
+    if (h->n_status_flags) {
+        write_names(w, hh->status_flags, h->n_status_flags);
+    }
 }
 
 int corral_msg_encode_body(const corral_msg *m, uint8_t *out, size_t cap, size_t *len)
@@ -239,6 +242,11 @@ int corral_msg_decode_body(const uint8_t *body, size_t n, corral_msg *m)
         h->session = 0;
         if (count > need) { /* v2: the session token */
             h->session = read_u32(&r);
+            need++;
+        }
+        h->n_status_flags = 0;
+        if (count > need) { /* the device's declared status flags */
+            h->n_status_flags = read_names(&r, h->status_flags, CORRAL_MAX_STATUS_FLAGS);
             need++;
         }
         break;

@@ -37,6 +37,9 @@
 #define CORRAL_STATUS_COMMAND_TIMEOUT (1u << 1)
 #define CORRAL_STATUS_FAULT (1u << 2)
 #define CORRAL_STATUS_OUTPUTS_OFF (1u << 3)
+/* Bit of the first device-declared status flag (hello status_flags[k] is bit 8 + k). */
+#define CORRAL_STATUS_DEVICE_BASE_BIT 8u
+#define CORRAL_STATUS_DEVICE(k) (1u << (CORRAL_STATUS_DEVICE_BASE_BIT + (k)))
 /* Command flag bits. */
 #define CORRAL_FLAG_OUTPUTS_ON (1u << 0)
 #define CORRAL_FLAG_FALLBACK (1u << 1)
@@ -48,6 +51,9 @@
 #endif
 #ifndef CORRAL_MAX_OUTPUTS
 #define CORRAL_MAX_OUTPUTS 8
+#endif
+#ifndef CORRAL_MAX_STATUS_FLAGS
+#define CORRAL_MAX_STATUS_FLAGS 8 /* the protocol allows up to 24 (bits 8..31) */
 #endif
 #ifndef CORRAL_NAME_LEN
 #define CORRAL_NAME_LEN 32 /* including the NUL: names up to 31 bytes */
@@ -83,6 +89,8 @@ typedef struct {
     char output_units[CORRAL_MAX_OUTPUTS][CORRAL_NAME_LEN];
     double command_timeout_s;
     uint32_t session; /* host hello: the session asked for; device hello: the one granted */
+    uint8_t n_status_flags; /* the device's own status inputs (e-stop, interlock); 0: none, */
+    char status_flags[CORRAL_MAX_STATUS_FLAGS][CORRAL_NAME_LEN]; /* and then not sent */
 } corral_hello;
 
 /* One decoded message. Which fields mean something depends on kind:

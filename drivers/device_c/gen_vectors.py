@@ -47,7 +47,11 @@ def _good() -> list[tuple[str, Message, int, float]]:
     return [
         ("hello", HELLO, 0, 0.0),
         ("hello_host", Hello(PROTOCOL_VERSION, "host", (), (), 0.0, (), (), (), 0.0), 3, 1.5),
+        ("hello_status_flags", Hello(PROTOCOL_VERSION, "bench-2", ("az",), ("rad",), 500.0,
+                                     ("v_az",), (10.0,), ("V",), 0.1, 0,
+                                     ("estop", "interlock")), 0, 0.0),
         ("sample", Sample(7, 0.007, (0.1, -0.2), 0), 0, 0.0),
+        ("sample_estop", Sample(8, 0.008, (0.1,), 0x108), 0, 0.0),
         ("sample_status", Sample(123456, 123.456, (1e-9, -3.5, 0.0, 42.0), 0b1010), 0, 0.0),
         ("sample_seq_max", Sample(2**32 - 1, 4294967.295, (), 0), 0, 0.0),
         ("command", Command(7, (1.25, -12.0), 1), 0, 0.007),

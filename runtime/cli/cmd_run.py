@@ -78,8 +78,11 @@ line; ``{socket}`` in it is replaced by the socket path, else ``--socket PATH --
 is appended."""
 
 
-def dashboard_command(socket_path: str) -> list[str] | None:
-    """The dashboard process's command line, or None when no dashboard is installed."""
+def dashboard_command(socket_path: str, progress: str | None = None) -> list[str] | None:
+    """The dashboard process's command line, or None when no dashboard is installed.
+
+    With `progress` (the runtime's console file) the dashboard starts at once and shows
+    that file's last lines (preflight progress) until the runtime's socket is up."""
     custom = os.environ.get(DASHBOARD_ENV)
     if custom:
         if "{socket}" in custom:
@@ -87,6 +90,10 @@ def dashboard_command(socket_path: str) -> list[str] | None:
         return [*shlex.split(custom), "--socket", socket_path, "--wait", "10"]
     if not dashboard_available():
         return None
+    if progress is not None:
+        # The preflight runs before the socket exists and may take minutes.
+        return [sys.executable, "-m", "runtime.cli.cmd_watch", "--socket", socket_path,
+                "--wait", "3600", "--progress", progress]
     return [sys.executable, "-m", "runtime.cli.cmd_watch", "--socket", socket_path, "--wait", "10"]
 
 
@@ -152,8 +159,15 @@ def main(args: argparse.Namespace) -> int:
                            link=args.link, telemetry_mqtt=args.telemetry_mqtt,
                            preflight=not args.no_preflight)
     runner = Runner(cfg, settings)
+    # With a dashboard the cautions are in its arm dialog, where the operator arms;
+    # printed here they would scroll away under it.
+    will_draw = not args.headless and (os.environ.get(DASHBOARD_ENV) or dashboard_available())
     if not runner.simulated:
-        print(HARDWARE_CAUTIONS, file=sys.stderr)
+        if will_draw:
+            print("corral: REAL HARDWARE: the cautions are in the dashboard's arm dialog",
+                  file=sys.stderr)
+        else:
+            print(HARDWARE_CAUTIONS, file=sys.stderr)
         _warn_if_broker_is_open(runner.link)
         if args.arm:
             raise UserError("--arm arms only the simulated rig; arm a real rig yourself "
@@ -166,7 +180,8 @@ def main(args: argparse.Namespace) -> int:
     console_path: Path | None = None
     console = None
     if not args.headless:
-        cmd = dashboard_command(str(runner.socket_path))
+        cmd = dashboard_command(str(runner.socket_path),
+                                str(runner.core.trip_path.with_suffix(".console")))
         if cmd is None:
             print("corral: no dashboard installed; running headless", file=sys.stderr)
         else:

@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from runtime.cli.common import common_config_args, force_arg, output_folder, verdict_gate
+from runtime.cli.common import UserError, common_config_args, force_arg, output_folder, verdict_gate
 from runtime.config import load_config, rig_name
 from runtime.offline.sweep import ENGINES, parse_grid, plot_grid, plot_sweep, run_grid, run_sweep
 
@@ -42,6 +42,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", type=Path, default=None,
                         help="folder for the PNG plots and the JSON report "
                              "(default log.dir/sweeps)")
+    parser.add_argument("--cluster", metavar="ADDRESS|local:N", default=None,
+                        help="run the chunks on a Dask scheduler (tcp://HOST:8786) or on a "
+                             "local cluster of N worker processes (local:N); needs "
+                             "pip install -e '.[cluster]' (docs/sweeps.md)")
+    parser.add_argument("--resume", type=Path, default=None, metavar="PARTIAL",
+                        help="continue an interrupted sweep from its partial results file "
+                             "(same config and settings); only the missing chunks run")
     parser.add_argument("--no-plot", action="store_true", help="skip the PNG plots")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     force_arg(parser)
@@ -114,6 +121,9 @@ def main(args: argparse.Namespace) -> int:
     stamp = time.strftime("%Y%m%d-%H%M%S")
     name = rig_name(cfg)
     bar = ProgressBar()
+    if args.grid and (getattr(args, "cluster", None) or getattr(args, "resume", None)):
+        raise UserError("--cluster and --resume run one sweep, not a --grid; run one sweep "
+                        "per setting (--set KEY=VALUE) or drop --cluster")
     if args.grid:
         axes = parse_grid(args.grid)
         grid = run_grid(cfg, axes, progress=bar, **kwargs)
@@ -139,12 +149,23 @@ def main(args: argparse.Namespace) -> int:
                 print(f"plot: {report['plot']}")
         best = grid["best"]
         return 0 if best and best["inside_fraction"] == 1.0 else 1
+    if getattr(args, "cluster", None) or getattr(args, "resume", None):
+        from runtime.offline.cluster import ClusterError, parse_cluster
+
+        try:
+            if args.cluster:
+                parse_cluster(args.cluster)
+        except ClusterError as exc:
+            raise UserError(str(exc)) from None
     from runtime.offline.verdict import decide
 
     verdict = decide(cfg, suggest=not args.force)
     if not verdict_gate(verdict, args.force, args.json):
         return 1
-    result = run_sweep(cfg, progress=bar, **kwargs)
+    if getattr(args, "cluster", None) or getattr(args, "resume", None):
+        result = _run_chunked(cfg, args, out / f"{name}-sweep-{stamp}.partial.jsonl", bar)
+    else:
+        result = run_sweep(cfg, progress=bar, **kwargs)
     summary = dict(result.summary)
     summary.update(verdict.to_json())
     if not args.no_plot:
@@ -157,6 +178,34 @@ def main(args: argparse.Namespace) -> int:
         if "plot" in summary:
             print(f"  plot: {summary['plot']}")
     return 0 if summary["inside_fraction"] == 1.0 else 1
+
+
+def _run_chunked(cfg: Any, args: argparse.Namespace, partial: Path, bar: ProgressBar) -> Any:
+    """The sweep in chunks on a Dask cluster (or here, when only resuming), each finished
+    chunk appended to a partial results file that --resume reads back."""
+    import contextlib
+
+    from runtime.offline.cluster import ClusterError, open_client, run_sweep_chunked
+
+    resume = args.resume
+    if resume is None:
+        print(f"corral: partial results go to {partial} (continue an interrupted sweep with "
+              f"--resume {partial})", file=sys.stderr)
+    try:
+        ctx = open_client(args.cluster) if args.cluster else contextlib.nullcontext(None)
+        with ctx as client:
+            result = run_sweep_chunked(
+                cfg, client, plants=args.plants, seed=args.seed, duration=args.duration,
+                chunk=args.chunk, engine=args.engine, threads=args.workers or 1,
+                progress=bar, partial=None if resume else partial, resume=resume,
+                describe=args.cluster or "here")
+    except ClusterError as exc:
+        raise UserError(str(exc)) from None
+    done = resume or partial
+    with contextlib.suppress(OSError):
+        Path(done).unlink()  # complete: the report holds the results now
+    result.summary["cluster"]["partial_file"] = None
+    return result
 
 
 def _write(path: Path, obj: dict[str, Any]) -> str:

@@ -11,10 +11,17 @@ import os
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 from runtime.cli.common import UserError
 from runtime.config import load_config, rig_name
-from runtime.dashboard.sources import MqttSource, RecordedSource, SocketSource, TelemetrySource
+from runtime.dashboard.sources import (
+    FleetSource,
+    MqttSource,
+    RecordedSource,
+    SocketSource,
+    TelemetrySource,
+)
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -24,8 +31,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--set", dest="overrides", action="append", default=[],
                         metavar="KEY=VALUE", help="override a config key")
     parser.add_argument("--socket", type=Path, help="the runtime's telemetry socket")
-    parser.add_argument("--mqtt", metavar="HOST:PORT", help="follow a rig through a broker")
-    parser.add_argument("--rig", help="rig name on the broker (with --mqtt)")
+    parser.add_argument("--mqtt", metavar="HOST:PORT",
+                        help="follow a rig through a broker (with --rig), or without --rig "
+                             "every rig on it (the fleet view)")
+    parser.add_argument("--rig", help="rig name on the broker (with --mqtt; none: the fleet)")
     parser.add_argument("--username", help="broker user name (with --mqtt)")
     parser.add_argument("--password-env", metavar="VAR",
                         help="environment variable holding the broker password")
@@ -44,6 +53,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="replay speed (1 = as recorded, 0 = at once)")
     parser.add_argument("--wait", type=float, default=0.0, metavar="S",
                         help="wait up to S seconds for the runtime's socket to appear")
+    parser.add_argument("--progress", type=Path, metavar="FILE",
+                        help="with --socket: open the dashboard at once and show FILE's last "
+                        "lines (the runtime's console: preflight progress) until the socket "
+                        "is up")
+
+
+def mqtt_options(args: argparse.Namespace) -> tuple[str, int, dict[str, Any]]:
+    """Broker host, port and login/TLS keywords from --mqtt and its companions."""
+    host, _, port = args.mqtt.rpartition(":")
+    if not host or not port.isdigit():
+        raise UserError(f"--mqtt {args.mqtt!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
+    password = os.environ.get(args.password_env) if args.password_env else None
+    ca, cert, key = (getattr(args, k, None) for k in ("ca_file", "cert", "key"))
+    if (ca or cert or key) and not args.tls:
+        raise UserError("--ca-file, --cert and --key go with --tls; add --tls")
+    for flag, path in (("--ca-file", ca), ("--cert", cert), ("--key", key)):
+        if path is not None and not os.path.isfile(path):
+            raise UserError(f"{flag} {path}: no such file; give the PEM file's path")
+    if (cert is None) != (key is None):
+        raise UserError("--cert needs --key (and --key needs --cert)")
+    return host, int(port), dict(username=args.username, password=password, tls=args.tls,
+                                 ca_file=ca, cert_file=cert, key_file=key)
 
 
 def make_source(args: argparse.Namespace) -> TelemetrySource:
@@ -54,22 +85,10 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
             raise UserError(f"no recording at {args.replay}; give a telemetry file")
         return RecordedSource(args.replay, speed=args.speed)
     if args.mqtt:
+        host, port, broker = mqtt_options(args)
         if not args.rig:
-            raise UserError("--mqtt needs --rig NAME (the rig's name on the broker)")
-        host, _, port = args.mqtt.rpartition(":")
-        if not host or not port.isdigit():
-            raise UserError(f"--mqtt {args.mqtt!r}: write HOST:PORT, e.g. 127.0.0.1:1883")
-        password = os.environ.get(args.password_env) if args.password_env else None
-        ca, cert, key = (getattr(args, k, None) for k in ("ca_file", "cert", "key"))
-        if (ca or cert or key) and not args.tls:
-            raise UserError("--ca-file, --cert and --key go with --tls; add --tls")
-        for flag, path in (("--ca-file", ca), ("--cert", cert), ("--key", key)):
-            if path is not None and not os.path.isfile(path):
-                raise UserError(f"{flag} {path}: no such file; give the PEM file's path")
-        if (cert is None) != (key is None):
-            raise UserError("--cert needs --key (and --key needs --cert)")
-        return MqttSource(host, int(port), args.rig, args.username, password, args.tls,
-                          prefix=args.prefix, ca_file=ca, cert_file=cert, key_file=key)
+            return FleetSource(host, port, prefix=args.prefix, **broker)
+        return MqttSource(host, port, args.rig, prefix=args.prefix, **broker)
     path = args.socket
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)
@@ -80,7 +99,9 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
         path = Path(str(cfg.get("log.dir"))) / f"{run_name(rig, kind)}.sock"
     if path is None:
         raise UserError("say which rig to watch: CONFIG, --socket PATH, --mqtt HOST:PORT "
-                        "--rig NAME, or --replay FILE")
+                         "--rig NAME (or --mqtt alone for every rig), or --replay FILE")
+    if getattr(args, "progress", None) is not None:
+        return SocketSource(path)  # the dashboard waits for it, showing the progress
     deadline = time.monotonic() + max(0.0, getattr(args, "wait", 0.0))
     while not Path(path).exists() and time.monotonic() < deadline:
         time.sleep(0.05)
@@ -97,6 +118,17 @@ def main(args: argparse.Namespace) -> int:
     source = make_source(args)
 
     async def run() -> None:
+        if isinstance(source, FleetSource):
+            await run_fleet(source)
+            return
+        progress = getattr(args, "progress", None)
+        if progress is not None and isinstance(source, SocketSource):
+            try:
+                await Dashboard(source, progress=progress,
+                                wait_s=max(1.0, float(args.wait))).run_async()
+            finally:
+                await source.close()
+            return
         async with source:
             await Dashboard(source).run_async()
 
@@ -113,6 +145,25 @@ def main(args: argparse.Namespace) -> int:
                "is `corral run` still running?")
         raise UserError(f"cannot reach the telemetry source ({exc}); {fix}") from None
     return 0
+
+
+async def run_fleet(fleet: FleetSource) -> None:
+    """The fleet view; Enter opens one rig's dashboard (its own connection, its own
+    requests), quitting that comes back to the fleet, `q` on the fleet ends."""
+    from runtime.dashboard.app import Dashboard
+    from runtime.dashboard.fleet import FleetState, make_app
+
+    state = FleetState()  # kept across dashboards: worst margins and last trips stay
+    while True:
+        async with fleet:
+            rig = await make_app(fleet, state).run_async()
+        if rig is None:
+            return
+        one = MqttSource(fleet.host, fleet.port, rig, fleet.username, fleet.password, fleet.tls,
+                         prefix=fleet.prefix, ca_file=fleet.ca_file, cert_file=fleet.cert_file,
+                         key_file=fleet.key_file)
+        async with one:
+            await Dashboard(one).run_async()
 
 
 if __name__ == "__main__":

@@ -3,7 +3,7 @@
 Runs in its own process and reads a `TelemetrySource` (the runtime's local
 socket, MQTT, or a recording). Widgets are thin views: each one formats the
 output of a pure function in `runtime.dashboard.panels`, and the screen refreshes at a
-fixed, modest rate (15 Hz) whatever the telemetry rate, so a busy rig never
+fixed, modest rate (10 Hz) whatever the telemetry rate, so a busy rig never
 makes the terminal the bottleneck, and a slow terminal never slows the loop
 (the runtime drops a client that does not keep up).
 
@@ -14,18 +14,20 @@ and MQTT (`runtime.dashboard.sources`).
 from __future__ import annotations
 
 import asyncio
+import time
 from collections import deque
 from collections.abc import Sequence
+from pathlib import Path
 from typing import Any
 
 from rich.text import Text
-from textual import on, work
+from textual import events, on, work
 from textual.app import App, ComposeResult
 from textual.binding import Binding
-from textual.containers import Grid, Horizontal, Vertical
+from textual.containers import Horizontal, Vertical
 from textual.reactive import reactive
 from textual.screen import ModalScreen, Screen
-from textual.widgets import Button, DataTable, Footer, Header, Label, Static
+from textual.widgets import Button, DataTable, Footer, Header, Static
 
 from runtime.dashboard import panels
 from runtime.dashboard.sources import TelemetrySource
@@ -47,117 +49,197 @@ LEVEL_STYLE = {
     panels.LEVEL_OFF: "dim",
 }
 
-REFRESH_HZ = 15.0
-TRACE_LENGTH = 240
+REFRESH_HZ = 10.0
+"""Redraws per second at most (traces are the costly part; kept at <= 10 Hz, docs/telemetry.md)."""
+WINDOW_S = 30.0
+"""The margin chart's time axis: the last WINDOW_S seconds."""
+HISTORY = 4096
+"""Margin samples kept (25 Hz telemetry: about 160 s)."""
+AXIS_HISTORY = 400
+"""Telemetry records kept for the per-axis traces."""
+COMPACT_WIDTH, COMPACT_HEIGHT = 120, 40
+"""Below either, the dashboard shows only the glance strip, the margin chart and events."""
 
 
-class MarginPanel(Static):
-    """||e||_P / eps now, its recent trace against the levels, the bound, time to bound."""
+class _Panel(Static):
+    """A panel whose drawing depends on its size: a new size asks for a redraw."""
+
+    def on_resize(self, event: events.Resize) -> None:
+        """Draw again at the new size (the glance strip above may have grown)."""
+        dash = self.app
+        if isinstance(dash, Dashboard):
+            dash._dirty = True
+
+
+class MarginPanel(_Panel):
+    """||e||_P / eps now and over the last WINDOW_S seconds against its levels."""
 
     DEFAULT_CSS = """
-    MarginPanel { border: round $accent; padding: 0 1; height: 100%; }
+    MarginPanel { border: round $accent; padding: 0 1; height: 1fr; }
     """
 
-    def show(self, view: panels.MarginView, trace: list[float], paused: bool) -> None:
-        """Redraw from a margin view and the recent ratios."""
-        text = Text()
-        text.append("margin ratio ||e||_P / eps  ", style="bold")
+    def show(self, view: panels.MarginView, times: list[float], ratios: list[float],
+             t_end: float, paused: bool) -> None:
+        """Redraw from a margin view and the recent (t, ratio) pairs."""
+        text = Text(no_wrap=True, overflow="crop")
+        text.append("margin ||e||_P/eps ", style="bold")
         text.append(f" {view.ratio_text} ", style=LEVEL_STYLE[view.level])
-        text.append(f"  {view.level.upper()}\n", style=LEVEL_STYLE[view.level])
-        text.append(f"bound eps = {view.eps_text}   ||e||_P = {view.s_text}   "
-                    f"time to bound: {view.time_to_bound_text}\n")
-        text.append(f"levels: warning {view.warning:g}, trip {view.trip:g}, bound 1"
-                    + ("   [traces paused]" if paused else "") + "\n")
-        width = max(10, self.size.width - 8)
-        height = 8
-        rows = panels.trace_lines(trace, width, height, 1.0, marks=(view.warning, view.trip))
+        text.append(f" {view.level.upper()}", style=LEVEL_STYLE[view.level])
+        text.append(f"  eps {view.eps_text}  ttb {view.time_to_bound_text}"
+                    + ("  [paused]" if paused else "") + "\n")
+        width = max(20, self.content_size.width)
+        height = max(3, self.content_size.height - 3)
+        rows = panels.margin_chart(times, ratios, t_end, WINDOW_S, width, height,
+                                   view.warning, view.trip)
         for i, row in enumerate(rows):
-            hi = 1.0 - i / height
-            style = "red" if hi > view.trip else "yellow" if hi > view.warning else "green"
-            text.append(f"{hi:4.2f} ", style="dim")
-            text.append(row + "\n", style=style)
+            label, body = row[:panels.CHART_LABEL], row[panels.CHART_LABEL:]
+            style = "dim"
+            if "bound" in label:
+                style = "bold red"
+            elif "trip" in label:
+                style = "red"
+            elif "warn" in label:
+                style = "yellow"
+            text.append(label, style=style)
+            text.append(body + ("\n" if i < len(rows) - 1 else ""),
+                        style="cyan" if i < len(rows) - 2 else "dim")
         self.update(text)
 
 
-class LearningPanel(Static):
+class AxisPanel(_Panel):
+    """Per tracked axis: command (c), reference model (r) and measured (y) over time."""
+
+    DEFAULT_CSS = """
+    AxisPanel { border: round $accent; padding: 0 1; height: 1fr; }
+    """
+
+    def show(self, hello: dict[str, Any], history: list[dict[str, Any]]) -> None:
+        """Redraw from the hello and the recent telemetry records."""
+        tracked = len(hello.get("tracked") or []) or 1
+        height = max(2, self.content_size.height // tracked - 1)
+        text = Text(no_wrap=True, overflow="crop")
+        for title, rows in panels.axis_traces(hello, history, max(10, self.content_size.width),
+                                              height):
+            text.append(title + "   (c command, r reference, y measured)\n", style="bold")
+            for row in rows:
+                text.append(row + "\n")
+        self.update(text)
+
+
+class EventPanel(_Panel):
+    """Mode changes, requests and trips, time-stamped, marked until acknowledged."""
+
+    DEFAULT_CSS = """
+    EventPanel { border: round $accent; padding: 0 1; height: 1fr; }
+    """
+
+    def show(self, lines: list[str], acknowledged: int) -> None:
+        """Redraw from the event lines and how many of them are acknowledged."""
+        rows = panels.event_rows(lines, acknowledged, max(1, self.content_size.height))
+        text = Text(no_wrap=True, overflow="ellipsis")
+        for i, row in enumerate(rows):
+            style = "bold" if i == 0 else ("bold yellow" if row.startswith("!") else "")
+            if "TRIP" in row and row.startswith("!"):
+                style = "bold red"
+            text.append(row + ("\n" if i < len(rows) - 1 else ""), style=style)
+        self.update(text)
+
+
+class LearningPanel(_Panel):
     """Effective learning rate gamma*phi_d, phi_d, per-step gain against its cap, weights."""
 
     DEFAULT_CSS = """
-    LearningPanel { border: round $accent; padding: 0 1; height: 100%; }
+    LearningPanel { border: round $accent; padding: 0 1; height: 8; }
     """
 
     def show(self, view: panels.LearningView, weights: tuple[str, str],
              trace: list[float]) -> None:
         """Redraw from a learning view, the weight figures and the recent rates."""
-        text = Text()
-        text.append("effective learning rate gamma*phi_d  ", style="bold")
-        text.append(view.eff_rate_text + "\n", style="bold cyan")
-        text.append(f"phi_d = {view.phi_d_text}\n")
+        text = Text(no_wrap=True, overflow="crop")
+        text.append("learning rate gamma*phi_d ", style="bold")
+        text.append(view.eff_rate_text, style="bold cyan")
+        text.append(f"  phi_d {view.phi_d_text}\n")
         frac = view.cap_fraction
-        bar_w = 24
+        bar_w = 20
         filled = 0 if frac != frac else max(0, min(bar_w, int(round(frac * bar_w))))
         style = "green" if frac == frac and frac < 0.5 else "yellow" if frac < 1 else "red"
-        text.append(f"step gain g (before the cap) = {view.step_gain_text} of cap "
+        text.append(f"step gain g (before the cap) {view.step_gain_text} of cap "
                     f"{view.cap_text} ")
         text.append("[" + "#" * filled + "." * (bar_w - filled) + "]\n", style=style)
-        text.append(f"weights ||W_hat|| = {weights[0]}, rate {weights[1]}\n")
-        top = max(trace) if trace else 1.0
-        top = top if top > 0 else 1.0
-        width = max(10, self.size.width - 4)
-        for row in panels.trace_lines(trace, width, 3, top):
+        text.append(f"||W_hat|| {weights[0]}, rate {weights[1]}\n")
+        width = max(10, self.content_size.width)
+        rows, scale = panels.strip_lines(trace[-width:], width, 2)
+        text.append(f"rate over the last {len(trace[-width:])} records, range {scale}\n",
+                    style="dim")
+        for row in rows:
             text.append(row + "\n", style="cyan")
         self.update(text)
 
 
 class SupervisorPanel(Static):
-    """Mode, the latched trip with its first-out rule, the fallback in charge, this run's trips."""
+    """The glance strip: mode, latch, margin, the first-out trip in words, the fallback,
+    the device's own status flags, and start-up progress until telemetry flows."""
 
     DEFAULT_CSS = """
-    SupervisorPanel { border: round $accent; padding: 0 1; height: 100%; }
+    SupervisorPanel { height: auto; max-height: 7; background: $boost; padding: 0 1; }
     """
 
-    def show(self, view: panels.SupervisorView) -> None:
-        """Redraw from a supervisor view."""
-        text = Text()
-        text.append("mode ", style="bold")
+    def show(self, view: panels.SupervisorView, margin: panels.MarginView,
+             explanation: str, flags: list[tuple[str, bool]], facts: list[str]) -> None:
+        """Redraw from the supervisor and margin views and the lines around them."""
+        text = Text(overflow="fold")
         mode_style = {"engaged": "bold green", "fallback": "bold white on dark_orange",
                       "stopped": "bold white on red", "settling": "bold yellow"}.get(
             view.mode, "bold")
+        text.append("mode ", style="bold")
         text.append(f" {view.mode.upper()} ", style=mode_style)
-        if view.latched:
-            text.append("  LATCHED", style="bold white on red")
-        text.append("\n")
+        text.append("  LATCHED" if view.latched else "  not latched",
+                    style="bold white on red" if view.latched else "dim")
+        text.append("   margin ", style="bold")
+        text.append(f" {margin.ratio_text} {margin.level.upper()} ",
+                    style=LEVEL_STYLE[margin.level])
+        text.append(f"  trips {len(view.trips)}\n")
         text.append(view.trip_text + "\n", style="bold red" if view.latched else "")
-        text.append(view.fallback_text + "\n",
-                    style="bold dark_orange" if "FALLBACK" in view.fallback_text else "")
-        text.append(f"trips this run: {len(view.trips)}\n", style="bold")
-        for line in view.trips[-6:]:
-            text.append(f"  {line}\n")
+        if explanation:
+            text.append(explanation + "\n", style="red" if view.latched else "")
+        tail = [view.fallback_text] if view.fallback_text != "-" else []
+        if flags:
+            tail.append("device: " + ", ".join(
+                f"{name.upper()} SET" if on else f"{name} clear" for name, on in flags))
+        tail += facts
+        text.append(" | ".join(tail), style="bold dark_orange"
+                    if "FALLBACK" in view.fallback_text or any(on for _, on in flags) else "")
         self.update(text)
 
 
 class ConfirmArm(ModalScreen[bool]):
-    """Asks before arming; shows the hardware cautions for a real rig."""
+    """Asks before arming; shows the hardware cautions (wrapped to the screen), the host
+    check and the preflight verdicts for a real rig."""
 
     DEFAULT_CSS = """
     ConfirmArm { align: center middle; }
-    ConfirmArm > Vertical { width: 90; height: auto; border: thick $error; padding: 1 2;
-                            background: $surface; }
+    ConfirmArm > Vertical { width: 90; max-width: 100%; height: auto; max-height: 100%;
+                            border: thick $error; padding: 0 1; background: $surface; }
+    ConfirmArm #cautions { width: 100%; height: auto; }
     ConfirmArm Horizontal { height: auto; margin-top: 1; }
     ConfirmArm Button { margin-right: 2; }
     """
     BINDINGS = [Binding("y", "confirm", "arm"), Binding("n,escape", "cancel", "cancel")]
 
-    def __init__(self, simulated: bool) -> None:
+    def __init__(self, simulated: bool, facts: Sequence[str] = ()) -> None:
         super().__init__()
         self.simulated = simulated
+        self.facts = [f for f in facts if f]
 
     def compose(self) -> ComposeResult:
         """The question and the cautions."""
-        text = ("Arm the adaptive controller on the simulated rig?" if self.simulated
-                else HARDWARE_CAUTIONS + "\n\nArm the adaptive controller on this rig?")
+        if self.simulated:
+            text = "Arm the adaptive controller on the simulated rig?"
+        else:
+            text = "\n".join([HARDWARE_CAUTIONS, *self.facts,
+                              "Arm the adaptive controller on this rig?"])
         with Vertical():
-            yield Label(text, id="cautions")
+            yield Static(Text(text), id="cautions")
             with Horizontal():
                 yield Button("Arm (y)", variant="error", id="arm")
                 yield Button("Cancel (n)", variant="primary", id="cancel")
@@ -176,24 +258,38 @@ class ConfirmArm(ModalScreen[bool]):
 
 
 class Dashboard(App[None]):
-    """The operator's view of one rig."""
+    """The operator's view of one rig.
+
+    Always on screen, whatever the terminal's size: the glance strip (mode, latch,
+    margin, first-out trip in words, device flags), the margin chart and the events.
+    From COMPACT_WIDTH x COMPACT_HEIGHT up, also the per-axis traces, the learning
+    rate, the tracking, inputs and health tables.
+    """
 
     TITLE = "corral"
     CSS = """
     Screen { layout: vertical; }
-    #top { height: 15; }
-    #middle { height: 9; }
-    #bottom { height: 1fr; min-height: 12; }
+    #body { height: 1fr; }
+    #left { width: 3fr; }
+    #right { width: 2fr; }
+    #margin { min-height: 8; }
+    #tracking { height: 8; }
+    #inputs { height: 5; }
+    #health { height: 12; }
     #status { height: 1; background: $boost; padding: 0 1; }
-    Grid { grid-size: 2; grid-columns: 3fr 2fr; }
-    DataTable { height: 100%; border: round $accent; }
+    DataTable { border: round $accent; }
+    Screen.compact #body { layout: vertical; }
+    Screen.compact #left { width: 100%; height: 1fr; }
+    Screen.compact #right { width: 100%; height: 6; }
+    Screen.compact .wide { display: none; }
     """
     BINDINGS = [
         Binding("a", "arm", "arm"),
         Binding("d", "disarm", "disarm"),
         Binding("s", "stop", "STOP", priority=True),
         Binding("r", "reset", "reset"),
-        Binding("p", "pause", "pause traces"),
+        Binding("k", "acknowledge", "ack events"),
+        Binding("p", "pause", "pause"),
         Binding("q", "quit", "quit"),
     ]
 
@@ -202,30 +298,47 @@ class Dashboard(App[None]):
     status: reactive[str] = reactive("waiting for telemetry")
     """The last reply or connection message."""
 
-    def __init__(self, source: TelemetrySource) -> None:
+    def __init__(self, source: TelemetrySource, progress: str | Path | None = None,
+                 wait_s: float = 0.0) -> None:
+        """`progress`: a file whose last lines show while no telemetry has come yet (the
+        runtime's console file, where the preflight reports). With `wait_s` > 0 the
+        dashboard opens `source` itself, waiting up to that long for it."""
         super().__init__()
         self.source = source
+        self.progress = Path(progress) if progress else None
+        self.wait_s = wait_s
         self.hello: dict[str, Any] = {}
         self.latest: dict[str, Any] = {}
         self.records_seen = 0
         self.replies: list[dict[str, Any]] = []
-        self.ratio_trace: deque[float] = deque(maxlen=TRACE_LENGTH)
-        self.rate_trace: deque[float] = deque(maxlen=TRACE_LENGTH)
-        self._dirty = False
+        self.ratio_times: deque[float] = deque(maxlen=HISTORY)
+        self.ratio_trace: deque[float] = deque(maxlen=HISTORY)
+        self.rate_trace: deque[float] = deque(maxlen=HISTORY)
+        self.history: deque[dict[str, Any]] = deque(maxlen=AXIS_HISTORY)
+        self.events: list[str] = []
+        """Event lines (oldest first), at most 500."""
+        self.acknowledged = 0
+        """How many of `events` the operator has acknowledged."""
+        self.startup: list[str] = []
+        """The last progress lines, shown until telemetry flows."""
+        self._dirty = True
 
     # -- layout ------------------------------------------------------------
     def compose(self) -> ComposeResult:
-        """Panels, tables, status line, footer with every key."""
+        """Glance strip, chart and events, the wide panels, status line, footer."""
         yield Header(show_clock=True)
-        with Grid(id="top"):
-            yield MarginPanel(id="margin")
-            yield SupervisorPanel(id="supervisor")
-        with Grid(id="middle"):
-            yield DataTable(id="tracking", cursor_type="none", zebra_stripes=True)
-            yield LearningPanel(id="learning")
-        with Grid(id="bottom"):
-            yield DataTable(id="inputs", cursor_type="none")
-            yield DataTable(id="health", cursor_type="none")
+        yield SupervisorPanel(id="supervisor")
+        with Horizontal(id="body"):
+            with Vertical(id="left"):
+                yield MarginPanel(id="margin")
+                yield AxisPanel(id="axes", classes="wide")
+            with Vertical(id="right"):
+                yield EventPanel(id="events")
+                yield LearningPanel(id="learning", classes="wide")
+                yield DataTable(id="tracking", cursor_type="none", zebra_stripes=True,
+                                classes="wide")
+                yield DataTable(id="inputs", cursor_type="none", classes="wide")
+                yield DataTable(id="health", cursor_type="none", classes="wide")
         yield Static(id="status")
         yield Footer()
 
@@ -239,6 +352,7 @@ class Dashboard(App[None]):
         self.query_one("#inputs", DataTable).add_columns(
             "input", "applied", "limit", "saturated for", "")
         self.query_one("#health", DataTable).add_columns("loop and link", "value")
+        self._fit(self.size.width, self.size.height)
         self.read_telemetry()
         # The refresh timer belongs to the main screen, not to the app: textual stops a
         # screen's timers when the screen is pruned, before its widgets are removed, while
@@ -247,11 +361,22 @@ class Dashboard(App[None]):
         self.redraw_timer = self.screen.set_interval(1.0 / REFRESH_HZ, self.redraw)
         self.watch_status(self.status)
 
+    def on_resize(self, event: events.Resize) -> None:
+        """Compact or wide layout for the new size."""
+        self._fit(event.size.width, event.size.height)
+
+    def _fit(self, width: int, height: int) -> None:
+        self.screen_stack[0].set_class(width < COMPACT_WIDTH or height < COMPACT_HEIGHT,
+                                       "compact")
+        self._dirty = True
+
     # -- data --------------------------------------------------------------
     @work(exclusive=True, group="telemetry")
     async def read_telemetry(self) -> None:
         """Consume the source; keep only the latest record for the next redraw."""
         try:
+            if self.wait_s > 0:
+                await self._open_when_ready()
             async for rec in self.source.records():
                 self.ingest(rec)
         except (ConnectionError, OSError) as exc:
@@ -260,6 +385,37 @@ class Dashboard(App[None]):
         self.status = ("end of recording" if not self.source.live
                        else "the runtime closed the connection")
 
+    async def _open_when_ready(self) -> None:
+        """Open the source, retrying until `wait_s` runs out (the runtime may still be in
+        its preflight); the progress file's last lines show meanwhile."""
+        loop = asyncio.get_running_loop()
+        end = loop.time() + self.wait_s
+        self.status = "waiting for the runtime (preflight, host check)"
+        while True:
+            self._read_progress()
+            try:
+                await self.source.open()
+                return
+            except (ConnectionError, FileNotFoundError):
+                if loop.time() > end:
+                    raise
+            await asyncio.sleep(0.2)
+
+    def _read_progress(self) -> None:
+        if self.progress is None or self.records_seen:
+            return
+        try:
+            with open(self.progress, "rb") as fh:
+                fh.seek(0, 2)
+                fh.seek(max(0, fh.tell() - 4096))
+                tail = fh.read().decode("utf-8", "replace").splitlines()
+        except OSError:
+            return
+        lines = [ln for ln in tail if ln.strip()][-4:]
+        if lines != self.startup:
+            self.startup = lines
+            self._dirty = True
+
     def ingest(self, rec: dict[str, Any]) -> None:
         """Take one record from the source."""
         kind = rec.get("type")
@@ -267,14 +423,19 @@ class Dashboard(App[None]):
             self.hello = rec
             self.title = f"corral: {rec.get('rig', '?')}" + (
                 " (simulated)" if rec.get("simulated") else " (HARDWARE)")
+            self._dirty = True
         elif kind == "telemetry":
             self.latest = rec
             self.records_seen += 1
-            if self.records_seen == 1 and self.status == "waiting for telemetry":
+            if self.records_seen == 1 and self.status.startswith("waiting"):
                 self.status = f"live: {self.source.description}"
             if not self.paused:
-                self.ratio_trace.append(float(rec.get("ratio", float("nan"))))
+                ratio = float(rec.get("ratio", float("nan")) or 0.0)
+                engaged = rec.get("mode") == "engaged" or ratio > 0
+                self.ratio_times.append(float(rec.get("t", 0.0) or 0.0))
+                self.ratio_trace.append(ratio if engaged else float("nan"))
                 self.rate_trace.append(float(rec.get("eff_rate", 0.0) or 0.0))
+                self.history.append(rec)
             self._dirty = True
         elif kind == "reply":
             self.replies.append(rec)
@@ -282,9 +443,25 @@ class Dashboard(App[None]):
             self.status = f"{rec.get('op', '?')}: {ok}. {rec.get('message', '')}".strip()
         elif kind == "trip":
             self.status = "TRIP: " + panels.trip_line(rec)
+        line = panels.event_line(rec, time.time())
+        if line is not None:
+            self.events.append(line)
+            if len(self.events) > 500:
+                drop = len(self.events) - 500
+                del self.events[:drop]
+                self.acknowledged = max(0, self.acknowledged - drop)
+            self._dirty = True
+
+    def facts(self) -> list[str]:
+        """The host check and preflight verdicts, or the start-up progress."""
+        out = [panels.hostcheck_line(self.hello), panels.preflight_line(self.hello)]
+        if not self.records_seen:
+            out += self.startup
+        return [f for f in out if f]
 
     def redraw(self) -> None:
-        """Refresh every panel from the latest telemetry (at most REFRESH_HZ)."""
+        """Refresh every shown panel from the latest telemetry (at most REFRESH_HZ)."""
+        self._read_progress()
         if not self._dirty:
             return
         self._dirty = False
@@ -292,11 +469,21 @@ class Dashboard(App[None]):
         # Query the main screen, not the active one: a confirmation may be on top,
         # and the values behind it keep updating.
         main = self.screen_stack[0]
-        main.query_one(MarginPanel).show(panels.margin_view(hello, tel),
-                                         list(self.ratio_trace), self.paused)
+        margin = panels.margin_view(hello, tel)
+        sup = panels.supervisor_view(tel)
+        trip = tel.get("trip")
+        why = panels.trip_explanation(trip, hello, tel) if trip else ""
+        main.query_one(SupervisorPanel).show(sup, margin, why,
+                                             panels.device_flags(hello, tel), self.facts())
+        t_end = self.ratio_times[-1] if self.ratio_times else 0.0
+        main.query_one(MarginPanel).show(margin, list(self.ratio_times),
+                                         list(self.ratio_trace), t_end, self.paused)
+        main.query_one(EventPanel).show(self.events, self.acknowledged)
+        if main.has_class("compact"):
+            return
+        main.query_one(AxisPanel).show(hello, list(self.history))
         main.query_one(LearningPanel).show(panels.learning_view(tel), panels.weight_view(tel),
                                            list(self.rate_trace))
-        main.query_one(SupervisorPanel).show(panels.supervisor_view(tel))
         self._fill(main, "#tracking", panels.tracking_rows(hello, tel))
         self._fill(main, "#inputs", panels.input_rows(hello, tel))
         self._fill(main, "#health", panels.health_rows(tel))
@@ -311,7 +498,7 @@ class Dashboard(App[None]):
     def watch_status(self, value: str) -> None:
         """Show the status line."""
         try:
-            self.query_one("#status", Static).update(value)
+            self.query_one("#status", Static).update(Text(value))
         except Exception:  # noqa: BLE001 - before mount there is no status line yet
             pass
 
@@ -333,7 +520,8 @@ class Dashboard(App[None]):
             else:
                 self.status = "arm: cancelled"
 
-        self.push_screen(ConfirmArm(simulated), decided)
+        self.push_screen(ConfirmArm(simulated, [panels.hostcheck_line(self.hello),
+                                                panels.preflight_line(self.hello)]), decided)
 
     async def action_disarm(self) -> None:
         """Disarm: hand over to the baseline and stop adapting."""
@@ -346,6 +534,12 @@ class Dashboard(App[None]):
     async def action_reset(self) -> None:
         """Reset a latched trip (never restarts: arm again afterwards)."""
         await self._request("reset")
+
+    def action_acknowledge(self) -> None:
+        """Acknowledge every event shown so far (ISA-18.2 practice: the operator saw it)."""
+        self.acknowledged = len(self.events)
+        self.status = f"{self.acknowledged} events acknowledged"
+        self._dirty = True
 
     def action_pause(self) -> None:
         """Freeze or resume the traces."""

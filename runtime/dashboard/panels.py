@@ -266,3 +266,296 @@ def trace_lines(values: Sequence[float], width: int, height: int, top: float,
                 chars.append("┄" if mark_here else " ")
         rows.append("".join(chars))
     return rows
+
+
+# -- the margin chart over time -----------------------------------------------
+CHART_LABEL = 13
+"""Width of the margin chart's row labels ("0.90 trip ┤")."""
+LEVEL_RULE = "┄"
+BOUND_RULE = "━"
+
+
+def resample_max(times: Sequence[float], values: Sequence[float], t_end: float,
+                 window_s: float, width: int) -> list[float]:
+    """The largest value in each of `width` equal time columns over ``(t_end - window_s, t_end]``.
+
+    The largest, not the mean: a short excursion towards the bound must stay visible.
+    A column without a sample is NaN (drawn empty); a NaN sample (no margin: the law
+    was off) is skipped.
+    """
+    out = [math.nan] * width
+    if width <= 0 or window_s <= 0:
+        return out
+    t0 = t_end - window_s
+    dt = window_s / width
+    for t, v in zip(times, values, strict=False):
+        if not (t0 < t <= t_end) or math.isnan(v):
+            continue
+        j = min(width - 1, int((t - t0) / dt))
+        if math.isnan(out[j]) or v > out[j]:
+            out[j] = v
+    return out
+
+
+def chart_levels(warning: float, trip: float) -> list[tuple[float, str]]:
+    """The horizontal rules of the margin chart: (value, name), highest first."""
+    return [(1.0, "bound"), (trip, "trip"), (warning, "warn")]
+
+
+def chart_band(height: int, warning: float, trip: float) -> float:
+    """The ratio one chart row spans.
+
+    The whole range 0..1 when the rows allow it; else the smallest gap between the
+    levels, so bound, trip and warning fall on rows of their own (the chart then shows
+    the top of the range, where they are); and never so fine that the warning level
+    falls below the last row (on very few rows two levels then share one).
+    """
+    rows_below = max(1, height - 1)
+    full = 1.0 / rows_below
+    gaps = [g for g in (1.0 - trip, trip - warning) if g > 0]
+    d = min(full, min(gaps)) if gaps else full
+    return max(d, (1.0 - min(warning, trip)) / rows_below)
+
+
+def margin_chart(times: Sequence[float], ratios: Sequence[float], t_end: float,
+                 window_s: float, width: int, height: int, warning: float,
+                 trip: float) -> list[str]:
+    """The margin ratio over the last `window_s` seconds as text rows, top row first.
+
+    Row r spans ``[top - (r + 1) d, top - r d)`` with ``d = chart_band(...)`` and
+    ``top = 1 + d``, so the bound (1) is the bottom edge of the top row and each
+    level is the bottom edge of its own row. Every row starts with a
+    `CHART_LABEL`-character label; a level's row is labelled with that level's own
+    value and name and shows the level as a rule where the trace does not reach it.
+    Each column is the largest ratio in its slice of time (`resample_max`), drawn
+    in eighths of a row. The last two rows are the time axis: ``-N s`` at the left,
+    the middle, and ``now`` at the right.
+    """
+    label_w = CHART_LABEL
+    plot_w = max(4, width - label_w)
+    cols = resample_max(times, ratios, t_end, window_s, plot_w)
+    d = chart_band(height, warning, trip)
+    top = 1.0 + d
+    rules = chart_levels(warning, trip)
+
+    def row_of(v: float) -> int:
+        return math.ceil((top - v) / d - 1e-9) - 1
+
+    rows: list[str] = []
+    for r in range(height):
+        lo = top - (r + 1) * d
+        here = [(v, name) for v, name in rules if row_of(v) == r]
+        if here:
+            label = (f"{here[0][0]:.2f} {here[0][1]}" if len(here) == 1
+                     else "/".join(f"{v:.2f}" for v, _ in here))
+            fill = BOUND_RULE if any(name == "bound" for _, name in here) else LEVEL_RULE
+        else:
+            label = f"{max(lo, 0.0):.2f}" if (r % 2 == 1 or r == height - 1) else ""
+            fill = " "
+        label = label[:label_w - 2].rjust(label_w - 2) + " ┤"
+        chars = []
+        for v in cols:
+            if math.isnan(v):
+                chars.append(fill)
+                continue
+            frac = (v + 1e-9 - lo) / d
+            if frac >= 1:
+                chars.append(BLOCKS[-1])
+            elif frac > 1e-6:
+                chars.append(BLOCKS[max(1, int(frac * 8))])
+            else:
+                chars.append(fill)
+        rows.append(label + "".join(chars))
+    rows.append(" " * (label_w - 1) + "└" + "─" * plot_w)
+    rows.append(" " * label_w + time_axis(window_s, plot_w))
+    return rows
+
+
+def time_axis(window_s: float, width: int) -> str:
+    """'-N s' at the left, '-N/2 s' in the middle, 'now' at the right, `width` wide."""
+    left, mid, right = f"-{window_s:g} s", f"-{window_s / 2:g} s", "now"
+    line = [" "] * width
+    for pos, text in ((0, left), (max(0, width // 2 - len(mid) // 2), mid),
+                      (width - len(right), right)):
+        for i, ch in enumerate(text):
+            if 0 <= pos + i < width:
+                line[pos + i] = ch
+    return "".join(line)
+
+
+def strip_scale(values: Sequence[float]) -> tuple[float, float]:
+    """The learning-rate strip's range: min to max of the values, widened around a constant.
+
+    A constant rate (the barrier's 1/eps at zero error, or adaptation frozen) gets
+    +-10 % of itself (or 0..1 at zero), so it draws as a steady half-height strip
+    with readable end labels, not as a full block or an empty row.
+    """
+    vals = [v for v in values if not math.isnan(v)]
+    if not vals:
+        return 0.0, 1.0
+    lo, hi = min(vals), max(vals)
+    if hi - lo <= 1e-9 * max(1.0, abs(hi)):
+        pad = 0.1 * abs(hi) if hi != 0 else 1.0
+        return lo - pad, hi + pad
+    return lo, hi
+
+
+def strip_lines(values: Sequence[float], width: int, height: int) -> tuple[list[str], str]:
+    """A trace of `values` over its own range (`strip_scale`) and its range label."""
+    lo, hi = strip_scale(values)
+    shifted = [v - lo for v in values]
+    rows = trace_lines(shifted, width, height, hi - lo)
+    vals = [v for v in values if not math.isnan(v)]
+    if vals and max(vals) - min(vals) <= 1e-9 * max(1.0, abs(max(vals))):
+        return rows, f"constant {fmt(vals[0], 4)}"
+    return rows, f"{fmt(lo, 3)} .. {fmt(hi, 3)}"
+
+
+# -- per tracked axis: command, reference, measured ----------------------------
+def axis_traces(hello: Record, history: Sequence[Record], width: int,
+                height: int) -> list[tuple[str, list[str]]]:
+    """Per tracked axis: a title and rows of text where c, r and y are drawn over time.
+
+    `history` holds telemetry records (oldest first). Each column is one record,
+    the last `width` of them; the vertical range spans the three signals. Marks:
+    ``c`` the command, ``r`` the reference model, ``y`` the measured state (drawn
+    last, so it shows where it covers the others); ``*`` where all three coincide.
+    """
+    states: Sequence[str] = hello.get("states") or []
+    units: Sequence[str] = hello.get("state_units") or [""] * len(states)
+    tracked: Sequence[str] = hello.get("tracked") or []
+    recs = list(history)[-width:]
+    out: list[tuple[str, list[str]]] = []
+    for j, name in enumerate(tracked):
+        if name not in states:
+            continue
+        i = list(states).index(name)
+        series: dict[str, list[float]] = {"c": [], "r": [], "y": []}
+        for rec in recs:
+            c, xr, x = rec.get("c") or [], rec.get("xr") or [], rec.get("x") or []
+            series["c"].append(_num(c[j]) if j < len(c) else math.nan)
+            series["r"].append(_num(xr[i]) if i < len(xr) else math.nan)
+            series["y"].append(_num(x[i]) if i < len(x) else math.nan)
+        finite = [v for s in series.values() for v in s if not math.isnan(v)]
+        lo, hi = (min(finite), max(finite)) if finite else (0.0, 1.0)
+        if hi - lo < 1e-12:
+            lo, hi = lo - 0.5 * max(abs(lo), 1e-3), hi + 0.5 * max(abs(hi), 1e-3)
+        grid = [[" "] * width for _ in range(height)]
+        offset = width - len(recs)
+        for mark in ("c", "r", "y"):
+            for k, v in enumerate(series[mark]):
+                if math.isnan(v):
+                    continue
+                row = height - 1 - int(round((v - lo) / (hi - lo) * (height - 1)))
+                cell = grid[row][offset + k]
+                grid[row][offset + k] = mark if cell in (" ", mark) else "*"
+        unit = units[i] if i < len(units) else ""
+        last = recs[-1] if recs else {}
+        xs, cs = last.get("x") or [], last.get("c") or []
+        title = (f"{name} [{unit}]  c {fmt(cs[j] if j < len(cs) else None, 4)}  "
+                 f"y {fmt(xs[i] if i < len(xs) else None, 4)}  range {fmt(lo, 3)} .. "
+                 f"{fmt(hi, 3)}")
+        out.append((title, ["".join(r) for r in grid]))
+    return out
+
+
+# -- what the glance strip says -------------------------------------------------
+def trip_explanation(trip: Record, hello: Record, tel: Record | None = None) -> str:
+    """The trip in words: the record's own explanation when it carries one, the timing
+    rules' words (`runtime.realtime.hostcheck.explain_trip`, with the host check from the hello),
+    else the rule's value against its threshold."""
+    from runtime.realtime.hostcheck import explain_trip
+
+    if trip.get("explanation"):
+        return str(trip["explanation"])
+    fo = trip.get("first_out") or {}
+    rule = str(trip.get("rule") or fo.get("rule") or "?")
+    value = trip.get("value", fo.get("value"))
+    thr = trip.get("threshold", fo.get("threshold"))
+    window = hello.get("overrun_window")
+    why = explain_trip(rule, value, thr, _num(hello.get("period"), 0.0) or None,
+                       int(window) if window else None, hello.get("hostcheck") or None,
+                       (tel or {}).get("loop") or None)
+    if why:
+        return why
+    if rule in ("margin", "margin_warning"):
+        return (f"the margin ratio ||e||_P / eps reached {fmt(value, 4)}; trip level "
+                f"{fmt(thr, 3)} (the bound is 1)")
+    if rule == "predicted":
+        return (f"the margin ratio, extrapolated over the reaction time, reached "
+                f"{fmt(value, 4)}; limit {fmt(thr, 3)}")
+    text = f"{rule}: {fmt(value, 4)} against the limit {fmt(thr, 4)}"
+    if trip.get("detail"):
+        text += f" ({trip['detail']})"
+    return text
+
+
+def device_flags(hello: Record, tel: Record) -> list[tuple[str, bool]]:
+    """The device's own declared status flags (hello ``status_flags``) and whether
+    each is set in the last sample's status bits (telemetry ``status``).
+
+    The flag named at index k is status bit ``STATUS_DEVICE_BASE_BIT + k``
+    (docs/wire-protocol.md, section "Status bits").
+    """
+    from drivers.wire import STATUS_DEVICE_BASE_BIT
+
+    names: Sequence[str] = hello.get("status_flags") or []
+    status = tel.get("status")
+    bits = int(status) if isinstance(status, (int, float)) and not isinstance(status, bool) \
+        else 0
+    return [(str(n), bool(bits >> (STATUS_DEVICE_BASE_BIT + k) & 1))
+            for k, n in enumerate(names)]
+
+
+def hostcheck_line(hello: Record) -> str:
+    """The host check's verdict from the hello, in one line ('' when none ran)."""
+    hc = hello.get("hostcheck")
+    if not hc:
+        return ""
+    ok = "OK" if hc.get("ok") else "NOT OK"
+    return (f"host check {ok}: lateness p99 {fmt(hc.get('lateness_p99_us'), 3)} us, "
+            f"worst stall {fmt(hc.get('worst_stall_ms'), 3)} ms, "
+            + ("SCHED_FIFO" if hc.get("realtime") else "normal priority"))
+
+
+def preflight_line(hello: Record) -> str:
+    """The preflight verdict from the hello ('' when none ran)."""
+    pf = hello.get("preflight")
+    if not pf:
+        return ""
+    reasons = " ".join(str(r) for r in pf.get("reasons") or [])
+    return ("preflight GO" if pf.get("go") else "preflight NO-GO") + (
+        f": {reasons}" if reasons else "")
+
+
+# -- the event list -------------------------------------------------------------
+def event_line(rec: Record, received: float | None = None) -> str | None:
+    """One record (event, trip, reply) as a time-stamped line; None for other records.
+
+    The stamp is the record's own wall time (``t_wall``), else `received` (when the
+    dashboard got it: trip summaries and replies carry none)."""
+    import time as _time
+
+    kind = rec.get("type")
+    t_wall = rec.get("t_wall", received)
+    stamp = (_time.strftime("%H:%M:%S", _time.localtime(float(t_wall)))
+             if isinstance(t_wall, (int, float)) else "--:--:--")
+    if kind == "event":
+        return f"{stamp} {rec.get('kind', '?')}: {rec.get('detail', '')}".rstrip()
+    if kind == "trip":
+        return f"{stamp} TRIP {trip_line(rec)}"
+    if kind == "reply":
+        ok = "ok" if rec.get("ok") else "REFUSED"
+        return f"{stamp} request {rec.get('op', '?')}: {ok} {rec.get('message', '')}".rstrip()
+    return None
+
+
+def event_rows(lines: Sequence[str], acknowledged: int, rows: int) -> list[str]:
+    """The last `rows` event lines, each marked ``!`` until acknowledged (the first
+    `acknowledged` lines are), with the count still to acknowledge on top."""
+    unacked = max(0, len(lines) - acknowledged)
+    head = (f"events: {unacked} to acknowledge (k)" if unacked
+            else f"events: {len(lines)}, all acknowledged")
+    first = max(0, len(lines) - max(0, rows - 1))
+    body = [("! " if i >= acknowledged else "  ") + lines[i] for i in range(first, len(lines))]
+    return [head, *body]

@@ -200,3 +200,59 @@ class MqttSource(TelemetrySource):
     async def request(self, op: str) -> None:
         await self._client.publish(f"{self.prefix}/{self.rig}/request",
                                    msgpack.packb({"type": "request", "op": op}), qos=1)
+
+
+class FleetSource(MqttSource):
+    """Every rig on a broker: ``<prefix>/+/telemetry``, its retained hello, the retained
+    mode (and the runtimes' wills on it) and trip summaries. `fleet_records()` yields
+    (rig, record) pairs, ``type`` set from the topic (hello, telemetry, mode, trip).
+    Read only: a fleet view sends no requests."""
+
+    def __init__(self, host: str, port: int, username: str | None = None,
+                 password: str | None = None, tls: bool = False, prefix: str = "corral",
+                 ca_file: str | None = None, cert_file: str | None = None,
+                 key_file: str | None = None) -> None:
+        super().__init__(host, port, "+", username, password, tls, prefix=prefix,
+                         ca_file=ca_file, cert_file=cert_file, key_file=key_file)
+        self.description = f"mqtt://{host}:{port}"
+
+    async def open(self) -> None:
+        import contextlib
+
+        import aiomqtt
+
+        from drivers.mqtt_link import tls_context_for
+
+        self._stack = contextlib.AsyncExitStack()
+        tls_context = tls_context_for(self.tls, self.ca_file, self.cert_file, self.key_file)
+        self._client = await self._stack.enter_async_context(aiomqtt.Client(
+            self.host, self.port, username=self.username, password=self.password,
+            tls_context=tls_context, max_queued_incoming_messages=5000))
+        for topic in ("telemetry", "telemetry/hello", "mode", "trip"):
+            await self._client.subscribe(f"{self.prefix}/+/{topic}")
+
+    async def fleet_records(self) -> AsyncIterator[tuple[str, Record]]:
+        """(rig, record) as they arrive."""
+        kinds = {("telemetry",): "telemetry", ("telemetry", "hello"): "hello",
+                 ("mode",): "mode", ("trip",): "trip"}
+        async for message in self._client.messages:
+            topic = str(message.topic)
+            if not topic.startswith(self.prefix + "/"):
+                continue
+            parts = topic[len(self.prefix) + 1:].split("/")  # rig, leaf...
+            kind = kinds.get(tuple(parts[1:]))
+            if kind is None:
+                continue
+            try:
+                item = msgpack.unpackb(bytes(message.payload), raw=False, strict_map_key=False)
+            except (ValueError, msgpack.UnpackException, TypeError):
+                continue
+            if isinstance(item, dict):
+                item["type"] = kind
+                yield parts[0], item
+
+    def records(self) -> AsyncIterator[Record]:
+        raise NotImplementedError("a fleet has no single record stream; use fleet_records()")
+
+    async def request(self, op: str) -> None:
+        raise PermissionError("the fleet view sends no requests; open one rig's dashboard")

@@ -28,6 +28,12 @@ buffers instead of dozens of arguments:
 The kernels allocate nothing per tick. Compilation happens on first use and
 is cached on disk (``cache=True``).
 
+Where the parts live: the codes, the basis evaluator and `law_tick` in
+`runtime.kernels.lawtick`; packing (`pack_law`, `ModifierSettings`) and the wrappers
+(`FastLaw`, `FastTick`, `warm_up`) in `runtime.kernels.lawpack`; here, the loop templates
+compiled per rig (`runtime.kernels.rigloops`) and the batch sweep kernel's pieces. Every
+name above is still importable from here.
+
 What does not live here: the batched reference (`runtime.method.law`), the plant's
 physics documentation (`sim_rigs.pedestal`), the dry-run bookkeeping
 (`runtime.offline.dryrun`).
@@ -36,16 +42,83 @@ physics documentation (`sim_rigs.pedestal`), the dry-run bookkeeping
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from typing import Any
 
 import numba
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import NDArray
 
 from runtime.guard.watchdog import over
-from runtime.method.design import Design
-from runtime.method.law import LawState
+from runtime.kernels.lawpack import (
+    FastLaw,
+    FastTick,
+    ModifierSettings,
+    pack_law,
+    warm_up,
+)
+from runtime.kernels.lawtick import (  # re-exported: the templates and callers use them
+    BARRIER_CODES,
+    BASIS_OPS,
+    F_CAP,
+    F_CLAMP,
+    F_DEAD_ZONE,
+    F_EPS,
+    F_EPS_P,
+    F_GAMMA_MAX,
+    F_LAM_BPB,
+    F_MU,
+    F_SIGMA0,
+    F_TANH_W,
+    F_TS,
+    FC_HEADER,
+    I_AUGMENT,
+    I_BARRIER,
+    I_FROZEN,
+    I_LAW,
+    I_LEAK,
+    I_M,
+    I_N,
+    I_NCODE,
+    I_NRBF,
+    I_NREG,
+    I_OADT,
+    I_OBDT,
+    I_OCODES,
+    I_OGAMMA,
+    I_OK1T,
+    I_OK2T,
+    I_OP,
+    I_OPB,
+    I_ORBFC,
+    I_ORBFS,
+    I_ORBFW,
+    I_OTHETA,
+    I_OUMAX,
+    I_OUSCALE,
+    I_P,
+    I_PROJ,
+    IC_HEADER,
+    LAWS,
+    LEAKAGES,
+    O_CAPPED,
+    O_CLAMPED,
+    O_EFF_RATE,
+    O_PHI_D,
+    O_RATIO,
+    O_S,
+    O_STEP_GAIN,
+    OP_ABS,
+    OP_BIAS,
+    OP_COS,
+    OP_MUL,
+    OP_SIN,
+    OP_TANH,
+    OP_X,
+    OUT_HEADER,
+    basis_eval,
+    law_tick,
+    out_size,
+)
 from sim_rigs.kernel import LANES, plant_measure, work_width  # noqa: F401 - templates
 
 _over = numba.njit(cache=True, inline="always")(over)
@@ -53,252 +126,19 @@ _over = numba.njit(cache=True, inline="always")(over)
 
 Array = NDArray[np.float64]
 
-# ------------------------------------------------------------------ codes
-BASIS_OPS = ("bias", "x", "sin", "cos", "abs", "tanh", "mul")
-OP_BIAS, OP_X, OP_SIN, OP_COS, OP_ABS, OP_TANH, OP_MUL = range(7)
-LAWS = ("standard", "barrier")
-BARRIER_CODES = ("rational", "log")
-LEAKAGES = ("none", "sigma", "e")
 
-# ic: integer layout
-(I_N, I_M, I_P, I_NCODE, I_NRBF, I_NREG, I_LAW, I_BARRIER, I_AUGMENT, I_LEAK,
- I_PROJ, I_FROZEN, I_OP, I_OPB, I_OK1T, I_OK2T, I_OADT, I_OBDT, I_OGAMMA, I_OUMAX,
- I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS, I_OCODES, I_OUSCALE) = range(26)
-IC_HEADER = 26
-
-# fc: scalar settings at the head
-(F_TS, F_GAMMA_MAX, F_CLAMP, F_LAM_BPB, F_CAP, F_SIGMA0, F_MU, F_DEAD_ZONE, F_EPS_P,
- F_TANH_W, F_EPS) = range(11)
-FC_HEADER = 11
-
-# out: scalar results at the head, vectors after
-O_S, O_RATIO, O_PHI_D, O_EFF_RATE, O_STEP_GAIN, O_CLAMPED, O_CAPPED = range(7)
-OUT_HEADER = 7
-
-def out_size(n: int, m: int, n_reg: int) -> int:
-    """Length of the `out` buffer for n states, m inputs and N_bar regressors."""
-    return OUT_HEADER + 4 * m + 2 * n + n_reg
-
-
-# ------------------------------------------------------------------ law kernel
-@numba.njit(cache=True)
-def basis_eval(x: Array, ic: Any, fc: Array, sig: Array) -> None:  # pragma: no cover - jit
-    """sigma(x) into sig[:N]: the coded terms first, then the radial-basis block
-
-    exp(-||scale * (x - c_k)||^2 / (2 w_k^2)) (as `runtime.method.rbf.rbf_evaluate`).
-    """
-    n = ic[I_N]
-    oc = ic[I_OCODES]
-    tw = fc[F_TANH_W]
-    for k in range(ic[I_NCODE]):
-        op = ic[oc + 3 * k]
-        i = ic[oc + 3 * k + 1]
-        if op == OP_BIAS:
-            v = 1.0
-        elif op == OP_X:
-            v = x[i]
-        elif op == OP_SIN:
-            v = math.sin(x[i])
-        elif op == OP_COS:
-            v = math.cos(x[i])
-        elif op == OP_ABS:
-            v = abs(x[i])
-        elif op == OP_TANH:
-            z = x[i] / tw  # math.tanh, without the library call where it rounds to +-1
-            v = 1.0 if z > 20.0 else (-1.0 if z < -20.0 else math.tanh(z))
-        else:
-            v = x[i] * x[ic[oc + 3 * k + 2]]
-        sig[k] = v
-    base = ic[I_NCODE]
-    oc_c = ic[I_ORBFC]
-    oc_w = ic[I_ORBFW]
-    oc_s = ic[I_ORBFS]
-    for k in range(ic[I_NRBF]):
-        d2 = 0.0
-        for i in range(n):
-            d = (x[i] - fc[oc_c + k * n + i]) * fc[oc_s + i]
-            d2 += d * d
-        w = fc[oc_w + k]
-        sig[base + k] = math.exp(-d2 / (2.0 * w * w))
-
-
-@numba.njit(cache=True)
-def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
-             out: Array) -> None:  # pragma: no cover - jit
-    """One tick of `AdaptiveLaw.step` for one plant; updates st, fills out.
-
-    Order (semi-implicit, as the reference): e_k and s; clamped phi_d; the
-    capped Euler weight update with the modifiers; u_k from the new weights;
-    x_r advanced by the exact zero-order hold.
-    """
-    n = ic[I_N]
-    m = ic[I_M]
-    p = ic[I_P]
-    nreg = ic[I_NREG]
-    oP = ic[I_OP]
-    oPB = ic[I_OPB]
-    oK1 = ic[I_OK1T]
-    oK2 = ic[I_OK2T]
-    oAd = ic[I_OADT]
-    oBd = ic[I_OBDT]
-    oG = ic[I_OGAMMA]
-    oU = ic[I_OUMAX]
-    oTh = ic[I_OTHETA]
-    o_u = OUT_HEADER
-    o_uraw = o_u + m
-    o_un = o_uraw + m
-    o_e = o_un + m
-    o_sig = o_e + n
-    o_xr = o_sig + nreg
-    o_epb = o_xr + n
-    W0 = n  # W starts after x_r in st
-
-    # 1. error and its P-norm
-    for i in range(n):
-        out[o_e + i] = x[i] - st[i]
-    q = 0.0
-    for i in range(n):
-        acc = 0.0
-        for j in range(n):
-            acc += fc[oP + i * n + j] * out[o_e + j]
-        q += out[o_e + i] * acc
-    if q < 0.0:
-        q = 0.0
-    s = math.sqrt(q)
-
-    # 2. phi_d with the clamp (never evaluated at s >= eps)
-    if ic[I_LAW] == 1:
-        s_max = (1.0 - fc[F_CLAMP]) * eps
-        clamped = not (s <= s_max)
-        se = s_max if clamped else s
-        if ic[I_BARRIER] == 0:
-            gap = eps - se
-            phi_d = (2.0 * eps - se) / (2.0 * gap * gap)
-        else:
-            phi_d = eps / (eps * eps - se * se)
-    else:
-        phi_d = 1.0
-        clamped = not (s < eps)
-
-    # 3. nominal input and regressor
-    for j in range(m):
-        a = 0.0
-        for i in range(p):
-            a += c[i] * fc[oK2 + i * m + j]
-        b = 0.0
-        for i in range(n):
-            b += x[i] * fc[oK1 + i * m + j]
-        out[o_un + j] = a - b
-    basis_eval(x, ic, fc, out[o_sig:])
-    nb = ic[I_NCODE] + ic[I_NRBF]
-    if ic[I_AUGMENT] == 1:
-        for j in range(m):
-            out[o_sig + nb + j] = out[o_un + j] / fc[ic[I_OUSCALE] + j]
-    sig_sq = 0.0
-    for i in range(nreg):
-        sig_sq += out[o_sig + i] * out[o_sig + i]
-    g = fc[F_TS] * fc[F_GAMMA_MAX] * phi_d * sig_sq * fc[F_LAM_BPB]
-    cap = fc[F_CAP]
-    capped = g > cap
-    if capped:
-        scale = cap / (g if g > 1e-300 else 1e-300)
-    else:
-        scale = 1.0
-    rate = phi_d * scale
-
-    # 4. weight update: W += Ts * modified(gamma * rate * sigma_bar (e' P B))
-    if ic[I_FROZEN] == 0:
-        epb_sq = 0.0
-        for j in range(m):
-            a = 0.0
-            for i in range(n):
-                a += out[o_e + i] * fc[oPB + i * m + j]
-            out[o_epb + j] = a
-            epb_sq += a * a
-        leak = ic[I_LEAK]
-        leak_gain = 0.0
-        if leak == 1:
-            leak_gain = fc[F_SIGMA0]
-        elif leak == 2:
-            leak_gain = fc[F_MU] * math.sqrt(epb_sq)
-        dead = fc[F_DEAD_ZONE] > 0.0 and s < fc[F_DEAD_ZONE]
-        proj = ic[I_PROJ] == 1
-        eps_p = fc[F_EPS_P]
-        for j in range(m):
-            # column j: theta = W[:, j], y = dW[:, j]; computed twice (cheap, no scratch)
-            ty = 0.0
-            tt = 0.0
-            f = 0.0
-            if proj and not dead:
-                th_max = fc[oTh + j]
-                for i in range(nreg):
-                    gi = fc[oG + i]
-                    y = (gi * (rate * out[o_sig + i])) * out[o_epb + j]
-                    if leak != 0:
-                        y = y - gi * leak_gain * st[W0 + i * m + j]
-                    th = st[W0 + i * m + j]
-                    ty += th * y
-                    tt += th * th
-                f = ((1.0 + eps_p) * tt - th_max * th_max) / (eps_p * th_max * th_max)
-            do_proj = proj and f > 0.0 and ty > 0.0
-            k_proj = ty * f / tt if do_proj else 0.0
-            for i in range(nreg):
-                if dead:
-                    continue
-                gi = fc[oG + i]
-                idx = W0 + i * m + j
-                y = (gi * (rate * out[o_sig + i])) * out[o_epb + j]
-                if leak != 0:
-                    y = y - gi * leak_gain * st[idx]
-                if do_proj:
-                    y = y - st[idx] * k_proj
-                st[idx] += fc[F_TS] * y
-            if proj:
-                # the Euler step may overshoot the ball Proj keeps invariant (f <= 1, i.e.
-                # ||theta|| <= theta_max): pull the column back radially onto it
-                nn = 0.0
-                for i in range(nreg):
-                    nn += st[W0 + i * m + j] * st[W0 + i * m + j]
-                th_max = fc[oTh + j]
-                if nn > th_max * th_max:
-                    shrink = th_max / math.sqrt(nn)
-                    for i in range(nreg):
-                        st[W0 + i * m + j] *= shrink
-
-    # 5. control from the new weights, saturation
-    for j in range(m):
-        a = 0.0
-        for i in range(nreg):
-            a += st[W0 + i * m + j] * out[o_sig + i]
-        ur = out[o_un + j] - a
-        out[o_uraw + j] = ur
-        lim = fc[oU + j]
-        if ur > lim:
-            ur = lim
-        elif ur < -lim:
-            ur = -lim
-        out[o_u + j] = ur
-
-    # 6. reference model by exact zero-order hold
-    for j in range(n):
-        a = 0.0
-        for i in range(n):
-            a += st[i] * fc[oAd + i * n + j]
-        b = 0.0
-        for i in range(p):
-            b += c[i] * fc[oBd + i * n + j]
-        out[o_xr + j] = a + b
-    for j in range(n):
-        st[j] = out[o_xr + j]
-
-    out[O_S] = s
-    out[O_RATIO] = s / eps
-    out[O_PHI_D] = phi_d
-    out[O_EFF_RATE] = fc[F_GAMMA_MAX] * rate
-    out[O_STEP_GAIN] = g
-    out[O_CLAMPED] = 1.0 if clamped else 0.0
-    out[O_CAPPED] = 1.0 if capped else 0.0
-
+#: Moved to `runtime.kernels.lawtick` and `runtime.kernels.lawpack`; still importable from here.
+__all__ = [
+    'BARRIER_CODES', 'basis_eval', 'BASIS_OPS', 'F_CAP', 'F_CLAMP', 'F_DEAD_ZONE', 'F_EPS',
+    'F_EPS_P', 'F_GAMMA_MAX', 'F_LAM_BPB', 'F_MU', 'F_SIGMA0', 'F_TANH_W', 'F_TS', 'FastLaw',
+    'FastTick', 'FC_HEADER', 'I_AUGMENT', 'I_BARRIER', 'I_FROZEN', 'I_LAW', 'I_LEAK', 'I_M',
+    'I_N', 'I_NCODE', 'I_NRBF', 'I_NREG', 'I_OADT', 'I_OBDT', 'I_OCODES', 'I_OGAMMA', 'I_OK1T',
+    'I_OK2T', 'I_OP', 'I_OPB', 'I_ORBFC', 'I_ORBFS', 'I_ORBFW', 'I_OTHETA', 'I_OUMAX',
+    'I_OUSCALE', 'I_P', 'I_PROJ', 'IC_HEADER', 'law_tick', 'LAWS', 'LEAKAGES',
+    'ModifierSettings', 'O_CAPPED', 'O_CLAMPED', 'O_EFF_RATE', 'O_PHI_D', 'O_RATIO', 'O_S',
+    'O_STEP_GAIN', 'OP_ABS', 'OP_BIAS', 'OP_COS', 'OP_MUL', 'OP_SIN', 'OP_TANH', 'OP_X',
+    'OUT_HEADER', 'out_size', 'pack_law', 'warm_up',
+]
 
 # ------------------------------------------------------------------ the loop templates
 # `dry_run_loop` and `sweep_kernel` below are templates, not compiled here: each rig gets
@@ -371,282 +211,6 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
         plant_step(xp, out[o_u:o_u + m], pcode, pmat, prm, limits, dt, substeps, lsc[k],
                    dist[k], work)
         plant_measure(xp, resolution, noise[k + 1], meas[k + 1])
-
-
-# ------------------------------------------------------------------ packing
-@dataclass(frozen=True)
-class ModifierSettings:
-    """Weight modifiers of section 2a, as the fast kernel applies them.
-
-    Applied to the weight derivative in this order: leakage, dead zone (no
-    adaptation at all while s < dead_zone), projection (column by column).
-    After the Euler step a column that overshot ||W[:, j]|| <= theta_max[j]
-    (the set Proj keeps invariant in continuous time) is scaled back onto it:
-    without that, a large step lands where f >> 1, the projected derivative
-    overshoots the other way and the weights diverge (seen in tests).
-    """
-
-    leakage: str = "none"
-    """"none", "sigma" (sigma-modification) or "e" (e-modification)."""
-    sigma0: float = 0.0
-    """sigma-modification gain (1/s)."""
-    mu: float = 0.0
-    """e-modification gain (1)."""
-    dead_zone: float = 0.0
-    """No adaptation while ||e||_P is below this (||e||_P units); 0 = off."""
-    projection: bool = False
-    """Project the weight derivative, column by column."""
-    theta_max: tuple[float, ...] = ()
-    """Projection radius per input column (one value is broadcast)."""
-    projection_eps: float = 0.1
-    """Width of the projection's transition band (eps_p)."""
-
-    @classmethod
-    def from_config(cls, cfg: Any, design: Design) -> ModifierSettings:
-        """The settings `[adaptation]` asks for: `leakage`, `sigma0`, `mu`, `dead_zone`,
-        `projection`, `theta_max`, `projection_eps` (all optional; absent = off).
-
-        Parsed and checked by `runtime.method.modifiers.modifiers_from_config`, so both
-        engines refuse the same configs with the same messages.
-        """
-        from runtime.method.modifiers import modifiers_from_config
-
-        return cls.from_modifiers(modifiers_from_config(cfg, design), design.rig.m)
-
-    @classmethod
-    def from_modifiers(cls, modifiers: Any, m: int) -> ModifierSettings:
-        """The settings equivalent to a list of `runtime.method.modifiers` objects.
-
-        Raises ValueError for a modifier the kernel does not know, or for an
-        order other than leakage, dead zone, projection.
-        """
-        from runtime.method.modifiers import DeadZone, EModification, Projection, SigmaModification
-
-        rank = {SigmaModification: 0, EModification: 0, DeadZone: 1, Projection: 2}
-        kw: dict[str, Any] = {}
-        last = -1
-        for mod in modifiers:
-            kind = type(mod)
-            if kind not in rank or rank[kind] < last or (rank[kind] == 0 and "leakage" in kw):
-                raise ValueError(f"the compiled law cannot apply {kind.__name__} here; it knows "
-                                 "one leakage, a dead zone and projection, in that order.")
-            last = rank[kind]
-            if kind is SigmaModification:
-                kw.update(leakage="sigma", sigma0=mod.sigma0)
-            elif kind is EModification:
-                kw.update(leakage="e", mu=mod.mu)
-            elif kind is DeadZone:
-                kw.update(dead_zone=mod.threshold)
-            else:
-                theta = np.broadcast_to(np.asarray(mod.theta_max, dtype=float), (m,))
-                kw.update(projection=True, theta_max=tuple(theta.tolist()),
-                          projection_eps=mod.eps_p)
-        return cls(**kw)
-
-
-def pack_law(design: Design, modifiers: ModifierSettings | None = None,
-             ) -> tuple[NDArray[np.int64], Array]:
-    """The (ic, fc) buffers the kernels read for this design and modifier settings."""
-    d = design
-    mods = modifiers or ModifierSettings()
-    n, m = d.rig.n, d.rig.m
-    p = d.K2.shape[1]
-    basis = d.basis
-    codes = list(basis.codes)
-    centres = getattr(basis, "rbf_centres", None)
-    widths = getattr(basis, "rbf_widths", None)
-    rbf_scale = getattr(basis, "rbf_scale", None)
-    if centres is None or widths is None:
-        centres = widths = None
-    scale = np.ones(n) if rbf_scale is None else np.asarray(rbf_scale, dtype=float)
-    n_rbf = 0 if centres is None else int(np.asarray(centres).shape[0])
-    if len(codes) + n_rbf != basis.size:
-        raise ValueError(
-            f"the basis has {basis.size} terms but {len(codes)} op codes and {n_rbf} radial "
-            "terms; the compiled path needs a code for every term (use engine='reference')."
-        )
-    if d.barrier not in BARRIER_CODES:
-        raise ValueError(f"barrier {d.barrier!r} has no compiled form; "
-                         f"the fast path knows {', '.join(BARRIER_CODES)}.")
-    if mods.leakage not in LEAKAGES:
-        raise ValueError(f"leakage {mods.leakage!r}: choose one of {', '.join(LEAKAGES)}.")
-    n_reg = d.n_regressors
-    gamma = np.broadcast_to(np.asarray(d.gamma, dtype=float), (n_reg,))
-    theta = np.ones(m)
-    if mods.projection:
-        theta = np.broadcast_to(np.asarray(mods.theta_max, dtype=float), (m,)).astype(float)
-
-    blocks: list[Array] = []
-    offsets: list[int] = []
-    pos = FC_HEADER
-    for M in (d.P, d.PB, d.K1.T, d.K2.T, d.A_d.T, d.B_d.T, gamma,
-              np.asarray(d.rig.input_limits, dtype=float), theta,
-              np.zeros((0,)) if centres is None else np.asarray(centres, dtype=float),
-              np.zeros((0,)) if widths is None else np.asarray(widths, dtype=float),
-              scale, np.asarray(d.regressor_scale, dtype=float)):
-        flat = np.ascontiguousarray(M, dtype=float).ravel()
-        offsets.append(pos)
-        blocks.append(flat)
-        pos += flat.size
-    head = np.zeros(FC_HEADER)
-    head[F_TS] = d.Ts
-    head[F_GAMMA_MAX] = float(np.max(d.gamma))
-    head[F_CLAMP] = d.clamp_margin
-    head[F_LAM_BPB] = d.lam_max_BPB
-    head[F_CAP] = d.step_gain_cap
-    head[F_SIGMA0] = mods.sigma0
-    head[F_MU] = mods.mu
-    head[F_DEAD_ZONE] = mods.dead_zone
-    head[F_EPS_P] = mods.projection_eps
-    head[F_TANH_W] = basis.tanh_width
-    head[F_EPS] = d.eps
-    fc = np.concatenate([head, *blocks])
-
-    ic = np.zeros(IC_HEADER + 3 * len(codes), dtype=np.int64)
-    ic[I_N], ic[I_M], ic[I_P] = n, m, p
-    ic[I_NCODE], ic[I_NRBF], ic[I_NREG] = len(codes), n_rbf, n_reg
-    ic[I_LAW] = LAWS.index(d.law)
-    ic[I_BARRIER] = BARRIER_CODES.index(d.barrier)
-    ic[I_AUGMENT] = int(d.augment)
-    ic[I_LEAK] = LEAKAGES.index(mods.leakage)
-    ic[I_PROJ] = int(mods.projection)
-    ic[I_FROZEN] = 0
-    (ic[I_OP], ic[I_OPB], ic[I_OK1T], ic[I_OK2T], ic[I_OADT], ic[I_OBDT], ic[I_OGAMMA],
-     ic[I_OUMAX], ic[I_OTHETA], ic[I_ORBFC], ic[I_ORBFW], ic[I_ORBFS], ic[I_OUSCALE]) = offsets
-    ic[I_OCODES] = IC_HEADER
-    for k, (op, i, j) in enumerate(codes):
-        ic[IC_HEADER + 3 * k: IC_HEADER + 3 * k + 3] = (BASIS_OPS.index(op), i, j)
-    return ic, fc
-
-
-# ------------------------------------------------------------------ the wrapper
-class FastTick:
-    """One tick's results: live views of the law's output buffer (overwritten next tick).
-
-    Same fields as `runtime.method.law.TickOut`; vectors are array views, scalars floats.
-    """
-
-    __slots__ = ("_out", "u", "u_raw", "u_n", "e", "sigma_bar")
-
-    def __init__(self, out: Array, n: int, m: int, n_reg: int) -> None:
-        self._out = out
-        o = OUT_HEADER
-        self.u = out[o:o + m]
-        self.u_raw = out[o + m:o + 2 * m]
-        self.u_n = out[o + 2 * m:o + 3 * m]
-        self.e = out[o + 3 * m:o + 3 * m + n]
-        self.sigma_bar = out[o + 3 * m + n:o + 3 * m + n + n_reg]
-
-    @property
-    def s(self) -> float:
-        """||e||_P."""
-        return float(self._out[O_S])
-
-    @property
-    def ratio(self) -> float:
-        """Margin ratio ||e||_P / eps."""
-        return float(self._out[O_RATIO])
-
-    @property
-    def phi_d(self) -> float:
-        """Barrier factor used this tick (1 for the standard law)."""
-        return float(self._out[O_PHI_D])
-
-    @property
-    def eff_rate(self) -> float:
-        """Effective learning rate gamma_max * phi_d after the cap."""
-        return float(self._out[O_EFF_RATE])
-
-    @property
-    def step_gain(self) -> float:
-        """Per-step adaptation gain before the cap."""
-        return float(self._out[O_STEP_GAIN])
-
-    @property
-    def clamped(self) -> bool:
-        """True when the phi_d clamp engaged."""
-        return bool(self._out[O_CLAMPED])
-
-    @property
-    def capped(self) -> bool:
-        """True when the step-gain cap limited the update."""
-        return bool(self._out[O_CAPPED])
-
-
-class FastLaw:
-    """The compiled law for one plant: same tick as `AdaptiveLaw.step`, no allocation.
-
-    Example:
-        >>> law = FastLaw(design)                    # doctest: +SKIP
-        >>> law.init_state(y0)                       # doctest: +SKIP
-        >>> out = law.step(y, c); out.u, out.ratio   # doctest: +SKIP
-    """
-
-    def __init__(self, design: Design, modifiers: ModifierSettings | None = None) -> None:
-        self.design = design
-        self.modifiers = modifiers or ModifierSettings()
-        self.ic, self.fc = pack_law(design, self.modifiers)
-        self.n, self.m = design.rig.n, design.rig.m
-        self.n_reg = design.n_regressors
-        self.eps = design.eps
-        self.st = np.zeros(self.n + self.n_reg * self.m)
-        self.out = np.zeros(out_size(self.n, self.m, self.n_reg))
-        self.tick = FastTick(self.out, self.n, self.m, self.n_reg)
-        self._x = np.zeros(self.n)
-        self._c = np.zeros(design.K2.shape[1])
-
-    @property
-    def xr(self) -> Array:
-        """Reference-model state (view of the live state)."""
-        return self.st[:self.n]
-
-    @property
-    def W(self) -> Array:
-        """Weight estimate (N_bar, m) (view of the live state)."""
-        return self.st[self.n:].reshape(self.n_reg, self.m)
-
-    @property
-    def frozen(self) -> bool:
-        """When True the weights are held (a fallback is active)."""
-        return bool(self.ic[I_FROZEN])
-
-    @frozen.setter
-    def frozen(self, value: bool) -> None:
-        self.ic[I_FROZEN] = int(bool(value))
-
-    def init_state(self, x0: ArrayLike, W0: ArrayLike | None = None) -> LawState:
-        """Engage: x_r = x0, weights zero (or W0); returns views of the live state."""
-        self.st[:self.n] = np.asarray(x0, dtype=float).reshape(self.n)
-        self.st[self.n:] = 0.0 if W0 is None else np.asarray(W0, dtype=float).ravel()
-        return LawState(xr=self.xr, W=self.W)
-
-    def step(self, x: ArrayLike, c: ArrayLike, eps: float | None = None) -> FastTick:
-        """One tick; returns the live `FastTick` (copy what you keep)."""
-        xa = x if type(x) is np.ndarray and x.dtype == np.float64 else np.asarray(x, float)
-        ca = c if type(c) is np.ndarray and c.dtype == np.float64 else np.asarray(c, float)
-        law_tick(xa, ca, self.eps if eps is None else float(eps), self.ic, self.fc,
-                 self.st, self.out)
-        return self.tick
-
-
-def warm_up() -> float:
-    """Compile (or load from the cache) every kernel on a tiny problem; returns seconds."""
-    import time
-
-    t0 = time.perf_counter()
-    n, m, nreg = 1, 1, 1
-    ic = np.zeros(IC_HEADER + 3, dtype=np.int64)
-    ic[I_N] = ic[I_M] = ic[I_P] = 1
-    ic[I_NCODE] = ic[I_NREG] = 1
-    fc = np.ones(FC_HEADER + 16)
-    for k, idx in enumerate((I_OP, I_OPB, I_OK1T, I_OK2T, I_OADT, I_OBDT, I_OGAMMA,
-                             I_OUMAX, I_OTHETA, I_ORBFC, I_ORBFW, I_ORBFS, I_OUSCALE)):
-        ic[idx] = FC_HEADER + k
-    ic[I_OCODES] = IC_HEADER
-    st = np.zeros(n + nreg * m)
-    out = np.zeros(out_size(n, m, nreg))
-    law_tick(np.zeros(1), np.zeros(1), 1.0, ic, fc, st, out)
-    return time.perf_counter() - t0
 
 
 # ------------------------------------------------------------------ the batch sweep kernel

@@ -24,14 +24,15 @@ TEMPLATES = {"dry_run_loop": "@numba.njit(cache=True)",
 """The loops of `runtime.kernels.fast` compiled per rig, with their numba decorators."""
 
 _ROOT = Path(__file__).resolve().parents[2]
-SOURCES = ("runtime/kernels/fast.py", "runtime/guard/watchdog.py", "sim_rigs/kernel.py",
-           "runtime/kernels/rigloops.py")
+SOURCES = ("runtime/kernels/fast.py", "runtime/kernels/lawtick.py", "runtime/guard/watchdog.py",
+           "sim_rigs/kernel.py", "runtime/kernels/rigloops.py")
 
 
 PRELUDE = ("import runtime.kernels.fast as _fast\n"
            "globals().update({k: v for k, v in vars(_fast).items() if not k.startswith('__')})")
 """The names of `runtime.kernels.fast` the loops use (its placeholders of the plant step
-are then replaced by the rig's generated ones, which follow)."""
+are then replaced by the rig's generated ones, which follow). `fast` imports every name the
+templates call from `runtime.kernels.lawtick`, so its namespace is the whole prelude."""
 
 
 def loops_source() -> str:

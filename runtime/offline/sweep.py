@@ -449,18 +449,21 @@ def _compiled_threads(workers: int) -> int:
 
 
 def run_chunk(raw: dict[str, Any], settings: SweepSettings, prm: Columns,
-              chunk_index: int) -> Columns:
+              chunk_index: int, plant_ids: NDArray[np.int64] | None = None) -> Columns:
     """Simulate one chunk of plants (in this process); per-plant result arrays.
 
-    The compiled engine numbers the chunk's plants 0.. for their noise streams;
-    `run_sweep` numbers them across the whole sweep instead.
+    The compiled engine keys each plant's noise stream by its number: `plant_ids`
+    (the plants' indices in the whole sweep, as `run_sweep` numbers them, so a chunk
+    run elsewhere gives the same plant the same noise), by default 0.. in the chunk.
     """
     setup = _setup(raw, settings)
     rng = np.random.default_rng([settings.seed, chunk_index])
     prm = {k: np.ascontiguousarray(v, dtype=float) for k, v in prm.items()}
     if setup.engine == "compiled":
         B = len(next(iter(prm.values())))
-        return _run_compiled(setup, prm, np.arange(B, dtype=np.int64))
+        ids = np.arange(B, dtype=np.int64) if plant_ids is None else np.ascontiguousarray(
+            plant_ids, dtype=np.int64)
+        return _run_compiled(setup, prm, ids)
     return _run_reference(setup, prm, rng)
 
 

@@ -221,6 +221,11 @@ class Runner:
         failure: BaseException | None = None
         try:
             async with self.link:
+                # The device's own status flags are known once its hello has come.
+                flags = list(getattr(self.link.hello, "status_flags", ()) or ())
+                self.telemetry.hello["status_flags"] = flags
+                if self.mqtt is not None:
+                    self.mqtt.hello["status_flags"] = flags
                 async with asyncio.TaskGroup() as tg:
                     tel = tg.create_task(self.telemetry.serve(), name="telemetry")
                     mqtt = (tg.create_task(self.mqtt.run(), name="mqtt-telemetry")

@@ -146,6 +146,8 @@ class TickCore:
         """Highest trip id whose record is on disk (fsynced): nothing announces a later one."""
         self.internal: BaseException | None = None
         """The exception that ended the run through the `internal` trip (None: none)."""
+        self.device_status = 0
+        """The status bits of the last sample (telemetry ``status``; docs/wire-protocol.md)."""
 
         # live state
         self.tick = 0
@@ -216,7 +218,8 @@ class TickCore:
                 "bound": self.bound.to_json(),
                 "levels": self.levels(), "period": self.Ts, "simulated": self.simulated,
                 "tracked": list(self.tracked), "hostcheck": self.settings.hostcheck,
-                "link": self.link_info, "run_name": self.run_name}
+                "link": self.link_info, "run_name": self.run_name,
+                "status_flags": list(getattr(self.link.hello, "status_flags", ()) or ())}
 
     def _start_fallback(self, kind: str) -> None:
         self.law.frozen = True
@@ -293,6 +296,8 @@ class TickCore:
             for op, reply in reqs:
                 self._handle_request(op, reply)
 
+        if sample is not None:
+            self.device_status = int(sample.status)
         x = self.est.update(sample, now)
         self.x = x
         if sample is not None:
@@ -796,7 +801,8 @@ class TickCore:
                      "lateness_p99_us": _finite(p99),
                      "deadline_misses": stats.misses if stats is not None else 0,
                      "ticks": self.tick},
-            "link": link, "trip": self.current_trip if self.sup.latched else None,
+            "link": link, "status": self.device_status,
+            "trip": self.current_trip if self.sup.latched else None,
             "trips": list(self.trips[-20:]),
         }
 
