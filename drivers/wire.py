@@ -13,9 +13,9 @@ a simulated device can reuse. What does not: any transport (see
 `drivers.serial_link`), any control logic.
 """
 
+
 from __future__ import annotations
 
-import binascii
 import math
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -24,17 +24,40 @@ from typing import SupportsFloat
 import msgpack
 
 from drivers.base import (
-    FLAG_OUTPUTS_ON,
-    FLAG_STOP,
-    STATUS_COMMAND_TIMEOUT,
     STATUS_OK,
-    STATUS_OUTPUTS_OFF,
-    STATUS_SATURATED,
     Command,
     Hello,
     LinkStats,
     Sample,
 )
+from drivers.command_guard import CommandGuard
+from drivers.framing import (
+    DELIMITER,
+    MAX_FRAME,
+    CobsError,
+    CrcError,
+    DecodeError,
+    UnknownKind,
+    WireError,
+    cobs_decode,
+    cobs_encode,
+    crc16,
+    frame_body,
+    unframe,
+)
+from drivers.sequence import SEQ_MOD, SampleGate, SeqTracker, seq_newer
+
+__all__ = [
+    # this module's own
+    "STATUS_DEVICE_BASE_BIT", "MAX_STATUS_FLAGS", "PROTOCOL_VERSION", "KIND_HELLO",
+    "KIND_SAMPLE", "KIND_COMMAND", "KIND_HEARTBEAT", "KIND_FAULT", "KIND_STOP", "KIND_NAMES",
+    "MAX_CHANNELS", "Heartbeat", "Fault", "Stop", "Message", "message_array", "encode_body",
+    "encode_message", "decode_array", "decode_body", "decode_frame", "FrameDecoder",
+    # re-exported from their modules, where callers found them before the split
+    "DELIMITER", "MAX_FRAME", "SEQ_MOD", "CobsError", "CrcError", "DecodeError",
+    "UnknownKind", "WireError", "cobs_decode", "cobs_encode", "crc16", "frame_body",
+    "unframe", "SampleGate", "SeqTracker", "seq_newer", "CommandGuard",
+]
 
 STATUS_DEVICE_BASE_BIT = 8
 """Status bit of the first device-declared status flag (hello ``status_flags``)."""
@@ -62,41 +85,6 @@ KIND_NAMES = {
     KIND_FAULT: "fault",
     KIND_STOP: "stop",
 }
-
-SEQ_MOD = 1 << 32
-"""Sequence numbers are unsigned 32-bit and wrap."""
-
-MAX_FRAME = 1024
-"""Longest encoded frame (without its delimiter) a receiver must accept."""
-
-DELIMITER = b"\x00"
-
-
-# --------------------------------------------------------------------------- errors
-
-
-class WireError(ValueError):
-    """A frame or message could not be decoded."""
-
-
-class CobsError(WireError):
-    """The COBS layer is malformed (a zero inside, or a code pointing past the end)."""
-
-
-class CrcError(WireError):
-    """The CRC over the body does not match."""
-
-
-class DecodeError(WireError):
-    """The body is not a well-formed message of a known kind."""
-
-
-class UnknownKind(WireError):
-    """The body is a well-formed array whose kind this version does not know."""
-
-    def __init__(self, kind: object) -> None:
-        super().__init__(f"unknown message kind {kind!r}")
-        self.kind = kind
 
 
 # --------------------------------------------------------------------------- extra messages
@@ -131,82 +119,6 @@ class Stop:
 
 
 Message = Hello | Sample | Command | Heartbeat | Fault | Stop
-
-
-# --------------------------------------------------------------------------- COBS
-
-
-def cobs_encode(data: bytes | bytearray | memoryview) -> bytes:
-    """COBS-encode `data` (Cheshire and Baker, 1999). The result holds no zero byte.
-
-    The trailing 0x00 delimiter is *not* added; `frame_body` does that.
-    """
-    out = bytearray()
-    pieces = bytes(data).split(b"\x00")
-    last = len(pieces) - 1
-    for i, piece in enumerate(pieces):
-        n = len(piece)
-        pos = 0
-        while n - pos >= 254:
-            out.append(0xFF)
-            out += piece[pos : pos + 254]
-            pos += 254
-        # A run of exactly k*254 bytes at the very end needs no final block
-        # (the paper's 0xFF code carries no implied zero).
-        if i == last and n > 0 and pos == n:
-            break
-        out.append(n - pos + 1)
-        out += piece[pos:]
-    return bytes(out)
-
-
-def cobs_decode(data: bytes | bytearray | memoryview) -> bytes:
-    """Invert `cobs_encode`. Raises `CobsError` on malformed input."""
-    src = bytes(data)
-    n = len(src)
-    if n == 0:
-        raise CobsError("empty COBS block")
-    out = bytearray()
-    i = 0
-    while i < n:
-        code = src[i]
-        if code == 0:
-            raise CobsError(f"zero byte inside COBS data at offset {i}")
-        end = i + code
-        if end > n:
-            raise CobsError(f"COBS code {code} at offset {i} runs past the end ({n} bytes)")
-        block = src[i + 1 : end]
-        if 0 in block:
-            raise CobsError("zero byte inside COBS data")
-        out += block
-        i = end
-        if code != 0xFF and i < n:
-            out.append(0)
-    return bytes(out)
-
-
-# --------------------------------------------------------------------------- CRC
-
-
-def crc16(data: bytes | bytearray | memoryview) -> int:
-    """CRC-16/CCITT-FALSE: poly 0x1021, init 0xFFFF, no reflection, no final xor."""
-    return binascii.crc_hqx(data, 0xFFFF)
-
-
-def frame_body(body: bytes) -> bytes:
-    """Wrap a message body into a complete frame: COBS(body + CRC16 BE) + 0x00."""
-    return cobs_encode(body + crc16(body).to_bytes(2, "big")) + DELIMITER
-
-
-def unframe(encoded: bytes | bytearray | memoryview) -> bytes:
-    """Undo `frame_body` for one frame given *without* its delimiter; returns the body."""
-    raw = cobs_decode(encoded)
-    if len(raw) < 3:
-        raise CobsError(f"frame too short ({len(raw)} bytes after COBS)")
-    body = raw[:-2]
-    if crc16(body) != int.from_bytes(raw[-2:], "big"):
-        raise CrcError("CRC mismatch")
-    return body
 
 
 # --------------------------------------------------------------------------- messages
@@ -489,237 +401,3 @@ class FrameDecoder:
             buf.clear()
             self._discarding = True
         return out
-
-
-# --------------------------------------------------------------------------- sequences
-
-
-class SeqTracker:
-    """Counts sample sequence gaps and duplicates (32-bit wrap-aware).
-
-    `accept(seq)` returns True for a sample newer than every one seen so far.
-    A jump forward by k adds k - 1 to `stats.gaps` (samples missed). A sample
-    not newer than the last accepted one (repeated or reordered) adds 1 to
-    `stats.duplicates` and is rejected. Call `reset()` when the device
-    re-announces itself (a new hello restarts its numbering).
-    """
-
-    __slots__ = ("stats", "last")
-
-    def __init__(self, stats: LinkStats | None = None) -> None:
-        self.stats = stats if stats is not None else LinkStats()
-        self.last: int | None = None
-
-    def reset(self) -> None:
-        """Forget the last sequence number."""
-        self.last = None
-
-    def accept(self, seq: int) -> bool:
-        """Record `seq`; True if it is new (forward), False if duplicate or old."""
-        last = self.last
-        if last is None:
-            self.last = seq
-            return True
-        diff = (seq - last) % SEQ_MOD
-        if diff == 0 or diff >= SEQ_MOD // 2:
-            self.stats.duplicates += 1
-            return False
-        self.stats.gaps += diff - 1
-        self.last = seq
-        return True
-
-
-class SampleGate:
-    """Checks every sample against the device's hello before the loop sees it.
-
-    A sample is refused (counted in `stats.rejected`, or `stats.duplicates`
-    when it is not newer than the last one) when its reading count differs from
-    the hello's channels, its device time is not finite, or it is implausible
-    next to the last accepted sample: a sequence jump over `max_seq_jump`, or a
-    device time that disagrees with the sequence step by more than
-    `max_time_error_s`. Non-finite readings pass: a NaN from a sensor is the
-    loop's `nonfinite` trip, not the link's to hide.
-
-    One forged or corrupted sample cannot poison the stream: a refused sample
-    is kept as a candidate, and only when the very next sample continues it
-    (seq + 1, one period later) does the gate adopt the new numbering (a device
-    that restarted without a hello), counting `stats.resyncs`; the real stream
-    resynchronises back the same way. `accept` returns 0 (refused), 1
-    (accepted) or 2 (accepted, new numbering: the device clock starts over).
-    """
-
-    __slots__ = ("stats", "channels", "period", "max_seq_jump", "max_time_error_s",
-                 "last_seq", "last_t", "_cand", "_span")
-
-    def __init__(self, stats: LinkStats | None = None, *, max_span_s: float = 1.0,
-                 max_time_error_s: float = 0.5) -> None:
-        self.stats = stats if stats is not None else LinkStats()
-        self.channels: int | None = None
-        self.period = 0.0
-        self.max_seq_jump = 1000
-        self.max_time_error_s = max_time_error_s
-        self._span = max_span_s
-        self.last_seq: int | None = None
-        self.last_t = 0.0
-        self._cand: tuple[int, float] | None = None
-
-    def start(self, hello: Hello) -> None:
-        """A new session with this device: its channel count and rate; numbering forgotten."""
-        self.channels = len(hello.channels)
-        rate = hello.sample_rate_hz
-        self.period = 1.0 / rate if math.isfinite(rate) and rate > 0 else 0.0
-        self.max_seq_jump = max(16, int(rate * self._span)) if self.period else 1000
-        self.reset()
-
-    def reset(self) -> None:
-        """Forget the numbering (a new hello restarts it)."""
-        self.last_seq = None
-        self._cand = None
-
-    def _plausible(self, seq: int, t: float, seq0: int, t0: float) -> bool:
-        d = (seq - seq0) % SEQ_MOD
-        if d == 0 or d >= SEQ_MOD // 2 or d > self.max_seq_jump:
-            return False
-        return abs((t - t0) - d * self.period) <= self.max_time_error_s + 0.1 * d * self.period
-
-    def accept(self, s: Sample) -> int:
-        """0: refused; 1: accepted; 2: accepted after a resynchronisation."""
-        stats = self.stats
-        t = s.t_device
-        if (self.channels is not None and len(s.y) != self.channels) or not math.isfinite(t):
-            stats.rejected += 1
-            return 0
-        seq = s.seq
-        last = self.last_seq
-        if last is None:
-            self.last_seq, self.last_t = seq, t
-            return 1
-        if self._plausible(seq, t, last, self.last_t):
-            stats.gaps += (seq - last) % SEQ_MOD - 1
-            self.last_seq, self.last_t = seq, t
-            self._cand = None
-            return 1
-        cand = self._cand
-        if cand is not None and (seq - cand[0]) % SEQ_MOD == 1 \
-                and self._plausible(seq, t, cand[0], cand[1]):
-            self.last_seq, self.last_t = seq, t
-            self._cand = None
-            stats.resyncs += 1
-            return 2
-        d = (seq - last) % SEQ_MOD
-        if d == 0:
-            stats.duplicates += 1  # a plain repeat is never a resync candidate
-            return 0
-        self._cand = (seq, t)
-        if d >= SEQ_MOD // 2:
-            stats.duplicates += 1
-        else:
-            stats.rejected += 1
-        return 0
-
-
-def seq_newer(a: int, b: int) -> bool:
-    """True if sequence number `a` is newer than `b` (32-bit serial arithmetic)."""
-    return 0 < (a - b) % SEQ_MOD < SEQ_MOD // 2
-
-
-# --------------------------------------------------------------------------- device side
-
-
-class CommandGuard:
-    """The device's own fail-safe, for simulated devices written in Python.
-
-    Mirrors the C reference (drivers/device_c/corral_device.c): outputs are
-    zero until a valid command arrives; a command older than the last applied
-    one is ignored; if no valid command arrived for `timeout_s`, outputs go to
-    zero and `STATUS_COMMAND_TIMEOUT | STATUS_OUTPUTS_OFF` is reported; a stop
-    (message or `FLAG_STOP`) latches outputs off until `rearm()` (a new host
-    hello). Commands are clamped to `limits` (`STATUS_SATURATED` when clamped).
-    """
-
-    def __init__(self, limits: tuple[float, ...], timeout_s: float,
-                 lease_s: float | None = None) -> None:
-        self.limits = tuple(float(v) for v in limits)
-        self.timeout_s = float(timeout_s)
-        self.lease_s = float(lease_s) if lease_s is not None else max(1.0, 20 * self.timeout_s)
-        """An owner silent (no accepted command) this long may be replaced by a new host."""
-        self.owner: int | None = None
-        """The session whose commands are obeyed (None until a host hello)."""
-        self._owner_t = 0.0
-        self.sessions_refused = 0
-        """Host hellos refused because another live session owns the rig."""
-        self.foreign_commands = 0
-        """Commands refused because they carry another session's token."""
-        self.stopped = False
-        self._u = tuple(0.0 for _ in self.limits)
-        self._flags = 0
-        self._last_cmd_t: float | None = None
-        self._last_seq: int | None = None
-        self.commands = 0
-
-    def on_host_hello(self, session: int, now: float) -> int:
-        """A host asks for the rig with `session`; returns the session the device grants.
-
-        Granted (and the guard re-armed) when nobody owns the rig, when it is the
-        owner asking again, or when the owner has been silent for `lease_s`;
-        otherwise refused (counted) and the owner's session is returned, so the
-        asking host learns the rig is taken.
-        """
-        owner = self.owner
-        if owner is None or session == owner or now - self._owner_t > self.lease_s:
-            self.owner = session
-            self._owner_t = now
-            self.rearm()
-            return session
-        self.sessions_refused += 1
-        return owner
-
-    def rearm(self) -> None:
-        """Clear a latched stop (the host said hello again)."""
-        self.stopped = False
-        self._last_cmd_t = None
-        self._last_seq = None
-
-    def on_stop(self) -> None:
-        """A stop message arrived: outputs off, latched."""
-        self.stopped = True
-
-    def on_command(self, cmd: Command, now: float) -> bool:
-        """Apply a command received at device time `now`; False if it was rejected."""
-        if self.owner is None or cmd.session != self.owner:
-            self.foreign_commands += 1
-            return False
-        if len(cmd.u) != len(self.limits) or not all(math.isfinite(v) for v in cmd.u):
-            return False
-        if self._last_seq is not None and not seq_newer(cmd.seq, self._last_seq):
-            return False
-        self._last_seq = cmd.seq
-        self._last_cmd_t = now
-        self._owner_t = now
-        self._u = tuple(cmd.u)
-        self._flags = cmd.flags
-        self.commands += 1
-        if cmd.flags & FLAG_STOP:
-            self.stopped = True
-        return True
-
-    def outputs(self, now: float) -> tuple[tuple[float, ...], int]:
-        """The outputs to apply at device time `now` and the status bits to report."""
-        zero = tuple(0.0 for _ in self.limits)
-        if self.stopped:
-            return zero, STATUS_OUTPUTS_OFF
-        if self._last_cmd_t is None:
-            return zero, STATUS_OUTPUTS_OFF
-        if now - self._last_cmd_t > self.timeout_s:
-            return zero, STATUS_COMMAND_TIMEOUT | STATUS_OUTPUTS_OFF
-        if not self._flags & FLAG_OUTPUTS_ON:
-            return zero, STATUS_OUTPUTS_OFF
-        status = STATUS_OK
-        u = []
-        for v, lim in zip(self._u, self.limits, strict=True):
-            if v > lim:
-                v, status = lim, status | STATUS_SATURATED
-            elif v < -lim:
-                v, status = -lim, status | STATUS_SATURATED
-            u.append(v)
-        return tuple(u), status
