@@ -2,8 +2,8 @@
 
 What lives here: `Topics` (the topics of one rig, docs/mqtt.md), `make_client`,
 `connect_client`, `disconnect_client`, `publish_now`, `quick_ack`, `set_nodelay`,
-`expiry`, the retained status (`status_payload`, `decode_status`), the host
-hello (`host_hello`), `admits_anonymous`, `explain_mqtt_error`, `tls_context_for`.
+`expiry`, the retained status (`status_payload`, `decode_status`), `client_id`,
+`admits_anonymous`, `explain_mqtt_error`, `tls_context_for`.
 What does not: the host link (`drivers.mqtt_link`), the runtime's publisher
 (`drivers.mqtt_publisher`), the device side (`sim_rigs.device_mqtt`).
 """
@@ -17,7 +17,7 @@ import socket
 import ssl
 import time
 import uuid
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, fields, replace
 from typing import Any
 
 import aiomqtt
@@ -25,67 +25,40 @@ import msgpack
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
-from drivers.base import Hello, LinkClosed
+from drivers.base import LinkClosed
 from drivers.mqtt_settings import MqttAuthError, MqttSettings
-from drivers.wire import PROTOCOL_VERSION
-
-HOST_HELLO_RIG_ID = "host"
 
 
 @dataclass(frozen=True)
 class Topics:
-    """The topics of one rig (see docs/mqtt.md)."""
+    """The topics of one rig, ``<prefix>/<rig>/<leaf>`` (see docs/mqtt.md).
+
+    hello: device -> all, retained: the device's hello.
+    status: device -> all, retained: online/offline (the last will says offline).
+    sample: device -> host: samples, heartbeats, fault and stop reports.
+    command: host -> device: commands, stops, heartbeats and the host hello.
+    telemetry: runtime -> remote tools: decimated telemetry records.
+    mode: runtime -> remote tools, retained with expiry: supervisor mode.
+    trip: runtime -> remote tools: trip summaries.
+    request: remote tools -> runtime: operator requests.
+    reply: runtime -> remote tools: replies to requests.
+    """
 
     prefix: str
     rig: str
+    hello: str = field(init=False)
+    status: str = field(init=False)
+    sample: str = field(init=False)
+    command: str = field(init=False)
+    telemetry: str = field(init=False)
+    mode: str = field(init=False)
+    trip: str = field(init=False)
+    request: str = field(init=False)
+    reply: str = field(init=False)
 
-    def _t(self, leaf: str) -> str:
-        return f"{self.prefix}/{self.rig}/{leaf}"
-
-    @property
-    def hello(self) -> str:
-        """Device -> all, retained: the device's hello."""
-        return self._t("hello")
-
-    @property
-    def status(self) -> str:
-        """Device -> all, retained: online/offline (the last will says offline)."""
-        return self._t("status")
-
-    @property
-    def sample(self) -> str:
-        """Device -> host: samples, heartbeats, fault and stop reports."""
-        return self._t("sample")
-
-    @property
-    def command(self) -> str:
-        """Host -> device: commands, stops, heartbeats and the host hello."""
-        return self._t("command")
-
-    @property
-    def telemetry(self) -> str:
-        """Runtime -> remote tools: decimated telemetry records."""
-        return self._t("telemetry")
-
-    @property
-    def mode(self) -> str:
-        """Runtime -> remote tools, retained with expiry: supervisor mode."""
-        return self._t("mode")
-
-    @property
-    def trip(self) -> str:
-        """Runtime -> remote tools: trip summaries."""
-        return self._t("trip")
-
-    @property
-    def request(self) -> str:
-        """Remote tools -> runtime: operator requests."""
-        return self._t("request")
-
-    @property
-    def reply(self) -> str:
-        """Runtime -> remote tools: replies to requests."""
-        return self._t("reply")
+    def __post_init__(self) -> None:
+        for f in fields(self)[2:]:
+            object.__setattr__(self, f.name, f"{self.prefix}/{self.rig}/{f.name}")
 
 
 # --------------------------------------------------------------------------- shared helpers
@@ -199,7 +172,7 @@ async def admits_anonymous(settings: MqttSettings, timeout_s: float = 3.0) -> bo
     """
     probe = replace(settings, username=None, password=None, cert_file=None, key_file=None,
                     connect_timeout_s=timeout_s)
-    client = make_client(probe, identifier=_client_id("probe", settings.rig or "none"))
+    client = make_client(probe, identifier=client_id("probe", settings.rig or "none"))
     try:
         await asyncio.wait_for(connect_client(client, probe), timeout_s + 1.0)
     except (TimeoutError, LinkClosed, OSError):
@@ -294,10 +267,6 @@ async def disconnect_client(client: aiomqtt.Client | None) -> None:
         pass
 
 
-def host_hello(session: int = 0) -> Hello:
-    """The hello a host publishes on the command topic: announce yourself, grant `session`."""
-    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0, session)
-
-
-def _client_id(role: str, rig: str) -> str:
+def client_id(role: str, rig: str) -> str:
+    """A unique MQTT client identifier, ``corral-<role>-<rig>-<8 hex digits>``."""
     return f"corral-{role}-{rig}-{uuid.uuid4().hex[:8]}"

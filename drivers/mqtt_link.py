@@ -38,16 +38,14 @@ from drivers.base import (
     new_session,
 )
 from drivers.mqtt_client import (
-    HOST_HELLO_RIG_ID,
     Topics,
-    _client_id,
     admits_anonymous,
+    client_id,
     connect_client,
     decode_status,
     disconnect_client,
     expiry,
     explain_mqtt_error,
-    host_hello,
     make_client,
     publish_now,
     quick_ack,
@@ -68,6 +66,7 @@ from drivers.mqtt_settings import (
     parse_mqtt_url,
 )
 from drivers.wire import (
+    HOST_HELLO_RIG_ID,
     PROTOCOL_VERSION,
     DecodeError,
     Fault,
@@ -79,6 +78,7 @@ from drivers.wire import (
     WireError,
     decode_body,
     encode_body,
+    host_hello,
 )
 
 __all__ = [
@@ -313,7 +313,7 @@ class MqttLink(Link):
         self._tracker.reset()
         self._offset = None
         self.hello = None
-        client = make_client(self.settings, identifier=_client_id("host", self.settings.rig))
+        client = make_client(self.settings, identifier=client_id("host", self.settings.rig))
         await connect_client(client, self.settings)
         self._client = client
         self._samples.reset()

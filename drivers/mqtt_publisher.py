@@ -25,7 +25,7 @@ from paho.mqtt.subscribeoptions import SubscribeOptions
 from drivers.base import LinkClosed
 from drivers.mqtt_client import (
     Topics,
-    _client_id,
+    client_id,
     connect_client,
     disconnect_client,
     expiry,
@@ -183,7 +183,7 @@ class MqttPublisher:
                 msgpack.packb({"mode": "disconnected", "online": False, "t_wall": time.time()}),
                 qos=1, retain=True, properties=expiry(self._mode_expiry(), PacketTypes.WILLMESSAGE),
             )
-            client = make_client(self.settings, identifier=_client_id("runtime", self.settings.rig),
+            client = make_client(self.settings, identifier=client_id("runtime", self.settings.rig),
                                  will=will)
             try:
                 await connect_client(client, self.settings)

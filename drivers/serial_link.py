@@ -37,20 +37,21 @@ from drivers.base import (
     SessionRefused,
     new_session,
 )
+from drivers.command_guard import CommandGuard
+from drivers.sequence import SampleGate
 from drivers.wire import (
+    HOST_HELLO_RIG_ID,
     PROTOCOL_VERSION,
-    CommandGuard,
     Fault,
     FrameDecoder,
     Heartbeat,
     Message,
-    SampleGate,
     Stop,
     encode_message,
+    host_hello,
 )
 
 DEFAULT_BAUD = 115200
-HOST_HELLO_RIG_ID = "host"
 
 
 class HandshakeError(LinkClosed):
@@ -84,11 +85,6 @@ def parse_serial_url(url: str) -> tuple[str, int]:
     if baud <= 0:
         raise ValueError(f"baud rate must be positive in {url!r}")
     return path, baud
-
-
-def host_hello(session: int = 0) -> Hello:
-    """The hello a host sends to ask a device to announce itself and grant `session`."""
-    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0, session)
 
 
 

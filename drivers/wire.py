@@ -51,7 +51,8 @@ __all__ = [
     # this module's own
     "STATUS_DEVICE_BASE_BIT", "MAX_STATUS_FLAGS", "PROTOCOL_VERSION", "KIND_HELLO",
     "KIND_SAMPLE", "KIND_COMMAND", "KIND_HEARTBEAT", "KIND_FAULT", "KIND_STOP", "KIND_NAMES",
-    "MAX_CHANNELS", "Heartbeat", "Fault", "Stop", "Message", "message_array", "encode_body",
+    "MAX_CHANNELS", "Heartbeat", "Fault", "Stop", "Message", "HOST_HELLO_RIG_ID", "host_hello",
+    "message_array", "encode_body",
     "encode_message", "decode_array", "decode_body", "decode_frame", "FrameDecoder",
     # re-exported from their modules, where callers found them before the split
     "DELIMITER", "MAX_FRAME", "SEQ_MOD", "CobsError", "CrcError", "DecodeError",
@@ -119,6 +120,14 @@ class Stop:
 
 
 Message = Hello | Sample | Command | Heartbeat | Fault | Stop
+
+HOST_HELLO_RIG_ID = "host"
+"""The rig id of a host's hello (it announces no channels)."""
+
+
+def host_hello(session: int = 0) -> Hello:
+    """The hello a host sends to ask a device to announce itself and grant `session`."""
+    return Hello(PROTOCOL_VERSION, HOST_HELLO_RIG_ID, (), (), 0.0, (), (), (), 0.0, session)
 
 
 # --------------------------------------------------------------------------- messages

@@ -56,7 +56,7 @@ from drivers.wire import PROTOCOL_VERSION, STATUS_DEVICE_BASE_BIT
 from sim_rigs.device_mqtt import MqttDeviceTransport
 from sim_rigs.faults import LINK_KINDS, FaultInjector, FaultSchedule
 from sim_rigs.kernel import CompiledPlant
-from sim_rigs.transports import REALTIME_PRIORITY, PtyTransport, Transport, _try_fifo
+from sim_rigs.transports import REALTIME_PRIORITY, PtyTransport, Transport, try_fifo
 
 __all__ = ["ESTOP_BIT", "ESTOP_FLAG", "REALTIME_PRIORITY", "SWITCH_INTERVAL_S", "DeviceReport",
            "LinkFaultCounts", "PedestalDevice", "RigDevice"]
@@ -206,7 +206,7 @@ class RigDevice:
         _set_timer_slack()
         old_policy = (os.sched_getscheduler(0), os.sched_getparam(0))
         if self.realtime:
-            self.granted_realtime = _try_fifo()
+            self.granted_realtime = try_fifo()
         # The clock thread must get the GIL back at once from the transport's
         # network thread: the default 5 ms switch interval made wake-ups (and
         # the hand-over of every sample) wait whole periods.

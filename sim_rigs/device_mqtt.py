@@ -15,7 +15,6 @@ import dataclasses
 import random
 import threading
 import time
-import uuid
 from collections.abc import Callable
 from typing import Any
 
@@ -25,8 +24,8 @@ from paho.mqtt.subscribeoptions import SubscribeOptions
 from drivers.base import Command, Hello, LinkClosed, Sample
 from drivers.command_guard import CommandGuard
 from drivers.mqtt_client import (
-    HOST_HELLO_RIG_ID,
     Topics,
+    client_id,
     connect_client,
     disconnect_client,
     expiry,
@@ -36,8 +35,8 @@ from drivers.mqtt_client import (
     status_payload,
 )
 from drivers.mqtt_settings import MqttSettings
-from drivers.wire import Stop, WireError, decode_body, encode_body
-from sim_rigs.transports import Transport, _try_fifo
+from drivers.wire import HOST_HELLO_RIG_ID, Stop, WireError, decode_body, encode_body
+from sim_rigs.transports import Transport, try_fifo
 
 
 class MqttDeviceTransport(Transport):
@@ -85,7 +84,7 @@ class MqttDeviceTransport(Transport):
     # ---- asyncio side
     def _run(self) -> None:
         if self.realtime:
-            _try_fifo()
+            try_fifo()
         asyncio.set_event_loop(self._loop)
         self._loop.run_until_complete(self._main())
         self._loop.close()
@@ -102,8 +101,8 @@ class MqttDeviceTransport(Transport):
             will = aiomqtt.Will(self.topics.status,
                                 status_payload(False, self.settings.rig, "connection lost"),
                                 qos=1, retain=True)
-            client = make_client(self.settings, identifier=f"corral-device-{self.settings.rig}-"
-                                 f"{uuid.uuid4().hex[:8]}", will=will)
+            client = make_client(self.settings, identifier=client_id("device", self.settings.rig),
+                                 will=will)
             try:
                 await connect_client(client, self.settings)
             except LinkClosed as exc:

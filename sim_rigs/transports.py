@@ -2,7 +2,7 @@
 
 What lives here: `Transport` (what the device clock needs from a transport),
 `PtyTransport` (the device owns the master of a fresh pseudo-terminal, behind a
-stable symlink so a host can reopen it after a disconnect), and `_try_fifo`
+stable symlink so a host can reopen it after a disconnect), and `try_fifo`
 (SCHED_FIFO for a device thread). What does not: the MQTT transport
 (`sim_rigs.device_mqtt`), the device clock (`sim_rigs.device`).
 """
@@ -134,7 +134,7 @@ class PtyTransport(Transport):
                 os.unlink(self.link_path)
 
 
-def _try_fifo(priority: int = REALTIME_PRIORITY) -> bool:
+def try_fifo(priority: int = REALTIME_PRIORITY) -> bool:
     """SCHED_FIFO for the calling thread when the process may (root or CAP_SYS_NICE)."""
     try:
         prio = min(priority, os.sched_get_priority_max(os.SCHED_FIFO))

@@ -21,12 +21,10 @@ from drivers.base import (
     STATUS_OUTPUTS_OFF,
     STATUS_SATURATED,
     Command,
-    Hello,
     LinkStats,
     Sample,
 )
 from drivers.wire import (
-    PROTOCOL_VERSION,
     SEQ_MOD,
     CobsError,
     CommandGuard,
@@ -50,17 +48,18 @@ from drivers.wire import (
 ROOT = pathlib.Path(__file__).resolve().parent.parent
 VECTORS = ROOT / "drivers" / "test_vectors.json"
 
-HELLO = Hello(
-    protocol=PROTOCOL_VERSION,
-    rig_id="pan-tilt-1",
-    channels=("az", "el"),
-    units=("rad", "rad"),
-    sample_rate_hz=1000.0,
-    output_names=("v_az", "v_el"),
-    output_limits=(12.0, 12.0),
-    output_units=("V", "V"),
-    command_timeout_s=0.05,
-)
+
+def _load_gen():
+    spec = importlib.util.spec_from_file_location(
+        "gen_vectors", ROOT / "drivers" / "device_c" / "gen_vectors.py"
+    )
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+HELLO = _load_gen().HELLO
+"""The two-axis hello of the shared vectors (drivers/device_c/gen_vectors.py)."""
 
 # --------------------------------------------------------------------------- COBS
 
@@ -209,15 +208,6 @@ def test_corrupted_crc_raises_crc_error():
 
 
 # --------------------------------------------------------------------------- shared vectors
-
-
-def _load_gen():
-    spec = importlib.util.spec_from_file_location(
-        "gen_vectors", ROOT / "drivers" / "device_c" / "gen_vectors.py"
-    )
-    mod = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(mod)
-    return mod
 
 
 def test_shared_vectors_file_is_what_the_codec_produces():
