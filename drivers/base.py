@@ -100,7 +100,7 @@ class LinkStats:
     reconnects: int = 0
     rejected: int = 0
     """Samples refused as implausible against the device's hello (channel count, time,
-    sequence jump; `drivers.wire.SampleGate`)."""
+    sequence jump; `drivers.sequence.SampleGate`)."""
     resyncs: int = 0
     """Times the sample stream was resynchronised after a plausible restart of numbering."""
     hellos_midrun: int = 0

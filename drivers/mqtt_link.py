@@ -5,13 +5,12 @@ line (`drivers.wire.encode_body` / `decode_body`) without COBS framing and
 without the CRC (MQTT runs over TCP, which already checks its bytes).
 docs/mqtt.md lists the topics and their rules.
 
-What lives here: `MqttSettings` (the ``[link.mqtt]`` table, password taken
-from an environment variable), `parse_mqtt_url`, `Topics`, `MqttLink` (the
-host side of one rig, a `drivers.base.Link`), helpers the device side shares
-(`make_client`, `status_payload`, `decode_status`, `expiry`), and
-`MqttPublisher` (the runtime's telemetry, mode and trip publisher and its
-filtered inbox of remote operator requests). What does not: the simulated
-device (`sim_rigs.device`), any control logic.
+What lives here: `MqttLink`, the host side of one rig (a `drivers.base.Link`).
+It re-exports, where callers have always found them, the ``[link.mqtt]``
+options (`drivers.mqtt_settings`), the client plumbing both ends share
+(`drivers.mqtt_client`: `Topics`, `make_client`, `status_payload`, ...) and the
+runtime's publisher (`drivers.mqtt_publisher.MqttPublisher`). What does not:
+the simulated device (`sim_rigs.device_mqtt`), any control logic.
 """
 
 from __future__ import annotations

@@ -5,11 +5,13 @@ is one msgpack *positional array* ``[kind, seq, t, ...fields]`` and the CRC is
 CRC-16/CCITT-FALSE over the body. docs/wire-protocol.md is the normative spec;
 this module is the reference implementation of it in Python.
 
-What lives here: COBS (Cheshire and Baker, 1999) written out by hand, the CRC,
-message encoding and decoding to and from the `drivers.base` records, an
-incremental `FrameDecoder` that never raises on garbage, a `SeqTracker` for
-gaps and duplicates, and `CommandGuard`, the device-side command-timeout logic
-a simulated device can reuse. What does not: any transport (see
+What lives here: the message kinds and layouts, encoding and decoding to and
+from the `drivers.base` records (a hello checked for usability), the host hello,
+and an incremental `FrameDecoder` that never raises on garbage. It re-exports,
+where callers have always found them, the framing layer (`drivers.framing`:
+COBS, the CRC, the error family), the sequence checks (`drivers.sequence`:
+`SeqTracker`, `SampleGate`) and the device's fail-safe
+(`drivers.command_guard.CommandGuard`). What does not: any transport (see
 `drivers.serial_link`), any control logic.
 """
 

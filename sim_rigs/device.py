@@ -4,7 +4,7 @@
 passed in: this package never imports the runtime) on its own real-time clock:
 a thread that sleeps to absolute deadlines ``t0 + k * period``. Each period
 it applies the held command (zero-order hold, through the device-side
-`drivers.wire.CommandGuard`, so with no valid command for the hello's
+`drivers.command_guard.CommandGuard`, so with no valid command for the hello's
 ``command_timeout_s`` the outputs go to zero and the sample carries
 ``STATUS_COMMAND_TIMEOUT``), steps the physics, reads the sensors and sends
 one sample (angles and rates as ``y``). The fault schedule of
@@ -16,12 +16,14 @@ header, since TCP never delivers flipped bits; ``drop``, ``duplicate``,
 clock); ``disconnect`` closes the pseudo-terminal, or drops the MQTT
 connection with the offline status published, until the fault ends.
 
-Transports: `PtyTransport` (the device owns the master of a fresh
-pseudo-terminal, behind a stable symlink so a host can reopen it after a
-disconnect) and `MqttDeviceTransport` (device side of the rig topics, with a
-last will marking it offline). What does not live here: the wire codec
-(`drivers.wire`), the host links (`drivers.serial_link`, `drivers.mqtt_link`),
-the command line (`runtime.cli.cmd_rig`).
+What lives here: `RigDevice` (the clock and the stepping) and its report.
+The transports live beside it: `sim_rigs.transports.PtyTransport` (the
+device owns the master of a fresh pseudo-terminal, behind a stable symlink so
+a host can reopen it after a disconnect) and `sim_rigs.device_mqtt.MqttDeviceTransport`
+(device side of the rig topics, with a last will marking it offline). What
+does not live here: the wire codec (`drivers.wire`), the host links
+(`drivers.serial_link`, `drivers.mqtt_link`), the command line
+(`runtime.cli.cmd_rig`).
 """
 
 
