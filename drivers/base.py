@@ -3,8 +3,9 @@
 A link is an async context manager: open it, read `Sample`s from it, send
 `Command`s to it, read its `LinkStats`. What lives here: the message records,
 the abstract `Link`, and the host-side pieces every concrete link shares:
-`SampleInbox` (the bounded queue `receive()` waits on) and `LatencyRing`
-(sample receipt times, for sample-to-command latency). What does not:
+`SampleInbox` (the bounded queue `receive()` waits on), `LatencyRing`
+(sample receipt times, for sample-to-command latency) and `await_hello` (the
+session handshake). What does not:
 framing and codecs (`drivers.wire`), concrete transports
 (`drivers.serial_link`, `drivers.mqtt_link`) and the simulated rig
 (`sim_rigs`), which implements this interface in-process.
@@ -17,7 +18,7 @@ from __future__ import annotations
 import abc
 import asyncio
 import collections
-from collections.abc import Iterator
+from collections.abc import Awaitable, Callable, Iterator
 from dataclasses import dataclass, field
 from types import TracebackType
 
@@ -141,6 +142,36 @@ def new_session() -> int:
     import secrets
 
     return secrets.randbelow(0xFFFFFFFF) + 1
+
+
+async def await_hello(
+    waiter: asyncio.Future[Hello],
+    send_hello: Callable[[], Awaitable[None]],
+    timeout_s: float,
+    *,
+    taken: Callable[[], bool],
+    refused: str,
+    silent: Callable[[], LinkClosed],
+) -> Hello:
+    """The host's side of the session handshake (docs/wire-protocol.md section 7).
+
+    Sends the host hello (`send_hello`) every 0.25 s until the device's answer
+    resolves `waiter`, and returns that hello. When `timeout_s` is up, raises
+    `SessionRefused` (message `refused`) if the device answered naming another
+    session (`taken()`), else `silent()`.
+    """
+    loop = asyncio.get_running_loop()
+    deadline = loop.time() + timeout_s
+    while True:
+        await send_hello()
+        left = deadline - loop.time()
+        if left <= 0 and taken():
+            raise SessionRefused(refused)
+        if left <= 0:
+            raise silent()
+        done, _ = await asyncio.wait({waiter}, timeout=min(0.25, left))
+        if done:
+            return waiter.result()
 
 
 class SampleInbox:

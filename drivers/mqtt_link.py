@@ -33,7 +33,7 @@ from drivers.base import (
     LinkStats,
     Sample,
     SampleInbox,
-    SessionRefused,
+    await_hello,
     new_session,
 )
 from drivers.mqtt_client import (
@@ -334,41 +334,35 @@ class MqttLink(Link):
             self._hello_waiter = None
 
     async def _handshake(self) -> None:
-        loop = asyncio.get_running_loop()
-        deadline = loop.time() + self.hello_timeout_s
         assert self._hello_waiter is not None
         if not self.session:
             # One token per link object: a reconnect asks again as the same owner, so a
             # device that still remembers it grants it at once.
             self.session = new_session()
         self._taken_by = 0
-        while True:
-            await self._publish_msg(host_hello(self.session))
-            left = deadline - loop.time()
-            if left <= 0 and self._taken_by:
-                raise SessionRefused(
-                    f"rig {self.settings.rig!r} via {self.url} is driven by another host "
-                    "session: another runtime owns this rig; stop it first (the device frees "
-                    "the rig once its commands have stopped for its lease)")
-            if left <= 0:
-                note = ""
-                if self.device_online is False:
-                    info = self.device_status_info or {}
-                    note = f"; its retained status says offline ({info.get('reason', '')})"
-                elif self.retained_hello is None:
-                    note = "; the broker holds no hello for it (never served here?)"
-                raise LinkClosed(
-                    f"no live hello from rig {self.settings.rig!r} via {self.url} within "
-                    f"{self.hello_timeout_s:g} s{note}"
-                )
-            done, _ = await asyncio.wait({self._hello_waiter}, timeout=min(0.25, left))
-            if done:
-                hello = self._hello_waiter.result()
-                break
+        hello = await await_hello(
+            self._hello_waiter, lambda: self._publish_msg(host_hello(self.session)),
+            self.hello_timeout_s, taken=lambda: bool(self._taken_by),
+            refused=(f"rig {self.settings.rig!r} via {self.url} is driven by another host "
+                     "session: another runtime owns this rig; stop it first (the device frees "
+                     "the rig once its commands have stopped for its lease)"),
+            silent=self._no_hello)
         self._samples.clear()
         if hello.protocol != PROTOCOL_VERSION:
             raise LinkClosed(f"rig {hello.rig_id!r} speaks wire protocol v{hello.protocol}, "
                              f"this host speaks v{PROTOCOL_VERSION}")
+
+    def _no_hello(self) -> LinkClosed:
+        note = ""
+        if self.device_online is False:
+            info = self.device_status_info or {}
+            note = f"; its retained status says offline ({info.get('reason', '')})"
+        elif self.retained_hello is None:
+            note = "; the broker holds no hello for it (never served here?)"
+        return LinkClosed(
+            f"no live hello from rig {self.settings.rig!r} via {self.url} within "
+            f"{self.hello_timeout_s:g} s{note}"
+        )
 
     async def receive(self) -> Sample:
         """Next sample (oldest first; at most `queue_size` kept, older ones dropped)."""

@@ -34,7 +34,7 @@ from drivers.base import (
     LinkStats,
     Sample,
     SampleInbox,
-    SessionRefused,
+    await_hello,
     new_session,
 )
 from drivers.command_guard import CommandGuard
@@ -262,33 +262,27 @@ class SerialLink(Link):
     async def _handshake(self) -> None:
         loop = asyncio.get_running_loop()
         self._hello_waiter = loop.create_future()
-        deadline = loop.time() + self.hello_timeout_s
         if not self.session:
             # One token per link object: a reconnect asks again as the same owner, so a
             # device that still remembers it grants it at once.
             self.session = new_session()
         self._taken_by = 0
+
+        async def send_hello() -> None:
+            self._write(encode_message(host_hello(self.session), seq=self._next_seq(), t=0.0))
+
         try:
-            while True:
-                self._write(encode_message(host_hello(self.session), seq=self._next_seq(),
-                                           t=0.0))
-                left = deadline - loop.time()
-                if left <= 0 and self._taken_by:
-                    raise SessionRefused(
-                        f"device on {self.url} is driven by another host session: another "
-                        "runtime owns this rig; stop it first (the device frees the rig once "
-                        "its commands have stopped for its lease)"
-                    )
-                if left <= 0:
-                    raise HandshakeError(
-                        f"no hello from {self.url} within {self.hello_timeout_s:g} s: is the "
-                        f"device powered, on this port, and speaking corral wire protocol "
-                        f"v{PROTOCOL_VERSION}?"
-                    )
-                done, _ = await asyncio.wait({self._hello_waiter}, timeout=min(0.25, left))
-                if done:
-                    hello = self._hello_waiter.result()
-                    break
+            hello = await await_hello(
+                self._hello_waiter, send_hello, self.hello_timeout_s,
+                taken=lambda: bool(self._taken_by),
+                refused=(f"device on {self.url} is driven by another host session: another "
+                         "runtime owns this rig; stop it first (the device frees the rig once "
+                         "its commands have stopped for its lease)"),
+                silent=lambda: HandshakeError(
+                    f"no hello from {self.url} within {self.hello_timeout_s:g} s: is the "
+                    f"device powered, on this port, and speaking corral wire protocol "
+                    f"v{PROTOCOL_VERSION}?"),
+            )
         finally:
             self._hello_waiter = None
         # Anything before the hello belongs to an earlier session, receipt times included
