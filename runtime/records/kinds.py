@@ -9,7 +9,7 @@ Lives here, one class per record kind (docs/telemetry.md names the wire fields):
 - `Event`: an operator or mode event (trip log, socket, MQTT).
 - `Reply`: the answer to an operator request.
 - `RunEnd`: the end record, the summary of how a run ended (last record of both logs).
-- `TickRecord`: one run-log row (positional on disk, see `TickRecord.from_row`).
+- (in `runtime.records.tickrow`) `TickRecord`: one run-log row.
 
 Every map record has `to_wire()` (the plain dict msgpack/JSON get, fields in the order
 they were always written) and `from_wire(d)` (a dict read from a file or a socket):
@@ -30,7 +30,6 @@ the readers (`runtime.records.logs`), the log headers (plain maps: the config is
 
 from __future__ import annotations
 
-import math
 import types
 import typing
 from dataclasses import MISSING, dataclass, field, fields
@@ -514,98 +513,9 @@ def as_record(value: R | dict[str, Any], cls: type[R]) -> R:
                       f"got {type(value).__name__}")
 
 
-# ---------------------------------------------------------------------------
-# Run-log rows
-# ---------------------------------------------------------------------------
 
-#: The run log's fixed fields, in row order; the ``sig_<rule>`` columns follow.
-TICK_FIELDS: tuple[str, ...] = (
-    "t", "tick", "mode", "latched", "c", "x", "xr", "e", "s", "eps", "ratio", "phi_d",
-    "eff_rate", "step_gain", "u_cmd", "u", "w_norm", "sample_age_ms", "lateness_us",
-    "outputs_on")
-
-
-@dataclass(slots=True, kw_only=True)
-class TickRecord:
-    """One tick as the run log holds it: a positional row after the header's ``fields``
-    and ``widths`` (1 per scalar, n per vector), written by `RunLogWriter` at the loop rate.
-
-    Values stay as recorded (the row is floats: `tick` and `mode` too, see `tick_index`
-    and `mode_code`). Units: `t` s; `mode` the supervisor mode's code (index of `MODES`); `latched`,
-    `outputs_on` 0/1; `c`, `x`, `xr`, `e` the state/output units; `s` ‖e‖_P; `ratio`
-    ‖e‖_P/eps; `u_cmd`, `u` the input units; `w_norm` ‖W‖_F; `sample_age_ms` ms;
-    `lateness_us` µs; `signals` each rule's judged signal by rule id (its ``sig_<rule>``
-    column, `runtime.records.runinfo.RULE_SIGNAL_UNITS`). A field a row lacks is NaN
-    (empty for vectors); columns this version does not know go to `extra`.
-    """
-
-    t: float = math.nan
-    tick: float = -1
-    mode: float = -1
-    latched: float = math.nan
-    c: list[float] = field(default_factory=list)
-    x: list[float] = field(default_factory=list)
-    xr: list[float] = field(default_factory=list)
-    e: list[float] = field(default_factory=list)
-    s: float = math.nan
-    eps: float = math.nan
-    ratio: float = math.nan
-    phi_d: float = math.nan
-    eff_rate: float = math.nan
-    step_gain: float = math.nan
-    u_cmd: list[float] = field(default_factory=list)
-    u: list[float] = field(default_factory=list)
-    w_norm: float = math.nan
-    sample_age_ms: float = math.nan
-    lateness_us: float = math.nan
-    outputs_on: float = math.nan
-    signals: dict[str, float] = field(default_factory=dict)
-    extra: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def tick_index(self) -> int:
-        """The tick number as an integer."""
-        return int(self.tick)
-
-    @property
-    def mode_code(self) -> int:
-        """The supervisor mode's code (index of `runtime.records.logwriter.MODES`)."""
-        return int(self.mode)
-
-    @classmethod
-    def from_row(cls, fields_: list[str], widths: list[int], row: list[Any]) -> TickRecord:
-        """A positional row under its header's fields and widths; RecordError when the
-        row's length does not match them."""
-        total = sum(widths)
-        if len(row) != total:
-            raise RecordError(f"run log row: {len(row)} values, the header's widths "
-                              f"say {total}")
-        rec = cls()
-        k = 0
-        for name, w in zip(fields_, widths, strict=True):
-            value: Any = row[k] if w == 1 else list(row[k:k + w])
-            k += w
-            if name.startswith("sig_"):
-                rec.signals[name[4:]] = value
-            elif name in TICK_FIELDS:
-                setattr(rec, name, value)
-            else:
-                rec.extra[name] = value
-        return rec
-
-    def to_row(self, fields_: list[str], widths: list[int]) -> list[Any]:
-        """The positional row under the header's fields and widths (the inverse of
-        `from_row`)."""
-        row: list[Any] = []
-        for name, w in zip(fields_, widths, strict=True):
-            if name.startswith("sig_"):
-                value: Any = self.signals.get(name[4:], math.nan)
-            elif name in TICK_FIELDS:
-                value = getattr(self, name)
-            else:
-                value = self.extra.get(name, math.nan if w == 1 else [math.nan] * w)
-            if w == 1:
-                row.append(value)
-            else:
-                row.extend(value)
-        return row
+__all__ = [
+    "as_record", "Event", "FirstOut", "Hello", "LIVE_RECORDS", "LOG_RECORDS", "LoopFigures",
+    "parse_live_record", "parse_log_record", "PostRecord", "RecordError", "Reply", "RunEnd",
+    "Telemetry", "TripRecord", "TripSummary", "UNTAGGED", "WireRecord",
+]
