@@ -30,6 +30,7 @@ the readers (`runtime.records.logs`), the log headers (plain maps: the config is
 
 from __future__ import annotations
 
+import math
 import types
 import typing
 from dataclasses import MISSING, dataclass, field, fields
@@ -60,15 +61,16 @@ def _type_name(tp: Any) -> str:
     return str(tp)
 
 
-def _check(tp: Any, value: Any, where: str) -> Any:
-    """`value` if it is of type `tp` (nested records parsed), else RecordError."""
+def _check(tp: Any, value: Any, where: str, partial: bool = False) -> Any:
+    """`value` if it is of type `tp` (nested records parsed, partially with `partial`),
+    else RecordError."""
     if tp is Any:
         return value
     origin = typing.get_origin(tp)
     if origin in (Union, types.UnionType):
         for arg in typing.get_args(tp):
             try:
-                return _check(arg, value, where)
+                return _check(arg, value, where, partial)
             except RecordError:
                 continue
         raise RecordError(f"{where} must be {_type_name(tp)}, got {value!r:.60}")
@@ -78,20 +80,20 @@ def _check(tp: Any, value: Any, where: str) -> Any:
         (arg,) = typing.get_args(tp)
         if arg is Any:
             return list(value)
-        return [_check(arg, v, f"{where}[{i}]") for i, v in enumerate(value)]
+        return [_check(arg, v, f"{where}[{i}]", partial) for i, v in enumerate(value)]
     if origin is dict:
         if not isinstance(value, dict):
             raise RecordError(f"{where} must be a map, got {value!r:.60}")
         _, varg = typing.get_args(tp)
         if varg is Any:
             return value
-        return {k: _check(varg, v, f"{where}.{k}") for k, v in value.items()}
+        return {k: _check(varg, v, f"{where}.{k}", partial) for k, v in value.items()}
     if isinstance(tp, type) and issubclass(tp, WireRecord):
         if isinstance(value, tp):
             return value
         if not isinstance(value, dict):
             raise RecordError(f"{where} must be a map, got {value!r:.60}")
-        return tp.from_wire(value, where=where)
+        return tp.from_wire(value, where=where, partial=partial)
     ok = {
         type(None): value is None,
         bool: isinstance(value, bool),
@@ -105,6 +107,21 @@ def _check(tp: Any, value: Any, where: str) -> Any:
     if not ok:
         raise RecordError(f"{where} must be {_type_name(tp)}, got {value!r:.60}")
     return value
+
+
+def _unknown(tp: Any) -> Any:
+    """The value standing for a missing required field in a partial record."""
+    origin = typing.get_origin(tp)
+    if origin in (Union, types.UnionType):
+        args = typing.get_args(tp)
+        return None if type(None) in args else _unknown(args[0])
+    if origin is list:
+        return []
+    if origin is dict:
+        return {}
+    if isinstance(tp, type) and issubclass(tp, WireRecord):
+        return tp.from_partial({})
+    return {float: math.nan, int: -1, str: "", bool: False}.get(tp)
 
 
 def _wire(value: Any, tag: bool) -> Any:
@@ -151,7 +168,16 @@ class WireRecord:
         return spec
 
     @classmethod
-    def from_wire(cls: type[R], d: dict[str, Any], where: str | None = None) -> R:
+    def from_partial(cls: type[R], d: dict[str, Any], where: str | None = None) -> R:
+        """Parse a map that may lack required fields (a display of what a peer sent: an
+        older corral, a hand-made test map): each missing one gets its type's "unknown"
+        value (NaN, -1, "", false, empty, null) and is left out by `to_wire`. A present
+        field of the wrong type is still a RecordError."""
+        return cls.from_wire(d, where, partial=True)
+
+    @classmethod
+    def from_wire(cls: type[R], d: dict[str, Any], where: str | None = None,
+                  partial: bool = False) -> R:
         """Parse a wire map; RecordError (naming the field) when it is malformed."""
         label = where or cls.LABEL
         if not isinstance(d, dict):
@@ -163,12 +189,14 @@ class WireRecord:
         missing: list[str] = []
         for name, tp, required, _ in cls._schema():
             if name not in d:
-                if required:
+                if required and not partial:
                     raise RecordError(f"{label}: field {name!r} is missing "
                                       f"(it must be {_type_name(tp)})")
+                if required:
+                    values[name] = _unknown(tp)
                 missing.append(name)
                 continue
-            values[name] = _check(tp, d[name], f"{label}: field {name!r}")
+            values[name] = _check(tp, d[name], f"{label}: field {name!r}", partial)
         known = cls._names()
         extra = {k: v for k, v in d.items() if k not in known and k != "type"}
         return cls(**values, extra=extra, missing=tuple(missing))
