@@ -61,12 +61,40 @@ def _type_name(tp: Any) -> str:
     return str(tp)
 
 
+_SCALARS: dict[Any, frozenset[type]] = {
+    float: frozenset({float, int}), int: frozenset({int}), str: frozenset({str}),
+    bool: frozenset({bool}), type(None): frozenset({type(None)})}
+_LEAVES: dict[Any, frozenset[type] | None] = {}
+
+
+def _leaf(tp: Any) -> frozenset[type] | None:
+    """The exact Python types a scalar type (or a union of scalars) accepts; None for
+    other types. The fast path: ``type(v) in ...`` (bool is not an int here)."""
+    if tp in _LEAVES:
+        return _LEAVES[tp]
+    out: frozenset[type] | None = _SCALARS.get(tp)
+    if out is None and typing.get_origin(tp) in (Union, types.UnionType):
+        args = typing.get_args(tp)
+        if all(a in _SCALARS for a in args):
+            out = frozenset().union(*(_SCALARS[a] for a in args))
+    _LEAVES[tp] = out
+    return out
+
+
 def _check(tp: Any, value: Any, where: str, partial: bool = False) -> Any:
     """`value` if it is of type `tp` (nested records parsed, partially with `partial`),
-    else RecordError."""
+    else RecordError. Plain scalars and lists of them take a fast path (this runs for
+    every telemetry record on the event loop, which shares the GIL with the tick)."""
     if tp is Any:
         return value
+    leaf = _leaf(tp)
+    if leaf is not None and type(value) in leaf:
+        return value
     origin = typing.get_origin(tp)
+    if origin is list and isinstance(value, list):
+        item = _leaf(typing.get_args(tp)[0])
+        if item is not None and all(type(v) in item for v in value):
+            return list(value)
     if origin in (Union, types.UnionType):
         for arg in typing.get_args(tp):
             try:
@@ -124,6 +152,13 @@ def _unknown(tp: Any) -> Any:
     return {float: math.nan, int: -1, str: "", bool: False}.get(tp)
 
 
+def _nests(tp: Any) -> bool:
+    """Whether a field type holds records (then `to_wire` converts it)."""
+    if isinstance(tp, type) and issubclass(tp, WireRecord):
+        return True
+    return any(_nests(a) for a in typing.get_args(tp))
+
+
 def _wire(value: Any, tag: bool) -> Any:
     """A field value as the wire holds it (nested records as maps, ``type`` when `tag`)."""
     if isinstance(value, WireRecord):
@@ -152,9 +187,11 @@ class WireRecord:
     """Optional fields the record was read without; left out again by `to_wire`."""
 
     @classmethod
-    def _schema(cls) -> list[tuple[str, Any, bool, bool]]:
-        """(name, type, required, tag nested) of each wire field, in wire order (cached)."""
-        cache: dict[type, list[tuple[str, Any, bool, bool]]] = _SCHEMAS
+    def _schema(cls) -> list[tuple[str, Any, bool, bool | None]]:
+        """(name, type, required, tag) of each wire field, in wire order (cached); tag is
+        None for a field holding no record (written as it is), else whether its nested
+        records carry their ``type``."""
+        cache: dict[type, list[tuple[str, Any, bool, bool | None]]] = _SCHEMAS
         spec = cache.get(cls)
         if spec is None:
             hints = typing.get_type_hints(cls)
@@ -163,7 +200,8 @@ class WireRecord:
                 if f.name in ("extra", "missing"):
                     continue
                 required = f.default is MISSING and f.default_factory is MISSING
-                spec.append((f.name, hints[f.name], required, f.metadata.get("tag", True)))
+                tag = f.metadata.get("tag", True) if _nests(hints[f.name]) else None
+                spec.append((f.name, hints[f.name], required, tag))
             cache[cls] = spec
         return spec
 
@@ -217,7 +255,8 @@ class WireRecord:
         skip = self.missing
         for name, _, _, nested_tag in self._schema():
             if name not in skip:
-                out[name] = _wire(getattr(self, name), nested_tag)
+                value = getattr(self, name)
+                out[name] = value if nested_tag is None else _wire(value, nested_tag)
         out.update(self.extra)
         return out
 
@@ -226,7 +265,7 @@ class WireRecord:
         return type(self).from_wire(self.to_wire())
 
 
-_SCHEMAS: dict[type, list[tuple[str, Any, bool, bool]]] = {}
+_SCHEMAS: dict[type, list[tuple[str, Any, bool, bool | None]]] = {}
 _NAMES: dict[type, frozenset[str]] = {}
 
 
