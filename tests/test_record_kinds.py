@@ -225,3 +225,15 @@ def test_a_constructed_record_is_the_tick_s_map():
     assert again == rec and again.validate() == rec
     assert RunEnd(how="completed").to_wire()["type"] == "end"
     assert math.isnan(TickRecord().t)
+
+
+def test_the_panels_show_the_same_from_the_typed_record_and_from_its_map():
+    from runtime.dashboard import panels
+
+    hello_map, tel_map = live_maps()
+    hello, tel = Hello.from_wire(hello_map), Telemetry.from_wire(tel_map)
+    for fn in (panels.tracking_rows, panels.input_rows, panels.margin_view):
+        assert fn(hello, tel) == fn(hello_map, tel_map)
+    assert panels.supervisor_view(tel) == panels.supervisor_view(tel_map)
+    assert panels.supervisor_view(tel).trip_text.startswith("first out: jump")
+    assert panels.health_rows(tel)[3] == ("ticks", "1000")
