@@ -91,7 +91,7 @@ def test_values_shown_match_the_telemetry_they_came_from():
             assert health["lateness p50 / p99"] == "21 / 88 us"
             assert health["CRC errors"] == "3"
             margin = str(app.query_one(MarginPanel).render())
-            assert f"{last['ratio']:.3f}" in margin
+            assert f"{last.ratio:.3f}" in margin
             assert "WARNING" not in margin  # 0.795 is below the 0.8 warning level
     asyncio.run(run())
 
@@ -167,7 +167,7 @@ def test_pause_freezes_the_traces_but_not_the_values():
             for rec in recs[50:]:
                 app.ingest(rec)
             assert list(app.ratio_trace) == frozen
-            assert app.latest is recs[-1]
+            assert app.latest.to_wire() == recs[-1]  # the typed record of that map
             await pilot.press("p")
             app.ingest(recs[-1])
             assert len(app.ratio_trace) == len(frozen) + 1
@@ -183,7 +183,7 @@ def test_recorded_file_replays(tmp_path):
         async with app.run_test(size=(140, 48)) as pilot:
             await settle(app, pilot)
             assert app.records_seen == 101
-            assert app.hello["rig"] == "bench-a"
+            assert app.hello.rig == "bench-a"
     asyncio.run(run())
 
 

@@ -66,7 +66,7 @@ async def wait_for(pilot, predicate, timeout=90.0):
 
 def last_reply(app, op):
     for r in reversed(app.replies):
-        if r.get("op") == op:
+        if r.op == op:
             return r
     return None
 
@@ -78,10 +78,10 @@ def test_keys_reach_the_supervisor_through_a_live_runtime(live_run):
             app = Dashboard(source)
             async with app.run_test(size=(140, 48)) as pilot:
                 # The runtime arms itself; wait for the spike trip to latch.
-                assert await wait_for(pilot, lambda: app.latest.get("latched")), app.latest
+                assert await wait_for(pilot, lambda: app.latest.latched), app.latest
                 tel = app.latest
-                assert tel["trip"]["rule"] == "jump"
-                assert tel["mode"] in ("fallback", "stopped")
+                assert tel.trip is not None and tel.trip.rule == "jump"
+                assert tel.mode in ("fallback", "stopped")
                 assert await wait_for(pilot, lambda: not app._dirty)
                 sup = str(app.query_one(SupervisorPanel).render())
                 assert "first out: jump" in sup and "LATCHED" in sup
@@ -92,30 +92,30 @@ def test_keys_reach_the_supervisor_through_a_live_runtime(live_run):
                 shown = app.latest
                 table = app.query_one("#tracking", DataTable)
                 az_row = [getattr(c, "plain", str(c)) for c in table.get_row_at(0)]
-                assert az_row[0] == "az [rad]" and az_row[3] == f"{shown['x'][0]:.4g}"
+                assert az_row[0] == "az [rad]" and az_row[3] == f"{shown.x[0]:.4g}"
 
                 # Arm while latched: the confirmation, then a refusal from the supervisor.
                 await pilot.press("a")
                 assert await wait_for(pilot, lambda: isinstance(app.screen, ConfirmArm))
                 await pilot.press("y")
                 assert await wait_for(pilot, lambda: last_reply(app, "arm") is not None)
-                assert last_reply(app, "arm")["ok"] is False
+                assert last_reply(app, "arm").ok is False
                 assert "REFUSED" in app.status
 
                 # Reset clears the latch but never restarts: the adaptive law stays off.
                 await pilot.press("r")
                 assert await wait_for(pilot, lambda: last_reply(app, "reset") is not None)
-                assert last_reply(app, "reset")["ok"] is True
-                assert await wait_for(pilot, lambda: not app.latest.get("latched"))
-                t_reset = app.latest["t"]
-                assert await wait_for(pilot, lambda: app.latest["t"] > t_reset + 1.0)
-                assert app.latest["mode"] != "engaged"
+                assert last_reply(app, "reset").ok is True
+                assert await wait_for(pilot, lambda: not app.latest.latched)
+                t_reset = app.latest.t
+                assert await wait_for(pilot, lambda: app.latest.t > t_reset + 1.0)
+                assert app.latest.mode != "engaged"
 
                 # Stop is one key and always accepted.
                 await pilot.press("s")
                 assert await wait_for(pilot, lambda: last_reply(app, "stop") is not None)
-                assert last_reply(app, "stop")["ok"] is True
-                assert await wait_for(pilot, lambda: app.latest.get("mode") == "stopped")
+                assert last_reply(app, "stop").ok is True
+                assert await wait_for(pilot, lambda: app.latest.mode == "stopped")
     asyncio.run(run())
 
 
@@ -143,14 +143,14 @@ def test_dashboard_follows_a_rig_over_mqtt(tmp_path, mosquitto):  # noqa: F811
             async with MqttSource(mosquitto.host, mosquitto.port, "pedestal-sim") as source:
                 app = Dashboard(source)
                 async with app.run_test(size=(140, 48)) as pilot:
-                    assert await wait_for(pilot, lambda: app.latest.get("mode") == "engaged",
+                    assert await wait_for(pilot, lambda: app.latest.mode == "engaged",
                                           timeout=180), app.latest
-                    assert app.hello.get("rig") == "pedestal-sim"
+                    assert app.hello.rig == "pedestal-sim"
                     assert "pedestal-sim" in app.title
                     await pilot.press("s")
                     assert await wait_for(pilot, lambda: last_reply(app, "stop") is not None)
-                    assert last_reply(app, "stop")["ok"] is True
-                    assert await wait_for(pilot, lambda: app.latest.get("mode") == "stopped")
+                    assert last_reply(app, "stop").ok is True
+                    assert await wait_for(pilot, lambda: app.latest.mode == "stopped")
         asyncio.run(run())
     finally:
         stop_run(proc)

@@ -31,6 +31,8 @@ from textual.widgets import Button, DataTable, Footer, Header, Static
 
 from runtime.dashboard import panels
 from runtime.dashboard.sources import TelemetrySource
+from runtime.dashboard.typed import as_live
+from runtime.records.kinds import Hello, Reply, Telemetry, TripSummary, WireRecord
 
 HARDWARE_CAUTIONS = (
     "This rig is REAL HARDWARE. Before arming:\n"
@@ -60,6 +62,13 @@ AXIS_HISTORY = 400
 COMPACT_WIDTH, COMPACT_HEIGHT = 120, 40
 """Below either, the dashboard shows only the glance strip, the margin chart and events."""
 
+
+
+def _finite_or(value: float | None, default: float) -> float:
+    """`value` as a float; `default` when it is missing (None, or NaN in a partial record)."""
+    if value is None or value != value:
+        return default
+    return float(value)
 
 class _Panel(Static):
     """A panel whose drawing depends on its size: a new size asks for a redraw."""
@@ -113,9 +122,9 @@ class AxisPanel(_Panel):
     AxisPanel { border: round $accent; padding: 0 1; height: 1fr; }
     """
 
-    def show(self, hello: dict[str, Any], history: list[dict[str, Any]]) -> None:
+    def show(self, hello: Hello, history: list[Telemetry]) -> None:
         """Redraw from the hello and the recent telemetry records."""
-        tracked = len(hello.get("tracked") or []) or 1
+        tracked = len(hello.tracked) or 1
         height = max(2, self.content_size.height // tracked - 1)
         text = Text(no_wrap=True, overflow="crop")
         for title, rows in panels.axis_traces(hello, history, max(10, self.content_size.width),
@@ -307,14 +316,16 @@ class Dashboard(App[None]):
         self.source = source
         self.progress = Path(progress) if progress else None
         self.wait_s = wait_s
-        self.hello: dict[str, Any] = {}
-        self.latest: dict[str, Any] = {}
+        self.hello: Hello = Hello.from_partial({})
+        """The rig's hello (`runtime.records.kinds.Hello`; empty until it comes)."""
+        self.latest: Telemetry = Telemetry.from_partial({})
+        """The newest telemetry record (empty until the first comes)."""
         self.records_seen = 0
-        self.replies: list[dict[str, Any]] = []
+        self.replies: list[Reply] = []
         self.ratio_times: deque[float] = deque(maxlen=HISTORY)
         self.ratio_trace: deque[float] = deque(maxlen=HISTORY)
         self.rate_trace: deque[float] = deque(maxlen=HISTORY)
-        self.history: deque[dict[str, Any]] = deque(maxlen=AXIS_HISTORY)
+        self.history: deque[Telemetry] = deque(maxlen=AXIS_HISTORY)
         self.events: list[str] = []
         """Event lines (oldest first), at most 500."""
         self.acknowledged = 0
@@ -416,34 +427,37 @@ class Dashboard(App[None]):
             self.startup = lines
             self._dirty = True
 
-    def ingest(self, rec: dict[str, Any]) -> None:
-        """Take one record from the source."""
-        kind = rec.get("type")
-        if kind == "hello":
-            self.hello = rec
-            self.title = f"corral: {rec.get('rig', '?')}" + (
-                " (simulated)" if rec.get("simulated") else " (HARDWARE)")
+    def ingest(self, rec: WireRecord | dict[str, Any]) -> None:
+        """Take one record from the source (a map is read as its typed record; one of
+        a type the dashboard does not show, or malformed, is ignored)."""
+        typed = as_live(rec)
+        if isinstance(typed, Hello):
+            self.hello = typed
+            self.title = f"corral: {typed.rig or '?'}" + (
+                " (simulated)" if typed.simulated else " (HARDWARE)")
             self._dirty = True
-        elif kind == "telemetry":
-            self.latest = rec
+        elif isinstance(typed, Telemetry):
+            self.latest = typed
             self.records_seen += 1
             if self.records_seen == 1 and self.status.startswith("waiting"):
                 self.status = f"live: {self.source.description}"
             if not self.paused:
-                ratio = float(rec.get("ratio", float("nan")) or 0.0)
-                engaged = rec.get("mode") == "engaged" or ratio > 0
-                self.ratio_times.append(float(rec.get("t", 0.0) or 0.0))
+                ratio = float(typed.ratio)  # NaN when the record has none
+                engaged = typed.mode == "engaged" or ratio > 0
+                self.ratio_times.append(_finite_or(typed.t, 0.0))
                 self.ratio_trace.append(ratio if engaged else float("nan"))
-                self.rate_trace.append(float(rec.get("eff_rate", 0.0) or 0.0))
-                self.history.append(rec)
+                self.rate_trace.append(_finite_or(typed.eff_rate, 0.0))
+                self.history.append(typed)
             self._dirty = True
-        elif kind == "reply":
-            self.replies.append(rec)
-            ok = "ok" if rec.get("ok") else "REFUSED"
-            self.status = f"{rec.get('op', '?')}: {ok}. {rec.get('message', '')}".strip()
-        elif kind == "trip":
-            self.status = "TRIP: " + panels.trip_line(rec)
-        line = panels.event_line(rec, time.time())
+        elif isinstance(typed, Reply):
+            self.replies.append(typed)
+            ok = "ok" if typed.ok else "REFUSED"
+            self.status = f"{typed.op or '?'}: {ok}. {typed.message}".strip()
+        elif isinstance(typed, TripSummary):
+            self.status = "TRIP: " + panels.trip_line(typed)
+        if typed is None:
+            return
+        line = panels.event_line(typed, time.time())
         if line is not None:
             self.events.append(line)
             if len(self.events) > 500:
@@ -471,8 +485,7 @@ class Dashboard(App[None]):
         main = self.screen_stack[0]
         margin = panels.margin_view(hello, tel)
         sup = panels.supervisor_view(tel)
-        trip = tel.get("trip")
-        why = panels.trip_explanation(trip, hello, tel) if trip else ""
+        why = panels.trip_explanation(tel.trip, hello, tel) if tel.trip is not None else ""
         main.query_one(SupervisorPanel).show(sup, margin, why,
                                              panels.device_flags(hello, tel), self.facts())
         t_end = self.ratio_times[-1] if self.ratio_times else 0.0
@@ -512,7 +525,7 @@ class Dashboard(App[None]):
 
     def action_arm(self) -> None:
         """Arm, after a confirmation (with the hardware cautions for a real rig)."""
-        simulated = bool(self.hello.get("simulated", False))
+        simulated = bool(self.hello.simulated)
 
         def decided(yes: bool | None) -> None:
             if yes:

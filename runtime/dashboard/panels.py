@@ -1,8 +1,10 @@
 """What the dashboard shows, as pure functions of the telemetry records.
 
-Each function takes the runtime's `hello` map (static facts about the rig)
-and/or one `telemetry` map (see docs/telemetry.md) and returns plain strings
-and numbers. The textual widgets in `runtime.dashboard.app` only lay these out,
+Each function takes the runtime's hello (static facts about the rig) and/or one
+telemetry record (`runtime.records.kinds.Hello`, `Telemetry`; docs/telemetry.md)
+and returns plain strings and numbers. A plain map is accepted too (a peer on the
+broker, a test): it is read as a partial record (`WireRecord.from_partial`), so a
+missing field shows as "-". The textual widgets in `runtime.dashboard.app` only lay these out,
 so every number on the screen is tested here without a screen.
 
 What does not live here: widgets, sockets, MQTT.
@@ -14,6 +16,17 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
+
+from runtime.dashboard.typed import (
+    HelloLike,
+    TelemetryLike,
+    TripLike,
+    as_hello,
+    as_live,
+    as_telemetry,
+    as_trip,
+)
+from runtime.records.kinds import Event, LoopFigures, Reply, TripSummary, WireRecord
 
 Record = Mapping[str, Any]
 
@@ -55,10 +68,10 @@ class MarginView:
     trip: float
 
 
-def levels(hello: Record) -> tuple[float, float]:
+def levels(hello: HelloLike) -> tuple[float, float]:
     """Warning and trip levels of the margin ratio (defaults 0.8 and 0.9)."""
-    lv = hello.get("levels") or {}
-    return _num(lv.get("warning"), 0.8), _num(lv.get("trip"), 0.9)
+    h = as_hello(hello)
+    return _num(h.levels.get("warning"), 0.8), _num(h.levels.get("trip"), 0.9)
 
 
 def margin_level(ratio: float, warning: float, trip: float) -> str:
@@ -72,16 +85,18 @@ def margin_level(ratio: float, warning: float, trip: float) -> str:
     return LEVEL_OK
 
 
-def margin_view(hello: Record, tel: Record) -> MarginView:
+def margin_view(hello: HelloLike, tel: TelemetryLike) -> MarginView:
     """The margin panel's content."""
-    warning, trip = levels(hello)
-    ratio = _num(tel.get("ratio"))
-    if tel.get("mode") != "engaged" and not ratio > 0:
+    h, t = as_hello(hello), as_telemetry(tel)
+    warning, trip = levels(h)
+    ratio = _num(t.ratio)
+    eps = t.eps if "eps" not in t.missing else h.eps
+    if t.mode != "engaged" and not ratio > 0:
         # The adaptive law is not running: there is no margin to show.
         return MarginView(ratio=math.nan, ratio_text="-", level=LEVEL_OFF,
-                          eps_text=fmt(tel.get("eps") or hello.get("eps")), s_text="-",
+                          eps_text=fmt(eps or h.eps), s_text="-",
                           time_to_bound_text="-", warning=warning, trip=trip)
-    ttb = tel.get("time_to_bound")
+    ttb = t.time_to_bound
     if ttb is None or math.isnan(_num(ttb)):
         ttb_text = "not approaching"
     else:
@@ -90,8 +105,8 @@ def margin_view(hello: Record, tel: Record) -> MarginView:
         ratio=ratio,
         ratio_text="-" if math.isnan(ratio) else f"{ratio:.3f}",
         level=margin_level(ratio, warning, trip),
-        eps_text=fmt(tel.get("eps", hello.get("eps"))),
-        s_text=fmt(tel.get("s")),
+        eps_text=fmt(eps),
+        s_text=fmt(t.s),
         time_to_bound_text=ttb_text,
         warning=warning,
         trip=trip,
@@ -109,33 +124,34 @@ class LearningView:
     cap_fraction: float
 
 
-def learning_view(tel: Record) -> LearningView:
+def learning_view(tel: TelemetryLike) -> LearningView:
     """gamma*phi_d, phi_d and g_k / cap (marked frozen while the adaptive law is off)."""
-    g = _num(tel.get("step_gain"))
-    cap = _num(tel.get("step_gain_cap"), 1.0)
+    t = as_telemetry(tel)
+    g = _num(t.step_gain)
+    cap = _num(t.step_gain_cap, 1.0)
+    cap = 1.0 if math.isnan(cap) else cap
     frac = g / cap if cap > 0 and not math.isnan(g) else math.nan
-    frozen = tel.get("mode", "engaged") != "engaged"
+    frozen = "mode" not in t.missing and t.mode != "engaged"
     return LearningView(
-        eff_rate_text=fmt(tel.get("eff_rate")) + (" (adaptation frozen)" if frozen else ""),
-        phi_d_text=fmt(tel.get("phi_d")),
+        eff_rate_text=fmt(t.eff_rate) + (" (adaptation frozen)" if frozen else ""),
+        phi_d_text=fmt(t.phi_d),
         step_gain_text=fmt(g, 3),
         cap_text=fmt(cap, 3),
         cap_fraction=frac,
     )
 
 
-def tracking_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
+def tracking_rows(hello: HelloLike, tel: TelemetryLike) -> list[tuple[str, ...]]:
     """Per state: "name [unit]", command, reference, measured, error, envelope.
 
     The unit goes with the name, once, so the numbers stay narrow enough for the panel.
     """
-    states: Sequence[str] = hello.get("states") or []
-    units: Sequence[str] = hello.get("state_units") or [""] * len(states)
-    envelope: Sequence[float] = hello.get("envelope") or []
-    tracked: Sequence[str] = hello.get("tracked") or []
-    c = tel.get("c") or []
-    x = tel.get("x") or []
-    xr = tel.get("xr") or []
+    h, t = as_hello(hello), as_telemetry(tel)
+    states: Sequence[str] = h.states
+    units: Sequence[str] = h.state_units or [""] * len(states)
+    envelope: Sequence[float] = h.envelope
+    tracked: Sequence[str] = h.tracked
+    c, x, xr = t.c, t.x, t.xr
     rows: list[tuple[str, ...]] = []
     for i, name in enumerate(states):
         unit = units[i] if i < len(units) else ""
@@ -153,13 +169,13 @@ def tracking_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
     return rows
 
 
-def input_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
+def input_rows(hello: HelloLike, tel: TelemetryLike) -> list[tuple[str, ...]]:
     """Per input: name, applied value, limit, time in saturation (with units)."""
-    names: Sequence[str] = hello.get("inputs") or []
-    units: Sequence[str] = hello.get("input_units") or [""] * len(names)
-    limits: Sequence[float] = hello.get("input_limits") or []
-    u = tel.get("u") or []
-    sat = tel.get("sat_time") or []
+    h, t = as_hello(hello), as_telemetry(tel)
+    names: Sequence[str] = h.inputs
+    units: Sequence[str] = h.input_units or [""] * len(names)
+    limits: Sequence[float] = h.input_limits
+    u, sat = t.u, t.sat_time
     rows: list[tuple[str, ...]] = []
     for i, name in enumerate(names):
         unit = units[i] if i < len(units) else ""
@@ -173,21 +189,25 @@ def input_rows(hello: Record, tel: Record) -> list[tuple[str, ...]]:
     return rows
 
 
-def weight_view(tel: Record) -> tuple[str, str]:
+def weight_view(tel: TelemetryLike) -> tuple[str, str]:
     """Weight norm and its rate of change (1/s)."""
-    return fmt(tel.get("w_norm")), fmt(tel.get("w_rate"), 3, "1/s")
+    t = as_telemetry(tel)
+    return fmt(t.w_norm), fmt(t.w_rate, 3, "1/s")
 
 
-def health_rows(tel: Record) -> list[tuple[str, str]]:
+def health_rows(tel: TelemetryLike) -> list[tuple[str, str]]:
     """Loop and link health as (label, value) rows."""
-    loop = tel.get("loop") or {}
-    link = tel.get("link") or {}
+    t = as_telemetry(tel)
+    loop: LoopFigures = t.loop
+    link = t.link  # the link's own counters: a map, they differ by link kind
+    misses = loop.deadline_misses if "deadline_misses" not in loop.missing else None
+    ticks = loop.ticks if "ticks" not in loop.missing else None
     rows = [
-        ("loop rate", fmt(loop.get("rate_hz"), 5, "Hz")),
-        ("lateness p50 / p99", f"{fmt(loop.get('lateness_p50_us'), 3)} / "
-                               f"{fmt(loop.get('lateness_p99_us'), 3)} us"),
-        ("deadline misses", fmt(loop.get("deadline_misses"), 6)),
-        ("ticks", fmt(loop.get("ticks"), 9)),
+        ("loop rate", fmt(loop.rate_hz, 5, "Hz")),
+        ("lateness p50 / p99", f"{fmt(loop.lateness_p50_us, 3)} / "
+                               f"{fmt(loop.lateness_p99_us, 3)} us"),
+        ("deadline misses", fmt(misses, 6)),
+        ("ticks", fmt(ticks, 9)),
         ("sample age", fmt(link.get("sample_age_ms"), 3, "ms")),
         ("frames in / out",
          f"{fmt(link.get('frames_in'), 9)} / {fmt(link.get('frames_out'), 9)}"),
@@ -211,27 +231,25 @@ class SupervisorView:
     trips: tuple[str, ...]
 
 
-def trip_line(trip: Record) -> str:
+def trip_line(trip: TripLike) -> str:
     """One line for a trip summary: rule, value against threshold, action, tick."""
-    rule = trip.get("rule") or (trip.get("first_out") or {}).get("rule", "?")
-    value = trip.get("value", (trip.get("first_out") or {}).get("value"))
-    thr = trip.get("threshold", (trip.get("first_out") or {}).get("threshold"))
-    action = trip.get("action", "?")
-    tick = trip.get("tick", "?")
-    return f"{rule}: {fmt(value, 4)} vs {fmt(thr, 4)} -> {action} (tick {tick})"
+    tr = as_trip(trip)
+    tick = tr.tick if "tick" not in tr.missing else "?"
+    return (f"{tr.rule or '?'}: {fmt(tr.value, 4)} vs {fmt(tr.threshold, 4)} -> "
+            f"{tr.action or '?'} (tick {tick})")
 
 
-def supervisor_view(tel: Record) -> SupervisorView:
+def supervisor_view(tel: TelemetryLike) -> SupervisorView:
     """The supervisor panel's content."""
-    trip = tel.get("trip")
-    fallback = tel.get("fallback")
+    t = as_telemetry(tel)
+    fallback = t.fallback
     return SupervisorView(
-        mode=str(tel.get("mode", "?")),
-        latched=bool(tel.get("latched", False)),
-        trip_text=("first out: " + trip_line(trip)) if trip else "no trip latched",
+        mode=t.mode or "?",
+        latched=t.latched,
+        trip_text=("first out: " + trip_line(t.trip)) if t.trip else "no trip latched",
         fallback_text=f"FALLBACK ACTIVE: {fallback}" if fallback else "adaptive law in charge"
-        if tel.get("mode") == "engaged" else "-",
-        trips=tuple(trip_line(t) for t in (tel.get("trips") or [])),
+        if t.mode == "engaged" else "-",
+        trips=tuple(trip_line(tr) for tr in t.trips),
     )
 
 
@@ -412,7 +430,7 @@ def strip_lines(values: Sequence[float], width: int, height: int) -> tuple[list[
 
 
 # -- per tracked axis: command, reference, measured ----------------------------
-def axis_traces(hello: Record, history: Sequence[Record], width: int,
+def axis_traces(hello: HelloLike, history: Sequence[TelemetryLike], width: int,
                 height: int) -> list[tuple[str, list[str]]]:
     """Per tracked axis: a title and rows of text where c, r and y are drawn over time.
 
@@ -421,10 +439,11 @@ def axis_traces(hello: Record, history: Sequence[Record], width: int,
     ``c`` the command, ``r`` the reference model, ``y`` the measured state (drawn
     last, so it shows where it covers the others); ``*`` where all three coincide.
     """
-    states: Sequence[str] = hello.get("states") or []
-    units: Sequence[str] = hello.get("state_units") or [""] * len(states)
-    tracked: Sequence[str] = hello.get("tracked") or []
-    recs = list(history)[-width:]
+    h = as_hello(hello)
+    states: Sequence[str] = h.states
+    units: Sequence[str] = h.state_units or [""] * len(states)
+    tracked: Sequence[str] = h.tracked
+    recs = [as_telemetry(r) for r in list(history)[-width:]]
     out: list[tuple[str, list[str]]] = []
     for j, name in enumerate(tracked):
         if name not in states:
@@ -432,7 +451,7 @@ def axis_traces(hello: Record, history: Sequence[Record], width: int,
         i = list(states).index(name)
         series: dict[str, list[float]] = {"c": [], "r": [], "y": []}
         for rec in recs:
-            c, xr, x = rec.get("c") or [], rec.get("xr") or [], rec.get("x") or []
+            c, xr, x = rec.c, rec.xr, rec.x
             series["c"].append(_num(c[j]) if j < len(c) else math.nan)
             series["r"].append(_num(xr[i]) if i < len(xr) else math.nan)
             series["y"].append(_num(x[i]) if i < len(x) else math.nan)
@@ -450,8 +469,7 @@ def axis_traces(hello: Record, history: Sequence[Record], width: int,
                 cell = grid[row][offset + k]
                 grid[row][offset + k] = mark if cell in (" ", mark) else "*"
         unit = units[i] if i < len(units) else ""
-        last = recs[-1] if recs else {}
-        xs, cs = last.get("x") or [], last.get("c") or []
+        xs, cs = (recs[-1].x, recs[-1].c) if recs else ([], [])
         title = (f"{name} [{unit}]  c {fmt(cs[j] if j < len(cs) else None, 4)}  "
                  f"y {fmt(xs[i] if i < len(xs) else None, 4)}  range {fmt(lo, 3)} .. "
                  f"{fmt(hi, 3)}")
@@ -460,22 +478,24 @@ def axis_traces(hello: Record, history: Sequence[Record], width: int,
 
 
 # -- what the glance strip says -------------------------------------------------
-def trip_explanation(trip: Record, hello: Record, tel: Record | None = None) -> str:
+def trip_explanation(trip: TripLike, hello: HelloLike,
+                     tel: TelemetryLike | None = None) -> str:
     """The trip in words: the record's own explanation when it carries one, the timing
     rules' words (`runtime.realtime.hostcheck.explain_trip`, with the host check from the hello),
     else the rule's value against its threshold."""
     from runtime.realtime.hostcheck import explain_trip
 
-    if trip.get("explanation"):
-        return str(trip["explanation"])
-    fo = trip.get("first_out") or {}
-    rule = str(trip.get("rule") or fo.get("rule") or "?")
-    value = trip.get("value", fo.get("value"))
-    thr = trip.get("threshold", fo.get("threshold"))
-    window = hello.get("overrun_window")
-    why = explain_trip(rule, value, thr, _num(hello.get("period"), 0.0) or None,
-                       int(window) if window else None, hello.get("hostcheck") or None,
-                       (tel or {}).get("loop") or None)
+    tr, h = as_trip(trip), as_hello(hello)
+    explanation = (trip.get("explanation") if isinstance(trip, Mapping)
+                   else tr.extra.get("explanation"))
+    if explanation:
+        return str(explanation)
+    rule, value, thr = tr.rule or "?", tr.value, tr.threshold
+    window = h.extra.get("overrun_window")
+    loop = as_telemetry(tel).loop.to_wire() if tel is not None else None
+    why = explain_trip(rule, value, thr, _num(h.period, 0.0) or None,
+                       int(window) if window else None, h.hostcheck or None,
+                       loop or None)
     if why:
         return why
     if rule in ("margin", "margin_warning"):
@@ -485,12 +505,12 @@ def trip_explanation(trip: Record, hello: Record, tel: Record | None = None) -> 
         return (f"the margin ratio, extrapolated over the reaction time, reached "
                 f"{fmt(value, 4)}; limit {fmt(thr, 3)}")
     text = f"{rule}: {fmt(value, 4)} against the limit {fmt(thr, 4)}"
-    if trip.get("detail"):
-        text += f" ({trip['detail']})"
+    if tr.detail:
+        text += f" ({tr.detail})"
     return text
 
 
-def device_flags(hello: Record, tel: Record) -> list[tuple[str, bool]]:
+def device_flags(hello: HelloLike, tel: TelemetryLike) -> list[tuple[str, bool]]:
     """The device's own declared status flags (hello ``status_flags``) and whether
     each is set in the last sample's status bits (telemetry ``status``).
 
@@ -499,17 +519,15 @@ def device_flags(hello: Record, tel: Record) -> list[tuple[str, bool]]:
     """
     from drivers.wire import STATUS_DEVICE_BASE_BIT
 
-    names: Sequence[str] = hello.get("status_flags") or []
-    status = tel.get("status")
-    bits = int(status) if isinstance(status, (int, float)) and not isinstance(status, bool) \
-        else 0
+    names: Sequence[str] = as_hello(hello).status_flags
+    bits = as_telemetry(tel).status
     return [(str(n), bool(bits >> (STATUS_DEVICE_BASE_BIT + k) & 1))
             for k, n in enumerate(names)]
 
 
-def hostcheck_line(hello: Record) -> str:
+def hostcheck_line(hello: HelloLike) -> str:
     """The host check's verdict from the hello, in one line ('' when none ran)."""
-    hc = hello.get("hostcheck")
+    hc = as_hello(hello).hostcheck  # `corral hostcheck --json`: its own open map
     if not hc:
         return ""
     ok = "OK" if hc.get("ok") else "NOT OK"
@@ -518,9 +536,9 @@ def hostcheck_line(hello: Record) -> str:
             + ("SCHED_FIFO" if hc.get("realtime") else "normal priority"))
 
 
-def preflight_line(hello: Record) -> str:
+def preflight_line(hello: HelloLike) -> str:
     """The preflight verdict from the hello ('' when none ran)."""
-    pf = hello.get("preflight")
+    pf = as_hello(hello).preflight  # the preflight verdict: its own open map
     if not pf:
         return ""
     reasons = " ".join(str(r) for r in pf.get("reasons") or [])
@@ -529,24 +547,26 @@ def preflight_line(hello: Record) -> str:
 
 
 # -- the event list -------------------------------------------------------------
-def event_line(rec: Record, received: float | None = None) -> str | None:
+def event_line(rec: WireRecord | Mapping[str, Any],
+               received: float | None = None) -> str | None:
     """One record (event, trip, reply) as a time-stamped line; None for other records.
 
     The stamp is the record's own wall time (``t_wall``), else `received` (when the
     dashboard got it: trip summaries and replies carry none)."""
     import time as _time
 
-    kind = rec.get("type")
-    t_wall = rec.get("t_wall", received)
+    typed = as_live(rec)
+    t_wall = typed.t_wall if isinstance(typed, Event) and typed.t_wall is not None \
+        else received
     stamp = (_time.strftime("%H:%M:%S", _time.localtime(float(t_wall)))
              if isinstance(t_wall, (int, float)) else "--:--:--")
-    if kind == "event":
-        return f"{stamp} {rec.get('kind', '?')}: {rec.get('detail', '')}".rstrip()
-    if kind == "trip":
-        return f"{stamp} TRIP {trip_line(rec)}"
-    if kind == "reply":
-        ok = "ok" if rec.get("ok") else "REFUSED"
-        return f"{stamp} request {rec.get('op', '?')}: {ok} {rec.get('message', '')}".rstrip()
+    if isinstance(typed, Event):
+        return f"{stamp} {typed.kind or '?'}: {typed.detail}".rstrip()
+    if isinstance(typed, TripSummary):
+        return f"{stamp} TRIP {trip_line(typed)}"
+    if isinstance(typed, Reply):
+        ok = "ok" if typed.ok else "REFUSED"
+        return f"{stamp} request {typed.op or '?'}: {ok} {typed.message}".rstrip()
     return None
 
 

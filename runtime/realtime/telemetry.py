@@ -23,8 +23,14 @@ transport without awaiting a drain, and a client whose unsent bytes exceed
 The tick thread hands records over with `publish` (latest wins) and `post`
 (queued, thread-safe); packing and socket writes happen on the event loop.
 
-What does not live here: the records themselves (built by `runtime.realtime.loop`),
-the dashboard that reads them (`runtime.cli.cmd_watch`).
+Records are the typed classes of `runtime.records.kinds` (`Hello`, `Telemetry`,
+`TripSummary`, `Event`, `Reply`). The tick may still hand over plain dicts: they are
+parsed into their class on the event loop (never in the tick thread), a malformed one
+is dropped and counted (`schema_errors`, with the first error kept in `schema_error`).
+Listeners (the MQTT bridge) get the typed record.
+
+What does not live here: the record schemas (`runtime.records.kinds`), the tick that
+fills them (`runtime.realtime.tick`), the dashboard that reads them (`runtime.dashboard`).
 """
 
 from __future__ import annotations
@@ -41,6 +47,16 @@ from pathlib import Path
 from typing import Any
 
 import msgpack
+
+from runtime.records.kinds import (
+    Hello,
+    RecordError,
+    Reply,
+    Telemetry,
+    WireRecord,
+    as_record,
+    parse_live_record,
+)
 
 RequestHandler = Callable[[str, Callable[[bool, str], None]], None]
 
@@ -94,7 +110,8 @@ class TelemetryServer:
     ``request_rate_hz``/``request_burst``: the token bucket every request passes.
     """
 
-    def __init__(self, path: str | Path, hello: dict[str, Any], on_request: RequestHandler,
+    def __init__(self, path: str | Path, hello: Hello | dict[str, Any],
+                 on_request: RequestHandler,
                  rate_hz: float = 25.0, client_buffer: int = 256 * 1024,
                  socket_gid: int | None = None, allowed_uids: Iterable[int] | None = None,
                  request_rate_hz: float = 20.0, request_burst: float = 20.0) -> None:
@@ -114,26 +131,42 @@ class TelemetryServer:
         self.flood_drops = 0
         """Clients disconnected for flooding."""
         self._busy_replies: dict[str, bytes] = {}
-        self.hello = {"type": "hello", **hello}
+        self.hello: dict[str, Any] = as_record(hello, Hello).to_wire()
+        """The hello as a map. The runner still sets keys in it (``status_flags``,
+        ``preflight``); `update_hello` is the typed way. Checked on every connect."""
         self.on_request = on_request
         self.rate_hz = min(50.0, max(1.0, float(rate_hz)))
         self.client_buffer = int(client_buffer)
         self.clients: list[_Client] = []
         self.dropped_clients = 0
         self.sent = 0
-        self._latest: dict[str, Any] | None = None
-        self.listeners: list[Callable[[dict[str, Any]], None]] = []
+        self._latest: Telemetry | dict[str, Any] | None = None
+        self.schema_errors = 0
+        """Records dropped because they did not match their schema (a bug: say so)."""
+        self.schema_error = ""
+        """The first such record's error."""
+        self.listeners: list[Callable[[WireRecord], None]] = []
         """Called on the event loop with every record sent (telemetry at the socket rate,
         trips, events), whether or not a client is connected: the MQTT publisher."""
         self._loop: asyncio.AbstractEventLoop | None = None
         self._server: asyncio.AbstractServer | None = None
 
+    @property
+    def hello_record(self) -> Hello:
+        """The hello as sent (checked against its schema)."""
+        return Hello.from_wire(self.hello)
+
+    def update_hello(self, **fields: Any) -> None:
+        """Set hello fields (``status_flags=[...]``, ``preflight={...}``), checked now:
+        clients connecting later get them."""
+        self.hello = Hello.from_wire({**self.hello, **fields}).to_wire()
+
     # ------------------------------------------------------------ from the tick thread
-    def publish(self, record: dict[str, Any]) -> None:
+    def publish(self, record: Telemetry | dict[str, Any]) -> None:
         """Offer the newest telemetry record (thread-safe; only the latest is sent)."""
         self._latest = record
 
-    def post(self, record: dict[str, Any]) -> None:
+    def post(self, record: WireRecord | dict[str, Any]) -> None:
         """Send a record to every client soon (thread-safe): trips and events."""
         loop = self._loop
         if loop is not None and not loop.is_closed():
@@ -196,18 +229,35 @@ class TelemetryServer:
                 "refused_peers": self.refused_peers, "flood_drops": self.flood_drops,
                 "dropped_clients": self.dropped_clients}
 
-    def _deliver(self, record: dict[str, Any]) -> None:
+    def _typed(self, record: WireRecord | dict[str, Any]) -> WireRecord | None:
+        """The record as its class (a dict from the tick parsed here); None and counted
+        when it does not match its schema."""
+        if isinstance(record, WireRecord):
+            return record
+        try:
+            return parse_live_record(record)
+        except RecordError as exc:
+            self.schema_errors += 1
+            self.schema_error = self.schema_error or str(exc)
+            return None
+
+    def _deliver(self, record: WireRecord | dict[str, Any]) -> None:
+        typed = self._typed(record)
+        if typed is None:
+            return
         for listener in self.listeners:
             try:
-                listener(record)
+                listener(typed)
             except Exception:  # noqa: BLE001 - a listener must never stop the telemetry
                 pass
-        self._broadcast(record)
+        # A map that parsed is sent as it came: `to_wire` of its record gives the same
+        # bytes (tests/test_record_kinds.py), and packing it costs less on this thread.
+        self._broadcast(record if isinstance(record, dict) else typed.to_wire())
 
-    def _broadcast(self, record: dict[str, Any]) -> None:
+    def _broadcast(self, wire: dict[str, Any]) -> None:
         if not self.clients:
             return
-        data = msgpack.packb(record, use_bin_type=True)
+        data = msgpack.packb(wire, use_bin_type=True)
         for c in list(self.clients):
             self._send(c, data)
 
@@ -244,17 +294,22 @@ class TelemetryServer:
         if uid is not None and uid not in self.allowed_uids:
             self.refused_peers += 1
             with contextlib.suppress(Exception):
-                writer.write(msgpack.packb(
-                    {"type": "reply", "op": "", "ok": False,
-                     "message": f"uid {uid} may not use this rig's operator socket "
-                                "(operator.allowed_uids)"}, use_bin_type=True))
+                writer.write(msgpack.packb(Reply(
+                    op="", ok=False, message=f"uid {uid} may not use this rig's operator "
+                    "socket (operator.allowed_uids)").to_wire(), use_bin_type=True))
                 writer.close()
             return
         if sock is not None:  # bound what the kernel holds for a client too
             with contextlib.suppress(OSError):
                 sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, self.client_buffer)
         self.clients.append(c)
-        self._send(c, msgpack.packb(self.hello, use_bin_type=True))
+        try:
+            hello = self.hello_record.to_wire()
+        except RecordError as exc:  # a bug in what set the hello: send it, and count it
+            self.schema_errors += 1
+            self.schema_error = self.schema_error or str(exc)
+            hello = dict(self.hello)
+        self._send(c, msgpack.packb(hello, use_bin_type=True))
         unpacker = msgpack.Unpacker(raw=False, max_buffer_size=1 << 20)
         try:
             while not c.closed:
@@ -289,8 +344,8 @@ class TelemetryServer:
             c.busy_run += 1
             data = self._busy_replies.get(op)
             if data is None:
-                data = msgpack.packb({"type": "reply", "op": op, "ok": False,
-                                      "message": "busy: too many requests, try again shortly"},
+                data = msgpack.packb(Reply(op=op, ok=False, message="busy: too many "
+                                           "requests, try again shortly").to_wire(),
                                      use_bin_type=True)
                 if len(self._busy_replies) < 16:
                     self._busy_replies[op] = data
@@ -307,7 +362,7 @@ class TelemetryServer:
         self.on_request(op, reply)
 
     def _reply(self, c: _Client, op: str, ok: bool, message: str) -> None:
-        self._send(c, msgpack.packb({"type": "reply", "op": op, "ok": ok, "message": message},
+        self._send(c, msgpack.packb(Reply(op=op, ok=ok, message=message).to_wire(),
                                     use_bin_type=True))
 
 
@@ -340,6 +395,10 @@ class TelemetryClient:
                     raise ConnectionError("telemetry socket closed")
                 self.unpacker.feed(chunk)
                 self.pending.extend(self.unpacker)
+
+    async def next_record(self, kind: str | None = None, timeout: float = 5.0) -> WireRecord:
+        """The next record (of `kind`) as its typed class (`runtime.records.kinds`)."""
+        return parse_live_record(await self.next(kind, timeout))
 
     async def request(self, op: str, timeout: float = 5.0) -> dict[str, Any]:
         """Send a request and wait for its reply."""
@@ -374,7 +433,8 @@ class MqttBridge:
     socket's) when ``[link.mqtt] remote_requests`` lists them; ``stop`` always.
     """
 
-    def __init__(self, settings: Any, hello: dict[str, Any], on_request: RequestHandler,
+    def __init__(self, settings: Any, hello: Hello | dict[str, Any],
+                 on_request: RequestHandler,
                  rate_hz: float = 10.0, hello_refresh_s: float = 5.0,
                  hello_expiry_s: float = 30.0, reply_timeout_s: float = 2.0,
                  notify: Callable[[str], None] | None = None,
@@ -383,7 +443,11 @@ class MqttBridge:
         self.notify = notify
         """Where a one-line warning goes when the broker is not reachable at start."""
         self.connect_warn_s = float(connect_warn_s)
-        self.hello = {"type": "hello", **hello}
+        # A typed hello is checked; a map is published as given (tools such as the fleet
+        # test rigs publish partial hellos, as an older corral on the broker may).
+        self.hello: dict[str, Any] = (hello.to_wire() if isinstance(hello, Hello)
+                                      else {"type": "hello", **hello})
+        """The retained hello as a map (the runner still sets keys in it)."""
         self.on_request = on_request
         self.rate_hz = float(rate_hz)
         self.hello_refresh_s = float(hello_refresh_s)
@@ -402,23 +466,41 @@ class MqttBridge:
 
         return f"{Topics(self.settings.prefix, self.settings.rig).telemetry}/hello"
 
-    def on_record(self, rec: dict[str, Any]) -> None:
-        """A record the socket sends (event-loop thread): forward what remote tools read."""
+    def update_hello(self, **fields: Any) -> None:
+        """Set hello fields, checked (published at the next refresh)."""
+        self.hello = Hello.from_wire({**self.hello, **fields}).to_wire()
+
+    def on_record(self, rec: WireRecord | dict[str, Any]) -> None:
+        """A record the socket sends (event-loop thread): forward what remote tools read.
+
+        The socket hands over typed records; a map (a tool publishing by hand) is parsed
+        when it matches its schema and forwarded as given when it does not."""
         pub = self.publisher
         if pub is None:
             return
-        kind = rec.get("type")
-        if kind == "telemetry":
-            key = (rec.get("mode"), rec.get("latched"), rec.get("fallback"))
-            if key != self._mode_key:
-                self._mode_key = key
-                trip = rec.get("trip")
-                pub.publish_mode(str(rec.get("mode")), latched=bool(rec.get("latched")),
-                                 fallback=rec.get("fallback"),
-                                 trip=trip.get("rule") if isinstance(trip, dict) else None)
-            pub.publish_telemetry(rec)
+        if isinstance(rec, dict):
+            with contextlib.suppress(RecordError):
+                rec = parse_live_record(rec)
+        state: tuple[Any, ...] | None = None
+        if isinstance(rec, Telemetry):
+            kind, wire = rec.KIND, rec.to_wire()
+            state = (rec.mode, rec.latched, rec.fallback,
+                     rec.trip.rule if rec.trip is not None else None)
+        elif isinstance(rec, WireRecord):
+            kind, wire = rec.KIND, rec.to_wire()
+        else:  # a partial map, forwarded as given
+            kind, wire = str(rec.get("type")), rec
+            trip = rec.get("trip")
+            state = (rec.get("mode"), rec.get("latched"), rec.get("fallback"),
+                     trip.get("rule") if isinstance(trip, dict) else None)
+        if kind == "telemetry" and state is not None:
+            if state[:3] != self._mode_key:
+                self._mode_key = state[:3]
+                pub.publish_mode(str(state[0]), latched=bool(state[1]), fallback=state[2],
+                                 trip=state[3])
+            pub.publish_telemetry(wire)
         elif kind == "trip":
-            pub.publish_trip(rec)
+            pub.publish_trip(wire)
 
     async def _remote(self, op: str, request: dict[str, Any]) -> tuple[bool, str]:
         loop = asyncio.get_running_loop()

@@ -8,11 +8,14 @@ Lives here:
   capture, operator event) is one msgpack map written with write + flush +
   os.fsync at once, so everything appended before a crash or a kill reads back.
 - (in `runtime.records.logwriter`, re-exported here) the format names and the writers.
-- Readers: `read_stream` (header, records, torn flag), `load_trips` (trips of
-  many logs, post captures merged, sorted by wall time), `read_run_log`.
-  A torn last record (a crash mid-write) is detected and skipped, never fatal.
-- `Trip` and `Capture`: a trip as a reviewer sees it, and its pre/post capture
-  as named columns (used by `corral trips`, the plot and the exports).
+- Readers: `read_stream` (header, records, torn flag), `read_trip_records` (one trip
+  log as typed records: `TripLogContents`), `load_trips` (trips of many logs, post
+  captures merged, sorted by wall time), `read_run_log` (columns), `read_ticks`
+  (typed rows). A torn last record (a crash mid-write) is detected and skipped, never
+  fatal; a record that does not match its schema is skipped and named in ``bad``.
+- `Trip` and `Capture`: a trip as a reviewer sees it (`Trip.rec`, a
+  `runtime.records.kinds.TripRecord`), and its pre/post capture as named columns
+  (used by `corral trips`, the plot and the exports).
 
 What does not live here: deciding when to trip (`runtime.guard.watchdog`), the loop
 that fills these records (`runtime.realtime.loop`), plots and exports
@@ -33,6 +36,14 @@ import msgpack
 import numpy as np
 from numpy.typing import NDArray
 
+from runtime.records.kinds import (
+    Event,
+    PostRecord,
+    RecordError,
+    RunEnd,
+    TripRecord,
+    parse_log_record,
+)
 from runtime.records.logwriter import (
     DEFAULT_LEVELS,
     FORMAT_VERSION,
@@ -47,6 +58,7 @@ from runtime.records.logwriter import (
     TripLog,
     log_paths,
 )
+from runtime.records.tickrow import TickRecord
 
 #: The writers and the format names live in `runtime.records.logwriter`; importable from here.
 __all__ = [
@@ -227,7 +239,12 @@ def build_capture(header: dict[str, Any], record: dict[str, Any],
 
 @dataclass
 class Trip:
-    """One trip as read from a log: the record, its post capture, the run's header."""
+    """One trip as read from a log: the record, its post capture, the run's header.
+
+    `rec` is the typed record (`TripRecord`; RecordError at construction when the map
+    does not match it). `record`, `first_out`, `later`, `snapshot`, `events` and
+    `ended` are the same facts as plain maps, kept for `corral trips` and older callers.
+    """
 
     record: dict[str, Any]
     header: dict[str, Any]
@@ -238,11 +255,27 @@ class Trip:
     ended: dict[str, Any] = field(default_factory=dict)
     """The run's end record (`runtime.records.runinfo.how_ended`; how "cut_short" when missing)."""
     _capture: Capture | None = field(default=None, repr=False)
+    rec: TripRecord = field(init=False, repr=False)
+    """The trip record, typed."""
+
+    def __post_init__(self) -> None:
+        self.rec = TripRecord.from_wire(self.record, where=f"{self.source}: trip record")
+
+    @property
+    def end(self) -> RunEnd:
+        """How the run ended, typed (`ended` as a `RunEnd`)."""
+        return RunEnd.from_wire(self.ended) if self.ended else RunEnd(how="unknown",
+                                                                       found=False)
+
+    @property
+    def event_records(self) -> list[Event]:
+        """The run's operator events, typed."""
+        return [Event.from_wire(e) for e in self.events]
 
     # -- identity and first-out ------------------------------------------
     @property
     def id(self) -> int:
-        return int(self.record.get("id", 0))
+        return self.rec.id
 
     @property
     def key(self) -> str:
@@ -255,15 +288,15 @@ class Trip:
 
     @property
     def rule(self) -> str:
-        return str(self.first_out.get("rule", "?"))
+        return self.rec.first_out.rule
 
     @property
-    def value(self) -> float | None:
-        return self.first_out.get("value")
+    def value(self) -> float | str | None:
+        return self.rec.first_out.value
 
     @property
     def threshold(self) -> float | None:
-        return self.first_out.get("threshold")
+        return self.rec.first_out.threshold
 
     @property
     def later(self) -> list[dict[str, Any]]:
@@ -271,23 +304,25 @@ class Trip:
 
     @property
     def action(self) -> str:
-        return str(self.record.get("action", "?"))
+        return self.rec.action
 
     @property
     def detect_to_action_us(self) -> float | None:
-        return self.record.get("detect_to_action_us")
+        return self.rec.detect_to_action_us
 
     @property
     def tick(self) -> int:
-        return int(self.record.get("tick", -1))
+        return self.rec.tick
 
     @property
     def t_wall(self) -> float:
-        return float(self.record.get("t_wall", self.header.get("started_wall", 0.0)) or 0.0)
+        if self.rec.t_wall is not None:
+            return float(self.rec.t_wall)
+        return float(self.header.get("started_wall", 0.0) or 0.0)
 
     @property
     def t_mono(self) -> float | None:
-        return self.record.get("t_mono")
+        return self.rec.t_mono
 
     @property
     def snapshot(self) -> dict[str, Any]:
@@ -296,16 +331,15 @@ class Trip:
     # -- the run it belongs to --------------------------------------------
     @property
     def rig(self) -> str:
-        return str(self.record.get("rig") or self.header.get("rig") or "?")
+        return self.rec.rig or str(self.header.get("rig") or "?")
 
     @property
     def config_hash(self) -> str:
-        return str(self.record.get("config_hash") or self.header.get("config_hash") or "")
+        return self.rec.config_hash or str(self.header.get("config_hash") or "")
 
     @property
     def software_version(self) -> str:
-        return str(self.record.get("software_version") or self.header.get("software_version")
-                   or "")
+        return self.rec.software_version or str(self.header.get("software_version") or "")
 
     @property
     def config(self) -> dict[str, Any]:
@@ -369,7 +403,7 @@ class Trip:
                 for name in (f"margin_{k}", f"{k}_level"):
                     if isinstance(wd.get(name), (int, float)):
                         lv[k] = float(wd[name])
-        if self.rule == "margin" and isinstance(self.threshold, (int, float)):
+        if self.rule == "margin" and self.threshold is not None:
             lv["trip"] = float(self.threshold)
         return lv
 
@@ -404,7 +438,7 @@ class Trip:
         """The one-line facts of a trip as plain JSON values."""
         from runtime.records.runinfo import iso_time, say_value
 
-        fo = self.first_out
+        fo = self.rec.first_out
         raw_link = self.header.get("link")
         link: dict[str, Any] = raw_link if isinstance(raw_link, dict) else {}
         return {
@@ -413,21 +447,41 @@ class Trip:
             "simulated": link.get("simulated", self.header.get("simulated")),
             "ended": self.ended.get("how"), "time": self.t_wall,
             "time_iso": iso_time(self.t_wall),
-            "value_text": say_value(self.rule, self.value, self.threshold,
-                                    fo.get("on_delay_s")),
-            "on_delay_s": fo.get("on_delay_s"),
-            "tick": self.tick, "rule": self.rule, "signal": fo.get("signal"),
+            "value_text": say_value(self.rule, self.value, self.threshold, fo.on_delay_s),
+            "on_delay_s": fo.on_delay_s,
+            "tick": self.tick, "rule": self.rule, "signal": fo.signal or None,
             "value": self.value, "threshold": self.threshold, "action": self.action,
             "detect_to_action_us": self.detect_to_action_us,
-            "later": [str(r.get("rule")) for r in self.later],
+            "later": [r.rule for r in self.rec.later],
             "config_hash": self.config_hash, "cut_short": self.cut_short,
             "post_capture": self.post is not None,
         }
 
 
-def read_trip_log(path: str | Path) -> tuple[dict[str, Any], list[Trip], list[dict[str, Any]],
-                                             bool]:
-    """One trip log: (header, trips with their post captures, operator events, torn)."""
+@dataclass
+class TripLogContents:
+    """One trip log read back, typed (`read_trip_records`)."""
+
+    header: dict[str, Any]
+    """The header map (rig, config, capture fields, ...)."""
+    trips: list[Trip]
+    """The trips, each with its post capture merged."""
+    events: list[Event]
+    """Operator and mode events, in the order written."""
+    end: RunEnd
+    """How the run ended (how "cut_short" when the log has no end record)."""
+    torn: bool
+    """Bytes after the last complete record were skipped, or a record was not a map."""
+    bad: list[str] = field(default_factory=list)
+    """Why each skipped record did not match its schema."""
+
+
+def read_trip_records(path: str | Path) -> TripLogContents:
+    """One trip log as typed records (`runtime.records.kinds`); LogReadError when it is
+    not a trip log at all. A record that does not match its schema is skipped and its
+    error kept in ``bad`` (the others still read)."""
+    from runtime.records.runinfo import how_ended
+
     path = Path(path)
     header, records, torn = read_stream(path)
     if header is None:
@@ -440,32 +494,46 @@ def read_trip_log(path: str | Path) -> tuple[dict[str, Any], list[Trip], list[di
         raise LogReadError(f"{path}: not a trip log (format {header.get('format')!r})")
     trips: list[Trip] = []
     by_id: dict[int, Trip] = {}
-    events: list[dict[str, Any]] = []
+    events: list[Event] = []
+    event_maps: list[dict[str, Any]] = []
+    bad: list[str] = []
     odd = 0
     for rec in records:
         if not isinstance(rec, dict):
             odd += 1
             continue
-        kind = rec.get("type")
-        if kind == "trip":
-            trip = Trip(record=rec, header=header, source=path)
-            trips.append(trip)
-            by_id[trip.id] = trip
-        elif kind == "post":
-            target = by_id.get(int(rec.get("trip_id", -1)))
+        try:
+            typed = parse_log_record(rec) if rec.get("type") in ("post", "event") else None
+            if rec.get("type") == "trip":
+                trip = Trip(record=rec, header=header, source=path)
+                trips.append(trip)
+                by_id[trip.id] = trip
+        except RecordError as exc:
+            bad.append(str(exc))
+            continue
+        if isinstance(typed, PostRecord):
+            target = by_id.get(typed.trip_id)
             if target is not None:
-                target.post = list(target.post or []) + list(rec.get("rows") or [])
-        elif kind == "event":
-            events.append(rec)
+                target.post = list(target.post or []) + list(typed.rows)
+        elif isinstance(typed, Event):
+            events.append(typed)
+            event_maps.append(rec)
     torn = torn or odd > 0
-    from runtime.records.runinfo import how_ended
-
     ended = how_ended(records, header)
     for trip in trips:
-        trip.events = events
+        trip.events = event_maps
         trip.log_torn = torn
         trip.ended = ended
-    return header, trips, events, torn
+    return TripLogContents(header=header, trips=trips, events=events,
+                           end=RunEnd.from_wire(ended), torn=torn, bad=bad)
+
+
+def read_trip_log(path: str | Path) -> tuple[dict[str, Any], list[Trip], list[dict[str, Any]],
+                                             bool]:
+    """One trip log: (header, trips with their post captures, operator events as maps,
+    torn). The typed reader is `read_trip_records`; this is its plain-map view."""
+    got = read_trip_records(path)
+    return got.header, got.trips, [e.to_wire() for e in got.events], got.torn
 
 
 def load_trips(paths: Iterable[str | Path]) -> list[Trip]:
@@ -496,3 +564,19 @@ def read_run_log(path: str | Path) -> tuple[dict[str, Any], dict[str, NDArray[An
         out[name] = arr
         col += w
     return header, out
+
+
+def read_ticks(path: str | Path) -> tuple[dict[str, Any], list[TickRecord]]:
+    """A run log as typed rows: (header, one `TickRecord` per tick). A torn tail and
+    rows that do not match the header's widths are skipped (the end record too: read
+    it with `runtime.records.runinfo.how_ended`)."""
+    path = Path(path)
+    header, records, _ = read_stream(path)
+    if header is None or "fields" not in header:
+        raise LogReadError(f"{path}: not a corral run log (no header with fields)")
+    names = [str(f) for f in header["fields"]]
+    widths = [int(w) for w in header.get("widths") or [1] * len(names)]
+    total = sum(widths)
+    rows = [TickRecord.from_row(names, widths, list(r)) for r in records
+            if isinstance(r, (list, tuple)) and len(r) == total]
+    return header, rows

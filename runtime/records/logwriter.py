@@ -4,8 +4,12 @@
   header, written by a background thread from a bounded queue. `append` never
   blocks the tick; when the queue is full the row is dropped and counted.
 - `TripLog`: the append-only trip log. Every record (header, trip, post-trip
-  capture, operator event) is one msgpack map written with write + flush +
+  capture, operator event, end) is one msgpack map written with write + flush +
   os.fsync at once, so everything appended before a crash or a kill reads back.
+  Records are the typed classes of `runtime.records.kinds`; a plain map (what the
+  tick builds today) is parsed into its class first. One that does not match its
+  schema is still written as given (a trip must reach the disk) and counted in
+  `schema_errors`; the readers then report it.
 
 The readers live in `runtime.records.logs`, which re-exports everything here.
 """
@@ -24,6 +28,7 @@ import msgpack
 import numpy as np
 
 from runtime.guard.watchdog import RULE_IDS
+from runtime.records.kinds import Event, RecordError, WireRecord, parse_log_record
 
 TRIPS_FORMAT = "corral-trips"
 RUNLOG_FORMAT = "corral-runlog"
@@ -58,6 +63,13 @@ def _plain(obj: Any) -> Any:
     if isinstance(obj, (set, frozenset)):
         return sorted(obj)
     raise TypeError(f"cannot record a {type(obj).__name__}")
+
+
+def _plain_map(record: dict[str, Any]) -> dict[str, Any]:
+    """A map with numpy values (the tick's arrays and scalars) as plain values."""
+    return {k: (_plain_map(v) if isinstance(v, dict) else
+                _plain(v) if isinstance(v, (np.ndarray, np.generic)) else v)
+            for k, v in record.items()}
 
 
 def _packer() -> msgpack.Packer:
@@ -141,6 +153,8 @@ class TripLog:
         self._lock = threading.Lock()
         self._packer = _packer()
         self.records = 0
+        self.schema_errors: list[str] = []
+        """Why each record written as given did not match its schema (a bug: say so)."""
         existed = self.path.exists() and self.path.stat().st_size > 0
         if existed:
             good = _complete_length(self.path)
@@ -160,18 +174,26 @@ class TripLog:
             self._fh.flush()
             os.fsync(self._fh.fileno())
 
-    def append(self, record: dict[str, Any]) -> None:
-        """Write one record (a "trip", "post" or "event" map) durably: write, flush, fsync."""
+    def append(self, record: WireRecord | dict[str, Any]) -> None:
+        """Write one record (trip, post, event, end) durably: write, flush, fsync."""
         if self._fh.closed:
             raise ValueError(f"trip log {self.path} is closed")
-        self._write(record)
+        if isinstance(record, WireRecord):
+            wire = record.to_wire()
+        else:
+            try:
+                wire = parse_log_record(_plain_map(record)).to_wire()
+            except RecordError as exc:
+                self.schema_errors.append(str(exc))
+                wire = record
+        self._write(wire)
         self.records += 1
 
     def event(self, kind: str, detail: str = "", tick: int = -1,
-              t_mono: float | None = None) -> dict[str, Any]:
+              t_mono: float | None = None) -> Event:
         """Append an operator event (arm, disarm, reset, stop, mode, refused, ...); returns it."""
-        rec = {"type": "event", "t_mono": time.monotonic() if t_mono is None else t_mono,
-               "t_wall": time.time(), "tick": int(tick), "kind": kind, "detail": detail}
+        rec = Event(t_mono=time.monotonic() if t_mono is None else t_mono,
+                    t_wall=time.time(), tick=int(tick), kind=kind, detail=detail)
         self.append(rec)
         return rec
 
@@ -222,8 +244,11 @@ class RunLogWriter:
                                         daemon=True)
         self._thread.start()
 
-    def append(self, row: Sequence[Any]) -> bool:
-        """Queue one tick row; False (and `.dropped` += 1) when the queue is full. Never blocks."""
+    def append(self, row: Sequence[Any] | WireRecord) -> bool:
+        """Queue one tick row (positional, `runtime.records.kinds.TickRecord.to_row`), or
+        the end record after the rows; False (and `.dropped` += 1) when the queue is full.
+        Never blocks, never converts: a record is turned into its map by the writer
+        thread."""
         if self._closing or len(self._queue) >= self.queue_size:
             self.dropped += 1
             return False
@@ -257,7 +282,10 @@ class RunLogWriter:
                     continue
                 chunks: list[bytes] = []
                 while queue and len(chunks) < 1024:
-                    chunks.append(packer.pack(queue.popleft()))
+                    item = queue.popleft()
+                    if isinstance(item, WireRecord):
+                        item = item.to_wire()
+                    chunks.append(packer.pack(item))
                 fh.write(b"".join(chunks))
                 self.written += len(chunks)
                 now = time.monotonic()

@@ -115,8 +115,8 @@ def _rule_activity(trip: Trip) -> dict[str, NDArray[np.float64]]:
         ticks = tick_col
     else:
         ticks = trip.tick + (np.arange(n) - cap.trip_index)
-    fired = [(trip.rule, trip.tick)] + [(str(r.get("rule")), int(r.get("tick", trip.tick)))
-                                        for r in trip.later]
+    fired = [(trip.rule, trip.tick)] + [(r.rule, r.tick if "tick" not in r.missing
+                                         else trip.tick) for r in trip.rec.later]
     for rule, tick in fired:
         if rule in out:
             out[rule] = np.maximum(out[rule], np.asarray(ticks >= tick, dtype=float))

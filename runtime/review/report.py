@@ -27,13 +27,14 @@ from typing import Any
 import numpy as np
 
 from runtime.guard.supervisor import MODE_CODE
+from runtime.records.kinds import Event, RunEnd
 from runtime.records.logs import (
     TRIPS_SUFFIX,
     LogReadError,
     Trip,
     read_run_log,
     read_stream,
-    read_trip_log,
+    read_trip_records,
 )
 from runtime.records.runinfo import END_HOW, LINK_KINDS, how_ended, iso_time, say_value
 
@@ -197,27 +198,26 @@ def report_data(run_log: str | Path) -> dict[str, Any]:
     _, records, torn = read_stream(run_log)
     trip_path = run_log.with_suffix(TRIPS_SUFFIX)
     trips: list[Trip] = []
-    events: list[dict[str, Any]] = []
-    trip_header: dict[str, Any] = {}
-    trip_records: list[Any] = []
+    events: list[Event] = []
+    trip_end: RunEnd | None = None
     if trip_path.exists():
         try:
-            trip_header, trips, events, _ = read_trip_log(trip_path)
-            trip_records = read_stream(trip_path)[1]
+            got = read_trip_records(trip_path)
+            trips, events, trip_end = got.trips, got.events, got.end
         except LogReadError:
             pass
-    ended = how_ended(records, header)
-    if ended["how"] in ("cut_short", "unknown") and trip_records:
-        alt = how_ended(trip_records, trip_header or header)
-        if alt.get("how") not in ("cut_short", "unknown"):
-            ended = alt  # the trip log is fsynced per record: it may hold what the run log lost
+    end = RunEnd.from_wire(how_ended(records, header))
+    if (end.how in ("cut_short", "unknown") and trip_end is not None
+            and trip_end.how not in ("cut_short", "unknown")):
+        end = trip_end  # the trip log is fsynced per record: it may hold what the run log lost
+    ended = end.to_wire()
     ratio = cols.get("ratio")
     max_ratio = float(np.nanmax(ratio)) if ratio is not None and ratio.size else None
     levels = header.get("levels") or {"warning": 0.8, "trip": 0.9}
     period = float(header.get("period") or 0.001)
     above = (float(np.sum(ratio >= levels.get("warning", 0.8)) * period)
              if ratio is not None and ratio.size else 0.0)
-    preflight = next((ev.get("preflight") for ev in events if ev.get("kind") == "preflight"),
+    preflight = next((ev.extra.get("preflight") for ev in events if ev.kind == "preflight"),
                      None)
     late = cols.get("lateness_us")
     age = cols.get("sample_age_ms")
@@ -237,7 +237,8 @@ def report_data(run_log: str | Path) -> dict[str, Any]:
         **_pointing_error(header, cols),
         "preflight": preflight, "hostcheck": header.get("hostcheck"),
         "trips": [t.summary() for t in trips],
-        "events": [{k: v for k, v in ev.items() if k != "preflight"} for ev in events],
+        "events": [{k: v for k, v in ev.to_wire().items() if k != "preflight"}
+                   for ev in events],
         "loop_from_run_log": dict(zip(("lateness_p50_us", "lateness_p99_us", "lateness_max_us"),
                                       _stats(late if late is not None else []), strict=True)),
         "sample_age_ms": dict(zip(("p50", "p99", "max"),
@@ -326,18 +327,17 @@ def build_report(run_log: str | Path) -> str:
     section("margin", "The margin over the whole run", margin)
     tparts = [] if trips else ["<p>No trips.</p>"]
     for tr in trips:
-        fo = tr.first_out
+        fo = tr.rec.first_out
         later = ", ".join(
-            f"{_e(r.get('rule'))} "
-            f"({_e(say_value(str(r.get('rule')), r.get('value'), r.get('threshold')))})"
-            for r in tr.later) or "none"
+            f"{_e(r.rule)} ({_e(say_value(r.rule, r.value, r.threshold))})"
+            for r in tr.rec.later) or "none"
         tparts.append(f'<div class="trip" id="trip-{tr.id}"><h3>Trip {tr.id}: {_e(tr.rule)}'
                       f"</h3>" + _kv({
                           "at": iso_time(tr.t_wall), "tick": tr.tick,
-                          "time in the run [s]": tr.record.get("t"),
+                          "time in the run [s]": tr.rec.t,
                           "what crossed": say_value(tr.rule, tr.value, tr.threshold,
-                                                    fo.get("on_delay_s")),
-                          "signal": fo.get("signal"), "on-delay [s]": fo.get("on_delay_s"),
+                                                    fo.on_delay_s),
+                          "signal": fo.signal or None, "on-delay [s]": fo.on_delay_s,
                           "action": tr.action,
                           "detection to action [us]": tr.detect_to_action_us,
                           "later rules": later,

@@ -38,9 +38,9 @@ def rule_series(trip: Trip, rule: str) -> tuple[np.ndarray, float | None, str, s
     """
     cap = trip.capture()
     word, unit, scale = RULE_SIGNALS.get(rule, (rule, "", 1.0))
-    entry = trip.first_out if rule == trip.rule else next(
-        (r for r in trip.later if r.get("rule") == rule), {})
-    thr = entry.get("threshold")
+    entry = trip.rec.first_out if rule == trip.rule else next(
+        (r for r in trip.rec.later if r.rule == rule), None)
+    thr: Any = entry.threshold if entry is not None else None
     if not isinstance(thr, (int, float)):
         thr = next((r.get("threshold") for r in trip.header.get("watchdog") or []
                     if isinstance(r, dict) and r.get("rule") == rule), None)
@@ -94,8 +94,8 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
     first = rule_series(trip, trip.rule)
     panels.append("first")
     later = []
-    for entry in trip.later:
-        r = str(entry.get("rule"))
+    for entry in trip.rec.later:
+        r = entry.rule
         ser = rule_series(trip, r)
         if ser is not None and ser[1]:
             later.append((r, ser))
@@ -121,7 +121,7 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
     for ax, panel in zip(axes, panels, strict=True):
         if panel == "first":
             word, unit, scale = RULE_SIGNALS.get(trip.rule, (trip.rule, "", 1.0))
-            delay = trip.first_out.get("on_delay_s")
+            delay = trip.rec.first_out.on_delay_s
             if first is not None:
                 vals, thr, word, unit = first
                 ax.plot(t_ms, vals, color="tab:red", lw=1.3, label=f"{trip.rule}: {word}")
@@ -208,14 +208,14 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
         if shown else ""))
     axes[0].annotate("trip", xy=(0.0, 1.0), xycoords=("data", "axes fraction"),
                      color="tab:red", fontsize=8, ha="left", va="bottom")
-    fo = trip.first_out
+    fo = trip.rec.first_out
     when = iso_time(trip.t_wall)
     title = (f"{trip.rig} trip {trip.id}: first out {trip.rule} "
-             f"({say_value(trip.rule, trip.value, trip.threshold, fo.get('on_delay_s'))})"
+             f"({say_value(trip.rule, trip.value, trip.threshold, fo.on_delay_s)})"
              f" -> {trip.action}")
     sub = f"{when}, tick {trip.tick}, config {trip.config_hash}"
     if trip.later:
-        sub += ", later: " + ", ".join(str(r.get("rule")) for r in trip.later)
+        sub += ", later: " + ", ".join(r.rule for r in trip.rec.later)
     if trip.cut_short:
         sub += "  [log cut short]"
     fig.suptitle(title + "\n" + sub, fontsize=10)
