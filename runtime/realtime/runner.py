@@ -309,7 +309,7 @@ class Runner:
             core.arm_refusal = (f"preflight NO-GO: {reasons} (record {verdict['record']}; "
                                 "fix the config, or run with --no-preflight at your own risk)")
             detail = f"NO-GO: {reasons}"
-        core._event("preflight", detail, preflight=verdict)
+        core.event("preflight", detail, preflight=verdict)
         # Clients connecting later see the verdict in the hello.
         self.telemetry.hello["preflight"] = verdict
         if self.mqtt is not None:
@@ -504,7 +504,7 @@ class Runner:
         core.link_detail = detail
         self.link_losses.append({"t": core.t, "tick": core.tick, "detail": detail,
                                  "reason": reason})
-        core._event("link", f"link lost: {detail} ({reason})")
+        core.event("link", f"link lost: {detail} ({reason})")
 
     async def _reconnect(self) -> None:
         """Bring the link back with backoff (the runtime stays latched: re-arm is the
@@ -526,7 +526,7 @@ class Runner:
         self._sessions = _link_sessions(link)
         core.link_up = True
         core.link_detail = ""
-        core._event("link", f"link back after {len(self.link_losses)} loss(es); the trip "
+        core.event("link", f"link back after {len(self.link_losses)} loss(es); the trip "
                     "stays latched: clear, reset, then arm")
 
     def _drain_link_events(self) -> None:
@@ -534,7 +534,7 @@ class Runner:
         events = getattr(self.link, "events", None)
         while events:
             kind, detail = events.popleft()
-            self.core._event(kind, detail)
+            self.core.event(kind, detail)
 
     def summary(self) -> dict[str, Any]:
         """The run's figures (the `--json` object)."""
@@ -562,5 +562,5 @@ class Runner:
             "link_up": core.link_up,
             "link_kind": core.link_info["kind"], "link_info": core.link_info,
             "run_name": core.run_name,
-            "ended": getattr(core, "end", {}).get("how"),
+            "ended": core.end.get("how"),
         }
