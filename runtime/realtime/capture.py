@@ -8,12 +8,15 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from runtime.guard.supervisor import MODE_CODE
 from runtime.guard.watchdog import Rule
 from runtime.method.design import Design
 from runtime.realtime.tick_state import TickState
 from runtime.records.runinfo import RULE_SIGNAL_UNITS
+
+Array = NDArray[np.float64]
 
 
 def _capture_layout(design: Design, p: int,
@@ -70,7 +73,7 @@ class Capture:
         self._put = put
 
     def fill(self, st: TickState, mode: str, latched: bool, sample_age: float,
-             lateness: float) -> np.ndarray[Any, np.dtype[np.float64]]:
+             lateness: float) -> Array:
         """This tick's row (a buffer reused every tick), also kept in the pre-trip ring."""
         k = st.tick
         row = self.row
@@ -102,7 +105,7 @@ class Capture:
         self.ring[k % self.pre_n] = row
         return row
 
-    def pre_rows(self, k: int) -> np.ndarray[Any, np.dtype[np.float64]]:
+    def pre_rows(self, k: int) -> Array:
         """The ring's rows up to and including tick k, oldest first (a copy)."""
         n_pre = min(k + 1, self.pre_n)
         idx = (np.arange(k + 1 - n_pre, k + 1)) % self.pre_n

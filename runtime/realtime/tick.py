@@ -21,7 +21,7 @@ import contextlib
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TextIO
 
 import numpy as np
 from numpy.typing import NDArray
@@ -35,7 +35,6 @@ from runtime.method.bound import schedule_from_config as schedule_from_bound
 from runtime.method.commands import schedule_from_config, tracked_names
 from runtime.method.design import Design
 from runtime.realtime.capture import Capture
-from runtime.realtime.clock import LatencyStats
 from runtime.realtime.control import AdaptiveControl
 from runtime.realtime.estimator import Estimator, rate_pairs
 from runtime.realtime.events import EventLog
@@ -44,7 +43,6 @@ from runtime.realtime.law_adapter import LawAdapter
 from runtime.realtime.record_writer import RecordWriter
 from runtime.realtime.requests import OperatorRequests
 from runtime.realtime.settings import RunSettings, TickSettings
-from runtime.realtime.telemetry import TelemetryServer
 from runtime.realtime.tick_records import (
     hello_record,
     link_counters,
@@ -56,7 +54,7 @@ from runtime.realtime.tick_records import (
 from runtime.realtime.tick_state import TickState
 from runtime.realtime.timing import TickTiming
 from runtime.realtime.trips import TripContext, TripHandler
-from runtime.records.logs import log_paths
+from runtime.records.logs import RunLogWriter, log_paths
 from runtime.records.runinfo import link_identity, run_name
 
 if TYPE_CHECKING:  # the simulated rig and its faults are built by the runner
@@ -356,7 +354,7 @@ class TickCore:
                                 self.design.step_gain_cap, self.trip_handler.current_trip,
                                 self.trips)
 
-    def console(self) -> Any:
+    def console(self) -> TextIO:
         """Where progress lines go (`RecordWriter.console`)."""
         return self.writer.console()
 
@@ -387,14 +385,6 @@ class TickCore:
         return self.state.tick
 
     @property
-    def t(self) -> float:
-        return self.state.t
-
-    @property
-    def seq(self) -> int:
-        return self.state.seq
-
-    @property
     def outputs_on(self) -> bool:
         return self.state.outputs_on
 
@@ -409,38 +399,6 @@ class TickCore:
     @link_up.setter
     def link_up(self, value: bool) -> None:
         self.state.link_up = value
-
-    @property
-    def link_detail(self) -> str:
-        return self.state.link_detail
-
-    @link_detail.setter
-    def link_detail(self, value: str) -> None:
-        self.state.link_detail = value
-
-    @property
-    def lateness(self) -> float:
-        return self.timing.lateness
-
-    @lateness.setter
-    def lateness(self, value: float) -> None:
-        self.timing.lateness = value
-
-    @property
-    def loop_stats(self) -> LatencyStats | None:
-        return self.timing.stats
-
-    @loop_stats.setter
-    def loop_stats(self, value: LatencyStats | None) -> None:
-        self.timing.stats = value
-
-    @property
-    def telemetry(self) -> TelemetryServer | None:
-        return self.writer.telemetry
-
-    @telemetry.setter
-    def telemetry(self, value: TelemetryServer | None) -> None:
-        self.writer.telemetry = value
 
     @property
     def arm_refusal(self) -> str | None:
@@ -467,7 +425,7 @@ class TickCore:
         return self.events.suppressed
 
     @property
-    def run_log(self) -> Any:
+    def run_log(self) -> RunLogWriter:
         return self.writer.run_log
 
 

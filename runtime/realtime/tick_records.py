@@ -162,7 +162,8 @@ def internal_snapshot(st: TickState, mode: str) -> Record:
 def trip_record(*, trip_id: int, t_detect: float, tick: int, t: float, first_out: Record,
                 later: list[Record], action: str, detect_to_action_us: float,
                 snapshot: Record, rig: str, config_hash: str, events: list[Record],
-                pre: Any, exception: str | None = None) -> Record:
+                pre: NDArray[np.float64] | list[list[float]],
+                exception: str | None = None) -> Record:
     """The trip record (trip log): first-out, later rules, action, snapshot, the events
     before it and the pre-trip capture rows (`pre`: an array the writer turns into lists).
     `exception`: the traceback of the `internal` trip."""
