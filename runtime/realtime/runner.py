@@ -562,5 +562,5 @@ class Runner:
             "link_up": core.link_up,
             "link_kind": core.link_info["kind"], "link_info": core.link_info,
             "run_name": core.run_name,
-            "ended": core.end.get("how"),
+            "ended": getattr(core, "end", {}).get("how"),
         }
