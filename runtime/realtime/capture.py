@@ -1,18 +1,26 @@
-"""The layout of a tick row: the run log fields, the pre/post trip capture, their units."""
+"""The tick row (`Capture`): its layout (run log fields, units), how a tick fills it, and
+the pre/post trip capture around it (a ring of recent rows, the rows after a trip)."""
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
+from runtime.guard.supervisor import MODE_CODE
+from runtime.guard.watchdog import Rule
 from runtime.method.design import Design
+from runtime.realtime.tick_state import TickState
 from runtime.records.runinfo import RULE_SIGNAL_UNITS
+
+Array = NDArray[np.float64]
 
 
 def _capture_layout(design: Design, p: int,
-                    rules: Any = ()) -> tuple[list[str], list[int], list[str]]:
+                    rules: Sequence[Rule] = ()) -> tuple[list[str], list[int], list[str]]:
     rig = design.rig
     su = ",".join(rig.state_units)
     iu = ",".join(rig.input_units)
@@ -31,3 +39,108 @@ def _capture_layout(design: Design, p: int,
 
 def _finite(v: float) -> float | None:
     return v if math.isfinite(v) else None
+
+
+class Capture:
+    """The tick row and the trip capture around it.
+
+    `fill` writes this tick's row (the run log row) and keeps it in the pre-trip ring
+    (`pre_s` seconds); after a trip, `start_post` collects the next `post_s` seconds of
+    rows and hands them to `put` as one ``post`` record (`flush_post`), with the rules
+    that tripped meanwhile.
+    """
+
+    def __init__(self, design: Design, p: int, rules: Sequence[Rule], pre_s: float,
+                 post_s: float, put: Callable[[dict[str, Any]], None]) -> None:
+        Ts = design.Ts
+        self.fields, self.widths, self.units = _capture_layout(design, p, rules)
+        self.row_len = sum(self.widths)
+        offs = np.cumsum([0] + self.widths)
+        self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
+        # Where each rule's judged signal goes in the row (one assignment per tick).
+        self._sig_rules = list(rules)
+        self._sig_at = np.array([self.slot[f"sig_{r.id}"].start for r in self._sig_rules],
+                                dtype=np.intp)
+        self.pre_n = max(1, int(round(pre_s / Ts)))
+        self.post_n = int(round(post_s / Ts))
+        self.ring = np.zeros((self.pre_n, self.row_len))
+        self.post_buf = np.zeros((max(1, self.post_n), self.row_len))
+        self.post_count = 0
+        self.post_trip: int | None = None
+        """The trip whose post capture is being collected (None: none)."""
+        self.post_later: list[dict[str, Any]] = []
+        self.row = np.zeros(self.row_len)
+        self._put = put
+
+    def fill(self, st: TickState, mode: str, latched: bool, sample_age: float,
+             lateness: float) -> Array:
+        """This tick's row (a buffer reused every tick), also kept in the pre-trip ring."""
+        k = st.tick
+        row = self.row
+        sl = self.slot
+        row[0] = st.t
+        row[1] = k
+        row[2] = MODE_CODE[mode]
+        row[3] = float(latched)
+        row[sl["c"]] = st.c
+        row[sl["x"]] = st.x
+        # The law's figures whenever it ran this tick, also when the tick ended in a
+        # fallback (the tick that tripped the margin rule is in the log with its ratio).
+        engaged = st.law_ran
+        row[sl["xr"]] = st.x - st.e if engaged else st.x
+        row[sl["e"]] = st.e if engaged else 0.0
+        row[sl["s"]] = st.s if engaged else 0.0
+        row[sl["eps"]] = st.eps_now
+        row[sl["ratio"]] = st.ratio if engaged else 0.0
+        row[sl["phi_d"]] = st.phi_d
+        row[sl["eff_rate"]] = st.eff_rate
+        row[sl["step_gain"]] = st.step_gain
+        row[sl["u_cmd"]] = st.u_cmd
+        row[sl["u"]] = st.u
+        row[sl["w_norm"]] = st.w_norm
+        row[sl["sample_age_ms"]] = min(sample_age, 1e6) * 1e3
+        row[sl["lateness_us"]] = lateness * 1e6
+        row[sl["outputs_on"]] = float(st.outputs_on)
+        row[self._sig_at] = [r.last_value for r in self._sig_rules]
+        self.ring[k % self.pre_n] = row
+        return row
+
+    def pre_rows(self, k: int) -> Array:
+        """The ring's rows up to and including tick k, oldest first (a copy)."""
+        n_pre = min(k + 1, self.pre_n)
+        idx = (np.arange(k + 1 - n_pre, k + 1)) % self.pre_n
+        return self.ring[idx].copy()
+
+    def pre_rows_before(self, k: int) -> list[list[float]]:
+        """The ring's rows before tick k, oldest first (the `internal` trip: tick k's row
+        was never filled)."""
+        n_pre = min(k, self.pre_n)
+        idx = np.arange(k - n_pre, k) % self.pre_n
+        rows: list[list[float]] = self.ring[idx].tolist()
+        return rows
+
+    # ------------------------------------------------------------- post capture
+    def start_post(self, trip_id: int) -> None:
+        """Collect the rows after trip `trip_id` (flushing at once when post_s is 0)."""
+        self.post_trip = trip_id
+        self.post_count = 0
+        self.post_later = []
+        if self.post_n == 0:
+            self.flush_post()
+
+    def add_post(self) -> None:
+        """This tick's row into the post capture (flushed once full)."""
+        self.post_buf[self.post_count] = self.row
+        self.post_count += 1
+        if self.post_count >= self.post_n:
+            self.flush_post()
+
+    def flush_post(self) -> None:
+        """Hand the post capture collected so far to the writer as one ``post`` record."""
+        if self.post_trip is None:
+            return
+        rec = {"type": "post", "trip_id": self.post_trip,
+               "rows": self.post_buf[:self.post_count].copy(), "later": list(self.post_later)}
+        self._put(rec)
+        self.post_trip = None
+        self.post_count = 0

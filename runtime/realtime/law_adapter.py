@@ -2,13 +2,17 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import NDArray
 
 from runtime.config import Config, ConfigError
 from runtime.method.design import Design
+
+if TYPE_CHECKING:  # the implementations are imported where the chosen one is built
+    from runtime.kernels.lawpack import FastLaw, FastTick
+    from runtime.method.law import AdaptiveLaw, LawState, TickOut
 
 Array = NDArray[np.float64]
 
@@ -33,63 +37,81 @@ class LawAdapter:
     def __init__(self, design: Design, impl: str = "fast", cfg: Config | None = None) -> None:
         self.impl = impl
         self.n, self.m = design.rig.n, design.rig.m
+        self._fast: FastLaw | None = None
+        self._law: AdaptiveLaw | None = None
         if impl == "fast":
+            # Deferred: numba and the compiled kernels load only when this law is chosen.
             from runtime.kernels.fast import FastLaw, ModifierSettings
 
             try:
                 mods = (ModifierSettings.from_config(cfg, design) if cfg is not None
                         else None)
-                self._fast: Any = FastLaw(design, mods)
+                fast = FastLaw(design, mods)
             except ValueError as exc:
                 raise ConfigError("loop.law", f"the compiled law cannot run this config: {exc}",
                                   'set loop.law = "reference" (the numpy law).') from None
-            self._law: Any = None
             # Compile (or load) the kernels now, not on the first engaged tick.
-            self._fast.init_state(np.zeros(self.n))
-            self._fast.step(np.zeros(self.n), np.zeros(design.K2.shape[1]))
-            self._fast.init_state(np.zeros(self.n))
+            fast.init_state(np.zeros(self.n))
+            fast.step(np.zeros(self.n), np.zeros(design.K2.shape[1]))
+            fast.init_state(np.zeros(self.n))
+            self._fast = fast
         else:
             from runtime.method.law import AdaptiveLaw, law_from_config
 
             self._law = law_from_config(cfg, design) if cfg is not None else AdaptiveLaw(design)
-            self._fast = None
-        self._state: Any = None
-        self.out: Any = None
+        self._state: LawState | None = None
+        self.out: FastTick | TickOut | None = None
+
+    def _reference(self) -> tuple[AdaptiveLaw, LawState]:
+        """The numpy law and its state (the reference implementation, engaged)."""
+        if self._law is None or self._state is None:
+            raise RuntimeError("the reference law has not been engaged")
+        return self._law, self._state
 
     def engage(self, x: Array) -> None:
         """x_r = x, weights zero, adaptation on."""
         if self._fast is not None:
             self._fast.init_state(x)
-        else:
+        elif self._law is not None:
             self._state = self._law.init_state(x)
         self.frozen = False
 
     @property
     def frozen(self) -> bool:
         """Adaptation held (a fallback is active)."""
-        return bool((self._fast or self._law).frozen)
+        impl = self._fast or self._law
+        return bool(impl is not None and impl.frozen)
 
     @frozen.setter
     def frozen(self, value: bool) -> None:
-        (self._fast or self._law).frozen = bool(value)
+        impl = self._fast or self._law
+        if impl is not None:
+            impl.frozen = bool(value)
 
     @property
     def xr(self) -> Array:
         """Reference state (live)."""
-        return self._fast.xr if self._fast is not None else self._state.xr
+        if self._fast is not None:
+            return self._fast.xr
+        return self._reference()[1].xr
 
     @property
     def W(self) -> Array:
         """Weights (live)."""
-        return self._fast.W if self._fast is not None else self._state.W
+        if self._fast is not None:
+            return self._fast.W
+        return self._reference()[1].W
 
-    def step(self, x: Array, c: Array, eps: float | None = None) -> Any:
+    def step(self, x: Array, c: Array, eps: float | None = None) -> FastTick | TickOut:
         """One adaptive tick under bound eps (None: the design's constant eps).
 
         The result has u, u_raw, e, s, ratio, phi_d, eff_rate, step_gain, clamped.
         """
+        out: FastTick | TickOut
         if self._fast is not None:
-            self.out = self._fast.step(x, c, eps)
+            out = self._fast.step(x, c, eps)
         else:
-            self.out = self._law.step(self._state, x, c, eps)
-        return self.out
+            law, state = self._reference()
+            out = law.step(state, x, c, eps)
+        self.out = out
+        return out

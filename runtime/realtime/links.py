@@ -6,13 +6,16 @@ Extend `make_link` for new transports."""
 from __future__ import annotations
 
 import dataclasses
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from drivers.base import Link
 from runtime.config import Config, ConfigError
 from runtime.method.design import Design, design_from_config
+
+if TYPE_CHECKING:  # the simulated rig is imported where it is built
+    from sim_rigs.faults import FaultSchedule
 
 
 # ------------------------------------------------------------------ links
@@ -36,7 +39,7 @@ def command_timeout(cfg: Config) -> float:
 
 
 def make_link(cfg: Config, spec: str | None, design: Design | None = None,
-              faults: Any = None) -> Link:
+              faults: FaultSchedule | None = None) -> Link:
     """The link a config (``rig.link``) or ``--link SPEC`` names.
 
     ``sim``: the simulated rig in-process (`sim_rigs.link.SimLink`), stepped

@@ -19,12 +19,13 @@ off before the error propagates.
 
 The code lives in parts, one job each; this module re-exports their public names so
 ``from runtime.realtime.loop import Runner, RunSettings`` keeps working:
-`runtime.realtime.tick` (TickCore, the tick), `runtime.realtime.runner` (Runner, the rig
-lock), `runtime.realtime.settings` (RunSettings and the start-up settings),
-`runtime.realtime.links` (make_link, the link helpers), `runtime.realtime.law_adapter`
-(LawAdapter), `runtime.realtime.capture` (the tick row's layout). What does not live here: the law
-(`runtime.method.law`), rules (`runtime.guard.watchdog`), modes (`runtime.guard.supervisor`),
-fallbacks (`runtime.guard.fallback`), files (`runtime.records.logs`).
+`runtime.realtime.tick` (TickCore, the tick order; its parts are listed there),
+`runtime.realtime.runner` (Runner, the rig lock), `runtime.realtime.settings` (RunSettings
+and the start-up settings), `runtime.realtime.links` (make_link, the link helpers),
+`runtime.realtime.law_adapter` (LawAdapter), `runtime.realtime.capture` (the tick row, the
+trip capture). What does not live here: the law (`runtime.method.law`), rules
+(`runtime.guard.watchdog`), modes (`runtime.guard.supervisor`), fallbacks
+(`runtime.guard.fallback`), files (`runtime.records.logs`).
 """
 
 from runtime.realtime.law_adapter import LawAdapter

@@ -162,7 +162,7 @@ class Runner:
                                          client_buffer=int(cfg.number(
                                              "telemetry.client_buffer")),
                                          **operator_settings(cfg))
-        self.core.telemetry = self.telemetry
+        self.core.writer.telemetry = self.telemetry
         self.mqtt_settings = mqtt_telemetry_settings(cfg, settings.link, settings.telemetry_mqtt,
                                                      self.design.rig.name)
         self.mqtt: MqttBridge | None = None
@@ -176,7 +176,7 @@ class Runner:
         self.clock = DeadlineClock(self.design.Ts,
                                    spin_us=cfg.number("loop.spin_us"),
                                    realtime=cfg.flag("loop.realtime"))
-        self.core.loop_stats = self.clock.stats
+        self.core.timing.stats = self.clock.stats
         self.miss_after = cfg.number("loop.miss_after_periods")
         """Rig-clocked: a sample handled later than this many periods after its expected
         arrival is a deadline miss (`runtime.realtime.clock.ArrivalTracker`)."""
@@ -309,7 +309,7 @@ class Runner:
             core.arm_refusal = (f"preflight NO-GO: {reasons} (record {verdict['record']}; "
                                 "fix the config, or run with --no-preflight at your own risk)")
             detail = f"NO-GO: {reasons}"
-        core._event("preflight", detail, preflight=verdict)
+        core.event("preflight", detail, preflight=verdict)
         # Clients connecting later see the verdict in the hello.
         self.telemetry.hello["preflight"] = verdict
         if self.mqtt is not None:
@@ -367,7 +367,7 @@ class Runner:
         base: list[float] = []
 
         def tick(k: int, deadline: float) -> None:
-            core.lateness = mono() - deadline
+            core.timing.lateness = mono() - deadline
             if not base:
                 base.append(deadline)
             # Rig time of this tick on the host clock: skipped deadlines are counted by
@@ -412,7 +412,7 @@ class Runner:
             await asyncio.to_thread(clock.join, 5.0)
             # Outputs off before anything else happens.
             with contextlib.suppress(Exception):
-                link.apply(Command(core.seq + 1, (0.0,) * core.m, 0))
+                link.apply(Command(core.state.seq + 1, (0.0,) * core.m, 0))
         if clock.error is not None:
             self.error = clock.error
 
@@ -463,9 +463,9 @@ class Runner:
                         reconnecting = None
                 now = mono()
                 if sample is not None:
-                    core.lateness, missed = arrivals.handle(
+                    core.timing.lateness, missed = arrivals.handle(
                         sample.seq, sample.t_device, sample.t_host or now, now)
-                    stats.add(core.lateness)
+                    stats.add(core.timing.lateness)
                     stats.misses += missed
                 self._drain_link_events()
                 sessions = _link_sessions(link)
@@ -490,7 +490,7 @@ class Runner:
                 with contextlib.suppress(BaseException):
                     await asyncio.wait({reconnecting}, timeout=5.0)
             with contextlib.suppress(Exception):
-                await link.send(Command(core.seq + 1, (0.0,) * core.m, 0))
+                await link.send(Command(core.state.seq + 1, (0.0,) * core.m, 0))
             restore_threads(helpers)
             set_thread_policy(policy)
 
@@ -501,10 +501,10 @@ class Runner:
             return
         detail = loss_detail(reason)
         core.link_up = False
-        core.link_detail = detail
-        self.link_losses.append({"t": core.t, "tick": core.tick, "detail": detail,
+        core.state.link_detail = detail
+        self.link_losses.append({"t": core.state.t, "tick": core.tick, "detail": detail,
                                  "reason": reason})
-        core._event("link", f"link lost: {detail} ({reason})")
+        core.event("link", f"link lost: {detail} ({reason})")
 
     async def _reconnect(self) -> None:
         """Bring the link back with backoff (the runtime stays latched: re-arm is the
@@ -525,8 +525,8 @@ class Runner:
         core.est.restart_link()
         self._sessions = _link_sessions(link)
         core.link_up = True
-        core.link_detail = ""
-        core._event("link", f"link back after {len(self.link_losses)} loss(es); the trip "
+        core.state.link_detail = ""
+        core.event("link", f"link back after {len(self.link_losses)} loss(es); the trip "
                     "stays latched: clear, reset, then arm")
 
     def _drain_link_events(self) -> None:
@@ -534,7 +534,7 @@ class Runner:
         events = getattr(self.link, "events", None)
         while events:
             kind, detail = events.popleft()
-            self.core._event(kind, detail)
+            self.core.event(kind, detail)
 
     def summary(self) -> dict[str, Any]:
         """The run's figures (the `--json` object)."""

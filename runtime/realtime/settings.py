@@ -5,13 +5,16 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, TextIO
 
 import numpy as np
 from numpy.typing import NDArray
 
 from runtime.config import Config, ConfigError
 from runtime.method.design import Design
+
+if TYPE_CHECKING:  # the MQTT driver is imported only when a run publishes over MQTT
+    from drivers.mqtt_link import MqttSettings
 
 
 # ------------------------------------------------------------------ run settings
@@ -33,7 +36,7 @@ class RunSettings:
     hostcheck: dict[str, Any] | None = None
     """The host check's result (`runtime.realtime.hostcheck.pre_arm_check`) when one ran before the
     run: it goes into the log headers, the telemetry hello and the summary."""
-    console: Any = None
+    console: TextIO | None = None
     """Where progress and trip lines go (a text file while a dashboard owns the terminal);
     None = stderr."""
 
@@ -82,7 +85,7 @@ class TickSettings:
 
 
 def mqtt_telemetry_settings(cfg: Config, link_spec: str | None, telemetry_mqtt: str | None,
-                            rig: str) -> Any:
+                            rig: str) -> MqttSettings | None:
     """The broker settings telemetry is published with, or None (no MQTT telemetry).
 
     An MQTT link (``mqtt://HOST:PORT/RIG``) publishes on its own broker under its
