@@ -21,6 +21,20 @@ When a tick overruns by more than a whole period the missed deadlines are
 counted as deadline misses and the clock resynchronises to the next future
 deadline instead of firing a burst of catch-up ticks.
 
+A real-time tick thread that falls behind never starves the rest of the
+machine: at SCHED_FIFO a thread that never blocks keeps its core from every
+normal-priority thread (its own event-loop thread, which may hold the GIL the
+tick then waits for, and other processes) until the kernel's real-time
+throttle (by default 95 % of each second) lets them run. With many runtimes
+on a loaded 2-core host every tick overran its period, so no clock thread ever
+slept: they ran back to back at real-time priority and the machine crawled for
+minutes. So a clock thread at SCHED_FIFO that has not slept for
+`BUSY_LIMIT_PERIODS` periods in a row (a sleep shorter than a tenth of a
+period does not count) sleeps one period anyway, counted as missed deadlines
+the overrun rule sees. The spin is bounded by ``spin_us`` per tick and a late
+tick never spins. A healthy loop sleeps most of every period and never meets
+the bound: the guard changes nothing until the loop is already failing.
+
 What lives here: `DeadlineClock` (the thread-side pacer), `LatencyStats`
 (preallocated lateness record), `try_realtime`, `naive_asyncio_lateness`
 (the comparison the bench prints). What does not: the tick itself
@@ -41,6 +55,10 @@ import numpy as np
 from numpy.typing import NDArray
 
 PR_SET_TIMERSLACK = 29
+BUSY_LIMIT_PERIODS = 3
+"""A clock thread at SCHED_FIFO that has not slept for this many periods (its ticks are
+overrunning) sleeps one period before the next tick, so lower-priority threads and other
+processes on its core get to run (see the module docstring)."""
 
 
 def try_realtime(priority: int = 50) -> str:
@@ -224,6 +242,8 @@ class DeadlineClock:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self.error: BaseException | None = None
+        self.yields = 0
+        """How often the clock thread, behind at SCHED_FIFO, slept a period to let others run."""
 
     def run(self, tick: Callable[[int, float], None],
             on_exit: Callable[[], None] | None = None) -> None:
@@ -232,15 +252,26 @@ class DeadlineClock:
             self.granted = try_realtime(self.priority)
         period, spin, stats = self.period, self.spin, self.stats
         mono, sleep = time.monotonic, time.sleep
+        # Only a real-time thread can starve others by not sleeping (see the docstring).
+        busy_limit = BUSY_LIMIT_PERIODS * period if "SCHED_FIFO" in self.granted else math.inf
+        min_rest = 0.1 * period
         t0 = mono() + period
+        rested = t0
         k = 0
         try:
             while not self._stop.is_set():
                 deadline = t0 + k * period
-                rest = deadline - mono() - spin
+                now = mono()
+                rest = deadline - now - spin
                 if rest > 0:
                     sleep(rest)
-                while mono() < deadline:
+                    if rest >= min_rest:
+                        rested = deadline
+                elif now - rested > busy_limit:
+                    self.yields += 1
+                    sleep(period)
+                    rested = mono()
+                while mono() < deadline:  # at most spin_us: the sleep ended that close
                     pass
                 stats.add(mono() - deadline)
                 tick(k, deadline)
