@@ -302,6 +302,8 @@ KEYS: tuple[Key, ...] = (
         "rig-clocked: a sample this late is a deadline miss", positive=True),
     key("loop.switch_interval_us", NUMBER, 100.0, "us", "interpreter thread switch interval",
         positive=True),
+    key("loop.cpu", VECTOR, OPTIONAL, "CPU number", "pin the runtime's threads to these CPUs"),
+    key("loop.lock_memory", FLAG, True, doc="mlockall the runtime's memory when allowed"),
     key("loop.hostcheck_s", NUMBER, 3.0, "s",
         "host timing check before arming a real rig (0 skips it)", minimum=0.0),
     # [commands]
