@@ -295,7 +295,7 @@ KEYS: tuple[Key, ...] = (
     key("loop.period", NUMBER, REQUIRED, "s", "tick period Ts", positive=True, maximum=1.0),
     key("loop.law", CHOICE, "fast", doc="compiled law or the numpy reference",
         options=("fast", "reference")),
-    key("loop.spin_us", NUMBER, 200.0, "us", "host clock: busy-wait before a deadline",
+    key("loop.spin_us", NUMBER, 200.0, "us", "host clock: most busy-wait before a deadline",
         minimum=0.0),
     key("loop.realtime", FLAG, True, doc="ask for SCHED_FIFO when allowed"),
     key("loop.miss_after_periods", NUMBER, 1.0, "periods",
