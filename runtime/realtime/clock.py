@@ -65,6 +65,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 PR_SET_TIMERSLACK = 29
+FIFO_NOT_INHERITED = os.SCHED_FIFO | getattr(os, "SCHED_RESET_ON_FORK", 0)
+"""SCHED_FIFO that no thread or process started by the thread inherits (sched(7),
+"Resetting scheduling policy for child processes"). Without the flag a helper raised to
+real-time priority handed it to everything it started: `corral rig serve` processes
+started by a test whose main thread a run had raised to SCHED_FIFO 1 ran their start-up,
+and a busy loop after serving, at SCHED_FIFO 1, holding both cores of the shared host for
+minutes (seen live: two such processes at 100 % each for over 7 minutes; every runtime's
+FIFO-1 helpers, which hold the GIL the tick waits for, stopped with them)."""
 P99_STEP = 0.5e-6
 """Step (s) of the running p99 estimate of the wake-up latency (adaptive spin)."""
 EARLY_MARGIN_US = 20.0
@@ -91,7 +99,7 @@ def try_realtime(priority: int = 50) -> str:
         pass
     try:
         prio = min(priority, os.sched_get_priority_max(os.SCHED_FIFO))
-        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(prio))
+        os.sched_setscheduler(0, FIFO_NOT_INHERITED, os.sched_param(prio))
         notes.append(f"SCHED_FIFO priority {prio}")
     except (PermissionError, OSError, AttributeError):
         notes.append("normal priority (SCHED_FIFO not permitted)")
@@ -137,7 +145,7 @@ def raise_helper_threads(priority: int) -> list[int]:
         try:
             if os.sched_getscheduler(tid) != os.SCHED_OTHER:
                 continue
-            os.sched_setscheduler(tid, os.SCHED_FIFO, os.sched_param(priority))
+            os.sched_setscheduler(tid, FIFO_NOT_INHERITED, os.sched_param(priority))
         except (PermissionError, OSError, AttributeError):
             continue
         changed.append(tid)
