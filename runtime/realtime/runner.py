@@ -29,6 +29,7 @@ from runtime.realtime.clock import (
 )
 from runtime.realtime.hostcheck import pre_arm_check
 from runtime.realtime.links import _link_sessions, is_simulated, loss_detail, make_link
+from runtime.realtime.placement import Placement
 from runtime.realtime.settings import (
     _UNIX_PATH_MAX,
     RunSettings,
@@ -114,6 +115,7 @@ class Runner:
 
         self.cfg = cfg
         self.settings = settings
+        self.placement = Placement(cfg)  # loop.cpu checked before anything starts
         self.design = design_from_config(cfg)
         if not self.design.feasible:
             raise ConfigError("design", "the design is refused: " + "; ".join(
@@ -218,6 +220,7 @@ class Runner:
         # rig-clocked over a pty: without this a full collection stalled the loop ~15 ms.
         gc.collect()
         gc.freeze()
+        self.core._event("host", self.placement.apply())  # CPU mask and memory lock
         failure: BaseException | None = None
         try:
             async with self.link:
@@ -249,6 +252,7 @@ class Runner:
         finally:
             sys.setswitchinterval(old_switch)
             gc.unfreeze()
+            self.placement.undo()
             self.core.close(*self._how_ended(failure))
             self.lock.release()
         if self.error is not None:
@@ -556,6 +560,7 @@ class Runner:
             "config_hash": core.config_hash,
             "mqtt": self.mqtt.summary if self.mqtt is not None else None,
             "preflight": self.preflight, "hostcheck": self.settings.hostcheck,
+            "host_setup": self.placement.record(),
             "internal_error": (f"{type(core.internal).__name__}: {core.internal}"
                                if core.internal is not None else None),
             "link_losses": list(self.link_losses),
