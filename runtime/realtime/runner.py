@@ -220,7 +220,7 @@ class Runner:
         # rig-clocked over a pty: without this a full collection stalled the loop ~15 ms.
         gc.collect()
         gc.freeze()
-        self.core._event("host", self.placement.apply())  # CPU mask and memory lock
+        self.core.event("host", self.placement.apply())  # CPU mask and memory lock
         failure: BaseException | None = None
         try:
             async with self.link:
