@@ -95,8 +95,17 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     capped Euler weight update with the modifiers; u_k from the new weights;
     x_r advanced by the exact zero-order hold.
     """
-    n = ic[I_N]
-    m = ic[I_M]
+    law_tick_sized(x, c, eps, ic, fc, st, out, ic[I_N], ic[I_M])
+
+
+@numba.njit(cache=True, inline="always")
+def law_tick_sized(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array, out: Array,
+                   n: int, m: int) -> None:  # pragma: no cover - jit
+    """`law_tick` with the plant's n states and m inputs given (they must equal ic[I_N] and
+    ic[I_M]). The one law tick: `law_tick` passes them from ``ic``; the loops compiled per
+    rig (`runtime.kernels.rigloops`) pass the rig's sizes as compile-time constants, so the
+    compiler unrolls the small loops over states and inputs (the same operations in the
+    same order: the same results to the bit)."""
     p = ic[I_P]
     nreg = ic[I_NREG]
     oP = ic[I_OP]
