@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 from runtime.config import load_config
-from runtime.kernels import fast, lawtick
+from runtime.kernels import fast, lawtick, rigloops
 from runtime.method.design import design_from_config
 from runtime.method.law import AdaptiveLaw
 from runtime.offline.dryrun import dry_run
@@ -351,17 +351,13 @@ def test_unknown_engine_is_refused():
 
 
 # ---------------------------------------------------------------- the sized law tick
-@numba.njit
-def _tick_sized_4_2(x, c, eps, ic, fc, st, out):
-    # the pedestal's sizes as literals, the way the loops compiled per rig pass RIG_N and
-    # RIG_M (runtime.kernels.rigloops): the compiler unrolls the loops over states and inputs
-    lawtick.law_tick_sized(x, c, eps, ic, fc, st, out, 4, 2)
-
-
 def sized_vs_reference(design, xs, cs, eps_t=None, settings=None, modifiers=()):
-    """The sized law tick (as the dry-run loop and the sweep kernel compile it) against the
-    numpy reference (`AdaptiveLaw.step`) on the same measurements, and to the bit against
-    `law_tick` with sizes read at run time; returns the clamp and cap flags per tick."""
+    """The law tick as the dry-run loop and the sweep kernel call it (`law_tick_rig`, compiled
+    in the pedestal's module with its sizes as constants: the compiler unrolls the loops over
+    states and inputs) against the numpy reference (`AdaptiveLaw.step`) on the same
+    measurements, and to the bit against `law_tick` with the sizes read at run time; returns
+    the clamp and cap flags per tick."""
+    tick_rig = rigloops.compiled(RIGS["pedestal"]).law_tick_rig
     ref = AdaptiveLaw(design, modifiers)
     ic, fc = fast.pack_law(design, settings)
     n, m, n_reg = 4, 2, design.n_regressors
@@ -375,7 +371,7 @@ def sized_vs_reference(design, xs, cs, eps_t=None, settings=None, modifiers=()):
         eps = design.eps if eps_t is None else eps_t[k]
         a = ref.step(st, xs[k], cs[k], eps)
         fast.law_tick(xs[k], cs[k], eps, ic, fc, sa, oa)
-        _tick_sized_4_2(xs[k], cs[k], eps, ic, fc, sb, ob)
+        tick_rig(xs[k], cs[k], eps, ic, fc, sb, ob)
         assert np.array_equal(oa[:o + 3 * m + n + n_reg], ob[:o + 3 * m + n + n_reg]), k
         assert np.array_equal(sa, sb), k
         assert close(ob[o:o + m], a.u) and close(ob[o + m:o + 2 * m], a.u_raw), k

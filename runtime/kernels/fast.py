@@ -114,6 +114,13 @@ RIG_M = 1
 """Placeholder: the rig's number of inputs (a compile-time constant in the rig's module)."""
 
 
+def law_tick_rig(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
+                 out: Array) -> None:  # pragma: no cover - jit
+    """`law_tick` with the rig's sizes as compile-time constants (`law_tick_sized` with
+    RIG_N, RIG_M), compiled per rig; the dry-run loop and the sweep kernel call it."""
+    law_tick_sized(x, c, eps, ic, fc, st, out, RIG_N, RIG_M)
+
+
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,
                  xp: Array, pcode: Any, pmat: Array, prm: Array, limits: Array, substeps: int,
                  noise: Array, resolution: Array, delay: int, meas: Array, ic: Any, fc: Array,
@@ -137,7 +144,7 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
     o_e = o_uraw + 2 * m
     for k in range(k0, k1):
         y = meas[k - delay] if k >= delay else meas[0]
-        law_tick_sized(y, cmd[k], eps_t[k], ic, fc, st, out, RIG_N, RIG_M)
+        law_tick_rig(y, cmd[k], eps_t[k], ic, fc, st, out)
         for i in range(n):
             rec_x[k, i] = xp[i]
             rec_y[k, i] = y[i]
@@ -161,7 +168,7 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
 
 
 # ------------------------------------------------------------------ the batch sweep kernel
-# Compiled per rig like the dry-run loop: the one law tick (`law_tick_sized`) with the rig's
+# Compiled per rig like the dry-run loop: the one law tick (`law_tick_rig`) with the rig's
 # sizes as constants, the rig's generated lane step, and the watchdog's rules as the rule book
 # gives them (`runtime.guard.watchdog.sweep_rules`: comparison, threshold, on-delay in ticks).
 SWEEP_RULES = ("margin", "clamp", "nonfinite", "saturation", "breach", "diverged", "weights")
@@ -231,7 +238,7 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
     prange over groups of `sim_rigs.kernel.LANES` plants (a short last group repeats its
     last plant and discards the copies), stepped together by the rig's generated
     `plant_step_lanes` (no faults). Per plant b: its parameters prm[b], start x0, law
-    state x_r = first reading, W = 0; each tick the law (`law_tick_sized`) on the reading
+    state x_r = first reading, W = 0; each tick the law (`law_tick_rig`) on the reading
     `delay` ticks old, the saturated input applied `latency` ticks late, then the next
     reading (`plant_measure`). Noise: `noise_mode` NOISE_OFF, NOISE_STREAM (plant_ids[b]'s
     own splitmix64 stream under `seed`, one normal per noisy channel a reading, in channel
@@ -304,7 +311,7 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
                     o = out[ln]
                     f = fb[ln]
                     h = held[ln]
-                    law_tick_sized(y, cmd[k], eps_t[k], ic, fc, st[ln], o, RIG_N, RIG_M)
+                    law_tick_rig(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
                     ratio = o[O_RATIO]
                     if ratio > mr[ln]:
                         mr[ln] = ratio

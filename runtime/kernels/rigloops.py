@@ -19,9 +19,11 @@ from runtime.kernels import fast
 from sim_rigs import kernel
 from sim_rigs.rigfile import RigSpec
 
-TEMPLATES = {"dry_run_loop": "@numba.njit(cache=True)",
+TEMPLATES = {"law_tick_rig": "@numba.njit(cache=True)",
+             "dry_run_loop": "@numba.njit(cache=True)",
              "sweep_kernel": "@numba.njit(parallel=True, cache=True)"}
-"""The loops of `runtime.kernels.fast` compiled per rig, with their numba decorators."""
+"""The loops of `runtime.kernels.fast` (and the law tick they call, with the rig's sizes as
+constants) compiled per rig, with their numba decorators."""
 
 _ROOT = Path(__file__).resolve().parents[2]
 SOURCES = ("runtime/kernels/fast.py", "runtime/kernels/lawtick.py", "runtime/guard/watchdog.py",
