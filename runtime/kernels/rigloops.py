@@ -45,8 +45,19 @@ def loops_source() -> str:
     return "\n".join(parts)
 
 
+_LOADED: dict[int, tuple[RigSpec, Any]] = {}
+"""The module of each rig spec object seen (kept alive, so its id stays its own)."""
+
+
 def compiled(spec: RigSpec) -> Any:
     """The rig's generated module with its plant step and the runtime's loops
-    (`plant_step`, `dry_run_loop`, `sweep_kernel`, ...), once a process per rig."""
-    return kernel.load_generated(kernel.module_source(spec, PRELUDE, loops_source()),
-                                 tuple(_ROOT / rel for rel in SOURCES))
+    (`plant_step`, `law_tick_rig`, `dry_run_loop`, `sweep_kernel`, ...), once a process per
+    rig. The same spec object again is a dictionary lookup: generating and hashing the module's
+    text takes milliseconds, and the sweep asks once a slice of plants."""
+    hit = _LOADED.get(id(spec))
+    if hit is not None and hit[0] is spec:
+        return hit[1]
+    mod = kernel.load_generated(kernel.module_source(spec, PRELUDE, loops_source()),
+                                tuple(_ROOT / rel for rel in SOURCES))
+    _LOADED[id(spec)] = (spec, mod)
+    return mod
