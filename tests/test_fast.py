@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 from runtime.config import load_config
-from runtime.kernels import fast
+from runtime.kernels import fast, lawtick, rigloops
 from runtime.method.design import design_from_config
 from runtime.method.law import AdaptiveLaw
 from runtime.offline.dryrun import dry_run
@@ -350,24 +350,36 @@ def test_unknown_engine_is_refused():
         dry_run(cfg, engine="quick")
 
 
-# ---------------------------------------------------------------- sweep kernel pieces
-def specialised_vs_general(design, xs, cs, eps_t=None, settings=None):
-    """law_tick_pedestal and law_tick on the same measurements: every output, every tick."""
+# ---------------------------------------------------------------- the sized law tick
+def sized_vs_reference(design, xs, cs, eps_t=None, settings=None, modifiers=()):
+    """The law tick as the dry-run loop and the sweep kernel call it (`law_tick_rig`, compiled
+    in the pedestal's module with its sizes as constants: the compiler unrolls the loops over
+    states and inputs) against the numpy reference (`AdaptiveLaw.step`) on the same
+    measurements, and to the bit against `law_tick` with the sizes read at run time; returns
+    the clamp and cap flags per tick."""
+    tick_rig = rigloops.compiled(RIGS["pedestal"]).law_tick_rig
+    ref = AdaptiveLaw(design, modifiers)
     ic, fc = fast.pack_law(design, settings)
-    assert fast.sweep_law_fits(ic)
     n, m, n_reg = 4, 2, design.n_regressors
     sa, sb = np.zeros(n + n_reg * m), np.zeros(n + n_reg * m)
     oa, ob = np.zeros(fast.out_size(n, m, n_reg)), np.zeros(fast.out_size(n, m, n_reg))
     sa[:n] = sb[:n] = xs[0]
+    st = ref.init_state(xs[0])
     flags = []
+    o = lawtick.OUT_HEADER
     for k in range(len(xs)):
         eps = design.eps if eps_t is None else eps_t[k]
+        a = ref.step(st, xs[k], cs[k], eps)
         fast.law_tick(xs[k], cs[k], eps, ic, fc, sa, oa)
-        fast.law_tick_pedestal(xs[k], cs[k], eps, ic, fc, sb, ob)
-        assert close(oa[:fast.OUT_HEADER + 3 * m + n + n_reg],
-                     ob[:fast.OUT_HEADER + 3 * m + n + n_reg], 1e-12), k
-        assert close(sa, sb, 1e-12), k
-        flags.append((oa[fast.O_CLAMPED], oa[fast.O_CAPPED]))
+        tick_rig(xs[k], cs[k], eps, ic, fc, sb, ob)
+        assert np.array_equal(oa[:o + 3 * m + n + n_reg], ob[:o + 3 * m + n + n_reg]), k
+        assert np.array_equal(sa, sb), k
+        assert close(ob[o:o + m], a.u) and close(ob[o + m:o + 2 * m], a.u_raw), k
+        assert close(ob[lawtick.O_RATIO], a.ratio), k
+        assert close(sb[n:].reshape(n_reg, m), st.W) and close(sb[:n], st.xr), k
+        assert bool(ob[lawtick.O_CLAMPED]) == bool(a.clamped), k
+        assert bool(ob[lawtick.O_CAPPED]) == bool(a.capped), k
+        flags.append((ob[lawtick.O_CLAMPED], ob[lawtick.O_CAPPED]))
     return np.array(flags)
 
 
@@ -377,29 +389,45 @@ def specialised_vs_general(design, xs, cs, eps_t=None, settings=None):
     ("adaptation.barrier=log", "adaptation.unknown_effectiveness=false"),
     ("adaptation.dead_zone=0.01",),
 ])
-def test_specialised_law_tick_matches_the_general_kernel(overrides):
-    # The source of truth for law_tick_pedestal is law_tick (itself checked against
-    # runtime.method.law.AdaptiveLaw above); kicks push the error past the clamp and the cap.
-    design = demo_design(*overrides)
+def test_sized_law_tick_matches_the_reference(overrides):
+    # One law tick: the sized form the compiled loops use equals law_tick to the bit and
+    # follows the numpy reference (runtime.method.law); kicks push the error past the clamp
+    # and the cap.
+    from runtime.method.modifiers import modifiers_from_config
+
+    cfg = load_config(DEMO, list(overrides))
+    design = design_from_config(cfg)
+    mods = list(modifiers_from_config(cfg, design))
     xs, cs = closed_loop_states(design, 400, kicks=True)
     t = np.arange(400) * design.Ts
-    flags = specialised_vs_general(design, xs, cs, eps_t=design.eps * (1 + np.exp(-t / 0.1)))
+    flags = sized_vs_reference(design, xs, cs, eps_t=design.eps * (1 + np.exp(-t / 0.1)),
+                               settings=fast.ModifierSettings.from_modifiers(mods, 2),
+                               modifiers=mods)
     if overrides == ("adaptation.gamma=20",):
         assert flags[:, 0].any() and flags[:, 1].any()  # clamp and cap both engaged
 
 
-def test_specialised_law_tick_with_radial_basis():
+def test_sized_law_tick_with_radial_basis():
     design = demo_design('basis.kind="rbf"', 'basis.terms=["bias", "cos:el"]',
                          'basis.rbf_states=["el", "el_rate"]', "basis.rbf_per_axis=[4, 3]",
                          "basis.rbf_span=[0.6, 1.0]", "basis.rbf_width=[0.3, 0.8]",
                          "adaptation.gamma=1.0")
     xs, cs = closed_loop_states(design, 300, kicks=False)
-    specialised_vs_general(design, xs, cs)
+    sized_vs_reference(design, xs, cs)
 
 
-def test_modifiers_send_the_sweep_to_the_general_law_kernel():
-    ic, _fc = fast.pack_law(demo_design(), fast.ModifierSettings(leakage="e", mu=1.0))
-    assert not fast.sweep_law_fits(ic)
+def test_sized_law_tick_with_weight_modifiers():
+    # leakage, dead zone and projection: the sweep kernel runs them through the same tick
+    from runtime.method.modifiers import modifiers_from_config
+
+    cfg = load_config(DEMO, ["adaptation.gamma=20", "adaptation.leakage=e", "adaptation.mu=2.0",
+                             "adaptation.dead_zone=0.01", "adaptation.projection=true",
+                             "adaptation.theta_max=[0.3, 0.5]"])
+    design = design_from_config(cfg)
+    mods = list(modifiers_from_config(cfg, design))
+    xs, cs = closed_loop_states(design, 300, kicks=True)
+    sized_vs_reference(design, xs, cs, settings=fast.ModifierSettings.from_config(cfg, design),
+                       modifiers=mods)
 
 
 @numba.njit

@@ -238,13 +238,7 @@ pos = { noise = "pos_noise", resolution = 1e-4 }
 vel = { noise = 1e-3 }
 """
 
-MY_CONFIG = """
-[rig]
-name = "mine"
-sim = "my-turntable.toml"
-[basis]
-terms = ["bias", "pos", "vel", "sin:pos", "tanh:vel"]
-tanh_width = 0.05
+ARM_DESIGN = """\
 [design]
 Q = [100.0, 1.0]
 R_u = [1.0]
@@ -257,7 +251,18 @@ unknown_effectiveness = true
 [loop]
 period = 0.001
 [commands]
-duration = 4.0
+"""
+"""The design, adaptation and loop both one-input arms below share (the rig file's and the
+inline one): one block, so the two configs cannot drift apart."""
+
+MY_CONFIG = """
+[rig]
+name = "mine"
+sim = "my-turntable.toml"
+[basis]
+terms = ["bias", "pos", "vel", "sin:pos", "tanh:vel"]
+tanh_width = 0.05
+""" + ARM_DESIGN + """duration = 4.0
 pos = [{ at = 0.5, kind = "slew", to = 0.5, duration = 1.0 }]
 [plant]
 seed = 1
@@ -360,19 +365,7 @@ input_units = ["V"]
 input_limits = [10.0]
 [basis]
 terms = ["bias", "th", "w", "sin:th"]
-[design]
-Q = [100.0, 1.0]
-R_u = [1.0]
-R = [20.0, 1.0]
-limits = [0.05, 0.8]
-state_range = [1.0, 2.0]
-[adaptation]
-gamma = 0.5
-unknown_effectiveness = true
-[loop]
-period = 0.001
-[commands]
-duration = 3.0
+""" + ARM_DESIGN + """duration = 3.0
 th = [{ at = 0.5, kind = "slew", to = 0.4, duration = 1.0 }]
 [plant]
 effectiveness = ["lam"]

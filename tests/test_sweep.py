@@ -84,24 +84,40 @@ def test_plants_are_drawn_inside_their_ranges(cfg):
         assert np.ptp(truth[key]) > 0.5 * (hi - lo)  # uniform over the range, not one point
 
 
-def test_rule_bookkeeping_against_a_plain_loop(cfg):
-    # Synthetic ratios and raw inputs; the expected first ticks come from a tick-by-tick loop.
+ON_DELAYS = ["watchdog.rules.margin.on_delay_s=0.005", "watchdog.rules.clamp.on_delay_s=0.0123",
+             "watchdog.rules.saturation.on_delay_s=0.05"]
+"""Non-zero on-delays (5, 12.3 and 50 ms: 5, 13 and 50 ticks at 1 kHz)."""
+
+
+@pytest.mark.parametrize("delays", [[], ON_DELAYS], ids=["no-delay", "on-delays"])
+def test_rule_bookkeeping_against_the_live_watchdog(cfg, delays):
+    # Synthetic ratios and raw inputs; the expected trip ticks come from the live watchdog's own
+    # rules (runtime.guard.watchdog.build_rules, Rule.evaluate) fed the same signals tick by tick.
+    cfg = cfg.with_overrides(delays)
     design = design_from_config(cfg)
-    st = SweepSettings.from_config(cfg, plants=5, workers=1)
+    st = SweepSettings.from_config(cfg, plants=6, workers=1)
     rng = np.random.default_rng(0)
-    K, B = 700, 5
+    K, B = 700, 6
     R = np.abs(rng.normal(0.5, 0.25, size=(K, B)))
     UR = np.zeros((K, 2, B))
     UR[100:700, 0, 1] = 13.0        # plant 1 saturated from tick 100 on
     UR[50:300, 1, 2] = -12.5        # plant 2 saturated 250 ticks only (0.25 s < 0.5 s)
     R[:, 3] = 0.1
     R[400, 3] = np.nan              # plant 3 goes non-finite at tick 400
+    R[:, 4] = 0.2                   # plant 4: short excursions past margin and clamp, then long
+    R[100:104, 4] = 0.99
+    R[200:211, 4] = 0.995
+    R[300:400, 4] = 0.999
+    R[:, 5] = 0.2                   # plant 5: one over, one under, repeating, then held
+    R[100:300:2, 5] = 0.999
+    R[500:600, 5] = 0.98
+    C = ~(R <= 1 - design.clamp_margin)  # clamped as runtime.method.law defines it
     from runtime.guard.watchdog import Signals, build_rules
     from runtime.offline.sweep import _setup
 
     rules = _Rules(B, design, st, _setup(cfg.raw, st).levels)
     for k0 in range(0, K, 64):      # fed in blocks, as the engines do
-        rules.block(k0, R[k0:k0 + 64], UR[k0:k0 + 64])
+        rules.block(k0, R[k0:k0 + 64], C[k0:k0 + 64], UR[k0:k0 + 64])
     res = rules.result()
     # Reference: the live watchdog's own rules (runtime.guard.watchdog), fed tick by tick the way
     # the runtime feeds them (runtime.realtime.loop: seconds at the limit, |u| >= limit).
@@ -114,18 +130,27 @@ def test_rule_bookkeeping_against_a_plain_loop(cfg):
             r = R[k, b]
             sat_time = np.where(np.abs(UR[k, :, b]) >= design.rig.input_limits,
                                 sat_time + Ts, 0.0)
-            sig = Signals(t=k * Ts, tick=k, engaged=True, ratio=r,
-                          clamped=not (r <= 1 - design.clamp_margin),  # as runtime.method.law
+            sig = Signals(t=k * Ts, tick=k, engaged=True, ratio=r, clamped=bool(C[k, b]),
                           nonfinite=not np.isfinite(r), sat_time=float(np.max(sat_time)))
             for rid in RULES:
                 if live[rid].evaluate(sig) and exp[rid] < 0:
                     exp[rid] = k
         for r in RULES:
             assert res[f"first_{r}"][b] == exp[r], (r, b)
+    on = {r.id: r.on_delay for r in build_rules(cfg, Ts, design.clamp_margin)}
     # saturated from tick 100: 0.5 s at the limit is reached on tick 100 + 500 - 1, by the
-    # live rule and the sweep alike (the sweep used to trip one tick later)
-    assert res["first_saturation"][1] == 100 + round(st.saturation_time / Ts) - 1
+    # live rule and the sweep alike (the sweep used to trip one tick later), plus the on-delay
+    assert res["first_saturation"][1] == (100 + round(st.saturation_time / Ts) - 1
+                                          + round(on["saturation"] / Ts))
     assert res["first_saturation"][2] == -1
+    # plant 4: without on-delays the first excursion trips margin and clamp; with them the
+    # 4-tick one trips neither, the 11-tick one the margin (5 ms), the long one the clamp
+    if delays:
+        assert res["first_margin"][4] == 200 + 5 and res["first_clamp"][4] == 300 + 13
+        assert res["first_margin"][5] == 500 + 5 and res["first_clamp"][5] == -1
+    else:
+        assert res["first_margin"][4] == 100 and res["first_clamp"][4] == 100
+        assert res["first_margin"][5] == 100
 
 
 def test_grid_reports_refused_settings_and_the_best(cfg):
@@ -198,8 +223,10 @@ HARD = ["plant.sensors.delay_ticks=2", "sweep.latency_ticks=3", "watchdog.satura
 STEP = ['commands.az=[{at=0.3, kind="step", to=1.0}]']
 
 
-@pytest.mark.parametrize("extra", [[], HARD, HARD + STEP])
+@pytest.mark.parametrize("extra", [[], HARD, HARD + STEP, HARD + STEP + ON_DELAYS])
 def test_compiled_engine_matches_the_reference_engine_noise_off(cfg, extra):
+    # With ON_DELAYS the compiled kernel applies the on-delays as the reference engine's
+    # bookkeeping does, itself held to the live watchdog above.
     c = cfg.with_overrides(extra)
     a = run_sweep(c, plants=10, seed=5, duration=1.5, workers=1, engine="reference")
     b = run_sweep(c, plants=10, seed=5, duration=1.5, workers=2, engine="compiled")
@@ -209,7 +236,7 @@ def test_compiled_engine_matches_the_reference_engine_noise_off(cfg, extra):
     fired = {r for r in (*RULES, "breach") if np.any(b.per_plant[f"first_{r}"] >= 0)}
     if extra:  # the comparison covered rules that fired, not only plants that stayed inside
         assert {"margin", "clamp", "breach"} <= fired, fired
-    if extra == HARD + STEP:
+    if extra[-len(STEP):] == STEP or extra[-len(ON_DELAYS):] == ON_DELAYS:
         assert "saturation" in fired
 
 

@@ -186,11 +186,10 @@ def test_input_regressor_scale_is_honoured_by_both_laws(scale):
         np.testing.assert_allclose(sig[-2:], a.u_n / expect, rtol=1e-12)
         np.testing.assert_allclose(b.sigma_bar, sig, rtol=1e-12, atol=1e-15)
         np.testing.assert_allclose(b.u, a.u, rtol=1e-9, atol=1e-12)
-    # the sweep's specialised tick packs and reads the same scale
+    # the one law tick, as the sweep and the dry run call it, packs and reads the same scale
     out = np.zeros(fast.out_size(4, 2, d.n_regressors))
     st2 = np.zeros(4 + d.n_regressors * 2)
-    fast.law_tick_pedestal(np.full(4, 0.01), np.array([0.2, 0.1]), d.eps, fl.ic, fl.fc, st2,
-                           out)
+    fast.law_tick(np.full(4, 0.01), np.array([0.2, 0.1]), d.eps, fl.ic, fl.fc, st2, out)
     o = fast.OUT_HEADER + 3 * 2 + 4
     un = out[fast.OUT_HEADER + 2 * 2: fast.OUT_HEADER + 3 * 2]
     np.testing.assert_allclose(out[o + d.n_regressors - 2: o + d.n_regressors], un / expect,

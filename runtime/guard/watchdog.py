@@ -67,13 +67,31 @@ def over(value: float, threshold: float) -> bool:
     return not (value < threshold)
 
 
+def on_delay_ticks(on_delay: float, period: float) -> int:
+    """The on-delay in whole ticks at `period`: a condition first over at tick k0 trips at
+    tick k0 + d, d the least with d * period + 1e-12 >= on_delay (as `Rule.evaluate` tests
+    t - since on ticks t = k * period). The sweep trips a rule once its condition has held
+    d + 1 ticks in a row."""
+    d = max(0, math.ceil((on_delay - 1e-12) / period))
+    while d > 0 and (d - 1) * period + 1e-12 >= on_delay:
+        d -= 1
+    while d * period + 1e-12 < on_delay:
+        d += 1
+    return d
+
+
 def sweep_levels(rules: list[Rule], period: float) -> dict[str, float]:
     """What the sweep needs of the rules it can evaluate offline, from the live rule set:
     the margin and clamp thresholds (ratios), the saturation threshold in whole ticks (the
-    live rule accumulates one period per tick at the limit and trips at its threshold)."""
+    live rule accumulates one period per tick at the limit and trips at its threshold), and
+    each one's on-delay in ticks (`on_delay_ticks`: ``margin_delay``, ``clamp_delay``,
+    ``saturation_delay``)."""
     by_id = {r.id: r for r in rules}
-    return {"margin": by_id["margin"].threshold, "clamp": by_id["clamp"].threshold,
-            "saturation_ticks": by_id["saturation"].threshold / period}
+    out = {"margin": by_id["margin"].threshold, "clamp": by_id["clamp"].threshold,
+           "saturation_ticks": by_id["saturation"].threshold / period}
+    for rid in ("margin", "clamp", "saturation"):
+        out[f"{rid}_delay"] = float(on_delay_ticks(by_id[rid].on_delay, period))
+    return out
 
 
 @dataclass

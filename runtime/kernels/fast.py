@@ -31,8 +31,10 @@ is cached on disk (``cache=True``).
 Where the parts live: the codes, the basis evaluator and `law_tick` in
 `runtime.kernels.lawtick`; packing (`pack_law`, `ModifierSettings`) and the wrappers
 (`FastLaw`, `FastTick`, `warm_up`) in `runtime.kernels.lawpack`; here, the loop templates
-compiled per rig (`runtime.kernels.rigloops`) and the batch sweep kernel's pieces. Every
-name above is still importable from here.
+compiled per rig (`runtime.kernels.rigloops`) and the batch sweep kernel's pieces. The
+wrappers, `pack_law`, `out_size` and `law_tick` are still importable from here. There is one
+law tick (`law_tick_sized`, behind `law_tick`): the dry run, the sweep and the live loop all
+step it.
 
 What does not live here: the batched reference (`runtime.method.law`), the plant's
 physics documentation (`sim_rigs.pedestal`), the dry-run bookkeeping
@@ -49,74 +51,28 @@ import numpy as np
 from numpy.typing import NDArray
 
 from runtime.guard.watchdog import over
-from runtime.kernels.lawpack import (
+from runtime.kernels.lawpack import (  # noqa: F401 - re-exported: callers step and pack here
     FastLaw,
     FastTick,
     ModifierSettings,
     pack_law,
     warm_up,
 )
-from runtime.kernels.lawtick import (  # re-exported: the templates and callers use them
-    BARRIER_CODES,
-    BASIS_OPS,
-    F_CAP,
-    F_CLAMP,
-    F_DEAD_ZONE,
-    F_EPS,
-    F_EPS_P,
-    F_GAMMA_MAX,
-    F_LAM_BPB,
-    F_MU,
-    F_SIGMA0,
-    F_TANH_W,
+from runtime.kernels.lawtick import (  # noqa: F401 - the templates call these by name
     F_TS,
-    FC_HEADER,
-    I_AUGMENT,
-    I_BARRIER,
-    I_FROZEN,
-    I_LAW,
-    I_LEAK,
     I_M,
     I_N,
-    I_NCODE,
-    I_NRBF,
     I_NREG,
-    I_OADT,
-    I_OBDT,
-    I_OCODES,
-    I_OGAMMA,
-    I_OK1T,
-    I_OK2T,
-    I_OP,
-    I_OPB,
-    I_ORBFC,
-    I_ORBFS,
-    I_ORBFW,
-    I_OTHETA,
     I_OUMAX,
-    I_OUSCALE,
-    I_P,
-    I_PROJ,
-    IC_HEADER,
-    LAWS,
-    LEAKAGES,
-    O_CAPPED,
     O_CLAMPED,
     O_EFF_RATE,
     O_PHI_D,
     O_RATIO,
     O_S,
     O_STEP_GAIN,
-    OP_ABS,
-    OP_BIAS,
-    OP_COS,
-    OP_MUL,
-    OP_SIN,
-    OP_TANH,
-    OP_X,
     OUT_HEADER,
-    basis_eval,
     law_tick,
+    law_tick_sized,
     out_size,
 )
 from sim_rigs.kernel import LANES, plant_measure, work_width  # noqa: F401 - templates
@@ -126,19 +82,6 @@ _over = numba.njit(cache=True, inline="always")(over)
 
 Array = NDArray[np.float64]
 
-
-#: Moved to `runtime.kernels.lawtick` and `runtime.kernels.lawpack`; still importable from here.
-__all__ = [
-    'BARRIER_CODES', 'basis_eval', 'BASIS_OPS', 'F_CAP', 'F_CLAMP', 'F_DEAD_ZONE', 'F_EPS',
-    'F_EPS_P', 'F_GAMMA_MAX', 'F_LAM_BPB', 'F_MU', 'F_SIGMA0', 'F_TANH_W', 'F_TS', 'FastLaw',
-    'FastTick', 'FC_HEADER', 'I_AUGMENT', 'I_BARRIER', 'I_FROZEN', 'I_LAW', 'I_LEAK', 'I_M',
-    'I_N', 'I_NCODE', 'I_NRBF', 'I_NREG', 'I_OADT', 'I_OBDT', 'I_OCODES', 'I_OGAMMA', 'I_OK1T',
-    'I_OK2T', 'I_OP', 'I_OPB', 'I_ORBFC', 'I_ORBFS', 'I_ORBFW', 'I_OTHETA', 'I_OUMAX',
-    'I_OUSCALE', 'I_P', 'I_PROJ', 'IC_HEADER', 'law_tick', 'LAWS', 'LEAKAGES',
-    'ModifierSettings', 'O_CAPPED', 'O_CLAMPED', 'O_EFF_RATE', 'O_PHI_D', 'O_RATIO', 'O_S',
-    'O_STEP_GAIN', 'OP_ABS', 'OP_BIAS', 'OP_COS', 'OP_MUL', 'OP_SIN', 'OP_TANH', 'OP_X',
-    'OUT_HEADER', 'out_size', 'pack_law', 'warm_up',
-]
 
 # ------------------------------------------------------------------ the loop templates
 # `dry_run_loop` and `sweep_kernel` below are templates, not compiled here: each rig gets
@@ -165,6 +108,17 @@ def plant_setup_lanes(P: Array, lanes: Any, K: Array) -> None:  # pragma: no cov
 
 N_KONST = 1
 """Placeholder: the number of per-plant constants of the rig's generated lane step."""
+RIG_N = 1
+"""Placeholder: the rig's number of states (a compile-time constant in the rig's module)."""
+RIG_M = 1
+"""Placeholder: the rig's number of inputs (a compile-time constant in the rig's module)."""
+
+
+def law_tick_rig(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
+                 out: Array) -> None:  # pragma: no cover - jit
+    """`law_tick` with the rig's sizes as compile-time constants (`law_tick_sized` with
+    RIG_N, RIG_M), compiled per rig; the dry-run loop and the sweep kernel call it."""
+    law_tick_sized(x, c, eps, ic, fc, st, out, RIG_N, RIG_M)
 
 
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,
@@ -181,8 +135,8 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
     state, advanced in place by `sim_rigs.kernel.plant_step` (the rig coded as
     pcode, pmat, its parameters prm); readings by `sim_rigs.kernel.plant_measure`.
     """
-    n = ic[I_N]
-    m = ic[I_M]
+    n = RIG_N
+    m = RIG_M
     nreg = ic[I_NREG]
     dt = fc[F_TS]
     o_u = OUT_HEADER
@@ -190,7 +144,7 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
     o_e = o_uraw + 2 * m
     for k in range(k0, k1):
         y = meas[k - delay] if k >= delay else meas[0]
-        law_tick(y, cmd[k], eps_t[k], ic, fc, st, out)
+        law_tick_rig(y, cmd[k], eps_t[k], ic, fc, st, out)
         for i in range(n):
             rec_x[k, i] = xp[i]
             rec_y[k, i] = y[i]
@@ -214,13 +168,15 @@ def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: A
 
 
 # ------------------------------------------------------------------ the batch sweep kernel
-# Specialised for the pedestal (n = 4 states, m = 2 inputs, p = 2 commands): fixed-size loops
-# the compiler unrolls, the plant's state in registers, and the elevation trigonometry inside
-# a tick by the angle-addition formula. `tests/test_fast.py` checks each piece against the
-# general kernels above (`law_tick`, `pedestal_step`), which stay the single source of truth.
+# Compiled per rig like the dry-run loop: the one law tick (`law_tick_rig`) with the rig's
+# sizes as constants, the rig's generated lane step, and the watchdog's rules as the rule book
+# gives them (`runtime.guard.watchdog.sweep_rules`: comparison, threshold, on-delay in ticks).
 SWEEP_RULES = ("margin", "clamp", "nonfinite", "saturation", "breach", "diverged", "weights")
 """Columns of the sweep kernel's `first` output: first tick of each rule per plant."""
 (R_MARGIN, R_CLAMP, R_NONFINITE, R_SATURATION, R_BREACH, R_DIVERGED, R_WEIGHTS) = range(7)
+HELD_RULES = ("margin", "clamp", "breach", "saturation")
+"""The rules whose condition the sweep kernel counts in ticks held (order of `levels` for the
+first three, of `delays` for all four)."""
 DIVERGENCE_EVERY = 64
 """The sweep checks the true state for divergence after ticks 63, 127, ... and the last."""
 NOISE_OFF, NOISE_STREAM, NOISE_GIVEN = 0, 1, 2
@@ -230,120 +186,6 @@ _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)
 _MIX2 = np.uint64(0x94D049BB133111EB)
 _S30, _S27, _S31, _S11 = np.uint64(30), np.uint64(27), np.uint64(31), np.uint64(11)
-
-
-def sweep_law_fits(ic: NDArray[np.int64]) -> bool:
-    """True when `law_tick_pedestal` computes this law (4 states, 2 inputs, 2 commands,
-    no weight modifiers, not frozen); otherwise the sweep kernel calls `law_tick`."""
-    return bool(ic[I_N] == 4 and ic[I_M] == 2 and ic[I_P] == 2 and ic[I_LEAK] == 0
-                and ic[I_PROJ] == 0 and ic[I_FROZEN] == 0)
-
-
-@numba.njit(cache=True)
-def law_tick_pedestal(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
-                      out: Array) -> None:  # pragma: no cover - jit
-    """`law_tick` for n = 4, m = 2, p = 2 without modifiers (same buffers, same results).
-
-    The dead zone is still honoured (it needs no state). Checked against `law_tick`
-    in tests/test_fast.py.
-    """
-    nreg = ic[I_NREG]
-    oP = ic[I_OP]
-    oPB = ic[I_OPB]
-    oK1 = ic[I_OK1T]
-    oK2 = ic[I_OK2T]
-    oAd = ic[I_OADT]
-    oBd = ic[I_OBDT]
-    oG = ic[I_OGAMMA]
-    oU = ic[I_OUMAX]
-    o_u = OUT_HEADER
-    o_uraw = o_u + 2
-    o_un = o_uraw + 2
-    o_e = o_un + 2
-    o_sig = o_e + 4
-    e0 = x[0] - st[0]
-    e1 = x[1] - st[1]
-    e2 = x[2] - st[2]
-    e3 = x[3] - st[3]
-    out[o_e] = e0
-    out[o_e + 1] = e1
-    out[o_e + 2] = e2
-    out[o_e + 3] = e3
-    q = 0.0
-    for i in range(4):
-        r = oP + 4 * i
-        acc = fc[r] * e0 + fc[r + 1] * e1 + fc[r + 2] * e2 + fc[r + 3] * e3
-        q += out[o_e + i] * acc
-    if q < 0.0:
-        q = 0.0
-    s = math.sqrt(q)
-    if ic[I_LAW] == 1:
-        s_max = (1.0 - fc[F_CLAMP]) * eps
-        clamped = not (s <= s_max)
-        se = s_max if clamped else s
-        if ic[I_BARRIER] == 0:
-            gap = eps - se
-            phi_d = (2.0 * eps - se) / (2.0 * gap * gap)
-        else:
-            phi_d = eps / (eps * eps - se * se)
-    else:
-        phi_d = 1.0
-        clamped = not (s < eps)
-    un0 = (c[0] * fc[oK2] + c[1] * fc[oK2 + 2]) - (
-        x[0] * fc[oK1] + x[1] * fc[oK1 + 2] + x[2] * fc[oK1 + 4] + x[3] * fc[oK1 + 6])
-    un1 = (c[0] * fc[oK2 + 1] + c[1] * fc[oK2 + 3]) - (
-        x[0] * fc[oK1 + 1] + x[1] * fc[oK1 + 3] + x[2] * fc[oK1 + 5] + x[3] * fc[oK1 + 7])
-    out[o_un] = un0
-    out[o_un + 1] = un1
-    basis_eval(x, ic, fc, out[o_sig:])
-    nb = ic[I_NCODE] + ic[I_NRBF]
-    if ic[I_AUGMENT] == 1:
-        oS = ic[I_OUSCALE]
-        out[o_sig + nb] = un0 / fc[oS]
-        out[o_sig + nb + 1] = un1 / fc[oS + 1]
-    sig_sq = 0.0
-    for i in range(nreg):
-        sig_sq += out[o_sig + i] * out[o_sig + i]
-    g = fc[F_TS] * fc[F_GAMMA_MAX] * phi_d * sig_sq * fc[F_LAM_BPB]
-    cap = fc[F_CAP]
-    capped = g > cap
-    scale = cap / (g if g > 1e-300 else 1e-300) if capped else 1.0
-    rate = phi_d * scale
-    ts = fc[F_TS]
-    if not (fc[F_DEAD_ZONE] > 0.0 and s < fc[F_DEAD_ZONE]):
-        p0 = e0 * fc[oPB] + e1 * fc[oPB + 2] + e2 * fc[oPB + 4] + e3 * fc[oPB + 6]
-        p1 = e0 * fc[oPB + 1] + e1 * fc[oPB + 3] + e2 * fc[oPB + 5] + e3 * fc[oPB + 7]
-        for i in range(nreg):
-            a = fc[oG + i] * (rate * out[o_sig + i])
-            st[4 + 2 * i] += ts * (a * p0)
-            st[5 + 2 * i] += ts * (a * p1)
-    a0 = 0.0
-    a1 = 0.0
-    for i in range(nreg):
-        a0 += st[4 + 2 * i] * out[o_sig + i]
-        a1 += st[5 + 2 * i] * out[o_sig + i]
-    u0 = un0 - a0
-    u1 = un1 - a1
-    out[o_uraw] = u0
-    out[o_uraw + 1] = u1
-    lim = fc[oU]
-    out[o_u] = lim if u0 > lim else (-lim if u0 < -lim else u0)
-    lim = fc[oU + 1]
-    out[o_u + 1] = lim if u1 > lim else (-lim if u1 < -lim else u1)
-    r0 = st[0]
-    r1 = st[1]
-    r2 = st[2]
-    r3 = st[3]
-    for j in range(4):
-        st[j] = (r0 * fc[oAd + j] + r1 * fc[oAd + 4 + j] + r2 * fc[oAd + 8 + j]
-                 + r3 * fc[oAd + 12 + j]) + (c[0] * fc[oBd + j] + c[1] * fc[oBd + 4 + j])
-    out[O_S] = s
-    out[O_RATIO] = s / eps
-    out[O_PHI_D] = phi_d
-    out[O_EFF_RATE] = fc[F_GAMMA_MAX] * rate
-    out[O_STEP_GAIN] = g
-    out[O_CLAMPED] = 1.0 if clamped else 0.0
-    out[O_CAPPED] = 1.0 if capped else 0.0
 
 
 @numba.njit(cache=True, inline="always")
@@ -388,7 +230,7 @@ def stream_normals(state: Array, out: Array) -> None:  # pragma: no cover - jit
 def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, prm: Array,
                  plant_ids: Any, seed: int, substeps: int, limits: Array, resolution: Array,
                  noise_sd: Array, delay: int, latency: int, noise_mode: int, given: Array,
-                 ic: Any, fc: Array, special: bool, levels: Array, sat_ticks: float,
+                 ic: Any, fc: Array, levels: Array, delays: Any, sat_ticks: float,
                  bound: Array, w_limit: float, first: Any,
                  max_ratio: Array) -> None:  # pragma: no cover - jit
     """N plants x T ticks of the closed loop, each plant on its own.
@@ -396,24 +238,26 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
     prange over groups of `sim_rigs.kernel.LANES` plants (a short last group repeats its
     last plant and discards the copies), stepped together by the rig's generated
     `plant_step_lanes` (no faults). Per plant b: its parameters prm[b], start x0, law
-    state x_r = first reading, W = 0; each tick the law (`law_tick_pedestal` when
-    `special`, else `law_tick`) on the reading `delay` ticks old, the saturated input
-    applied `latency` ticks late, then the next reading (`plant_measure`). Noise:
-    `noise_mode` NOISE_OFF, NOISE_STREAM (plant_ids[b]'s own splitmix64 stream under
-    `seed`, one normal per noisy channel a reading, in channel order, drawn in pairs) or
-    NOISE_GIVEN (`given[b, reading, :]`, standard normals of the noisy channels). Nothing
-    is recorded per tick: `first[b, SWEEP_RULES]` gets the first tick each rule fired
-    (-1: never; levels = margin, clamp, breach ratios, compared as
-    `runtime.guard.watchdog.RULE_BOOK` says; saturation: a raw input beyond its limit for
-    `sat_ticks` ticks in a row, the live rule's on-delay; diverged: |x_i| > bound_i or
-    non-finite after ticks 63, 127, ... and the last; weights: the weight norm non-finite
-    or beyond `w_limit` at the same ticks) and `max_ratio[b]` the largest finite margin
-    ratio (from 0).
+    state x_r = first reading, W = 0; each tick the law (`law_tick_rig`) on the reading
+    `delay` ticks old, the saturated input applied `latency` ticks late, then the next
+    reading (`plant_measure`). Noise: `noise_mode` NOISE_OFF, NOISE_STREAM (plant_ids[b]'s
+    own splitmix64 stream under `seed`, one normal per noisy channel a reading, in channel
+    order, drawn in pairs) or NOISE_GIVEN (`given[b, reading, :]`, standard normals of the
+    noisy channels). Nothing is recorded per tick: `first[b, SWEEP_RULES]` gets the tick
+    each rule tripped (-1: never) and `max_ratio[b]` the largest finite margin ratio (from 0).
+
+    The rules, as `runtime.guard.watchdog` defines them (`over`, thresholds and on-delays
+    from `sweep_rules`): margin (signal: the ratio), clamp (the ratio while the phi_d clamp
+    is engaged, else 0), breach (the ratio against 1) at `levels[0..2]`; saturation (a raw
+    input beyond its limit for `sat_ticks` ticks in a row). Each trips on the tick its
+    condition has held for `delays[HELD_RULES]` ticks after the first (the on-delay);
+    nonfinite at once; diverged: |x_i| > bound_i or non-finite after ticks 63, 127, ... and
+    the last; weights: the weight norm non-finite or beyond `w_limit` at the same ticks.
     """
     N = prm.shape[0]
     T = cmd.shape[0]
-    n = ic[I_N]
-    m = ic[I_M]
+    n = RIG_N
+    m = RIG_M
     nreg = ic[I_NREG]
     nst = n + nreg * m
     nout = OUT_HEADER + 4 * m + 2 * n + nreg
@@ -426,6 +270,13 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
             nz += 1
     nz2 = nz + (nz % 2)
     NR = len(SWEEP_RULES)
+    lv_margin = levels[0]
+    lv_clamp = levels[1]
+    lv_breach = levels[2]
+    d_margin = delays[0]
+    d_clamp = delays[1]
+    d_breach = delays[2]
+    d_sat = delays[3]
     for g in numba.prange(groups):
         lanes = np.empty(L, dtype=np.int64)
         for ln in range(L):
@@ -443,6 +294,7 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
         rs = np.zeros((L, 1), dtype=np.uint64)
         fb = np.full((L, NR), -1, dtype=np.int64)
         run = np.zeros((L, m), dtype=np.int64)
+        held = np.zeros((L, 4), dtype=np.int64)
         mr = np.zeros(L)
         for ln in range(L):
             for i in range(n):
@@ -458,19 +310,15 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
                     y = meas[ln, ys]
                     o = out[ln]
                     f = fb[ln]
-                    if special:
-                        law_tick_pedestal(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
-                    else:
-                        law_tick(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
+                    h = held[ln]
+                    law_tick_rig(y, cmd[k], eps_t[k], ic, fc, st[ln], o)
                     ratio = o[O_RATIO]
                     if ratio > mr[ln]:
                         mr[ln] = ratio
-                    if f[R_MARGIN] < 0 and _over(ratio, levels[0]):
-                        f[R_MARGIN] = k
-                    if f[R_CLAMP] < 0 and _over(ratio, levels[1]):
-                        f[R_CLAMP] = k
-                    if f[R_BREACH] < 0 and _over(ratio, levels[2]):
-                        f[R_BREACH] = k
+                    h[0] = h[0] + 1 if _over(ratio, lv_margin) else 0
+                    h[1] = h[1] + 1 if _over(ratio if o[O_CLAMPED] != 0.0 else 0.0,
+                                             lv_clamp) else 0
+                    h[2] = h[2] + 1 if _over(ratio, lv_breach) else 0
                     fin = math.isfinite(ratio)
                     sat = False
                     for j in range(m):
@@ -481,10 +329,17 @@ def sweep_kernel(cmd: Array, eps_t: Array, x0: Array, pcode: Any, pmat: Array, p
                         if _over(run[ln, j] + 1e-9, sat_ticks):
                             sat = True
                         ubuf[ln, us, j] = o[OUT_HEADER + j]
-                    if f[R_NONFINITE] < 0 and not fin:
-                        f[R_NONFINITE] = k
-                    if f[R_SATURATION] < 0 and sat:
+                    h[3] = h[3] + 1 if sat else 0
+                    if h[0] > d_margin and f[R_MARGIN] < 0:
+                        f[R_MARGIN] = k
+                    if h[1] > d_clamp and f[R_CLAMP] < 0:
+                        f[R_CLAMP] = k
+                    if h[2] > d_breach and f[R_BREACH] < 0:
+                        f[R_BREACH] = k
+                    if h[3] > d_sat and f[R_SATURATION] < 0:
                         f[R_SATURATION] = k
+                    if not fin and f[R_NONFINITE] < 0:
+                        f[R_NONFINITE] = k
                     if k >= latency:
                         for j in range(m):
                             U[ln, j] = ubuf[ln, ua_s, j]

@@ -95,8 +95,18 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     capped Euler weight update with the modifiers; u_k from the new weights;
     x_r advanced by the exact zero-order hold.
     """
-    n = ic[I_N]
-    m = ic[I_M]
+    law_tick_sized(x, c, eps, ic, fc, st, out, ic[I_N], ic[I_M])
+
+
+@numba.njit(cache=True, inline="always")
+def law_tick_sized(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array, out: Array,
+                   n: int, m: int) -> None:  # pragma: no cover - jit
+    """`law_tick` with the plant's n states and m inputs given (they must equal ic[I_N] and
+    ic[I_M]). The one law tick: `law_tick` passes them from ``ic``; `law_tick_rig`, compiled
+    per rig (`runtime.kernels.rigloops`), passes the rig's sizes as compile-time constants,
+    so the compiler unrolls the small loops over states and inputs (the same operations in
+    the same order: the same results to the bit). Inlined into those two small wrappers
+    (not into the loops, whose compile time it would lengthen)."""
     p = ic[I_P]
     nreg = ic[I_NREG]
     oP = ic[I_OP]
@@ -188,36 +198,50 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
         dead = fc[F_DEAD_ZONE] > 0.0 and s < fc[F_DEAD_ZONE]
         proj = ic[I_PROJ] == 1
         eps_p = fc[F_EPS_P]
-        for j in range(m):
-            # column j: theta = W[:, j], y = dW[:, j]; computed twice (cheap, no scratch)
-            ty = 0.0
-            tt = 0.0
-            f = 0.0
-            if proj and not dead:
-                th_max = fc[oTh + j]
+        ts = fc[F_TS]
+        if not proj:
+            # row by row, all columns of a regressor at once (each weight's own update, so
+            # the order between weights changes nothing)
+            if not dead:
                 for i in range(nreg):
                     gi = fc[oG + i]
+                    a = gi * (rate * out[o_sig + i])
+                    for j in range(m):
+                        idx = W0 + i * m + j
+                        y = a * out[o_epb + j]
+                        if leak != 0:
+                            y = y - gi * leak_gain * st[idx]
+                        st[idx] += ts * y
+        else:
+            for j in range(m):
+                # column j: theta = W[:, j], y = dW[:, j]; computed twice (cheap, no scratch)
+                ty = 0.0
+                tt = 0.0
+                f = 0.0
+                if not dead:
+                    th_max = fc[oTh + j]
+                    for i in range(nreg):
+                        gi = fc[oG + i]
+                        y = (gi * (rate * out[o_sig + i])) * out[o_epb + j]
+                        if leak != 0:
+                            y = y - gi * leak_gain * st[W0 + i * m + j]
+                        th = st[W0 + i * m + j]
+                        ty += th * y
+                        tt += th * th
+                    f = ((1.0 + eps_p) * tt - th_max * th_max) / (eps_p * th_max * th_max)
+                do_proj = f > 0.0 and ty > 0.0
+                k_proj = ty * f / tt if do_proj else 0.0
+                for i in range(nreg):
+                    if dead:
+                        continue
+                    gi = fc[oG + i]
+                    idx = W0 + i * m + j
                     y = (gi * (rate * out[o_sig + i])) * out[o_epb + j]
                     if leak != 0:
-                        y = y - gi * leak_gain * st[W0 + i * m + j]
-                    th = st[W0 + i * m + j]
-                    ty += th * y
-                    tt += th * th
-                f = ((1.0 + eps_p) * tt - th_max * th_max) / (eps_p * th_max * th_max)
-            do_proj = proj and f > 0.0 and ty > 0.0
-            k_proj = ty * f / tt if do_proj else 0.0
-            for i in range(nreg):
-                if dead:
-                    continue
-                gi = fc[oG + i]
-                idx = W0 + i * m + j
-                y = (gi * (rate * out[o_sig + i])) * out[o_epb + j]
-                if leak != 0:
-                    y = y - gi * leak_gain * st[idx]
-                if do_proj:
-                    y = y - st[idx] * k_proj
-                st[idx] += fc[F_TS] * y
-            if proj:
+                        y = y - gi * leak_gain * st[idx]
+                    if do_proj:
+                        y = y - st[idx] * k_proj
+                    st[idx] += ts * y
                 # the Euler step may overshoot the ball Proj keeps invariant (f <= 1, i.e.
                 # ||theta|| <= theta_max): pull the column back radially onto it
                 nn = 0.0

@@ -19,9 +19,11 @@ from runtime.kernels import fast
 from sim_rigs import kernel
 from sim_rigs.rigfile import RigSpec
 
-TEMPLATES = {"dry_run_loop": "@numba.njit(cache=True)",
+TEMPLATES = {"law_tick_rig": "@numba.njit(cache=True)",
+             "dry_run_loop": "@numba.njit(cache=True)",
              "sweep_kernel": "@numba.njit(parallel=True, cache=True)"}
-"""The loops of `runtime.kernels.fast` compiled per rig, with their numba decorators."""
+"""The loops of `runtime.kernels.fast` (and the law tick they call, with the rig's sizes as
+constants) compiled per rig, with their numba decorators."""
 
 _ROOT = Path(__file__).resolve().parents[2]
 SOURCES = ("runtime/kernels/fast.py", "runtime/kernels/lawtick.py", "runtime/guard/watchdog.py",
@@ -43,8 +45,19 @@ def loops_source() -> str:
     return "\n".join(parts)
 
 
+_LOADED: dict[int, tuple[RigSpec, Any]] = {}
+"""The module of each rig spec object seen (kept alive, so its id stays its own)."""
+
+
 def compiled(spec: RigSpec) -> Any:
     """The rig's generated module with its plant step and the runtime's loops
-    (`plant_step`, `dry_run_loop`, `sweep_kernel`, ...), once a process per rig."""
-    return kernel.load_generated(kernel.module_source(spec, PRELUDE, loops_source()),
-                                 tuple(_ROOT / rel for rel in SOURCES))
+    (`plant_step`, `law_tick_rig`, `dry_run_loop`, `sweep_kernel`, ...), once a process per
+    rig. The same spec object again is a dictionary lookup: generating and hashing the module's
+    text takes milliseconds, and the sweep asks once a slice of plants."""
+    hit = _LOADED.get(id(spec))
+    if hit is not None and hit[0] is spec:
+        return hit[1]
+    mod = kernel.load_generated(kernel.module_source(spec, PRELUDE, loops_source()),
+                                tuple(_ROOT / rel for rel in SOURCES))
+    _LOADED[id(spec)] = (spec, mod)
+    return mod
