@@ -7,7 +7,8 @@ import json
 
 from runtime.cli.common import common_config_args
 from runtime.config import load_config
-from runtime.method.design import design_from_config, format_design
+from runtime.method.design import design_from_config
+from runtime.method.design_report import format_design
 from runtime.offline.verdict import decide
 
 
