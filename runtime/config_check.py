@@ -18,7 +18,7 @@ import numpy as np
 
 from runtime import schema
 from runtime.config_overrides import ConfigError
-from runtime.config_readers import Config, _as_float_array
+from runtime.config_readers import Config, as_float_array
 
 SECTIONS = schema.section_names()
 """Top-level tables corral knows (declared in `runtime.schema`)."""
@@ -149,12 +149,12 @@ def _check_value(cfg: Config, path: str, spec: schema.Key, value: Any, where: st
     elif kind == schema.NAMES:
         cfg.strings(path)
     elif kind == schema.VECTOR:
-        arr = _as_float_array(path, value)
+        arr = as_float_array(path, value)
         cfg.vector(path, None if arr.ndim else 1)
     elif kind == schema.MATRIX:
         cfg.matrix(path, (None, None))
     elif kind == schema.WEIGHT:
-        arr = _as_float_array(path, value)
+        arr = as_float_array(path, value)
         if arr.ndim > 2:
             raise ConfigError(path, f"has {arr.ndim} dimensions.",
                               "give a scalar, the diagonal, or a square matrix.")

@@ -158,7 +158,7 @@ class Config:
     ) -> NDArray[np.float64]:
         """A 2-D float array at `key` with the expected shape (None = any)."""
         value = self.get(key, default)
-        arr = _as_float_array(key, value)
+        arr = as_float_array(key, value)
         if arr.ndim != 2:
             raise ConfigError(
                 key, f"must be a matrix (a list of rows), got an array of {arr.ndim} dimension(s).",
@@ -179,7 +179,7 @@ class Config:
     ) -> NDArray[np.float64]:
         """A 1-D float array at `key` (a scalar is broadcast when `length` is given)."""
         value = self.get(key, default)
-        arr = _as_float_array(key, value)
+        arr = as_float_array(key, value)
         if arr.ndim == 0 and length is not None:
             arr = np.full(length, float(arr))
         if arr.ndim != 1:
@@ -197,7 +197,7 @@ class Config:
     def weight_matrix(self, key: str, n: int, default: Any = _MISSING) -> NDArray[np.float64]:
         """A symmetric positive definite n x n weight: scalar, diagonal list or full matrix."""
         value = self.get(key, default)
-        arr = _as_float_array(key, value)
+        arr = as_float_array(key, value)
         if arr.ndim == 0:
             arr = float(arr) * np.eye(n)
         elif arr.ndim == 1:
@@ -279,7 +279,8 @@ def _shape_txt(shape: tuple[int | None, int | None]) -> str:
     return f"shape ({r}, {c})"
 
 
-def _as_float_array(key: str, value: Any) -> NDArray[np.float64]:
+def as_float_array(key: str, value: Any) -> NDArray[np.float64]:
+    """`value` as a float array of finite numbers, or a one-line `ConfigError` on `key`."""
     try:
         arr = np.asarray(value, dtype=float)
     except (TypeError, ValueError):

@@ -6,8 +6,9 @@ for a rig and returns a frozen `Design`. Dimension and feasibility problems
 raise `ConfigError` naming the config field and the fix.
 
 The plain functions live in `runtime.method.gains` (K1, K2, P, eps) and
-`runtime.method.sampled` (ZOH, the sampled-data closed form); this module re-exports
-them. The report in words: `runtime.method.design_report`.
+`runtime.method.sampled` (ZOH, the sampled-data closed form), the nominal model in
+`runtime.method.rig` (`RigModel`, `rig_model`); this module re-exports them. The
+report in words: `runtime.method.design_report`.
 
 What does not live here: the update law that uses the design (`runtime.method.law`)
 and anything that does I/O.
@@ -15,14 +16,16 @@ and anything that does I/O.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from runtime.config import Config, ConfigError
+from runtime.method.barrier import BARRIERS, get_barrier
 from runtime.method.basis import Basis, basis_from_config
+from runtime.method.bound import schedule_from_config
 from runtime.method.gains import (
     Poles,
     controllability_rank,
@@ -243,8 +246,6 @@ def design_from_config(cfg: Config) -> Design:
 
     basis = basis_from_config(cfg, rig.states)
     law = cfg.choice("adaptation.law")
-    from runtime.method.barrier import BARRIERS
-
     barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS))
     augment = cfg.flag("adaptation.unknown_effectiveness")
     n_reg = basis.size + (m if augment else 0)
@@ -264,8 +265,6 @@ def design_from_config(cfg: Config) -> Design:
     regressor_bound = float(np.sqrt(np.max(sq)))
     lam_bpb = float(np.max(np.linalg.eigvalsh(B.T @ P @ B)))
     phi_d0 = 1.0 / eps if law == "barrier" else 1.0
-    from runtime.method.barrier import get_barrier
-
     bar = get_barrier(barrier)
     trip_level = cfg.number("watchdog.margin_trip")
     phi_d_trip = float(bar.phi_d(trip_level * eps, eps)) if law == "barrier" else 1.0
@@ -327,10 +326,6 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
     Appends reasons/warnings and `extras` keys "bound", "rbf_coverage",
     "residual_check"; a config that uses none of these comes back unchanged.
     """
-    import dataclasses
-
-    from runtime.method.bound import schedule_from_config
-
     reasons = list(d.reasons)
     warnings = list(d.warnings)
     extras = dict(d.extras)
@@ -388,5 +383,5 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 "(design.Q and the shape of design.R set it; scaling R alone does not).")
     if len(reasons) == len(d.reasons) and len(warnings) == len(d.warnings) and extras == d.extras:
         return d
-    return dataclasses.replace(d, reasons=tuple(reasons), warnings=tuple(warnings),
-                               feasible=not reasons, extras=extras)
+    return replace(d, reasons=tuple(reasons), warnings=tuple(warnings), feasible=not reasons,
+                   extras=extras)

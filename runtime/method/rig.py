@@ -133,7 +133,6 @@ class RigModel:
 def rig_model(cfg: Config) -> RigModel:
     """The nominal model: the simulated rig's (`rig.sim`, a built-in name or a rig file), or
     explicit `rig.A`, `rig.B`, `rig.C`; explicit keys override the rig file's."""
-    from runtime.method.rig import INLINE, rig_spec
     sim = cfg.get("rig.sim")
     if sim is not None and not isinstance(sim, str):
         raise ConfigError("rig.sim", f"must name a built-in rig or a rig file, not {sim!r}.",

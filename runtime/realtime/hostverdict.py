@@ -62,7 +62,8 @@ def thresholds_from_config(cfg: Any) -> Thresholds:
 # The verdict (pure)
 # ---------------------------------------------------------------------------
 
-def _ms(seconds: float) -> str:
+def ms_text(seconds: float) -> str:
+    """A duration in milliseconds, two decimals below 1 ms."""
     ms = seconds * 1e3
     return f"{ms:.1f} ms" if abs(ms) >= 1.0 else f"{ms:.2f} ms"
 
@@ -114,15 +115,15 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
         pass
     elif p99_s > budget:
         problems.append(
-            f"timer lateness p99 {_ms(p99_s)} exceeds the stall budget of the stale rule, "
-            f"{_ms(budget)} ({th.stale_periods:g} - 0.5 periods of {_ms(P)}; the rule trips "
-            f"at a sample {_ms(th.stale_limit_s)} old): the stale rule would trip within "
-            "seconds")
+            f"timer lateness p99 {ms_text(p99_s)} exceeds the stall budget of the stale rule, "
+            f"{ms_text(budget)} ({th.stale_periods:g} - 0.5 periods of {ms_text(P)}; the rule "
+            f"trips at a sample {ms_text(th.stale_limit_s)} old): the stale rule would trip "
+            "within seconds")
     elif stall_s > budget:
         problems.append(
-            f"worst stall {_ms(stall_s)} exceeds the stall budget of the stale rule, "
-            f"{_ms(budget)} ({th.stale_periods:g} - 0.5 periods of {_ms(P)}; the rule trips "
-            f"at a sample {_ms(th.stale_limit_s)} old)")
+            f"worst stall {ms_text(stall_s)} exceeds the stall budget of the stale rule, "
+            f"{ms_text(budget)} ({th.stale_periods:g} - 0.5 periods of {ms_text(P)}; the rule "
+            f"trips at a sample {ms_text(th.stale_limit_s)} old)")
     if predicted >= 0.5 * limit:
         problems.append(
             f"{misses} deadline misses in {ticks} ticks predict {predicted:.1f} per "
@@ -130,7 +131,7 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
             f"under half, {0.5 * limit:g})")
     elif burst >= limit:
         problems.append(
-            f"one stall of {_ms(stall_s)} costs about {burst:.0f} deadline misses at once; the "
+            f"one stall of {ms_text(stall_s)} costs about {burst:.0f} deadline misses at once; the "
             f"overrun rule trips at {limit:g} in {th.overrun_window} ticks")
     if ticks <= 0:
         problems.append("no tick was measured: the clock did not run (give --seconds of at "
@@ -139,9 +140,9 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
 
     if not rig_clocked and max(p99_s, stall_s) > budget:
         advice.append(
-            f"on a real rig at this period the stale rule would see the {_ms(max(p99_s, stall_s))}"
-            f" stall (budget {_ms(budget)}): the simulated rig does not age its samples, a "
-            "device does")
+            "on a real rig at this period the stale rule would see the "
+            f"{ms_text(max(p99_s, stall_s))} stall (budget {ms_text(budget)}): the simulated rig "
+            "does not age its samples, a device does")
     rights = fig.get("realtime_rights") or {}
     realtime = bool(fig.get("realtime"))
     if not ok:
@@ -150,12 +151,12 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
             per = _nice_period(need_s / max(th.stale_periods - 0.5, 0.5))
             sp = math.ceil(need_s / P + 0.5)
             advice.append(
-                f"a longer period: loop.period >= {per:g} s holds a {_ms(need_s)} stall with "
+                f"a longer period: loop.period >= {per:g} s holds a {ms_text(need_s)} stall with "
                 f"stale_periods = {th.stale_periods:g} (if the rig's dynamics allow it; run "
                 "`corral design` and `corral preflight` again)")
             advice.append(
-                f"or looser thresholds: watchdog.stale_periods >= {sp} at {_ms(P)} (the rule "
-                f"then trips at a sample {_ms((sp + 0.5) * P)} old)")
+                f"or looser thresholds: watchdog.stale_periods >= {sp} at {ms_text(P)} (the rule "
+                f"then trips at a sample {ms_text((sp + 0.5) * P)} old)")
         if predicted >= 0.5 * limit or burst >= limit:
             need = math.ceil(max(2 * predicted, burst) + 1)
             advice.append(
@@ -213,7 +214,7 @@ def report_lines(res: Mapping[str, Any], name: str = "") -> list[str]:
     """The readable report of a `run_hostcheck` result."""
     P = float(res["period_s"])
     th = res.get("thresholds") or {}
-    head = f"corral hostcheck{': ' + name if name else ''}: period {_ms(P)} ({1 / P:g} Hz): "
+    head = f"corral hostcheck{': ' + name if name else ''}: period {ms_text(P)} ({1 / P:g} Hz): "
     lines = [head + ("OK, this host can hold it" if res["ok"]
                      else "NOT OK, this host cannot hold it as configured")]
     lines.append(
@@ -252,7 +253,7 @@ def summary_line(res: Mapping[str, Any]) -> str:
     word = "OK" if res.get("ok") else "NOT OK"
     text = (f"host check {word}: lateness p99 {float(res.get('lateness_p99_us') or 0):.0f} us, "
             f"worst stall {float(res.get('worst_stall_ms') or 0):.2f} ms at period "
-            f"{_ms(float(res.get('period_s') or 0))}, "
+            f"{ms_text(float(res.get('period_s') or 0))}, "
             f"{'SCHED_FIFO' if res.get('realtime') else 'normal priority'}")
     if not res.get("ok") and res.get("advice"):
         text += f"; {res['advice'][0]}"

@@ -10,7 +10,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from runtime.guard.watchdog import DEFAULTS
-from runtime.realtime.hostverdict import _ms
+from runtime.realtime.hostverdict import ms_text
 
 TIMING_RULES = ("stale", "overrun", "link_loss", "seq_gap")
 """The rules whose trips `explain_trip` puts into words."""
@@ -51,9 +51,9 @@ def explain_trip(rule: str, value: Any, threshold: Any, period: float | None,
     if rule == "stale":
         if v is None or thr is None:
             return None
-        text = f"no fresh sample for {_ms(v)}; limit {_ms(thr)}"
+        text = f"no fresh sample for {ms_text(v)}; limit {ms_text(thr)}"
         if P:
-            text += f" = {thr / P:.3g} periods of {_ms(P)}"
+            text += f" = {thr / P:.3g} periods of {ms_text(P)}"
     elif rule == "overrun":
         if v is None or thr is None:
             return None
@@ -64,9 +64,9 @@ def explain_trip(rule: str, value: Any, threshold: Any, period: float | None,
         if thr is None:
             return None
         if v is None or math.isinf(v):
-            text = f"link disconnected; limit {_ms(thr)} without a sample"
+            text = f"link disconnected; limit {ms_text(thr)} without a sample"
         else:
-            text = f"no sample for {_ms(v)}; limit {_ms(thr)}"
+            text = f"no sample for {ms_text(v)}; limit {ms_text(thr)}"
     else:  # seq_gap
         if v is None or thr is None:
             return None
