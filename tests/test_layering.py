@@ -76,7 +76,8 @@ RULES = (
          OFFLINE, (*REALTIME, *DASHBOARD, *CLI)),
     Rule("the live loop never imports the dashboard (it runs in its own process) or the CLI",
          REALTIME, (*DASHBOARD, *CLI)),
-    Rule("only the command line imports the command line", ("runtime", "runtime.[!c]*"), CLI),
+    Rule("only the command line imports the command line",
+         ("runtime", "runtime.[!c]*", "runtime.config*"), CLI),
 )
 
 

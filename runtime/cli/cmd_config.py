@@ -1,7 +1,7 @@
 """`corral config CONFIG`: the fully resolved config, with units and where each value
 comes from (the file, a --set, the declared default, or derived from other settings).
 
-The listing reads the declarations in `runtime.schema` through `runtime.config.resolved`;
+The listing reads the declarations in `runtime.schema` through `runtime.config_check.resolved`;
 what a derived default works out to is shown by the command that derives it
 (`corral design` for the envelope and eps, `corral sweep` for its substeps).
 """

@@ -7,7 +7,9 @@ import json
 
 from runtime.cli.common import common_config_args
 from runtime.config import load_config
-from runtime.method.design import design_from_config, format_design
+from runtime.method.design import design_from_config
+from runtime.method.design_report import format_design
+from runtime.method.modifiers import modifiers_from_config
 from runtime.offline.verdict import decide
 
 
@@ -26,8 +28,6 @@ def main(args: argparse.Namespace) -> int:
     d = design_from_config(cfg)
     # The weight modifiers are read by the law, not the design; check them here too so a
     # bad adaptation.leakage is refused before a run, not at its start.
-    from runtime.method.modifiers import modifiers_from_config
-
     modifiers_from_config(cfg, d)
     v = decide(cfg, d, simulate=not args.closed_form)
     if args.json:

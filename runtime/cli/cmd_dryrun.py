@@ -11,7 +11,9 @@ from typing import Any
 
 from runtime.cli.common import common_config_args, force_arg, output_folder, verdict_gate
 from runtime.config import Config, load_config
+from runtime.method.commands import schedule_from_config, tracked_names
 from runtime.offline.dryrun import dry_run, plot_report, write_run_file
+from runtime.offline.verdict import decide
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -36,8 +38,6 @@ def _progress(k: int, total: int) -> None:
 
 def _duration(result: Any, cfg: Config) -> float:
     """The config's command duration (s), to tell whether the verdict's run covered it."""
-    from runtime.method.commands import schedule_from_config, tracked_names
-
     rig = result.design.rig
     return float(schedule_from_config(cfg, tracked_names(rig.C, rig.states)).duration
                  ) - 0.5 * result.design.Ts
@@ -45,8 +45,6 @@ def _duration(result: Any, cfg: Config) -> float:
 
 def main(args: argparse.Namespace) -> int:
     """Run, record, plot, summarise. Exit 0 when the bound held, 1 when it broke."""
-    from runtime.offline.verdict import decide
-
     cfg = load_config(args.config, args.overrides)
     if sys.stderr.isatty() and args.engine == "fast":
         print("  preparing the compiled kernels (compiled once per machine, then cached) ...",

@@ -21,7 +21,12 @@ import time
 
 from runtime.cli.common import UserError, common_config_args
 from runtime.config import load_config, rig_name
-from runtime.realtime.hostcheck import DEFAULT_SECONDS, report_lines, run_hostcheck
+from runtime.realtime.hostcheck import (
+    DEFAULT_SECONDS,
+    report_lines,
+    run_hostcheck,
+    thresholds_from_config,
+)
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -64,7 +69,6 @@ def main(args: argparse.Namespace) -> int:
         raise UserError("--seconds must be a number of seconds above 0 and at most 600, "
                         "e.g. --seconds 3")
     cfg = load_config(args.config, args.overrides)
-    from runtime.realtime.hostcheck import thresholds_from_config
 
     period = thresholds_from_config(cfg).period_s  # a bad period fails here, before measuring
     print(f"corral hostcheck: measuring this computer's timing for {args.seconds:g} s at "

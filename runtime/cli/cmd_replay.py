@@ -16,7 +16,16 @@ import sys
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from runtime.cli.common import UserError
+from runtime.review.replay import (
+    RunFileError,
+    plot_replay,
+    read_recording,
+    replay,
+    write_replay_file,
+)
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -112,14 +121,6 @@ def _milli(x: float | None) -> float | None:
 
 def main(args: argparse.Namespace) -> int:
     """Replay; exit 0 when the replayed run would not trip, 1 when it would."""
-    from runtime.review.replay import (
-        RunFileError,
-        plot_replay,
-        read_recording,
-        replay,
-        write_replay_file,
-    )
-
     try:
         rec = read_recording(args.runlog)
         result = replay(rec, args.overrides, plant=args.plant)
@@ -146,8 +147,6 @@ def main(args: argparse.Namespace) -> int:
 
 
 def _plain(obj: Any) -> Any:
-    import numpy as np
-
     if isinstance(obj, np.generic):
         return obj.item()
     if isinstance(obj, np.ndarray):

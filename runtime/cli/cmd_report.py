@@ -15,6 +15,8 @@ import json
 from pathlib import Path
 
 from runtime.cli.common import UserError
+from runtime.records.logs import LogReadError
+from runtime.review.report import build_report, report_data
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -31,9 +33,6 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def main(args: argparse.Namespace) -> int:
     """Write the report; exit 0, or 2 with one line on a bad input."""
-    from runtime.records.logs import LogReadError
-    from runtime.review.report import build_report, report_data
-
     path = Path(args.runlog)
     if path.is_dir():
         raise UserError(f"{path} is a folder; give one run log (*.run), e.g. "

@@ -23,8 +23,13 @@ import sys
 import tempfile
 from typing import Any
 
+from drivers.base import LinkClosed
 from runtime.cli.common import UserError, common_config_args
 from runtime.config import ConfigError, load_config
+from runtime.method.design import design_from_config
+from runtime.offline.dryrun import plant_from_config
+from runtime.realtime.loop import command_timeout
+from sim_rigs.faults import FaultError, FaultSchedule
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -51,6 +56,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def _mqtt_settings(cfg: Any, where: str, rig: str) -> Any:
+    # Deferred on purpose: build_parser imports every command module at each start; the
+    # MQTT transport (aiomqtt, paho) loads only when a command uses it.
     from drivers.mqtt_link import MqttConfigError, MqttSettings, parse_host_port
 
     try:
@@ -67,12 +74,9 @@ def main(args: argparse.Namespace) -> int:
     """Serve until interrupted; returns 0."""
     if getattr(args, "rig_command", None) != "serve":
         raise UserError("say what to do: corral rig serve CONFIG --serial | --mqtt HOST:PORT")
-    from drivers.base import LinkClosed
-    from runtime.method.design import design_from_config
-    from runtime.offline.dryrun import plant_from_config
-    from runtime.realtime.loop import command_timeout
+    # Deferred on purpose: build_parser imports every command module at each start; the
+    # served device pulls numba and both transports, loaded only for `rig serve`.
     from sim_rigs.device import RigDevice
-    from sim_rigs.faults import FaultError, FaultSchedule
 
     if not 0 < args.duration <= math.inf:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 60 "

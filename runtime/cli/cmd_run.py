@@ -28,9 +28,12 @@ import subprocess
 import sys
 from pathlib import Path
 
+from drivers.base import LinkClosed
 from runtime.cli.common import UserError, common_config_args
 from runtime.config import load_config
 from runtime.realtime.hostcheck import explain_from_header
+from runtime.realtime.loop import EXIT_INTERNAL_TRIP, Runner, RunSettings
+from runtime.records.runinfo import END_HOW
 
 HARDWARE_CAUTIONS = """\
 corral: HARDWARE CAUTIONS before you arm a real rig:
@@ -101,6 +104,8 @@ def _check_serial_port_exists(spec: str) -> None:
     """Fail fast on a serial port that is not there (before a preflight sweep runs)."""
     if not spec.startswith("serial:"):
         return
+    # Deferred on purpose: build_parser imports every command module at each start; the
+    # serial transport (pyserial) loads only when a serial link is named.
     from drivers.serial_link import parse_serial_url
 
     try:
@@ -124,6 +129,8 @@ corral: WARNING ****************************************************************
 
 def _warn_if_broker_is_open(link: object) -> None:
     """A loud warning when a real rig's broker lets anonymous clients in."""
+    # Deferred on purpose: build_parser imports every command module at each start; the
+    # MQTT transport (aiomqtt, paho) loads only when an MQTT link is named.
     from drivers.mqtt_link import MqttLink, admits_anonymous
 
     if not isinstance(link, MqttLink):
@@ -147,9 +154,6 @@ def main(args: argparse.Namespace) -> int:
     3 (`EXIT_LINK_LOST`) when the link was lost during the run, 71
     (`runtime.realtime.loop.EXIT_INTERNAL_TRIP`) when an exception inside the tick ended it through
     the ``internal`` trip."""
-    from drivers.base import LinkClosed
-    from runtime.realtime.loop import EXIT_INTERNAL_TRIP, Runner, RunSettings
-
     if args.duration is not None and not 0 < args.duration < math.inf:
         raise UserError("--duration must be a positive number of seconds, e.g. --duration 10 "
                         "(leave it out to run until stopped)")
@@ -254,7 +258,6 @@ def main(args: argparse.Namespace) -> int:
             why = explain_from_header(t["rule"], t["value"], t["threshold"], header, run_loop)
             if why:
                 print(f"    {why}")
-        from runtime.records.runinfo import END_HOW
 
         print(f"  ended: {END_HOW.get(str(summary.get('ended')), summary.get('ended'))}; link "
               f"{summary.get('link_kind')}")

@@ -7,6 +7,7 @@ into --out (default log.dir/sweeps). The numbers come from `runtime.offline.swee
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import sys
 import time
@@ -15,7 +16,9 @@ from typing import Any
 
 from runtime.cli.common import UserError, common_config_args, force_arg, output_folder, verdict_gate
 from runtime.config import load_config, rig_name
+from runtime.offline.cluster import ClusterError, open_client, parse_cluster, run_sweep_chunked
 from runtime.offline.sweep import ENGINES, parse_grid, plot_grid, plot_sweep, run_grid, run_sweep
+from runtime.offline.verdict import decide
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -150,14 +153,11 @@ def main(args: argparse.Namespace) -> int:
         best = grid["best"]
         return 0 if best and best["inside_fraction"] == 1.0 else 1
     if getattr(args, "cluster", None) or getattr(args, "resume", None):
-        from runtime.offline.cluster import ClusterError, parse_cluster
-
         try:
             if args.cluster:
                 parse_cluster(args.cluster)
         except ClusterError as exc:
             raise UserError(str(exc)) from None
-    from runtime.offline.verdict import decide
 
     verdict = decide(cfg, suggest=not args.force)
     if not verdict_gate(verdict, args.force, args.json):
@@ -183,10 +183,6 @@ def main(args: argparse.Namespace) -> int:
 def _run_chunked(cfg: Any, args: argparse.Namespace, partial: Path, bar: ProgressBar) -> Any:
     """The sweep in chunks on a Dask cluster (or here, when only resuming), each finished
     chunk appended to a partial results file that --resume reads back."""
-    import contextlib
-
-    from runtime.offline.cluster import ClusterError, open_client, run_sweep_chunked
-
     resume = args.resume
     if resume is None:
         print(f"corral: partial results go to {partial} (continue an interrupted sweep with "

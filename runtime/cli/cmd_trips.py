@@ -22,8 +22,11 @@ from typing import Any
 
 from runtime.cli.common import UserError
 from runtime.realtime.hostcheck import explain_from_header
-from runtime.records.logs import LogReadError, Trip, find_logs, read_trip_log
-from runtime.records.runinfo import iso_time, say_value
+from runtime.records.logs import RULES, LogReadError, Trip, find_logs, read_trip_log
+from runtime.records.runinfo import iso_time, parse_when, say_value
+from runtime.review.comtrade_export import export_comtrade, export_csv
+from runtime.review.tripfilter import TripFilter, run_link_kind, summarize, summary_text
+from runtime.review.triplot import plot_trip
 
 #: Config sections `--show` prints (when present), in this order.
 KEY_SECTIONS = ("rig", "design", "adaptation", "loop", "watchdog", "reactions", "fallback",
@@ -145,8 +148,6 @@ def _when(t_wall: float) -> str:
 
 
 def _link(trip: Trip) -> str:
-    from runtime.review.tripfilter import run_link_kind
-
     return run_link_kind(trip.header)
 
 
@@ -374,9 +375,6 @@ def _out_path(out: Path | None, trip: Trip, suffix: str) -> Path:
 
 
 def _filter(args: argparse.Namespace) -> Any:
-    from runtime.records.runinfo import parse_when
-    from runtime.review.tripfilter import TripFilter
-
     out = TripFilter(rules=list(getattr(args, "rule", []) or []),
                      rigs=list(getattr(args, "rig", []) or []),
                      links=list(getattr(args, "link", []) or []))
@@ -387,7 +385,6 @@ def _filter(args: argparse.Namespace) -> Any:
                 setattr(out, name, parse_when(text))
             except ValueError as exc:
                 raise UserError(f"--{name}: {exc}") from None
-    from runtime.records.logs import RULES
 
     bad = [r for r in out.rules if r not in RULES]
     if bad:
@@ -404,8 +401,6 @@ def main(args: argparse.Namespace) -> int:
                  None)
     flt = _filter(args)
     if getattr(args, "summary", False):
-        from runtime.review.tripfilter import summarize, summary_text
-
         summ = summarize(logs, flt.apply(trips), flt)
         print(json.dumps(summ, indent=2, default=str) if args.json else summary_text(summ))
         return 0
@@ -430,16 +425,10 @@ def main(args: argparse.Namespace) -> int:
     out = _out_path(args.out, trip, suffix)
     try:
         if args.plot:
-            from runtime.review.triplot import plot_trip
-
             written = [plot_trip(trip, out)]
         elif args.csv:
-            from runtime.review.comtrade_export import export_csv
-
             written = [export_csv(trip, out)]
         else:
-            from runtime.review.comtrade_export import export_comtrade
-
             written = list(export_comtrade(trip, out))
     except OSError as exc:
         why = ("a file is in the way" if isinstance(exc, FileExistsError | NotADirectoryError)

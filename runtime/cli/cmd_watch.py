@@ -7,6 +7,7 @@ Also runnable as ``python -m runtime.cli.cmd_watch --socket PATH``, which is how
 from __future__ import annotations
 
 import argparse
+import asyncio
 import os
 import sys
 import time
@@ -15,6 +16,7 @@ from typing import Any
 
 from runtime.cli.common import UserError
 from runtime.config import load_config, rig_name
+from runtime.dashboard.fleet import FleetState, make_app
 from runtime.dashboard.sources import (
     FleetSource,
     MqttSource,
@@ -22,6 +24,7 @@ from runtime.dashboard.sources import (
     SocketSource,
     TelemetrySource,
 )
+from runtime.records.runinfo import link_identity, run_name
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -93,7 +96,6 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
     if path is None and args.config:
         cfg = load_config(args.config, args.overrides)
         rig = rig_name(cfg)
-        from runtime.records.runinfo import link_identity, run_name
 
         kind = link_identity(str(cfg.get("rig.link")))["kind"]
         path = Path(str(cfg.get("log.dir"))) / f"{run_name(rig, kind)}.sock"
@@ -113,6 +115,8 @@ def make_source(args: argparse.Namespace) -> TelemetrySource:
 
 def main(args: argparse.Namespace) -> int:
     """Run the dashboard until the operator quits."""
+    # Deferred on purpose: build_parser imports every command module at each start; textual
+    # (about half a second) loads only for `watch`.
     from runtime.dashboard.app import Dashboard
 
     source = make_source(args)
@@ -132,9 +136,7 @@ def main(args: argparse.Namespace) -> int:
         async with source:
             await Dashboard(source).run_async()
 
-    import asyncio
-
-    from aiomqtt import MqttError
+    from aiomqtt import MqttError  # deferred like the dashboard: only `watch` needs it
 
     try:
         asyncio.run(run())
@@ -150,8 +152,7 @@ def main(args: argparse.Namespace) -> int:
 async def run_fleet(fleet: FleetSource) -> None:
     """The fleet view; Enter opens one rig's dashboard (its own connection, its own
     requests), quitting that comes back to the fleet, `q` on the fleet ends."""
-    from runtime.dashboard.app import Dashboard
-    from runtime.dashboard.fleet import FleetState, make_app
+    from runtime.dashboard.app import Dashboard  # deferred: textual, see main
 
     state = FleetState()  # kept across dashboards: worst margins and last trips stay
     while True:

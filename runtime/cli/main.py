@@ -10,10 +10,16 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
+import tempfile
+import time
+import traceback
 from collections.abc import Sequence
 
+from runtime import __version__
 from runtime.cli.common import UserError, common_config_args, output_folder
+from runtime.config import ConfigError
 
 __all__ = ["UserError", "common_config_args", "output_folder", "main", "COMMANDS"]
 
@@ -47,7 +53,6 @@ def build_parser() -> argparse.ArgumentParser:
         description="Barrier-bounded adaptive control for bench rigs: design, dry-run, run, "
                     "guard, watch and review.",
     )
-    from runtime import __version__
 
     parser.add_argument("--version", action="version", version=f"corral {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -66,8 +71,6 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the `corral` console script."""
-    from runtime.config import ConfigError
-
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "_module", None):
@@ -86,16 +89,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         # The reader went away (e.g. `| head`): not an error of ours.
-        import os
-
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 0
     except Exception as exc:  # noqa: BLE001 - the last line of defence, see below
         # A bug of ours, not a mistake of the user's: keep the screen to one line and
         # the details in a file the user can attach to a report. CORRAL_DEBUG=1 re-raises.
-        import os
-
         if os.environ.get("CORRAL_DEBUG"):
             raise
         report = _write_crash_report(exc)
@@ -106,12 +105,6 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _write_crash_report(exc: BaseException) -> str:
     """Write the traceback to a temporary file and return its path."""
-    import tempfile
-    import time
-    import traceback
-
-    from runtime import __version__
-
     text = (f"corral {__version__}, python {sys.version.split()[0]}\n"
             f"argv: {sys.argv}\n\n" + "".join(traceback.format_exception(exc)))
     fd, path = tempfile.mkstemp(prefix=f"corral-crash-{time.strftime('%Y%m%d-%H%M%S')}-",

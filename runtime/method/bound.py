@@ -57,6 +57,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from runtime.config import Config, ConfigError
+from runtime.method.commands import schedule_from_config as commands_from_config
+from runtime.method.commands import tracked_names
 
 Array = NDArray[np.float64]
 
@@ -170,9 +172,6 @@ class BoundSchedule:
 # ---------------------------------------------------------------- from a config
 def _command_events(cfg: Config, design: Any, change: float) -> list[float]:
     """Times at which a command has moved more than `change` since the last event."""
-    from runtime.method.commands import schedule_from_config as commands_from_config
-    from runtime.method.commands import tracked_names
-
     rig = design.rig
     sched = commands_from_config(cfg, tracked_names(rig.C, rig.states))
     dt = min(float(design.Ts), 0.01)

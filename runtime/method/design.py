@@ -5,199 +5,46 @@ Plain functions on numpy arrays (`lqr`, `tracking_gain`, `lyapunov`,
 for a rig and returns a frozen `Design`. Dimension and feasibility problems
 raise `ConfigError` naming the config field and the fix.
 
+The plain functions live in `runtime.method.gains` (K1, K2, P, eps) and
+`runtime.method.sampled` (ZOH, the sampled-data closed form), the nominal model in
+`runtime.method.rig` (`RigModel`, `rig_model`); this module re-exports them. The
+report in words: `runtime.method.design_report`.
+
 What does not live here: the update law that uses the design (`runtime.method.law`)
 and anything that does I/O.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
-import scipy.linalg as sla
 from numpy.typing import NDArray
 
-from runtime.config import Config, ConfigError, rig_name
+from runtime.config import Config, ConfigError
+from runtime.method.barrier import BARRIERS, get_barrier
 from runtime.method.basis import Basis, basis_from_config
+from runtime.method.bound import schedule_from_config
+from runtime.method.gains import (
+    Poles,
+    controllability_rank,
+    eps_from_limits,
+    lqr,
+    lyapunov,
+    tracking_gain,
+)
 from runtime.method.rbf import coverage, envelope_points, residual_eps
+from runtime.method.rig import RigModel, rig_model
+from runtime.method.sampled import SAMPLED_LIMIT, sampled_spectral_radius, zoh
+
+__all__ = [
+    "INPUT_SCALES", "SAMPLED_LIMIT", "Design", "Poles", "RigModel", "controllability_rank",
+    "design_from_config", "eps_from_limits", "input_regressor_scale", "lqr", "lyapunov",
+    "rig_model", "sampled_spectral_radius", "tracking_gain", "zoh",
+]
 
 Array = NDArray[np.float64]
-Poles = NDArray[np.inexact[Any]]
-"""Eigenvalues: real or complex, as numpy returns them."""
-
-
-# ---------------------------------------------------------------- plain functions
-def lqr(A: Array, B: Array, Q: Array, R: Array) -> tuple[Array, Array, Poles]:
-    """Continuous-time LQR: gain K (m x n), Riccati solution X, closed-loop poles.
-
-    Minimises the integral of x'Qx + u'Ru for x' = Ax + Bu with u = -Kx.
-
-    Example:
-        >>> K, X, poles = lqr(np.array([[0., 1.], [0., 0.]]), np.array([[0.], [1.]]),
-        ...                   np.eye(2), np.eye(1))
-        >>> np.round(K, 4).tolist()
-        [[1.0, 1.7321]]
-    """
-    A, B, Q, R = (np.atleast_2d(np.asarray(M, dtype=float)) for M in (A, B, Q, R))
-    n, m = B.shape
-    _check_shape("A", A, (n, n))
-    _check_shape("Q", Q, (n, n))
-    _check_shape("R", R, (m, m))
-    X = sla.solve_continuous_are(A, B, Q, R)
-    K = np.linalg.solve(R, B.T @ X)
-    poles = np.linalg.eigvals(A - B @ K)
-    return K, X, poles
-
-
-def controllability_rank(A: Array, B: Array) -> int:
-    """Rank of the controllability matrix [B, AB, ..., A^(n-1) B]."""
-    n = A.shape[0]
-    blocks = [B]
-    for _ in range(n - 1):
-        blocks.append(A @ blocks[-1])
-    return int(np.linalg.matrix_rank(np.hstack(blocks)))
-
-
-def tracking_gain(A_r: Array, B: Array, C: Array) -> Array:
-    """K2 = -(C A_r^-1 B)^-1: unit DC gain from command c to tracked outputs C x."""
-    dc = C @ np.linalg.solve(A_r, B)
-    return -np.linalg.inv(dc)
-
-
-def lyapunov(A_r: Array, R: Array) -> Array:
-    """P solving A_r' P + P A_r + R = 0 (symmetric, positive definite for Hurwitz A_r)."""
-    P = sla.solve_continuous_lyapunov(A_r.T, -R)
-    sym: Array = 0.5 * (P + P.T)
-    return sym
-
-
-def eps_from_limits(P: Array, limits: Array) -> tuple[float, int, Array]:
-    """Largest eps whose ellipsoid e'Pe <= eps^2 fits the box |e_i| <= limits_i.
-
-    The support function of the ellipsoid along axis i is eps sqrt((P^-1)_ii),
-    so eps = min_i limits_i / sqrt((P^-1)_ii). Returns eps, the binding state
-    index and the guaranteed per-state envelope eps sqrt((P^-1)_ii).
-    """
-    spread = np.sqrt(np.diag(np.linalg.inv(P)))
-    ratios = np.asarray(limits, dtype=float) / spread
-    i = int(np.argmin(ratios))
-    eps = float(ratios[i])
-    return eps, i, eps * spread
-
-
-def zoh(A: Array, B: Array, T: float) -> tuple[Array, Array]:
-    """Exact zero-order-hold discretisation via the block matrix exponential.
-
-    expm([[A, B], [0, 0]] T) = [[A_d, B_d], [0, I]].
-    """
-    n, m = B.shape
-    M = np.zeros((n + m, n + m))
-    M[:n, :n] = A
-    M[:n, n:] = B
-    E = sla.expm(M * T)
-    return E[:n, :n], E[:n, n:]
-
-
-SAMPLED_LIMIT = 4.0
-"""Limit of Ts^2 gamma phi_d ||sigma_bar||^2 lambda_max(Lambda B'PB) for the semi-implicit tick
-(symplectic Euler on the adaptive loop's oscillation; docs/sampled-data.md)."""
-
-
-def sampled_spectral_radius(Phi: Array, Gam: Array, K1: Array, PB: Array, kappa: float,
-                            Lam: Array | None = None) -> float:
-    """Spectral radius of the one-tick error map of the semi-implicit sampled law.
-
-    With the regressor frozen over a tick, v = W_tilde' sigma_bar and
-    kappa = Ts gamma phi_d ||sigma_bar||^2, one tick (update the weights with e_k,
-    u_k from the new weights, plant input held: x+ = Phi x + Gam Lam u) maps (e, v) as
-
-        v+ = v + kappa (PB)' e
-        e+ = (Phi - Gam K1) e - Gam Lam v+
-
-    Below 1 the sampled loop is stable near e = 0; at or above 1 it is not. The
-    uncertainty itself (W*' sigma, the ZOH mismatch of the reference model) enters
-    this map as an input, so a radius below 1 says nothing on how far e goes.
-    """
-    n, m = Gam.shape
-    L = np.eye(m) if Lam is None else np.asarray(Lam, dtype=float)
-    GL = Gam @ L
-    top = np.hstack((Phi - Gam @ K1 - kappa * GL @ PB.T, -GL))
-    bottom = np.hstack((kappa * PB.T, np.eye(m)))
-    return float(np.max(np.abs(np.linalg.eigvals(np.vstack((top, bottom))))))
-
-
-def _check_shape(name: str, M: Array, shape: tuple[int, int]) -> None:
-    if M.shape != shape:
-        raise ValueError(f"{name} has shape {M.shape}, expected {shape}")
-
-
-# ---------------------------------------------------------------- the rig model
-@dataclass(frozen=True)
-class RigModel:
-    """Nominal model and naming of the rig a config describes."""
-
-    name: str
-    sim: str | None
-    A: Array
-    B: Array
-    C: Array
-    states: tuple[str, ...]
-    state_units: tuple[str, ...]
-    inputs: tuple[str, ...]
-    input_units: tuple[str, ...]
-    input_limits: Array
-    spec: Any = field(default=None, compare=False, repr=False)
-    """The simulated rig (`sim_rigs.rigfile.RigSpec`), None for a real rig without terms."""
-
-    @property
-    def n(self) -> int:
-        """Number of states."""
-        return int(self.A.shape[0])
-
-    @property
-    def m(self) -> int:
-        """Number of inputs."""
-        return int(self.B.shape[1])
-
-
-def rig_model(cfg: Config) -> RigModel:
-    """The nominal model: the simulated rig's (`rig.sim`, a built-in name or a rig file), or
-    explicit `rig.A`, `rig.B`, `rig.C`; explicit keys override the rig file's."""
-    from runtime.method.rig import INLINE, rig_spec
-    sim = cfg.get("rig.sim")
-    if sim is not None and not isinstance(sim, str):
-        raise ConfigError("rig.sim", f"must name a built-in rig or a rig file, not {sim!r}.",
-                          'write e.g. rig.sim = "pedestal" or rig.sim = "my-rig.toml".')
-
-    spec = rig_spec(cfg)
-    name = rig_name(cfg)
-    if spec is not None and sim is not None:
-        sim = spec.name
-        A0, B0, C0 = spec.nominal_model()
-        n, m = A0.shape[0], B0.shape[1]
-        A = cfg.matrix("rig.A", (n, n)) if cfg.has("rig.A") else A0
-        B = cfg.matrix("rig.B", (n, m)) if cfg.has("rig.B") else B0
-        C = cfg.matrix("rig.C", (None, n)) if cfg.has("rig.C") else C0
-        limits = (cfg.vector("rig.input_limits", m, positive=True)
-                  if cfg.has("rig.input_limits") else np.array(spec.input_limits, dtype=float))
-        return RigModel(name, sim, A, B, C, spec.states, spec.state_units, spec.inputs,
-                        spec.input_units, limits, spec)
-    A = cfg.matrix("rig.A", (None, None))
-    n = A.shape[0]
-    if A.shape != (n, n):
-        raise ConfigError("rig.A", f"must be square, got shape {A.shape}.",
-                          "give an n x n matrix (n = number of states).")
-    B = cfg.matrix("rig.B", (n, None))
-    m = B.shape[1]
-    C = cfg.matrix("rig.C", (m, n))
-    states = tuple(cfg.strings("rig.states", n, [f"x{i}" for i in range(n)]))
-    units = tuple(cfg.strings("rig.state_units", n, ["1"] * n))
-    inputs = tuple(cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)]))
-    in_units = tuple(cfg.strings("rig.input_units", m, ["1"] * m))
-    limits = cfg.vector("rig.input_limits", m)
-    return RigModel(name, INLINE if spec is not None else None, A, B, C, states, units, inputs,
-                    in_units, limits, spec)
 
 
 INPUT_SCALES = ("u_max", "none")
@@ -399,8 +246,6 @@ def design_from_config(cfg: Config) -> Design:
 
     basis = basis_from_config(cfg, rig.states)
     law = cfg.choice("adaptation.law")
-    from runtime.method.barrier import BARRIERS
-
     barrier = cfg.choice("adaptation.barrier", tuple(BARRIERS))
     augment = cfg.flag("adaptation.unknown_effectiveness")
     n_reg = basis.size + (m if augment else 0)
@@ -420,8 +265,6 @@ def design_from_config(cfg: Config) -> Design:
     regressor_bound = float(np.sqrt(np.max(sq)))
     lam_bpb = float(np.max(np.linalg.eigvalsh(B.T @ P @ B)))
     phi_d0 = 1.0 / eps if law == "barrier" else 1.0
-    from runtime.method.barrier import get_barrier
-
     bar = get_barrier(barrier)
     trip_level = cfg.number("watchdog.margin_trip")
     phi_d_trip = float(bar.phi_d(trip_level * eps, eps)) if law == "barrier" else 1.0
@@ -483,10 +326,6 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
     Appends reasons/warnings and `extras` keys "bound", "rbf_coverage",
     "residual_check"; a config that uses none of these comes back unchanged.
     """
-    import dataclasses
-
-    from runtime.method.bound import schedule_from_config
-
     reasons = list(d.reasons)
     warnings = list(d.warnings)
     extras = dict(d.extras)
@@ -544,102 +383,5 @@ def _wider_checks(cfg: Config, d: Design) -> Design:
                 "(design.Q and the shape of design.R set it; scaling R alone does not).")
     if len(reasons) == len(d.reasons) and len(warnings) == len(d.warnings) and extras == d.extras:
         return d
-    return dataclasses.replace(d, reasons=tuple(reasons), warnings=tuple(warnings),
-                               feasible=not reasons, extras=extras)
-
-
-def format_design(d: Design, verdict: Any = None) -> str:
-    """A human-readable design report with units; `verdict` a `runtime.offline.verdict.Verdict`."""
-    rig = d.rig
-    lines = [
-        f"corral design: rig {rig.name!r}" + (f" (simulated {rig.sim})" if rig.sim else ""),
-        "  states  " + _named(rig.states, rig.state_units),
-        "  inputs  " + _named(rig.inputs, rig.input_units),
-        "",
-        "Baseline (LQR) gain K1 [input units per state unit]:",
-        _indent(_mat(d.K1)),
-        "Tracking gain K2 (unit DC gain on the tracked outputs):",
-        _indent(_mat(d.K2)),
-        "Closed-loop poles of A_r = A - B K1 [rad/s]:",
-        _indent(", ".join(_fmt_pole(p) for p in sorted(d.poles, key=lambda z: z.real))),
-        "Lyapunov matrix P (A_r' P + P A_r + R = 0):",
-        _indent(_mat(d.P)),
-        "",
-        "Error bound:",
-        f"  eps = {d.eps:.5g} (in ||e||_P)"
-        + ("" if abs(d.eps - d.eps_from_limits) < 1e-12
-           else f"; the limits alone allow {d.eps_from_limits:.5g}"),
-        f"  binding state: {d.binding_state} (its limit is reached first)",
-        "  per-state limit and guaranteed envelope:",
-    ]
-    for s, u, lim, env in zip(rig.states, rig.state_units, d.limits, d.envelope, strict=True):
-        mark = "  <- binds" if s == d.binding_state else ""
-        lines.append(f"    {s:>10}: limit {lim:9.4g} {u:6}  envelope +-{env:9.4g} {u}{mark}")
-    lines += [
-        f"  c_bar = lambda_min(R)/lambda_max(P) = {d.c_bar:.4g} 1/s",
-        *_wider_lines(d),
-        "",
-        "Sampled-data checks:",
-        f"  sample period {d.Ts * 1e3:.4g} ms ({1 / d.Ts:.4g} Hz), reference model by exact ZOH",
-        f"  law {d.law}" + (f" (barrier {d.barrier})" if d.law == "barrier" else "")
-        + f", gamma max {float(np.max(d.gamma)):.4g}, regressors: {', '.join(d.regressor_names)}",
-        f"  regressor bound ||sigma_bar|| <= {d.regressor_bound:.4g} over the operating range",
-        f"  sampled loop (update with e_k, then u_k): one-tick map spectral radius "
-        f"{d.sampled_radius:.5f} (stable below 1; Ts * g limit {SAMPLED_LIMIT:g})",
-        f"  nominal per-step adaptation gain g = {d.step_gain:.4g}; runtime guard "
-        f"adaptation.step_gain_cap {d.step_gain_cap:.3g} (at the trip level g = "
-        f"{d.step_gain_at_trip:.4g})",
-        "",
-    ]
-    if verdict is None:
-        lines.append("Verdict (closed form): " + ("not refused" if d.feasible else "REFUSED"))
-        lines += [f"  reason: {r}" for r in d.reasons]
-    else:
-        lines.append(f"Verdict: {verdict.verdict} (by the {verdict.basis})")
-        lines.append(f"  {verdict.reason}")
-        if verdict.fix:
-            lines.append(f"  fix: {verdict.fix}")
-    lines += [f"  warning: {w}" for w in d.warnings]
-    lines.append("")
-    lines.append("The bound is a continuous-time guarantee, not a hardware guarantee: watch the "
-                 "measured margin.")
-    return "\n".join(lines)
-
-
-def _wider_lines(d: Design) -> list[str]:
-    """Report lines for the time-varying bound and the radial basis (when present)."""
-    lines = []
-    b = d.extras.get("bound")
-    if b:
-        lines.append(f"  bound schedule {b['kind']}: eps0 {b['eps0']:.4g} -> eps_inf "
-                     f"{b['eps_inf']:.4g}, narrowing rate {b['alpha']:.4g} 1/s (admissible "
-                     f"<= c_bar/2 = {b['alpha_max']:.4g} 1/s)")
-    cov = d.extras.get("rbf_coverage")
-    if cov:
-        lines.append(f"  radial basis: {d.basis.size} terms, covers "
-                     f"{100 * cov['covered_fraction']:.2f} % of the admitted region "
-                     f"(worst activation {cov['worst_activation']:.2g})")
-    res = d.extras.get("residual_check")
-    if res:
-        lines.append(f"  residual d_max {res['d_max']:.3g}: needs eps > {res['eps_needed']:.4g} "
-                     + ("(met)" if res["ok"] else "(NOT met, see warning)"))
-    return lines
-
-
-def _named(names: tuple[str, ...], units: tuple[str, ...]) -> str:
-    return ", ".join(f"{s} [{u}]" for s, u in zip(names, units, strict=True))
-
-
-def _fmt_pole(p: complex) -> str:
-    if abs(p.imag) < 1e-9:
-        return f"{p.real:.4g}"
-    return f"{p.real:.4g}{p.imag:+.4g}j"
-
-
-def _mat(M: Array) -> str:
-    """A matrix for the report (no change to numpy's global print options)."""
-    return np.array2string(np.asarray(M), precision=4, suppress_small=True, max_line_width=100)
-
-
-def _indent(text: str) -> str:
-    return "\n".join("  " + line for line in text.splitlines())
+    return replace(d, reasons=tuple(reasons), warnings=tuple(warnings), feasible=not reasons,
+                   extras=extras)

@@ -33,7 +33,8 @@ from numpy.typing import ArrayLike, NDArray
 
 from runtime.config import Config
 from runtime.method.barrier import clamped_phi_d, get_barrier
-from runtime.method.design import Design
+from runtime.method.design import Design, design_from_config
+from runtime.method.modifiers import modifiers_from_config
 
 Array = NDArray[np.float64]
 
@@ -184,8 +185,5 @@ def law_from_config(cfg: Config, design: Design | None = None) -> AdaptiveLaw:
     The time-varying bound is not part of the law: pass `eps` per tick from
     `runtime.method.bound.schedule_from_config(cfg, design).eps(t)`.
     """
-    from runtime.method.design import design_from_config
-    from runtime.method.modifiers import modifiers_from_config
-
     design = design_from_config(cfg) if design is None else design
     return AdaptiveLaw(design, modifiers_from_config(cfg, design))

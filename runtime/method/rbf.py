@@ -131,7 +131,7 @@ def envelope_points(design: Any, cfg: Config, eps: float, reference_step: tuple[
     """Points of {x_r + e : ||e||_P = eps} along the reference the commands drive.
 
     x_r: the reference model, stepped by `reference_step` = (A_d, B_d) (its exact
-    zero-order hold at `dt`, from `runtime.method.design.zoh`; passed in so this module does
+    zero-order hold at `dt`, from `runtime.method.sampled.zoh`; passed in so this module does
     not import the design, which imports it), driven by `[commands]` (or the operating
     box of design.state_range when there are none); e: the per-state extreme points of
     the ellipsoid plus `count` random directions.

@@ -1,4 +1,5 @@
-"""The simulated rig a config names, as a `sim_rigs.rigfile.RigSpec`.
+"""The rig a config names: its nominal model (`RigModel`, `rig_model`) and its simulation
+(a `sim_rigs.rigfile.RigSpec`).
 
 Three ways, one result:
 
@@ -15,13 +16,19 @@ the format (`sim_rigs.rigfile`), the plant (`sim_rigs.plant`).
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
 from typing import Any
 
-from runtime.config import Config, ConfigError
+import numpy as np
+from numpy.typing import NDArray
+
+from runtime.config import Config, ConfigError, rig_name
 from sim_rigs.rigfile import RigFileError, RigSpec, resolve_rig, rig_from_dict
 
 INLINE = "config"
 """`RigModel.sim` of a rig simulated from the config's own [plant] terms."""
+
+Array = NDArray[np.float64]
 
 
 def as_config_error(exc: RigFileError) -> ConfigError:
@@ -93,3 +100,70 @@ def sensor_overrides(cfg: Config) -> dict[str, Any]:
             raise ConfigError(where, f"must be a whole number of ticks, got {v!r}.",
                               "write e.g. delay_ticks = 2.")
     return raw
+
+
+@dataclass(frozen=True)
+class RigModel:
+    """Nominal model and naming of the rig a config describes."""
+
+    name: str
+    sim: str | None
+    A: Array
+    B: Array
+    C: Array
+    states: tuple[str, ...]
+    state_units: tuple[str, ...]
+    inputs: tuple[str, ...]
+    input_units: tuple[str, ...]
+    input_limits: Array
+    spec: Any = field(default=None, compare=False, repr=False)
+    """The simulated rig (`sim_rigs.rigfile.RigSpec`), None for a real rig without terms."""
+
+    @property
+    def n(self) -> int:
+        """Number of states."""
+        return int(self.A.shape[0])
+
+    @property
+    def m(self) -> int:
+        """Number of inputs."""
+        return int(self.B.shape[1])
+
+
+def rig_model(cfg: Config) -> RigModel:
+    """The nominal model: the simulated rig's (`rig.sim`, a built-in name or a rig file), or
+    explicit `rig.A`, `rig.B`, `rig.C`; explicit keys override the rig file's."""
+    sim = cfg.get("rig.sim")
+    if sim is not None and not isinstance(sim, str):
+        raise ConfigError("rig.sim", f"must name a built-in rig or a rig file, not {sim!r}.",
+                          'write e.g. rig.sim = "pedestal" or rig.sim = "my-rig.toml".')
+
+    spec = rig_spec(cfg)
+    name = rig_name(cfg)
+    if spec is not None and sim is not None:
+        sim = spec.name
+        A0, B0, C0 = spec.nominal_model()
+        n, m = A0.shape[0], B0.shape[1]
+        A = cfg.matrix("rig.A", (n, n)) if cfg.has("rig.A") else A0
+        B = cfg.matrix("rig.B", (n, m)) if cfg.has("rig.B") else B0
+        C = cfg.matrix("rig.C", (None, n)) if cfg.has("rig.C") else C0
+        limits = (cfg.vector("rig.input_limits", m, positive=True)
+                  if cfg.has("rig.input_limits") else np.array(spec.input_limits, dtype=float))
+        return RigModel(name, sim, A, B, C, spec.states, spec.state_units, spec.inputs,
+                        spec.input_units, limits, spec)
+    A = cfg.matrix("rig.A", (None, None))
+    n = A.shape[0]
+    if A.shape != (n, n):
+        raise ConfigError("rig.A", f"must be square, got shape {A.shape}.",
+                          "give an n x n matrix (n = number of states).")
+    B = cfg.matrix("rig.B", (n, None))
+    m = B.shape[1]
+    C = cfg.matrix("rig.C", (m, n))
+    states = tuple(cfg.strings("rig.states", n, [f"x{i}" for i in range(n)]))
+    units = tuple(cfg.strings("rig.state_units", n, ["1"] * n))
+    inputs = tuple(cfg.strings("rig.inputs", m, [f"u{i}" for i in range(m)]))
+    in_units = tuple(cfg.strings("rig.input_units", m, ["1"] * m))
+    limits = cfg.vector("rig.input_limits", m)
+    return RigModel(name, INLINE if spec is not None else None, A, B, C, states, units, inputs,
+                    in_units, limits, spec)
+
