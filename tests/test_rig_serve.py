@@ -78,7 +78,12 @@ async def drive_then_stop(link, n: int = 200) -> tuple[list[int], int]:
         statuses.append(s.status)
         await link.send(Command(s.seq, (2.0, -2.0)))
     await asyncio.sleep(0.25)  # five command timeouts with no command
+    # The device's answer to the silence, waited for: on a loaded machine its clock may
+    # not have run five periods in that wall time (a generous bound, not a deadline).
+    end = asyncio.get_running_loop().time() + 60
     s = await link.receive_latest()
+    while not s.status & STATUS_COMMAND_TIMEOUT and asyncio.get_running_loop().time() < end:
+        s = await link.receive_latest()
     return statuses, s.status
 
 
