@@ -36,7 +36,7 @@ def test_mode_machine_latch_reset_never_restarts():
     assert s.request("stop", []).ok and s.mode == "stopped"
 
 
-async def _until(client, pred, timeout=8.0):
+async def _until(client, pred, timeout=120.0):  # a bound on the event
     async with asyncio.timeout(timeout):
         while True:
             msg = await client.next("telemetry")
