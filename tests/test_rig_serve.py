@@ -329,8 +329,11 @@ def test_rig_clocked_overrun_counts_late_samples(tmp_path):
 
     with InProcess(tmp_path, ["link_delay@1.2:seconds=0.006"]) as rig:
         assert rig.device.period == 0.002  # the served config's period
+        # link_loss widened too: a loaded machine can hold the device's thread off past
+        # its 0.1 s silence and take the first-out place (not what this test checks)
         cfg = load_config(SERVED, [f"log.dir={tmp_path}",
-                                   "watchdog.rules.stale.enabled=false"])
+                                   "watchdog.rules.stale.enabled=false",
+                                   "watchdog.link_timeout_s=5"])
         r = Runner(cfg, RunSettings(duration=2.5, auto_arm=True, link=f"serial:{rig.path}",
                                     preflight=False, echo_trips=False))
         summary = asyncio.run(r.run())
