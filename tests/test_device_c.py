@@ -156,7 +156,7 @@ def test_example_device_closes_a_loop_with_serial_link_and_fails_safe(bins):
         path = first[1]
 
         async def main():
-            async with SerialLink(path, hello_timeout_s=3.0) as link:
+            async with SerialLink(path, hello_timeout_s=30.0) as link:  # a bound, not a deadline
                 h = link.hello
                 assert (h.rig_id, h.channels, h.output_limits) == ("c-example", ("x", "v"), (5.0,))
                 assert h.command_timeout_s == 0.05

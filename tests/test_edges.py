@@ -96,7 +96,7 @@ def test_killed_at_the_announcement_every_trip_reads_back(tmp_path):
             await asyncio.sleep(0.005)
         client = TelemetryClient(sock)
         try:
-            for _ in range(200):  # the file exists from bind(), connections from listen()
+            for _ in range(6000):  # the file exists from bind(), connections from listen()
                 try:
                     await client.connect()
                     break

@@ -1,9 +1,8 @@
 """The fleet view: five rigs on one real mosquitto, read through textual's pilot; the
 ordering by urgency as a pure function.
 
-The rigs are the runtime's own MQTT bridge (`runtime.realtime.telemetry.MqttBridge`, what
-`corral run --telemetry-mqtt` runs) fed with telemetry maps of the documented shape
-(tests/fleet_rigs.py).
+The rigs are real runtimes: `corral run --headless --telemetry-mqtt` processes on the
+simulated rig, each with its own rig name and faults (tests/fleet_rigs.py).
 A rig killed with SIGKILL leaves its broker to publish its last will (MQTT 5.0, section 3.1.2.5:
 the Will Message is published when the network connection is closed without a DISCONNECT);
 the fleet shows it as silent. Ordering rule (trips first, then lost contact, then warnings,
@@ -15,15 +14,15 @@ from __future__ import annotations
 
 import asyncio
 import os
-import signal
-import subprocess
-import sys
 import tempfile
 from pathlib import Path
 
 import pytest
-from mqtt_broker import Broker, make_certificates, mosquitto  # noqa: F401  (the fixture)
+from aiomqtt import MqttError
+from fleet_rigs import PERIOD_S, kill_rig, start_rig, stderr_of, stop_rigs
+from mqtt_broker import Broker, mosquitto  # noqa: F401  (the fixture)
 
+from runtime.dashboard.app import Dashboard
 from runtime.dashboard.fleet import (
     RANK_LINK,
     RANK_QUIET,
@@ -36,7 +35,12 @@ from runtime.dashboard.fleet import (
     make_app,
     urgency,
 )
-from runtime.dashboard.sources import FleetSource
+from runtime.dashboard.sources import FleetSource, MqttSource
+
+# Five runtimes start in parallel (each imports, designs and compiles before it
+# publishes): minutes on a heavily loaded 2-core machine. Bounds, not deadlines.
+pytestmark = pytest.mark.timeout(1200)
+BOUND_S = 600.0
 
 HELLO = {"type": "hello", "levels": {"warning": 0.8, "trip": 0.9}}
 
@@ -93,18 +97,8 @@ def test_worst_margin_is_the_highest_seen():
     assert fleet_rows(fleet, now=1.0)[0][3:5] == ("0.400", "0.700")
 
 
-def serve(broker: Broker, *rigs: str, extra: tuple[str, ...] = (), env=None):
-    proc = subprocess.Popen(
-        [sys.executable, str(Path(__file__).with_name("fleet_rigs.py")), broker.host,
-         str(broker.port), *rigs, *extra],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-    for _ in rigs:
-        line = proc.stdout.readline()  # blocks until the bridge is connected (or exits)
-        assert line.startswith("ready"), proc.stderr.read()
-    return proc
-
-
-async def wait_for(pilot, cond, what: str, bound_s: float = 120.0) -> None:
+async def wait_for(pilot, cond, what: str, bound_s: float = BOUND_S) -> None:
+    """Wait for an event, with a bound a loaded 2-core machine never reaches."""
     loop = asyncio.get_running_loop()
     end = loop.time() + bound_s
     while not cond():
@@ -112,10 +106,47 @@ async def wait_for(pilot, cond, what: str, bound_s: float = 120.0) -> None:
         await pilot.pause(0.2)
 
 
-def test_five_rigs_on_one_broker_in_the_fleet_view(mosquitto):  # noqa: F811
-    rigs = ["rig-ok=running", "rig-warn=warning", "rig-trip=tripped", "rig-link=link"]
-    many = serve(mosquitto, *rigs)
-    lone = serve(mosquitto, "rig-gone=running")
+def tel_of(app, rig: str) -> dict:
+    st = app.fleet.rigs.get(rig)
+    return st.telemetry if st is not None else {}
+
+
+TRIP_AT_S = 1.0
+"""The spike on rig-trip, in rig time: a jump trip at tick TRIP_AT_S / PERIOD_S."""
+
+
+def test_five_rigs_on_one_broker_in_the_fleet_view(mosquitto, tmp_path):  # noqa: F811
+    # Five real runtimes (tests/fleet_rigs.py), each in a state the fleet ranks apart:
+    # - rig-trip: a 0.3 rad spike on the azimuth reading, thirty times the jump limit
+    #   (half of design.limits, 0.01 rad): the jump rule trips, the baseline latches
+    #   (the same fault and rule as tests/test_run.py);
+    # - rig-gone: running, then SIGKILLed: its broker publishes the will;
+    # - rig-warn: running with its warning level at 1e-6, so any margin is a warning;
+    # - rig-link: every 100th frame fails its CRC from 1 s on (the receiver discards
+    #   it; seq_gap_max raised so the missing sample is counted, not tripped on);
+    # - rig-idle: not armed.
+    specs = {
+        "rig-trip": dict(faults=[f"spike@{TRIP_AT_S}:axis=az,size=0.3"]),
+        "rig-gone": dict(),
+        "rig-warn": dict(sets=["watchdog.margin_warning=0.000001"]),
+        "rig-link": dict(faults=["corrupt@1.0:every=100"], sets=["watchdog.seq_gap_max=1000"]),
+        "rig-idle": dict(arm=False),
+    }
+    procs = {rig: start_rig(mosquitto.url, rig, tmp_path / rig, **kw)
+             for rig, kw in specs.items()}
+
+    def ready(app) -> bool:
+        for rig, proc in procs.items():
+            assert rig == "rig-gone" or proc.poll() is None, \
+                f"{rig} ended: {stderr_of(tmp_path / rig)}"
+        t = {rig: tel_of(app, rig) for rig in specs}
+        return (all(t.values())
+                and t["rig-trip"].get("latched") is True and app.fleet.rigs["rig-trip"].last_trip
+                and (t["rig-link"].get("link") or {}).get("crc_errors", 0) > 0
+                and all(t[r].get("mode") == "engaged" and 0 < t[r].get("ratio", 0) < 0.8
+                        for r in ("rig-gone", "rig-warn", "rig-link"))
+                and t["rig-idle"].get("mode") == "idle")
+
     try:
         async def main():
             source = FleetSource(mosquitto.host, mosquitto.port)
@@ -123,55 +154,65 @@ def test_five_rigs_on_one_broker_in_the_fleet_view(mosquitto):  # noqa: F811
                 with pytest.raises(PermissionError):
                     await source.request("arm")  # the fleet view sends no requests
                 app = make_app(source, FleetState(silent_after_s=30.0))
-                async with app.run_test(size=(160, 30)) as pilot:
-                    await wait_for(pilot, lambda: len(app.fleet.rigs) == 5
-                                   and all(st.telemetry for st in app.fleet.rigs.values()),
-                                   "five rigs with telemetry")
-                    os.kill(lone.pid, signal.SIGKILL)
-                    lone.wait(timeout=60)
-                    await wait_for(pilot, lambda: app.rows()[1][1].startswith("SILENT"),
-                                   "the killed rig shown silent")
+                async with app.run_test(size=(180, 30)) as pilot:
+                    await wait_for(pilot, lambda: ready(app), "five rigs in their states")
+                    gone = {r[0]: r for r in app.rows()}["rig-gone"]
+                    assert gone[1:3] == ("running", "engaged") and float(gone[3]) > 0
+                    kill_rig(procs["rig-gone"])
+                    await wait_for(pilot, lambda: app.fleet.rigs["rig-gone"].mode_msg
+                                   .get("online") is False, "the killed rig's will")
                     rows = app.rows()
                     assert [r[0] for r in rows] == ["rig-trip", "rig-gone", "rig-warn",
-                                                    "rig-link", "rig-ok"]
-                    trip = rows[0]
-                    assert trip[1] == "TRIPPED" and "latched" in trip[2]
-                    assert trip[5].startswith("margin: 0.93 vs 0.9 -> fallback")
-                    assert rows[1][1] == "SILENT (will: disconnected)"
-                    assert rows[2][3] == "0.850" and rows[2][1] == "WARNING"
-                    assert rows[3][6].startswith("crc 2, gaps 7")
-                    assert rows[4][1] == "running" and rows[4][6].startswith("ok")
-                    # the table on the screen holds the same rows, in the same order
+                                                    "rig-link", "rig-idle"]
+                    trip, gone, warn, link, idle = rows
+                    assert trip[1:3] == ("TRIPPED", "fallback (latched)")
+                    assert trip[5].startswith("jump:") and "-> baseline" in trip[5]
+                    assert f"(tick {round(TRIP_AT_S / PERIOD_S)})" in trip[5]
+                    # the last known state stays, marked silent by the will
+                    assert gone[1:3] == ("SILENT (will: disconnected)", "disconnected")
+                    assert float(gone[3]) > 0
+                    assert warn[1:3] == ("WARNING", "engaged") and 0 < float(warn[3]) < 0.8
+                    assert link[1:3] == ("LINK", "engaged") and 0 < float(link[3]) < 0.8
+                    assert link[6].startswith("crc ")
+                    assert idle[1:4] == ("idle", "idle", "-")
+                    # the table on the screen holds the same rigs, in the same order
                     await wait_for(pilot, lambda: app.query_one("#fleet").row_count == 5
                                    and str(app.query_one("#fleet").get_row_at(1)[1])
                                    .startswith("SILENT"), "the table redrawn")
                     table = app.query_one("#fleet")
                     assert [str(table.get_row_at(i)[0]) for i in range(5)] == \
                         [r[0] for r in rows]
-                    # Enter on the second row opens that rig's dashboard
+                    # from the top, two rows down and Enter: rig-warn's dashboard is to
+                    # open (the cursor follows the rig it was on across redraws: put it on
+                    # the first row)
                     table.focus()
-                    await pilot.press("down")
-                    await pilot.press("enter")
+                    table.move_cursor(row=0)
                     await pilot.pause()
-                assert app.return_value == "rig-gone"
+                    await pilot.press("down", "down", "enter")
+                    await pilot.pause()
+                assert app.return_value == "rig-warn"
+            # what `corral watch` then opens (runtime/cli/cmd_watch.py run_fleet): that
+            # rig's full dashboard over the same broker
+            async with MqttSource(mosquitto.host, mosquitto.port, "rig-warn") as one:
+                dash = Dashboard(one)
+                async with dash.run_test(size=(140, 48)) as pilot:
+                    await wait_for(pilot, lambda: dash.latest.get("mode") == "engaged",
+                                   "rig-warn's dashboard")
+                    assert dash.hello.get("rig") == "rig-warn" and "rig-warn" in dash.title
 
         asyncio.run(main())
     finally:
-        for p in (many, lone):
-            if p.poll() is None:
-                p.terminate()
-                p.wait(timeout=30)
+        stop_rigs(procs.values())
 
 
 USERS = {"fleet": "fleet-secret"}
 
 
-def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certificates():
+def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certificates(tmp_path):
     # A lab's broker (tests/mqtt_broker.py): password file, TLS listener, client
-    # certificates required. The runtime's bridge publishes, the fleet view and the
-    # one-rig watcher read, each logging in with a password and presenting a certificate.
-    from runtime.dashboard.sources import MqttSource
-
+    # certificates required. Two runtimes publish (their [link.mqtt] login, TLS and
+    # certificate), the fleet view and the one-rig watcher read, each logging in with a
+    # password and presenting a certificate.
     with tempfile.TemporaryDirectory(prefix="corral-fleet-") as folder:
         broker = Broker(Path(folder), users=USERS, tls=True, client_certs=True)
         broker.start()
@@ -180,9 +221,12 @@ def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certific
                                                               "client.key"))
             login = dict(username="fleet", password=USERS["fleet"], tls=True, ca_file=ca)
             env = {**os.environ, "FLEET_PW": USERS["fleet"]}
-            proc = serve(broker, "rig-a=running", "rig-b=warning",
-                         extra=("--tls", ca, "--cert", cert, "--key", key, "--user", "fleet",
-                                "--password-env", "FLEET_PW"), env=env)
+            locked = ["link.mqtt.tls=true", f"link.mqtt.ca_file={ca}",
+                      f"link.mqtt.cert_file={cert}", f"link.mqtt.key_file={key}",
+                      "link.mqtt.username=fleet", "link.mqtt.password_env=FLEET_PW"]
+            procs = [start_rig(broker.url, "rig-a", tmp_path / "a", sets=locked, env=env),
+                     start_rig(broker.url, "rig-b", tmp_path / "b", env=env,
+                               sets=[*locked, "watchdog.margin_warning=0.000001"])]
             try:
                 async def fleet_view():
                     source = FleetSource(broker.host, broker.port, cert_file=cert,
@@ -191,33 +235,37 @@ def test_bridge_and_watchers_on_a_broker_with_a_password_tls_and_client_certific
                     async with source:
                         async for rig, rec in source.fleet_records():
                             fleet.ingest(rig, rec)
-                            if all(fleet.rigs.get(r) and fleet.rigs[r].telemetry
-                                   for r in ("rig-a", "rig-b")):
+                            tel = {r: fleet.rigs[r].telemetry if r in fleet.rigs else {}
+                                   for r in ("rig-a", "rig-b")}
+                            if all(t.get("mode") == "engaged" and 0 < t.get("ratio", 0) < 0.8
+                                   for t in tel.values()):
                                 break
-                    return [r[0] for r in fleet_rows(fleet)]
+                    return [r[:2] for r in fleet_rows(fleet)]
 
                 async def one_rig():
                     source = MqttSource(broker.host, broker.port, "rig-b", cert_file=cert,
                                         key_file=key, **login)
+                    hello = {}
                     async with source:
                         async for rec in source.records():
-                            if rec.get("type") == "telemetry":
-                                return rec["ratio"]
+                            if rec.get("type") == "hello":
+                                hello = rec
+                            if rec.get("type") == "telemetry" and hello:
+                                return hello
 
                 async def without_certificate():
                     source = FleetSource(broker.host, broker.port, **login)
                     async with source:
                         pass
 
-                assert asyncio.run(asyncio.wait_for(fleet_view(), 120)) == ["rig-b", "rig-a"]
-                assert asyncio.run(asyncio.wait_for(one_rig(), 120)) == 0.85
-                from aiomqtt import MqttError
-
+                assert asyncio.run(asyncio.wait_for(fleet_view(), BOUND_S)) == \
+                    [("rig-b", "WARNING"), ("rig-a", "running")]
+                hello = asyncio.run(asyncio.wait_for(one_rig(), BOUND_S))
+                assert hello["rig"] == "rig-b" and hello["levels"]["warning"] == 1e-6
                 with pytest.raises((MqttError, OSError)):
                     asyncio.run(asyncio.wait_for(without_certificate(), 120))
             finally:
-                proc.terminate()
-                proc.wait(timeout=30)
+                stop_rigs(procs)
         finally:
             broker.stop()
 

@@ -212,7 +212,8 @@ def test_mqtt_telemetry_and_remote_requests(tmp_path, mosquitto, allow_arm):  # 
 
 # ------------------------------------------------------------------ 5. dashboard process
 FAKE_DASHBOARD = '''\
-"""Stands in for the dashboard: connect, read telemetry for a second, exit."""
+"""Stands in for the dashboard: connect, read telemetry until the spike's trip has
+latched and 1 s of rig time more has passed (its post capture logged), exit."""
 import socket, sys, time, os
 import msgpack
 path = sys.argv[sys.argv.index("--socket") + 1]
@@ -225,10 +226,17 @@ s.connect(path)
 s.settimeout(30.0)
 unpacker = msgpack.Unpacker(raw=False)
 kinds = []
-end = time.monotonic() + 1.0
+latched_at = last_t = None
+end = time.monotonic() + 120  # a bound on the event, not a deadline
 while time.monotonic() < end:
     unpacker.feed(s.recv(65536))
-    kinds.extend(m.get("type") for m in unpacker)
+    for m in unpacker:
+        kinds.append(m.get("type"))
+        if m.get("type") == "telemetry" and m.get("latched") and latched_at is None:
+            latched_at = m.get("t", 0.0)
+        last_t = m.get("t", 0.0) if m.get("type") == "telemetry" else None
+    if latched_at is not None and last_t is not None and last_t >= latched_at + 1.0:
+        break
 s.close()
 with open(out, "w") as fh:
     fh.write(" ".join(kinds))

@@ -231,7 +231,21 @@ def test_run_ends_on_sigterm_while_the_broker_is_gone(mosquitto, tmp_path):  # n
         wait_for("the operator socket", lambda: sock.exists() or run.poll() is not None)
         time.sleep(0.5)
         mosquitto.stop()
-        time.sleep(1.0)
+
+        def loss_logged() -> bool:  # the runtime's "link lost" event, on disk
+            from runtime.records.logs import read_trip_log
+
+            for path in tmp_path.glob("*.trips"):
+                try:
+                    events = read_trip_log(path)[2]
+                except Exception:  # noqa: BLE001 - a record still being written
+                    return False
+                if any(e.get("kind") == "link" and "link lost" in str(e.get("detail"))
+                       for e in events):
+                    return True
+            return False
+
+        wait_for("the link loss noticed", lambda: loss_logged() or run.poll() is not None)
         run.send_signal(signal.SIGTERM)
         out, err = run.communicate(timeout=60)
     finally:

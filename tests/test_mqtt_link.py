@@ -202,7 +202,7 @@ async def test_last_will_marks_device_offline_when_killed(mosquitto, tmp_path): 
         await link.close()
         # A new link now refuses: only a retained hello and an offline status remain.
         with pytest.raises(LinkClosed, match="offline"):
-            await MqttLink(settings, hello_timeout_s=0.5).open()
+            await MqttLink(settings, hello_timeout_s=5.0).open()  # retained status in time
     finally:
         proc.kill()
         proc.wait(5)
