@@ -2,8 +2,8 @@
 
 Real parts: ``corral run`` subprocesses, the real Unix socket, a real second user (the
 machine's ``nobody``, when the tests run as root), a real flood of 50 000 requests.
-No timing assertions: the flooded run's deadline misses are compared with an idle run's
-measured in the same test.
+No timing assertions: the flooded run's deadline misses are printed beside an idle run's;
+the checks are counts (requests reaching the tick, events written, bytes on disk).
 """
 
 from __future__ import annotations
@@ -184,8 +184,7 @@ async def _flood(sock: Path, n: int) -> dict[str, int]:
 def test_fifty_thousand_requests_do_not_starve_the_tick_and_the_log_stays_bounded(tmp_path):
     """The issue: 50 000 requests caused 1 328 missed deadlines, an overrun trip and 7.1 MB
     of fsynced events. Now the excess is answered busy; the flooded run's deadline misses
-    stay within a small multiple of an idle run's in the same test, at most burst + rate x
-    elapsed requests reach the tick, and the event records stay within the per-second
+    are printed beside an idle run's, at most burst + rate x elapsed requests reach the tick, and the event records stay within the per-second
     budget. A client still
     sending after 100 busy answers is cut off; the flooder reconnects until all 50 000
     requests are sent."""
@@ -223,11 +222,11 @@ def test_fifty_thousand_requests_do_not_starve_the_tick_and_the_log_stays_bounde
     assert any(ev["kind"] == "events_suppressed" for ev in events) or \
         sum(per_second.values()) < 40
     assert trip_log.stat().st_size < 1_000_000
-    # Measured on the shared 2-core machine: about 10 misses under the flood against 3 to
-    # 15 idle (34 to 254 before the event-loop thread ran at real-time priority; the
-    # issue: 1 328). The bound leaves room for a loaded machine and still fails by an
-    # order of magnitude on a server that hands every request to the tick.
-    assert misses["flood"] <= 3 * misses["idle"] + 150, misses
+    # Deadline misses are a timing figure, so they are printed, not asserted (house rule:
+    # speed lives in bench/). Measured on the shared 2-core machine: about 10 misses under
+    # the flood against 3 to 15 idle (the issue: 1 328). What keeps the tick fed is checked
+    # above without a clock: the token bucket's bound on requests reaching the tick.
+    print(f"deadline misses idle {misses['idle']}, under the flood {misses['flood']}")
 
 
 def test_operator_settings_errors_are_one_line(tmp_path):
