@@ -183,9 +183,9 @@ async def _flood(sock: Path, n: int) -> dict[str, int]:
 
 def test_fifty_thousand_requests_do_not_starve_the_tick_and_the_log_stays_bounded(tmp_path):
     """The issue: 50 000 requests caused 1 328 missed deadlines, an overrun trip and 7.1 MB
-    of fsynced events. Now the excess is answered busy; the flooded run's deadline misses
-    are printed beside an idle run's, at most burst + rate x elapsed requests reach the tick, and the event records stay within the per-second
-    budget. A client still
+    of fsynced events. Now the excess is answered busy; at most burst + rate x elapsed
+    requests reach the tick, and the event records stay within the per-second budget (the
+    flooded run's deadline misses are printed beside an idle run's). A client still
     sending after 100 busy answers is cut off; the flooder reconnects until all 50 000
     requests are sent."""
     results = {}
