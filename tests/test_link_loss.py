@@ -48,6 +48,8 @@ def rearm(bg: Background, attempts: int = 5) -> None:
         wait_for("the reset to be granted",
                  lambda: core.sup.latched is False or bg.request("reset")[0], 60)
         ok, msg = bg.request("arm")
+        if not ok and core.sup.latched:
+            continue  # tripped again between the reset and the arm: reset again
         assert ok, msg
         wait_for("settled or tripped",
                  lambda: core.sup.mode == "engaged" or core.sup.latched, 60)
