@@ -46,13 +46,26 @@ def serve(*args: str, config: Path = SERVED) -> tuple[subprocess.Popen[str], str
     nothing (it is ended first)."""
     proc = subprocess.Popen([*CORRAL, "rig", "serve", str(config), *args],
                             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True,
-                            cwd=ROOT)
+                            cwd=ROOT, preexec_fn=_normal_priority)
     assert proc.stdout is not None
     first = proc.stdout.readline().strip()
     if not first:
         end(proc)
         raise RuntimeError("rig serve printed nothing")
     return proc, first
+
+
+def _normal_priority() -> None:
+    """In the served rig's process before it starts: normal scheduling, whatever the
+    spawning thread runs at. A runtime running in this process raises its other threads to
+    SCHED_FIFO (`runtime.realtime.clock.raise_helper_threads`, the caller's main thread
+    too), and a child inherits the policy: a device respawned that way computed its design
+    at SCHED_FIFO, where OpenBLAS's main thread spin-waited for worker threads that never
+    got a core (two such devices, one per core, held a 2-core machine at load 40-50 for 15
+    minutes until killed; seen in tests/test_link_loss.py). The device raises itself to
+    real time when its clock starts."""
+    with contextlib.suppress(OSError, AttributeError):
+        os.sched_setscheduler(0, os.SCHED_OTHER, os.sched_param(0))
 
 
 def end(proc: subprocess.Popen[str], sig: int = signal.SIGTERM) -> None:
