@@ -15,6 +15,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import os
+import select
 import signal
 import subprocess
 import sys
@@ -40,18 +41,24 @@ def wait_for(what: str, cond: Callable[[], bool], timeout: float = 180.0) -> Non
         time.sleep(0.02)
 
 
-def serve(*args: str, config: Path = SERVED) -> tuple[subprocess.Popen[str], str]:
+def serve(*args: str, config: Path = SERVED,
+          timeout: float = 180.0) -> tuple[subprocess.Popen[str], str]:
     """`corral rig serve CONFIG ARGS...` in a subprocess, once it is serving: the process
     and the first line it printed (where a host connects). RuntimeError if it printed
-    nothing (it is ended first)."""
+    nothing within `timeout` seconds (it is killed first)."""
+    # One BLAS thread: the device's numbers are small, and a BLAS worker pool spin-waits
+    # (see `_normal_priority`).
+    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
     proc = subprocess.Popen([*CORRAL, "rig", "serve", str(config), *args],
                             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True,
-                            cwd=ROOT, preexec_fn=_normal_priority)
+                            cwd=ROOT, env=env, preexec_fn=_normal_priority)
     assert proc.stdout is not None
-    first = proc.stdout.readline().strip()
+    # Bounded: a rig that never comes up is an error, not a hang.
+    ready, _, _ = select.select([proc.stdout], [], [], timeout)
+    first = proc.stdout.readline().strip() if ready else ""
     if not first:
-        end(proc)
-        raise RuntimeError("rig serve printed nothing")
+        end(proc, signal.SIGKILL)
+        raise RuntimeError(f"rig serve printed nothing in {timeout:g} s")
     return proc, first
 
 
