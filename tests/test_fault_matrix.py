@@ -63,30 +63,27 @@ def test_duplicates_are_counted(tmp_path):
 # TOLERANT). Only the first-out is checked (no timings); every wait is for an event with a
 # generous bound. Expected first-outs as above (common practice of first-out alarm review).
 
-SERIAL_ROWS = [
-    # Known defect, open in the fault-matrix work: a single sample dropped by the served
-    # device over the pty was seen to end with no trip at all (seq_gap expected).
-    pytest.param("drop", marks=pytest.mark.xfail(
-        reason="served drop over the pty: no seq_gap trip seen; under investigation",
-        strict=False)),
-    "malformed", "device_kill"]
+# `drop` once ended with no trip: the runtime was built after the device's clock started and
+# on the loaded machine the one dropped sample passed before the host watched.
+# `run_served` now builds the runtime first and reports a host that came late (run again).
+SERIAL_ROWS = ["drop", "malformed", "device_kill"]
 MQTT_ROWS = ["corrupt", "duplicate", "broker_restart"]
 
 
 def _served_row(kind: str, link: str, tmp_path, broker=None) -> None:
-    from bench.fault_matrix import realtime_broker, run_served, served_spec
+    from bench.fault_matrix import realtime_broker, run_served_row, served_spec
 
     _, right, _ = served_spec(kind, link)
     if broker is not None:
         realtime_broker(broker)
     # A short folder: the operator socket lives in log.dir (AF_UNIX paths are short).
     with tempfile.TemporaryDirectory(prefix="fm-") as short:
-        res = run_served(kind, link, Path(short), broker)
+        res = run_served_row(kind, link, Path(short), broker)
     assert res.get("error") in (None, ""), res
+    if res.get("before") or res.get("late"):
+        pytest.skip(f"{kind} on {link}: in three runs this loaded machine tripped before the "
+                    f"fault or the host came late (not what this row checks): {res}")
     assert res["rule"] is not None, f"{kind} on {link}: no trip"
-    if res.get("before"):
-        pytest.skip(f"{kind} on {link}: this loaded machine tripped {res['rule']} before "
-                    f"the fault (not what this row checks)")
     assert res["rule"] in right, (kind, link, res)
 
 
@@ -112,3 +109,56 @@ def test_the_served_device_and_the_in_process_link_share_one_injector():
     assert "on_link" in src
     for kind in ("\"drop\"", "\"corrupt\"", "\"link_delay\"", "\"duplicate\""):
         assert kind not in src, kind
+
+
+# ---------------------------------------------------------------- lost data, wide stale limit
+# Lost, late or frozen data must end in the rule that names it (stale / link_loss), not in
+# the tracking-error rules judging a held estimate (common practice of first-out alarm
+# review: the first-out names the cause). Before the error rules were gated on a fresh
+# estimate, the served recipe at a 100 ms stale limit tripped predicted_crossing 16-20 ms
+# into each of these faults and margin 22-24 ms in (measured with this test's setup).
+
+def test_error_rules_hold_on_a_stale_estimate_and_judge_a_fresh_one():
+    from runtime.guard.watchdog import FRESH_PERIODS, Signals, Watchdog, build_rules
+
+    T = 0.002
+    errors = {"margin", "predicted_crossing", "clamp"}
+    dog = Watchdog(build_rules(None, T, 0.02))
+    held = Signals(t=0.0, engaged=True, ratio=1.5, ratio_rate=50.0, clamped=True,
+                   sample_age=(FRESH_PERIODS + 0.5) * T)
+    assert not errors & {r.id for r in dog.check(held)}
+    frozen = Signals(t=0.002, engaged=True, ratio=1.5, ratio_rate=50.0, clamped=True,
+                     sample_age=0.5 * T, frozen_age=(FRESH_PERIODS + 0.5) * T)
+    assert not errors & {r.id for r in dog.check(frozen)}
+    fresh = Signals(t=0.004, engaged=True, ratio=1.5, ratio_rate=50.0, clamped=True,
+                    sample_age=0.5 * T)
+    assert errors <= {r.id for r in dog.check(fresh)}
+    # Held, a tripped condition is not cleared either (nothing measured says it went).
+    calm_held = Signals(t=0.006, engaged=True, ratio=0.0, sample_age=(FRESH_PERIODS + 0.5) * T)
+    dog.check(calm_held)
+    assert "margin" in dog.conditions_present()
+    calm = Signals(t=0.008, engaged=True, ratio=0.0, sample_age=0.5 * T)
+    dog.check(calm)
+    assert "margin" not in dog.conditions_present()
+
+
+@pytest.mark.parametrize("fault", ["corrupt@3", "dropout@3", "sensor_freeze@3",
+                                   "burst@3:ticks=100", "link_delay@3:seconds=0.2"])
+def test_lost_data_at_a_wide_stale_limit_ends_in_stale_or_link_loss(tmp_path, fault):
+    import asyncio
+
+    from runtime.config import load_config
+    from runtime.realtime.loop import Runner, RunSettings
+
+    served = Path(__file__).resolve().parents[1] / "configs" / "pedestal-served.toml"
+    cfg = load_config(served, ["supervisor.settle_time=0.2", "watchdog.overrun_misses=100000",
+                               f"log.dir={tmp_path}", "watchdog.stale_periods=50",
+                               "log.pre_capture_s=0.2", "log.post_capture_s=0.1"])
+    r = Runner(cfg, RunSettings(auto_arm=True, faults=[fault], echo_trips=False,
+                                preflight=False, duration=None))
+    summary = asyncio.run(r.run_ticks(int(round(3.5 / r.design.Ts))))
+    _, trips, _, _ = read_trip_log(summary["trip_log"])
+    assert trips, f"{fault}: no trip"
+    first = trips[0].record
+    assert first["t"] >= 3.0 - 1e-9, first["first_out"]  # not before the fault
+    assert first["first_out"]["rule"] in ("stale", "link_loss"), first["first_out"]

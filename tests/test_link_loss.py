@@ -13,92 +13,29 @@ nothing here asserts a timing: every wait is for an event, with a generous bound
 
 from __future__ import annotations
 
-import asyncio
 import signal
 import subprocess
-import sys
-import threading
 import time
-from collections.abc import Callable
-from pathlib import Path
 from typing import Any
 
 import pytest
 from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
 
+from bench.served_rig import CORRAL, ROOT, SERVED, Background, end, wait_for
+from bench.served_rig import serve as serve_rig
 from runtime.config import load_config
 from runtime.realtime.loop import Runner, RunSettings
 
 pytestmark = pytest.mark.timeout(600)
 
-ROOT = Path(__file__).resolve().parents[1]
-CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
-SERVED = ROOT / "configs" / "pedestal-served.toml"
 # The stale rule widened: the test is about the link ending, not about whether this
 # loaded VM holds a 500 Hz deadline (bench/bench_loop.py measures that).
 TOLERANT = ["watchdog.stale_periods=50", "watchdog.rules.overrun.enabled=false"]
 
 
-def wait_for(what: str, cond: Callable[[], bool], timeout: float = 180.0) -> None:
-    """Wait for an event, with a generous bound (not a timing assertion)."""
-    deadline = time.monotonic() + timeout
-    while not cond():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out waiting for {what}")
-        time.sleep(0.02)
-
-
 def serve(*args: str) -> subprocess.Popen[str]:
-    proc = subprocess.Popen([*CORRAL, "rig", "serve", str(SERVED), *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True,
-                            cwd=ROOT)
-    assert proc.stdout is not None
-    first = proc.stdout.readline().strip()
-    assert first, "rig serve printed nothing"
-    return proc
-
-
-def end(proc: subprocess.Popen[str], sig: int = signal.SIGTERM) -> None:
-    if proc.poll() is None:
-        proc.send_signal(sig)
-        try:
-            proc.wait(10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(10)
-    if proc.stdout is not None:
-        proc.stdout.close()
-
-
-class Background:
-    """A Runner in a thread; `.summary` or `.error` when it ends."""
-
-    def __init__(self, runner: Runner) -> None:
-        self.runner = runner
-        self.summary: dict[str, Any] | None = None
-        self.error: BaseException | None = None
-        self.thread = threading.Thread(target=self._go, daemon=True)
-        self.thread.start()
-
-    def _go(self) -> None:
-        try:
-            self.summary = asyncio.run(self.runner.run())
-        except BaseException as exc:  # noqa: BLE001 - reported by the test
-            self.error = exc
-
-    def request(self, op: str) -> tuple[bool, str]:
-        got: list[tuple[bool, str]] = []
-        self.runner.core.submit(op, lambda ok, msg: got.append((ok, msg)))
-        wait_for(f"a reply to {op}", lambda: bool(got), 30)
-        return got[0]
-
-    def stop(self, bound: float = 60.0) -> dict[str, Any]:
-        self.runner.request_stop()
-        self.thread.join(bound)
-        assert not self.thread.is_alive(), "the run did not end after its stop request"
-        assert self.error is None, repr(self.error)
-        assert self.summary is not None
-        return self.summary
+    """The served recipe in a subprocess (bench/served_rig.py, shared with the fault matrix)."""
+    return serve_rig(*args)[0]
 
 
 def rearm(bg: Background, attempts: int = 5) -> None:
@@ -111,6 +48,8 @@ def rearm(bg: Background, attempts: int = 5) -> None:
         wait_for("the reset to be granted",
                  lambda: core.sup.latched is False or bg.request("reset")[0], 60)
         ok, msg = bg.request("arm")
+        if not ok and core.sup.latched:
+            continue  # tripped again between the reset and the arm: reset again
         assert ok, msg
         wait_for("settled or tripped",
                  lambda: core.sup.mode == "engaged" or core.sup.latched, 60)

@@ -56,6 +56,12 @@ DEFAULT_REACTIONS = {
     "weight_rate": "baseline", "internal": "outputs_off",
 }
 
+FRESH_PERIODS = 2.5
+"""A reading at most this many periods old is fresh (the estimator's jump check compares
+with an estimate no older, `runtime.realtime.estimator.Estimator._fold`); the
+error rules (`margin`, `margin_warning`, `clamp`, `predicted_crossing`) run on fresh
+estimates only."""
+
 DEFAULTS: dict[str, Any] = schema.defaults_of("watchdog")
 """The ``[watchdog]`` thresholds' defaults, as declared in `runtime.schema`."""
 
@@ -136,6 +142,9 @@ class Rule:
     engaged_only: bool = False
     warning_only: bool = False
     enabled: bool = True
+    fresh_within: float = math.inf
+    """The rule judges a fresh estimate only: while the data age (the stale rule's signal)
+    is past this, it is not evaluated and its state is held (neither trips nor clears)."""
     since: float = field(default=math.nan)
     active: bool = False
     last_value: float = 0.0
@@ -147,6 +156,8 @@ class Rule:
             self.last_value = 0.0
             if self.active and self.engaged_only:
                 self.active = False
+            return False
+        if max(sig.sample_age, sig.frozen_age) > self.fresh_within:
             return False
         v = self.value(sig)
         self.last_value = v
@@ -183,6 +194,12 @@ def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
 
     stale_s = num("stale_periods") * period
     horizon = num("predicted_horizon_s")
+    # The rules on the tracking error judge measured states only. On a held estimate (data
+    # lost, late or frozen) the error is the reference moving away from a state nobody
+    # measured and its trend an extrapolation of that: lost data must end in `stale` /
+    # `link_loss`, whatever the stale limit (docs/faults.md). Fresh: at most FRESH_PERIODS
+    # old, the estimator's own notion of a recent estimate (its jump check).
+    fresh = FRESH_PERIODS * period
     rules = [
         Rule("nonfinite", "non-finite value", 0.5, lambda s: float(s.nonfinite)),
         Rule("link_loss", "seconds without a sample (inf: disconnected)", num("link_timeout_s"),
@@ -192,12 +209,12 @@ def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
         Rule("seq_gap", "samples missed", num("seq_gap_max") + 0.5, lambda s: float(s.seq_gap)),
         Rule("jump", "innovation / jump limit", 1.0, lambda s: s.jump),
         Rule("clamp", "||e||_P / eps with the phi_d clamp engaged", 1.0 - clamp_margin,
-             lambda s: s.ratio if s.clamped else 0.0, engaged_only=True),
+             lambda s: s.ratio if s.clamped else 0.0, engaged_only=True, fresh_within=fresh),
         Rule("margin", "||e||_P / eps", num("margin_trip"), lambda s: s.ratio,
-             engaged_only=True, deadband=0.05),
+             engaged_only=True, deadband=0.05, fresh_within=fresh),
         Rule("predicted_crossing", "predicted ||e||_P / eps", 1.0,
              lambda s: s.ratio + max(0.0, s.ratio_rate) * horizon,
-             engaged_only=True, deadband=0.05),
+             engaged_only=True, deadband=0.05, fresh_within=fresh),
         Rule("weight_norm", "||W||_F", num("weight_norm_max"), lambda s: s.w_norm,
              engaged_only=True),
         Rule("weight_rate", "||dW/dt||_F (1/s)", num("weight_rate_max"), lambda s: s.w_rate,
@@ -207,7 +224,7 @@ def build_rules(cfg: Any, period: float, clamp_margin: float) -> list[Rule]:
         Rule("overrun", "deadline misses in the window", num("overrun_misses") - 0.5,
              lambda s: float(s.misses_window)),
         Rule("margin_warning", "||e||_P / eps", num("margin_warning"), lambda s: s.ratio,
-             engaged_only=True, deadband=0.05, warning_only=True),
+             engaged_only=True, deadband=0.05, warning_only=True, fresh_within=fresh),
         # The last line of defence: an exception inside the tick. The loop trips it
         # directly (`runtime.realtime.loop.TickCore.internal_trip`); its reaction is always outputs
         # off and it cannot be disabled (nothing computed by a broken tick can be trusted).
