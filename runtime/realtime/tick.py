@@ -30,7 +30,7 @@ from drivers.base import FLAG_FALLBACK, FLAG_OUTPUTS_ON, Command, Link, Sample
 from runtime.config import Config
 from runtime.guard.fallback import settings_from_config
 from runtime.guard.supervisor import Supervisor
-from runtime.guard.watchdog import Rule, Signals, Watchdog, over
+from runtime.guard.watchdog import FRESH_PERIODS, Rule, Signals, Watchdog, over
 from runtime.method.bound import schedule_from_config as schedule_from_bound
 from runtime.method.commands import schedule_from_config, tracked_names
 from runtime.method.design import Design
@@ -77,6 +77,7 @@ class TickCore:
         self.simulated = simulated
         rig = d.rig
         self.Ts = Ts = d.Ts
+        self._fresh_within = FRESH_PERIODS * Ts
         self.n, self.m = rig.n, rig.m
         self.tracked = tracked_names(rig.C, rig.states)
         self.p = len(self.tracked)
@@ -211,6 +212,11 @@ class TickCore:
                 self._engage(x)
                 mode = "engaged"
         if mode == "engaged":
+            # Learn only from fresh data: on a held or frozen estimate the weights are held
+            # (the law still controls), the same freshness that gates the error rules
+            # (runtime.guard.watchdog.FRESH_PERIODS; docs/faults.md). Adapting on a stale
+            # state would fit the weights to an error the rig no longer has.
+            self.law.frozen = max(self.est.age, self.est.frozen_age) > self._fresh_within
             u, on = self.control.step(x), True
             law_ran = True
         elif mode == "fallback":
