@@ -259,7 +259,8 @@ def test_a_real_link_gets_the_host_check_in_hello_and_log_headers(tmp_path):
         cfg = load_config(DEMO, [*BASE, f"log.dir={tmp_path}", "loop.hostcheck_s=0.3"])
         r = Runner(cfg, RunSettings(link=f"serial:{os.ttyname(slave)}", echo_trips=False))
         assert not r.simulated
-        hc = r.core.hello()["hostcheck"]
+        hc = r.core.hello().hostcheck
+        assert hc is not None
         assert isinstance(hc["ok"], bool) and hc["seconds"] == 0.3
         assert r.telemetry.hello["hostcheck"] == hc
         r.core.close()
@@ -276,4 +277,4 @@ def test_no_host_check_for_the_simulated_rig_or_without_preflight(tmp_path):
     cfg = load_config(DEMO, [*BASE, f"log.dir={tmp_path}"])
     r = Runner(cfg, RunSettings(duration=0.05, echo_trips=False))
     summary = asyncio.run(r.run_ticks(10))
-    assert summary["hostcheck"] is None and r.core.hello()["hostcheck"] is None
+    assert summary["hostcheck"] is None and r.core.hello().hostcheck is None

@@ -57,9 +57,9 @@ def test_narrowing_bound_reaches_law_run_log_and_telemetry(tmp_path):
     np.testing.assert_allclose(s[live] / ratio[live], eps_log[live], rtol=1e-9)
     # Telemetry carries eps(t), the hello the starting bound and the schedule.
     tel = r.core.telemetry_record()
-    assert tel["eps"] == pytest.approx(eps_log[-1], rel=1e-3)
+    assert tel.eps == pytest.approx(eps_log[-1], rel=1e-3)
     hello = r.core.hello()
-    assert hello["eps"] == pytest.approx(eps0) and hello["bound"]["kind"] == "exponential"
+    assert hello.eps == pytest.approx(eps0) and hello.bound["kind"] == "exponential"
 
 
 def test_constant_bound_run_log_eps_is_the_design_eps(tmp_path):

@@ -124,14 +124,14 @@ def assert_loss_tripped(core: Any, before: int) -> None:
     loaded VM tripped a moment before the loss, so the runtime was already latched)
     `link_loss` among that trip's later rules, as first-out practice records it."""
     wait_for("the trip record", lambda: len(core.trips) > before
-             or "link_loss" in (core.trips[-1]["later"] if core.trips else []))
+             or "link_loss" in (core.trips[-1].later if core.trips else []))
     new = core.trips[before:]
-    if new and new[0]["rule"] == "link_loss":
-        assert new[0]["detail"] != "device silent", new[0]
-        assert new[0]["action"] == "outputs_off", new[0]
+    if new and new[0].rule == "link_loss":
+        assert new[0].detail != "device silent", new[0]
+        assert new[0].action == "outputs_off", new[0]
     else:
         trip = new[0] if new else core.trips[-1]
-        wait_for("link_loss among the later rules", lambda: "link_loss" in trip["later"])
+        wait_for("link_loss among the later rules", lambda: "link_loss" in trip.later)
 
 
 def check_trips(summary: dict[str, Any], n: int, details: tuple[str, ...]) -> None:
