@@ -16,7 +16,7 @@ import pytest
 from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
 
 from bench.fault_matrix import MATRIX
-from runtime.records.logs import read_trip_log
+from runtime.records.logs import read_trip_records
 from tests.runtime_helpers import run_unpaced
 
 AT = 1.0
@@ -28,15 +28,16 @@ def test_each_kind_trips_with_its_first_out(tmp_path, kind):
     head, _, tail = text.partition(":")
     fault = f"{head}@{AT}" + (f":{tail}" if tail else "")
     r, summary = run_unpaced(tmp_path, 2.0, [fault])
-    _, trips, _, torn = read_trip_log(summary["trip_log"])
-    assert not torn
+    got = read_trip_records(summary["trip_log"])
+    trips = got.trips
+    assert not got.torn and not got.bad
     if not right:
         assert not trips
         return
     assert trips, f"{kind}: no trip"
-    first = trips[0].record
-    assert first["first_out"]["rule"] in right, first["first_out"]
-    assert first["t"] >= AT - 1e-9  # not before the fault
+    first = trips[0].rec
+    assert first.first_out.rule in right, first.first_out
+    assert first.t is not None and first.t >= AT - 1e-9  # not before the fault
 
 
 def test_drop_loses_exactly_count_samples(tmp_path):

@@ -28,7 +28,7 @@ from runtime.realtime.hostcheck import (
     verdict,
 )
 from runtime.realtime.loop import Runner, RunSettings
-from runtime.records.logs import read_run_log, read_trip_log
+from runtime.records.logs import read_run_log, read_trip_records
 from tests.runtime_helpers import BASE, DEMO, run_unpaced
 
 QUIET = {"lateness_p50_us": 2.0, "lateness_p99_us": 30.0, "worst_stall_ms": 0.8,
@@ -266,7 +266,7 @@ def test_a_real_link_gets_the_host_check_in_hello_and_log_headers(tmp_path):
         r.core.close()
         header, _ = read_run_log(r.core.run_path)
         assert header["hostcheck"]["ok"] == hc["ok"]
-        trip_header, _, _, _ = read_trip_log(r.core.trip_path)
+        trip_header = read_trip_records(r.core.trip_path).header
         assert trip_header["hostcheck"]["lateness_p99_us"] == hc["lateness_p99_us"]
     finally:
         os.close(master)
