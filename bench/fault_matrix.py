@@ -251,10 +251,10 @@ def _first(summary: dict, t_fault: float | None = None) -> dict:
     if not trips:
         return {"rule": None, "after_ms": None, "action": None,
                 "error": summary.get("internal_error")}
-    rec = trips[0].record
-    after = (rec["t"] - AT if t_fault is None else rec["t_mono"] - t_fault) * 1e3
-    out = {"rule": rec["first_out"]["rule"], "after_ms": after,
-           "action": rec["action"], "error": summary.get("internal_error")}
+    rec = trips[0].rec
+    after = ((rec.t or 0.0) - AT if t_fault is None else (rec.t_mono or 0.0) - t_fault) * 1e3
+    out = {"rule": rec.first_out.rule, "after_ms": after,
+           "action": rec.action, "error": summary.get("internal_error")}
     if after < -1.0:
         out["before"] = True
     return out

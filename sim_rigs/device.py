@@ -33,7 +33,6 @@ import contextlib
 import ctypes
 import gc
 import math
-import os
 import random
 import sys
 import threading
@@ -58,7 +57,13 @@ from drivers.wire import PROTOCOL_VERSION, STATUS_DEVICE_BASE_BIT
 from sim_rigs.device_mqtt import MqttDeviceTransport
 from sim_rigs.faults import LINK_KINDS, FaultInjector, FaultSchedule
 from sim_rigs.kernel import CompiledPlant
-from sim_rigs.transports import REALTIME_PRIORITY, PtyTransport, Transport, try_fifo
+from sim_rigs.transports import (
+    REALTIME_PRIORITY,
+    PtyTransport,
+    Transport,
+    end_fifo,
+    try_fifo,
+)
 
 __all__ = ["ESTOP_BIT", "ESTOP_FLAG", "REALTIME_PRIORITY", "SWITCH_INTERVAL_S", "DeviceReport",
            "LinkFaultCounts", "PedestalDevice", "RigDevice"]
@@ -206,7 +211,6 @@ class RigDevice:
         if tr is None:
             raise RuntimeError("call serve_pty() or serve_mqtt() first")
         _set_timer_slack()
-        old_policy = (os.sched_getscheduler(0), os.sched_getparam(0))
         if self.realtime:
             self.granted_realtime = try_fifo()
         # The clock thread must get the GIL back at once from the transport's
@@ -243,8 +247,7 @@ class RigDevice:
             gc.unfreeze()
             sys.setswitchinterval(old_switch)
             if self.granted_realtime:
-                with contextlib.suppress(OSError):
-                    os.sched_setscheduler(0, *old_policy)
+                end_fifo()
             tr.close()
         return self.report()
 

@@ -2,9 +2,9 @@
 
 What lives here: `Transport` (what the device clock needs from a transport),
 `PtyTransport` (the device owns the master of a fresh pseudo-terminal, behind a
-stable symlink so a host can reopen it after a disconnect), and `try_fifo`
-(SCHED_FIFO for a device thread). What does not: the MQTT transport
-(`sim_rigs.device_mqtt`), the device clock (`sim_rigs.device`).
+stable symlink so a host can reopen it after a disconnect), `try_fifo` (SCHED_FIFO for
+a device thread, not inherited) and `end_fifo` (back to normal priority). What does
+not: the MQTT transport (`sim_rigs.device_mqtt`), the device clock (`sim_rigs.device`).
 """
 
 from __future__ import annotations
@@ -22,6 +22,9 @@ from drivers.wire import encode_message
 
 REALTIME_PRIORITY = 40
 """SCHED_FIFO priority of the device's threads when permitted (a real rig has its own CPU)."""
+FIFO_NOT_INHERITED = os.SCHED_FIFO | getattr(os, "SCHED_RESET_ON_FORK", 0)
+"""SCHED_FIFO that threads and processes the device thread starts do not inherit (as
+`runtime.realtime.clock.FIFO_NOT_INHERITED`, which says why; sim_rigs may not import it)."""
 
 
 # --------------------------------------------------------------------------- transports
@@ -135,10 +138,18 @@ class PtyTransport(Transport):
 
 
 def try_fifo(priority: int = REALTIME_PRIORITY) -> bool:
-    """SCHED_FIFO for the calling thread when the process may (root or CAP_SYS_NICE)."""
+    """SCHED_FIFO for the calling thread when the process may (root or CAP_SYS_NICE);
+    threads and processes it starts run at normal priority (SCHED_RESET_ON_FORK)."""
     try:
         prio = min(priority, os.sched_get_priority_max(os.SCHED_FIFO))
-        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(prio))
+        os.sched_setscheduler(0, FIFO_NOT_INHERITED, os.sched_param(prio))
     except (PermissionError, OSError, AttributeError):
         return False
     return True
+
+
+def end_fifo() -> None:
+    """The calling thread back to normal priority (SCHED_OTHER), whatever it had before
+    `try_fifo`: a thread that served must not keep a real-time priority it inherited."""
+    with contextlib.suppress(PermissionError, OSError, AttributeError):
+        os.sched_setscheduler(0, os.SCHED_OTHER, os.sched_param(0))

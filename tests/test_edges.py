@@ -24,7 +24,7 @@ import pytest
 from runtime.config import ConfigError, load_config
 from runtime.realtime.loop import EXIT_INTERNAL_TRIP, RigBusy, Runner, RunSettings
 from runtime.realtime.telemetry import TelemetryClient
-from runtime.records.logs import load_trips, read_run_log, read_trip_log
+from runtime.records.logs import load_trips, read_run_log, read_trip_records
 from tests.runtime_helpers import BASE, DEMO, ROOT, run_unpaced, runner
 
 SETS = [a for kv in BASE for a in ("--set", kv)]
@@ -48,10 +48,10 @@ def test_exception_inside_the_tick_is_an_internal_trip_with_outputs_off(tmp_path
     assert "Traceback" not in out.stderr
     assert "INTERNAL trip 1 (InjectedTickError" in out.stderr
     trips = load_trips([tmp_path])
-    assert [t.first_out["rule"] for t in trips] == ["internal"]
-    rec = trips[0].record
-    assert rec["action"] == "outputs_off" and rec["tick"] == 800
-    assert "InjectedTickError" in rec["exception"]
+    assert [t.rule for t in trips] == ["internal"]
+    rec = trips[0].rec
+    assert rec.action == "outputs_off" and rec.tick == 800
+    assert "InjectedTickError" in rec.exception
     # The run ended at the trip (not at --duration) and its last tick had outputs off.
     run_log = next(tmp_path.glob("*.run"))
     _, cols = read_run_log(run_log)
@@ -65,8 +65,8 @@ def test_a_malformed_sample_ends_in_a_trip_never_a_crash(tmp_path):
     r, summary = run_unpaced(tmp_path, 1.5, ["malformed@1.0"])
     assert summary["trips"], summary
     assert summary["trips"][0]["action"] == "outputs_off"
-    header, trips, _, torn = read_trip_log(summary["trip_log"])
-    assert not torn and trips[0].first_out["rule"] == summary["trips"][0]["rule"]
+    got = read_trip_records(summary["trip_log"])
+    assert not got.torn and got.trips[0].rule == summary["trips"][0]["rule"]
     assert not r.core.outputs_on
 
 
@@ -137,13 +137,13 @@ def test_killed_at_the_announcement_every_trip_reads_back(tmp_path):
     assert len(ends) == n
     # Every child was killed at its announcement (a missed connection would leave a child
     # that ran to its end and make this check meaningless).
-    missed = {i: [t.first_out["rule"] for t in load_trips([tmp_path / str(i)])]
+    missed = {i: [t.rule for t in load_trips([tmp_path / str(i)])]
               for i in range(n) if i not in killed}
     assert len(killed) == n, f"only {len(killed)} of {n} announcements seen: {missed} {why}"
     read_back = 0
     for i, trip_id in got.items():
-        _, trips, _, _ = read_trip_log(next((tmp_path / str(i)).glob("*.trips")))
-        if any(t.id == trip_id and t.first_out["rule"] == "jump" for t in trips):
+        trips = read_trip_records(next((tmp_path / str(i)).glob("*.trips"))).trips
+        if any(t.id == trip_id and t.rule == "jump" for t in trips):
             read_back += 1
     assert read_back == n
 
@@ -221,8 +221,7 @@ def test_runs_started_in_the_same_second_never_share_a_file(tmp_path):
         paths.append((summary["trip_log"], summary["run_log"]))
     assert len({p for pair in paths for p in pair}) == 4
     for trip_log, _ in paths:
-        _, trips, _, _ = read_trip_log(trip_log)
-        assert [t.id for t in trips] == [1]
+        assert [t.id for t in read_trip_records(trip_log).trips] == [1]
 
 
 # ------------------------------------------------------------------ 5. inputs that crashed

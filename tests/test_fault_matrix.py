@@ -16,7 +16,7 @@ import pytest
 from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
 
 from bench.fault_matrix import MATRIX
-from runtime.records.logs import read_trip_log
+from runtime.records.logs import read_trip_records
 from tests.runtime_helpers import run_unpaced
 
 AT = 1.0
@@ -28,15 +28,16 @@ def test_each_kind_trips_with_its_first_out(tmp_path, kind):
     head, _, tail = text.partition(":")
     fault = f"{head}@{AT}" + (f":{tail}" if tail else "")
     r, summary = run_unpaced(tmp_path, 2.0, [fault])
-    _, trips, _, torn = read_trip_log(summary["trip_log"])
-    assert not torn
+    got = read_trip_records(summary["trip_log"])
+    trips = got.trips
+    assert not got.torn and not got.bad
     if not right:
         assert not trips
         return
     assert trips, f"{kind}: no trip"
-    first = trips[0].record
-    assert first["first_out"]["rule"] in right, first["first_out"]
-    assert first["t"] >= AT - 1e-9  # not before the fault
+    first = trips[0].rec
+    assert first.first_out.rule in right, first.first_out
+    assert first.t is not None and first.t >= AT - 1e-9  # not before the fault
 
 
 def test_drop_loses_exactly_count_samples(tmp_path):
@@ -157,8 +158,8 @@ def test_lost_data_at_a_wide_stale_limit_ends_in_stale_or_link_loss(tmp_path, fa
     r = Runner(cfg, RunSettings(auto_arm=True, faults=[fault], echo_trips=False,
                                 preflight=False, duration=None))
     summary = asyncio.run(r.run_ticks(int(round(3.5 / r.design.Ts))))
-    _, trips, _, _ = read_trip_log(summary["trip_log"])
+    trips = read_trip_records(summary["trip_log"]).trips
     assert trips, f"{fault}: no trip"
-    first = trips[0].record
-    assert first["t"] >= 3.0 - 1e-9, first["first_out"]  # not before the fault
-    assert first["first_out"]["rule"] in ("stale", "link_loss"), first["first_out"]
+    first = trips[0].rec
+    assert first.t >= 3.0 - 1e-9, first.first_out  # not before the fault
+    assert first.first_out.rule in ("stale", "link_loss"), first.first_out

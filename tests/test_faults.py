@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 
-from runtime.records.logs import read_run_log, read_trip_log
+from runtime.records.logs import read_run_log, read_trip_records
 from sim_rigs.faults import FaultError, FaultSchedule, parse_fault
 from tests.runtime_helpers import run_unpaced
 
@@ -49,17 +49,18 @@ def test_fault_trips_expected_rule_first_and_acts_in_the_same_tick(tmp_path, fau
     # The process kept running after the trip: every tick ran.
     assert summary["ticks"] == int(round((AT + 0.6) / r.design.Ts))
 
-    header, trips, events, torn = read_trip_log(summary["trip_log"])
-    assert not torn and len(trips) >= 1
-    rec = trips[0].record
-    assert rec["first_out"]["rule"] == trip["rule"]
-    assert rec["action"] == action and rec["tick"] == trip["tick"]
-    pre = rec["pre"]
+    got = read_trip_records(summary["trip_log"])
+    header, trips, events = got.header, got.trips, got.events
+    assert not got.torn and not got.bad and len(trips) >= 1
+    rec = trips[0].rec
+    assert rec.first_out.rule == trip["rule"]
+    assert rec.action == action and rec.tick == trip["tick"]
+    pre = rec.pre
     assert len(pre) == int(round(0.2 / r.design.Ts))
     tick_col = header["capture_fields"].index("tick")
     assert pre[-1][tick_col] == trip["tick"]  # the capture ends on the trip tick
     assert trips[0].post is not None  # post capture written
-    assert [e["kind"] for e in events][:1] == ["mode"] or any(e["kind"] == "arm" for e in events)
+    assert [e.kind for e in events][:1] == ["mode"] or any(e.kind == "arm" for e in events)
 
     # The reaction is in force on the trip tick itself (run log row of that tick).
     _, cols = read_run_log(summary["run_log"])

@@ -28,7 +28,7 @@ from runtime.realtime.hostcheck import (
     verdict,
 )
 from runtime.realtime.loop import Runner, RunSettings
-from runtime.records.logs import read_run_log, read_trip_log
+from runtime.records.logs import read_run_log, read_trip_records
 from tests.runtime_helpers import BASE, DEMO, run_unpaced
 
 QUIET = {"lateness_p50_us": 2.0, "lateness_p99_us": 30.0, "worst_stall_ms": 0.8,
@@ -259,13 +259,14 @@ def test_a_real_link_gets_the_host_check_in_hello_and_log_headers(tmp_path):
         cfg = load_config(DEMO, [*BASE, f"log.dir={tmp_path}", "loop.hostcheck_s=0.3"])
         r = Runner(cfg, RunSettings(link=f"serial:{os.ttyname(slave)}", echo_trips=False))
         assert not r.simulated
-        hc = r.core.hello()["hostcheck"]
+        hc = r.core.hello().hostcheck
+        assert hc is not None
         assert isinstance(hc["ok"], bool) and hc["seconds"] == 0.3
         assert r.telemetry.hello["hostcheck"] == hc
         r.core.close()
         header, _ = read_run_log(r.core.run_path)
         assert header["hostcheck"]["ok"] == hc["ok"]
-        trip_header, _, _, _ = read_trip_log(r.core.trip_path)
+        trip_header = read_trip_records(r.core.trip_path).header
         assert trip_header["hostcheck"]["lateness_p99_us"] == hc["lateness_p99_us"]
     finally:
         os.close(master)
@@ -276,4 +277,4 @@ def test_no_host_check_for_the_simulated_rig_or_without_preflight(tmp_path):
     cfg = load_config(DEMO, [*BASE, f"log.dir={tmp_path}"])
     r = Runner(cfg, RunSettings(duration=0.05, echo_trips=False))
     summary = asyncio.run(r.run_ticks(10))
-    assert summary["hostcheck"] is None and r.core.hello()["hostcheck"] is None
+    assert summary["hostcheck"] is None and r.core.hello().hostcheck is None

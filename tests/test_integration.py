@@ -17,7 +17,7 @@ import pytest
 
 from runtime.config import load_config
 from runtime.realtime.loop import Runner, RunSettings
-from runtime.records.logs import read_run_log, read_trip_log
+from runtime.records.logs import read_run_log, read_trip_records
 from tests.runtime_helpers import BASE, DEMO, ROOT
 
 NARROWING = ROOT / "configs" / "pedestal-narrowing.toml"
@@ -57,9 +57,9 @@ def test_narrowing_bound_reaches_law_run_log_and_telemetry(tmp_path):
     np.testing.assert_allclose(s[live] / ratio[live], eps_log[live], rtol=1e-9)
     # Telemetry carries eps(t), the hello the starting bound and the schedule.
     tel = r.core.telemetry_record()
-    assert tel["eps"] == pytest.approx(eps_log[-1], rel=1e-3)
+    assert tel.eps == pytest.approx(eps_log[-1], rel=1e-3)
     hello = r.core.hello()
-    assert hello["eps"] == pytest.approx(eps0) and hello["bound"]["kind"] == "exponential"
+    assert hello.eps == pytest.approx(eps0) and hello.bound["kind"] == "exponential"
 
 
 def test_constant_bound_run_log_eps_is_the_design_eps(tmp_path):
@@ -106,8 +106,9 @@ def test_tripping_tick_is_in_the_run_log_with_its_ratio(tmp_path):
         assert cols["ratio"][row] == pytest.approx(trip["value"])
     assert np.any(cols["e"][row] != 0)
     # The trip record's pre-capture ends on that same row, ratio included.
-    th, trips, _, _ = read_trip_log(summary["trip_log"])
-    pre = trips[0].record["pre"]
+    got = read_trip_records(summary["trip_log"])
+    th, trips = got.header, got.trips
+    pre = trips[0].rec.pre
     ratio_col = th["capture_fields"].index("ratio")
     offs = np.cumsum([0] + th["capture_widths"])
     assert pre[-1][int(offs[ratio_col])] == pytest.approx(cols["ratio"][row])
@@ -122,7 +123,7 @@ def test_fault_schedule_labels_in_both_log_headers(tmp_path):
     summary = _unpaced(r, 0.3)
     want = {"config": ["spike@1.2:size=0.3"], "command_line": ["dropout@1.8:duration=0.01"]}
     run_header, _ = read_run_log(summary["run_log"])
-    trip_header, _, _, _ = read_trip_log(summary["trip_log"])
+    trip_header = read_trip_records(summary["trip_log"]).header
     assert run_header["faults"] == want
     assert trip_header["faults"] == want
 
@@ -206,8 +207,8 @@ def test_mqtt_telemetry_and_remote_requests(tmp_path, mosquitto, allow_arm):  # 
     ops = [op for op, ok, _ in summary["mqtt"]["requests"]]
     assert ops[:2] == ["arm", "stop"]
     # The operator stop went through the supervisor like a socket stop: an event is logged.
-    _, _, events, _ = read_trip_log(summary["trip_log"])
-    assert any(e["kind"] == "stop" for e in events)
+    events = read_trip_records(summary["trip_log"]).events
+    assert any(e.kind == "stop" for e in events)
 
 
 # ------------------------------------------------------------------ 5. dashboard process
@@ -345,12 +346,12 @@ def test_preflight_gates_the_first_arm_on_a_served_rig(tmp_path, gamma_ok):
     else:
         assert not reply["ok"]
         assert "preflight NO-GO" in reply["message"] and "broke the bound" in reply["message"]
-    _, _, events, _ = read_trip_log(r.core.trip_path)
-    pre = [e for e in events if e["kind"] == "preflight"]
-    assert len(pre) == 1 and pre[0]["preflight"]["go"] is gamma_ok
-    assert pre[0]["preflight"]["record"] == verdict["record"]
+    events = read_trip_records(r.core.trip_path).events
+    pre = [e for e in events if e.kind == "preflight"]
+    assert len(pre) == 1 and pre[0].extra["preflight"]["go"] is gamma_ok
+    assert pre[0].extra["preflight"]["record"] == verdict["record"]
     if not gamma_ok:
-        assert any(e["kind"] == "refused" and "NO-GO" in e["detail"] for e in events)
+        assert any(e.kind == "refused" and "NO-GO" in e.detail for e in events)
 
 
 def test_no_preflight_for_the_simulated_rig(tmp_path):

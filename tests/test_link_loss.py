@@ -25,6 +25,7 @@ from bench.served_rig import CORRAL, ROOT, SERVED, Background, end, wait_for
 from bench.served_rig import serve as serve_rig
 from runtime.config import load_config
 from runtime.realtime.loop import Runner, RunSettings
+from runtime.records.logs import read_trip_records
 
 pytestmark = pytest.mark.timeout(600)
 
@@ -63,14 +64,14 @@ def assert_loss_tripped(core: Any, before: int) -> None:
     loaded VM tripped a moment before the loss, so the runtime was already latched)
     `link_loss` among that trip's later rules, as first-out practice records it."""
     wait_for("the trip record", lambda: len(core.trips) > before
-             or "link_loss" in (core.trips[-1]["later"] if core.trips else []))
+             or "link_loss" in (core.trips[-1].later if core.trips else []))
     new = core.trips[before:]
-    if new and new[0]["rule"] == "link_loss":
-        assert new[0]["detail"] != "device silent", new[0]
-        assert new[0]["action"] == "outputs_off", new[0]
+    if new and new[0].rule == "link_loss":
+        assert new[0].detail != "device silent", new[0]
+        assert new[0].action == "outputs_off", new[0]
     else:
         trip = new[0] if new else core.trips[-1]
-        wait_for("link_loss among the later rules", lambda: "link_loss" in trip["later"])
+        wait_for("link_loss among the later rules", lambda: "link_loss" in trip.later)
 
 
 def check_trips(summary: dict[str, Any], n: int, details: tuple[str, ...]) -> None:
@@ -172,15 +173,12 @@ def test_run_ends_on_sigterm_while_the_broker_is_gone(mosquitto, tmp_path):  # n
         mosquitto.stop()
 
         def loss_logged() -> bool:  # the runtime's "link lost" event, on disk
-            from runtime.records.logs import read_trip_log
-
             for path in tmp_path.glob("*.trips"):
                 try:
-                    events = read_trip_log(path)[2]
+                    events = read_trip_records(path).events
                 except Exception:  # noqa: BLE001 - a record still being written
                     return False
-                if any(e.get("kind") == "link" and "link lost" in str(e.get("detail"))
-                       for e in events):
+                if any(e.kind == "link" and "link lost" in str(e.detail) for e in events):
                     return True
             return False
 

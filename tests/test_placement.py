@@ -17,7 +17,7 @@ import pytest
 
 from runtime.config import ConfigError, load_config
 from runtime.realtime.placement import Placement, _may_lock_all, cpus_from_config
-from runtime.records.logs import read_trip_log
+from runtime.records.logs import read_trip_records
 from tests.runtime_helpers import DEMO, runner
 
 HAVE_AFFINITY = hasattr(os, "sched_setaffinity")
@@ -110,6 +110,6 @@ def test_a_run_records_its_placement(tmp_path: Path) -> None:
     s = asyncio.run(r.run())
     assert os.sched_getaffinity(0) == before
     assert s["host_setup"]["cpus"] == [cpu]
-    _, _, events, _ = read_trip_log(s["trip_log"])
-    host = [e for e in events if e.get("kind") == "host"]
-    assert len(host) == 1 and f"pinned to CPU {cpu}" in host[0]["detail"], host
+    events = read_trip_records(s["trip_log"]).events
+    host = [e for e in events if e.kind == "host"]
+    assert len(host) == 1 and f"pinned to CPU {cpu}" in host[0].detail, host

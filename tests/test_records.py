@@ -29,7 +29,7 @@ from runtime.records.logs import (
     load_trips,
     read_run_log,
     read_stream,
-    read_trip_log,
+    read_trip_records,
 )
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -137,17 +137,18 @@ def _same(a: object, b: object) -> bool:
 
 def test_trip_log_round_trip_merges_post_and_keeps_header(tmp_path):
     made = write_trip_log(tmp_path / "a.trips", 3)
-    header, trips, events, torn = read_trip_log(tmp_path / "a.trips")
+    got = read_trip_records(tmp_path / "a.trips")
+    header, trips, events = got.header, got.trips, got.events
     assert header["format"] == TRIPS_FORMAT and header["version"] == 1
-    assert not torn
+    assert not got.torn and not got.bad
     assert [t.id for t in trips] == [1, 2, 3]
     for trip, (rec, post) in zip(trips, made, strict=True):
-        assert _same(rec, trip.record)
+        assert _same(rec, trip.rec.to_wire())
         assert _same(post, trip.post)
         assert trip.capture_fields == CAPTURE_FIELDS
         assert trip.config["rig"]["sim"] == "pedestal"
         assert not trip.cut_short
-    assert [e["kind"] for e in events] == ["arm", "reset", "reset", "reset"]
+    assert [e.kind for e in events] == ["arm", "reset", "reset", "reset"]
 
 
 def test_capture_locates_the_trip_tick_and_builds_columns(tmp_path):
@@ -180,11 +181,11 @@ def test_truncation_anywhere_in_the_last_record_keeps_the_others(tmp_path):
     cut = tmp_path / "cut.trips"
     for end in range(last_start, len(data)):
         cut.write_bytes(data[:end])
-        header, trips, _, torn = read_trip_log(cut)
-        assert header["format"] == TRIPS_FORMAT
-        assert torn == (end > last_start)
-        assert [t.id for t in trips] == list(range(1, n))
-        assert _same(recs[:-1], [t.record for t in trips])
+        got = read_trip_records(cut)
+        assert got.header["format"] == TRIPS_FORMAT
+        assert got.torn == (end > last_start)
+        assert [t.id for t in got.trips] == list(range(1, n))
+        assert _same(recs[:-1], [t.rec.to_wire() for t in got.trips])
     header, records, torn = read_stream(src)
     assert not torn and len(records) == n
 
@@ -196,7 +197,7 @@ def test_a_log_cut_inside_its_header_is_a_clear_error_not_a_crash(tmp_path):
     TripLog(src, make_header()).close()
     src.write_bytes(src.read_bytes()[:40])
     with pytest.raises(LogReadError, match="cut short before its header"):
-        read_trip_log(src)
+        read_trip_records(src)
 
 
 def test_reopening_a_torn_log_cuts_the_tail_and_appends_readably(tmp_path):
@@ -208,10 +209,10 @@ def test_reopening_a_torn_log_cuts_the_tail_and_appends_readably(tmp_path):
     with TripLog(path, make_header()) as log:
         rec, _ = make_trip(3, 9000, rng)
         log.append(rec)
-    header, trips, events, torn = read_trip_log(path)
-    assert not torn
-    assert [t.id for t in trips] == [1, 2, 3]
-    assert [e["kind"] for e in events] == ["arm", "reset"]
+    got = read_trip_records(path)
+    assert not got.torn
+    assert [t.id for t in got.trips] == [1, 2, 3]
+    assert [e.kind for e in got.events] == ["arm", "reset"]
 
 
 def test_records_survive_a_sigkill_of_the_writer(tmp_path):
@@ -251,13 +252,13 @@ def test_records_survive_a_sigkill_of_the_writer(tmp_path):
         proc.stdout.close()
     assert proc.returncode == -signal.SIGKILL
     assert reported >= 8
-    header, trips, _, torn = read_trip_log(path)
+    trips = read_trip_records(path).trips
     ids = [t.id for t in trips]
     assert ids[:reported] == list(range(1, reported + 1))
     rng = np.random.default_rng(5)
     for trip in trips:
         rec, _ = make_trip(trip.id, 1000 * trip.id, rng, n_pre=200, n_post=0)
-        assert _same(rec, trip.record)
+        assert _same(rec, trip.rec.to_wire())
         assert trip.post is None and trip.cut_short
 
 

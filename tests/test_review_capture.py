@@ -40,9 +40,9 @@ def test_the_capture_holds_every_rules_signal_and_the_first_out_crosses_at_the_t
     thr = jump_trip.threshold
     assert sig[i] == pytest.approx(jump_trip.value)
     assert sig[i] >= thr and np.all(sig[:i] < thr)  # it crossed on the trip tick, not before
-    fo = jump_trip.first_out
-    assert fo["on_delay_s"] == 0.0 and fo["reaction"] == jump_trip.action
-    assert fo["capture_field"] == "sig_jump"
+    fo = jump_trip.rec.first_out
+    assert fo.on_delay_s == 0.0 and fo.reaction == jump_trip.action
+    assert fo.capture_field == "sig_jump"
 
 
 def test_comtrade_and_csv_carry_the_rule_signals(jump_trip, tmp_path):
@@ -81,4 +81,4 @@ def test_logs_from_before_the_rule_signals_still_plot_and_export(tmp_path):
     assert rule_series(trip, "weight_rate") is None
     plot_trip(trip, tmp_path / "old.png")
     export_comtrade(trip, tmp_path / "old")
-    assert trip.ended["how"] == "unknown"  # no link in its header: it predates end records
+    assert trip.end.how == "unknown"  # no link in its header: it predates end records

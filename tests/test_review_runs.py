@@ -97,7 +97,7 @@ def test_unpaced_runs_end_completed_or_tripped(tmp_path):
     r2, s2 = run_unpaced(tmp_path / "b", 1.0, faults=["spike@0.5"])
     assert s2["trips"] and s2["ended"] == "tripped_and_stopped"
     trip = load_trips([tmp_path / "b"])[0]
-    assert trip.ended["how"] == "tripped_and_stopped" and not trip.cut_short
+    assert trip.end.how == "tripped_and_stopped" and not trip.cut_short
     assert trip.summary()["link_kind"] == "sim" and trip.summary()["simulated"] is True
 
 
@@ -136,7 +136,7 @@ def test_a_killed_run_reads_cut_short_and_a_terminated_one_interrupted(tmp_path,
             proc.kill()
             proc.communicate()
     trips = load_trips([path])
-    assert trips and trips[0].ended["how"] == how
+    assert trips and trips[0].end.how == how
     assert trips[0].post is not None  # the capture was durable before the kill
     assert corral(["trips", str(path)]) == 0
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import asyncio
 import json
+import os
 import subprocess
 import sys
 import threading
@@ -17,6 +18,7 @@ from pathlib import Path
 
 import pytest
 from mqtt_broker import mosquitto  # noqa: F401  (the fixture)
+from test_clock_starvation import _child_policy
 
 from drivers.base import (
     STATUS_COMMAND_TIMEOUT,
@@ -30,6 +32,7 @@ from sim_rigs import RIGS
 from sim_rigs.device import RigDevice
 from sim_rigs.faults import FaultSchedule, parse_fault
 from sim_rigs.plant import RigPlant
+from sim_rigs.transports import end_fifo, try_fifo
 
 pytestmark = pytest.mark.timeout(60)
 
@@ -374,3 +377,34 @@ def test_served_rig_declares_its_estop_and_reports_it_in_the_status_bits(tmp_pat
                 assert not s.status & bit
 
         asyncio.run(main())
+
+
+def test_the_served_devices_priority_is_not_inherited_and_ends_normal() -> None:
+    # sched(7): SCHED_RESET_ON_FORK keeps a real-time policy from the threads and processes
+    # the raised thread starts; serving ends at SCHED_OTHER even when the thread had
+    # inherited a real-time policy before (here FIFO 3, as from a raised parent).
+    seen: dict[str, int] = {}
+    no_reset = ~getattr(os, "SCHED_RESET_ON_FORK", 0)
+
+    def device_thread() -> None:
+        try:
+            os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(3))
+        except PermissionError:
+            return
+        seen["granted"] = int(try_fifo())
+        seen["raised"] = os.sched_getscheduler(0) & no_reset
+        t = threading.Thread(target=lambda: seen.__setitem__("thread",
+                                                             os.sched_getscheduler(0)))
+        t.start()
+        t.join(30.0)
+        seen["process"] = _child_policy()
+        end_fifo()
+        seen["after"] = os.sched_getscheduler(0)
+
+    t = threading.Thread(target=device_thread)
+    t.start()
+    t.join(120.0)
+    if not seen:
+        pytest.skip("SCHED_FIFO is not permitted here")
+    assert seen == {"granted": 1, "raised": os.SCHED_FIFO, "thread": os.SCHED_OTHER,
+                    "process": os.SCHED_OTHER, "after": os.SCHED_OTHER}

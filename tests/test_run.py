@@ -71,8 +71,8 @@ def test_trip_log_reads_back_after_sigkill(tmp_path):
     assert len(trips) == 1
     t = trips[0]
     assert t.rule == "jump" and t.action == "baseline"
-    assert len(t.record["pre"]) == 200  # log.pre_capture_s = 0.2 s at 1 kHz
-    assert t.snapshot["mode"] == "fallback" and len(t.snapshot["W"]) > 0
+    assert len(t.rec.pre) == 200  # log.pre_capture_s = 0.2 s at 1 kHz
+    assert t.rec.snapshot["mode"] == "fallback" and len(t.rec.snapshot["W"]) > 0
 
 
 def test_slow_client_never_stalls_the_loop(tmp_path):

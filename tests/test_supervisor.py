@@ -80,7 +80,7 @@ def test_sequence_through_the_operator_socket(tmp_path):
             assert (await client.request("arm"))["ok"] is True
             await _until(client, lambda m: m["mode"] == "engaged")
             second = r.core.engagements[1]
-            assert second["tick"] > r.core.trips[0]["tick"]
+            assert second["tick"] > r.core.trips[0].tick
             assert second["xr"] == second["x"]  # re-initialised at the new pose
             assert second["x"] != first["x"]
             assert (await client.request("disarm"))["ok"] is True
@@ -92,5 +92,5 @@ def test_sequence_through_the_operator_socket(tmp_path):
             await task
 
     asyncio.run(scenario())
-    kinds = [e["kind"] for e in r.core.recent_events]
+    kinds = [e.kind for e in r.core.recent_events]
     assert "reset" in kinds and "stop" in kinds and "refused" in kinds

@@ -158,6 +158,21 @@ def test_a_log_with_only_a_torn_header_among_others_does_not_hide_them(logs, cap
     assert "5 trips in 3 logs" in out and "120000.trips" in out
 
 
+def test_a_malformed_record_is_named_on_stderr_and_the_rest_listed(logs, capsys):
+    # A trip whose first-out is not a map, and an event whose kind is a number: each
+    # skipped with one line naming the file and the field; the good trips still listed.
+    path = logs["folder"] / "pedestal-sim-20240101-100000.trips"
+    with open(path, "ab") as fh:
+        fh.write(msgpack.packb({"type": "trip", "id": 9, "first_out": "margin"}))
+        fh.write(msgpack.packb({"type": "event", "kind": 5}))
+    assert corral(["trips", str(logs["folder"]), "--json"]) == 0
+    got = capsys.readouterr()
+    assert [t["id"] for t in json.loads(got.out)] == [1, 2, 1, 2, 3]  # stdout stays JSON
+    skipped = [ln for ln in got.err.splitlines() if "does not match its schema" in ln]
+    assert len(skipped) == 2 and all(path.name in ln for ln in skipped), got.err
+    assert "field 'first_out'" in skipped[0] and "field 'kind'" in skipped[1]
+
+
 @pytest.mark.skipif(importlib.util.find_spec("runtime.realtime.loop") is None
                     or importlib.util.find_spec("runtime.cli.cmd_run") is None,
                     reason="needs the real-time loop: runtime/realtime/loop.py and "

@@ -22,7 +22,8 @@ from typing import Any
 
 from runtime.cli.common import UserError
 from runtime.realtime.hostcheck import explain_from_header
-from runtime.records.logs import RULES, LogReadError, Trip, find_logs, read_trip_log
+from runtime.records.kinds import WireRecord
+from runtime.records.logs import RULES, LogReadError, Trip, find_logs, read_trip_records
 from runtime.records.runinfo import iso_time, parse_when, say_value
 from runtime.review.comtrade_export import export_comtrade, export_csv
 from runtime.review.tripfilter import TripFilter, run_link_kind, summarize, summary_text
@@ -86,7 +87,7 @@ def _load(paths: list[str]) -> tuple[list[Path], list[Trip], dict[Path, bool]]:
     torn: dict[Path, bool] = {}
     for path in logs:
         try:
-            _, found, _, cut = read_trip_log(path)
+            got = read_trip_records(path)
         except LogReadError as exc:
             if len(logs) == 1:
                 raise UserError(str(exc)) from exc
@@ -96,8 +97,11 @@ def _load(paths: list[str]) -> tuple[list[Path], list[Trip], dict[Path, bool]]:
             # Not a trip log at all: say so on stderr, do not list it as cut short.
             print(f"corral: note: skipped {exc}", file=sys.stderr)
             continue
-        torn[path] = cut
-        trips.extend(found)
+        for why in got.bad:  # each names its file and the field
+            print(f"corral: note: skipped a record that does not match its schema: {why}",
+                  file=sys.stderr)
+        torn[path] = got.torn
+        trips.extend(got.trips)
     trips.sort(key=lambda tr: (tr.t_wall, str(tr.source), tr.id))
     return logs, trips, torn
 
@@ -162,8 +166,8 @@ def list_text(logs: list[Path], trips: list[Trip], torn: dict[Path, bool]) -> st
         for t in trips:
             rows.append((
                 _when(t.t_wall), t.rig, _link(t), t.key, t.rule,
-                say_value(t.rule, t.value, t.threshold, t.first_out.get("on_delay_s")),
-                t.action, _num(t.detect_to_action_us, 3), str(t.ended.get("how", "?")),
+                say_value(t.rule, t.value, t.threshold, t.rec.first_out.on_delay_s),
+                t.action, _num(t.detect_to_action_us, 3), t.end.how,
                 "*" if t.cut_short else "",
             ))
         widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
@@ -199,19 +203,23 @@ def _vec(values: Any, names: list[str], units: list[str]) -> str:
     return ", ".join(parts)
 
 
+def _got(rec: WireRecord, name: str, default: Any) -> Any:
+    """A field of `rec`, or `default` when the file had none (an older corral's record)."""
+    return default if name in rec.missing else getattr(rec, name)
+
+
 def _sequence(trip: Trip, all_trips: list[Trip]) -> list[tuple[float, int, str]]:
     """Operator events and trips of the trip's run, in order (monotonic time, tick)."""
     seq: list[tuple[float, int, str]] = []
-    events = trip.events or list(trip.record.get("events") or [])
+    events = trip.events or list(trip.rec.events)
     seen = set()
-    for ev in events + list(trip.record.get("events") or []):
-        key = (ev.get("kind"), ev.get("tick"), ev.get("t_mono"))
+    for ev in events + list(trip.rec.events):
+        key = (ev.kind, _got(ev, "tick", None), ev.t_mono)
         if key in seen:
             continue
         seen.add(key)
-        detail = f" ({ev['detail']})" if ev.get("detail") else ""
-        seq.append((float(ev.get("t_mono") or 0.0), int(ev.get("tick", -1)),
-                    f"{ev.get('kind', '?')}{detail}"))
+        detail = f" ({ev.detail})" if ev.detail else ""
+        seq.append((float(ev.t_mono or 0.0), ev.tick, f"{ev.kind}{detail}"))
     for t in all_trips:
         if t.source != trip.source:
             continue
@@ -219,10 +227,10 @@ def _sequence(trip: Trip, all_trips: list[Trip]) -> list[tuple[float, int, str]]
         seq.append((float(t.t_mono or 0.0), t.tick,
                     f"TRIP {t.id}: {t.rule} ({_num(t.value)} vs {_num(t.threshold)}) "
                     f"-> {t.action}{mark}"))
-        for later in t.later:
-            seq.append((float(t.t_mono or 0.0), int(later.get("tick", t.tick)),
-                        f"  later: {later.get('rule')} ({later.get('signal', '?')} = "
-                        f"{_num(later.get('value'))} vs {_num(later.get('threshold'))})"))
+        for later in t.rec.later:
+            seq.append((float(t.t_mono or 0.0), int(_got(later, "tick", t.tick)),
+                        f"  later: {later.rule} ({_got(later, 'signal', '?')} = "
+                        f"{_num(later.value)} vs {_num(later.threshold)})"))
     seq.sort(key=lambda s: (s[1] if s[1] >= 0 else -1, s[0]))
     return seq
 
@@ -267,7 +275,7 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
     names = trip.names()
     states, s_units = names.get("states", []), names.get("state_units", [])
     inputs, i_units = names.get("inputs", []), names.get("input_units", [])
-    fo = trip.first_out
+    fo = trip.rec.first_out
     out = [
         f"trip {trip.key}   ({trip.source})",
         f"  rig {trip.rig}, software {trip.software_version or '?'}, "
@@ -276,16 +284,16 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
         + (f", t_mono {trip.t_mono:.6f} s" if isinstance(trip.t_mono, (int, float)) else ""),
         f"  link: {_link(trip)} ({(trip.header.get('link') or {}).get('spec', '?')}), "
         f"simulated: {trip.header.get('simulated')}",
-        f"  first out: {trip.rule}  {fo.get('signal', '?')} = {_num(trip.value)} "
+        f"  first out: {trip.rule}  {_got(fo, 'signal', '?')} = {_num(trip.value)} "
         f"vs threshold {_num(trip.threshold)}",
-        f"    that is: {say_value(trip.rule, trip.value, trip.threshold, fo.get('on_delay_s'))}"
-        + (f"; on-delay {_num(fo.get('on_delay_s'))} s, deadband {_num(fo.get('deadband'))}"
-           if "on_delay_s" in fo else ""),
-        f"  the run ended: {trip.ended.get('how_text', '?')}"
-        + (f" at {trip.ended['time_iso']}" if trip.ended.get("time_iso") else ""),
+        f"    that is: {say_value(trip.rule, trip.value, trip.threshold, fo.on_delay_s)}"
+        + (f"; on-delay {_num(fo.on_delay_s)} s, deadband {_num(fo.deadband)}"
+           if "on_delay_s" not in fo.missing else ""),
+        f"  the run ended: {_got(trip.end, 'how_text', '?')}"
+        + (f" at {trip.end.time_iso}" if trip.end.time_iso else ""),
     ]
     why = explain_from_header(trip.rule, trip.value, trip.threshold, trip.header,
-                              trip.snapshot.get("loop"))
+                              trip.rec.snapshot.get("loop"))
     if why:
         out.append(f"  why: {why}")
     out += [
@@ -295,14 +303,14 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
     if trip.cut_short:
         out.append("  NOTE: log cut short (crash or kill)"
                    + ("; no post-trip capture" if trip.post is None else ""))
-    out.append("later rules (in order):" if trip.later else "later rules: none")
-    for r in trip.later:
-        out.append(f"  tick {r.get('tick', '?')}  {r.get('rule')}  {r.get('signal', '?')} = "
-                   f"{_num(r.get('value'))} vs {_num(r.get('threshold'))}")
+    out.append("later rules (in order):" if trip.rec.later else "later rules: none")
+    for r in trip.rec.later:
+        out.append(f"  tick {_got(r, 'tick', '?')}  {r.rule}  {_got(r, 'signal', '?')} = "
+                   f"{_num(r.value)} vs {_num(r.threshold)}")
     out.append("sequence of events (this run):")
     for t_mono, tick, text in _sequence(trip, all_trips):
         out.append(f"  tick {tick:>9}  t_mono {t_mono:12.6f}  {text}")
-    snap = trip.snapshot
+    snap = trip.rec.snapshot
     out.append("snapshot at the trip:")
     vec_units = {"x": (states, s_units), "xr": (states, s_units), "e": (states, s_units),
                  "u_cmd": (inputs, i_units), "u_applied": (inputs, i_units)}
@@ -336,11 +344,14 @@ def show_text(trip: Trip, all_trips: list[Trip]) -> str:
 def show_json(trip: Trip) -> dict[str, Any]:
     """`--show --json`: the summary plus snapshot, later rules and events."""
     d = trip.summary()
-    d.update({"first_out": trip.first_out, "later_rules": trip.later, "snapshot": trip.snapshot,
-              "events": trip.events, "software_version": trip.software_version,
+    rec = trip.rec
+    d.update({"first_out": rec.first_out.to_wire(),
+              "later_rules": [e.to_wire() for e in rec.later], "snapshot": rec.snapshot,
+              "events": [e.to_wire() for e in trip.events],
+              "software_version": trip.software_version,
               "capture_fields": trip.capture_fields, "capture_ticks": len(trip.capture()),
               "explanation": explain_from_header(trip.rule, trip.value, trip.threshold,
-                                                 trip.header, trip.snapshot.get("loop")),
+                                                 trip.header, rec.snapshot.get("loop")),
               "hostcheck": trip.header.get("hostcheck")})
     return d
 

@@ -3,7 +3,6 @@ the pre/post trip capture around it (a ring of recent rows, the rows after a tri
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -13,7 +12,9 @@ from numpy.typing import NDArray
 from runtime.guard.supervisor import MODE_CODE
 from runtime.guard.watchdog import Rule
 from runtime.method.design import Design
+from runtime.realtime.tick_records import post_record
 from runtime.realtime.tick_state import TickState
+from runtime.records.kinds import PostRecord
 from runtime.records.runinfo import RULE_SIGNAL_UNITS
 
 Array = NDArray[np.float64]
@@ -37,10 +38,6 @@ def _capture_layout(design: Design, p: int,
     return [f[0] for f in fields], [f[1] for f in fields], [f[2] for f in fields]
 
 
-def _finite(v: float) -> float | None:
-    return v if math.isfinite(v) else None
-
-
 class Capture:
     """The tick row and the trip capture around it.
 
@@ -51,7 +48,7 @@ class Capture:
     """
 
     def __init__(self, design: Design, p: int, rules: Sequence[Rule], pre_s: float,
-                 post_s: float, put: Callable[[dict[str, Any]], None]) -> None:
+                 post_s: float, put: Callable[[PostRecord], None]) -> None:
         Ts = design.Ts
         self.fields, self.widths, self.units = _capture_layout(design, p, rules)
         self.row_len = sum(self.widths)
@@ -139,8 +136,7 @@ class Capture:
         """Hand the post capture collected so far to the writer as one ``post`` record."""
         if self.post_trip is None:
             return
-        rec = {"type": "post", "trip_id": self.post_trip,
-               "rows": self.post_buf[:self.post_count].copy(), "later": list(self.post_later)}
-        self._put(rec)
+        self._put(post_record(self.post_trip, self.post_buf[:self.post_count].copy(),
+                              list(self.post_later)))
         self.post_trip = None
         self.post_count = 0

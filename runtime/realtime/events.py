@@ -11,6 +11,7 @@ from typing import Any
 from runtime.guard.supervisor import Supervisor
 from runtime.realtime.tick_records import event_record
 from runtime.realtime.tick_state import TickState
+from runtime.records.kinds import Event
 
 
 class EventLog:
@@ -23,12 +24,12 @@ class EventLog:
     """
 
     def __init__(self, st: TickState, per_s: float,
-                 put: Callable[[dict[str, Any]], None]) -> None:
+                 put: Callable[[Event], None]) -> None:
         self._st = st
         self.per_s = per_s
         """Most operator events written to the trip log per second (the rest counted)."""
         self._put_record = put
-        self.recent: list[dict[str, Any]] = []
+        self.recent: list[Event] = []
         """The last 20 events (each trip record carries them)."""
         self.suppressed = 0
         """Events over the limit, the whole run."""

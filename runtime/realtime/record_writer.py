@@ -19,10 +19,11 @@ import numpy as np
 from runtime.realtime.hostcheck import explain_from_header
 from runtime.realtime.settings import RunSettings
 from runtime.realtime.telemetry import TelemetryServer
+from runtime.records.kinds import Event, PostRecord, RunEnd, TripRecord, TripSummary
 from runtime.records.logs import RunLogWriter, TripLog
 
 Record = dict[str, Any]
-_Item = tuple[str, Record, Record | None] | None
+_Item = tuple[str, TripRecord | PostRecord | Event | RunEnd, TripSummary | None] | None
 """(kind, record, the trip's summary for a trip) or None: the end of the run."""
 
 
@@ -53,15 +54,15 @@ class RecordWriter:
         return out
 
     # ------------------------------------------------------------- queued (tick side)
-    def put_trip(self, rec: Record, summary: Record) -> None:
+    def put_trip(self, rec: TripRecord, summary: TripSummary) -> None:
         """A trip record: written, then announced (`summary`) by the writer thread."""
         self._writes.put(("trip", rec, summary))
 
-    def put_post(self, rec: Record) -> None:
+    def put_post(self, rec: PostRecord) -> None:
         """A post-trip capture record."""
         self._writes.put(("post", rec, None))
 
-    def put_event(self, rec: Record) -> None:
+    def put_event(self, rec: Event) -> None:
         """An event record: written, then sent to the socket (and MQTT)."""
         self._writes.put(("event", rec, None))
 
@@ -77,52 +78,52 @@ class RecordWriter:
                 return
             kind, rec, summary = item
             try:
-                if kind in ("trip", "post"):
-                    rec = dict(rec)
-                    key = "pre" if kind == "trip" else "rows"
-                    rec[key] = np.asarray(rec[key]).tolist()
+                # The capture rows come as an array (the tick does not pay for lists).
+                if isinstance(rec, TripRecord):
+                    rec.pre = np.asarray(rec.pre).tolist()
+                elif isinstance(rec, PostRecord):
+                    rec.rows = np.asarray(rec.rows).tolist()
                 self.trip_log.append(rec)
             except Exception as exc:  # noqa: BLE001 - a full disk must not stop the loop
                 print(f"corral: could not write the trip log: {exc}", file=self.console(),
                       flush=True)
-                if summary is not None:  # a trip: not durable, but the operator must hear of it
-                    self._announce_trip(rec, summary)
+                if isinstance(rec, TripRecord) and summary is not None:
+                    self._announce_trip(rec, summary)  # not durable, but must be heard of
                 continue
             # On disk (fsynced) now: only from here on may anyone hear of it.
-            if summary is not None:
+            if isinstance(rec, TripRecord) and summary is not None:
                 self._announce_trip(rec, summary)
-            elif kind == "event" and self.telemetry is not None:
+            elif isinstance(rec, Event) and self.telemetry is not None:
                 self.telemetry.post(rec)
 
-    def mark_durable(self, trip_id: int, summary: Record) -> None:
+    def mark_durable(self, trip_id: int, summary: TripSummary) -> None:
         """Trip `trip_id` is on disk: count it and post it to the socket (and MQTT)."""
         self.trips_written += 1
         self.durable_trip_id = max(self.durable_trip_id, trip_id)
         if self.telemetry is not None:
-            self.telemetry.post({"type": "trip", **summary})
+            self.telemetry.post(summary)
 
-    def _announce_trip(self, rec: Record, summary: Record) -> None:
+    def _announce_trip(self, rec: TripRecord, summary: TripSummary) -> None:
         """Tell the operator of a trip whose record is on disk: socket, MQTT, stderr."""
-        self.mark_durable(int(rec["id"]), summary)
+        self.mark_durable(rec.id, summary)
         if self.settings.echo_trips:
-            print(f"corral: trip {rec['id']} ({rec['first_out']['rule']}, action "
-                  f"{rec['action']}) logged to {self.trip_path}", file=self.console(),
-                  flush=True)
-            fo = rec["first_out"]
-            why = explain_from_header(fo["rule"], fo["value"], fo["threshold"],
-                                      self.trip_log.header, rec["snapshot"].get("loop"))
+            fo = rec.first_out
+            print(f"corral: trip {rec.id} ({fo.rule}, action {rec.action}) logged to "
+                  f"{self.trip_path}", file=self.console(), flush=True)
+            why = explain_from_header(fo.rule, fo.value, fo.threshold,
+                                      self.trip_log.header, rec.snapshot.get("loop"))
             if why:
                 print(f"corral:   {why}", file=self.console(), flush=True)
 
     # ------------------------------------------------------------- in the caller's thread
-    def write_now(self, rec: Record) -> None:
+    def write_now(self, rec: TripRecord) -> None:
         """Append (and fsync) a record in the calling thread (the `internal` trip)."""
         self.trip_log.append(rec)
 
-    def close(self, end: Record) -> None:
+    def close(self, end: RunEnd) -> None:
         """Write the end record to both logs, drain the writer thread, close the logs."""
         self._writes.put(("end", end, None))
-        self.run_log.append(end)  # type: ignore[arg-type]  # a map after the rows
+        self.run_log.append(end)
         self._writes.put(None)
         self._writer.join(10.0)
         self.trip_log.close()

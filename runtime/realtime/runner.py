@@ -17,7 +17,6 @@ from typing import TYPE_CHECKING, Any
 from drivers.base import Command, LinkClosed, Sample
 from runtime.config import Config, ConfigError
 from runtime.method.design import design_from_config
-from runtime.realtime.capture import _finite
 from runtime.realtime.clock import (
     ArrivalTracker,
     DeadlineClock,
@@ -39,6 +38,7 @@ from runtime.realtime.settings import (
 )
 from runtime.realtime.telemetry import MqttBridge, TelemetryServer
 from runtime.realtime.tick import TickCore, _guarded_tick
+from runtime.realtime.tick_records import _finite
 
 if TYPE_CHECKING:  # the simulated rig is imported where it is built
     from sim_rigs.link import SimLink
@@ -226,9 +226,9 @@ class Runner:
             async with self.link:
                 # The device's own status flags are known once its hello has come.
                 flags = list(getattr(self.link.hello, "status_flags", ()) or ())
-                self.telemetry.hello["status_flags"] = flags
+                self.telemetry.update_hello(status_flags=flags)
                 if self.mqtt is not None:
-                    self.mqtt.hello["status_flags"] = flags
+                    self.mqtt.update_hello(status_flags=flags)
                 async with asyncio.TaskGroup() as tg:
                     tel = tg.create_task(self.telemetry.serve(), name="telemetry")
                     mqtt = (tg.create_task(self.mqtt.run(), name="mqtt-telemetry")
@@ -315,9 +315,9 @@ class Runner:
             detail = f"NO-GO: {reasons}"
         core.event("preflight", detail, preflight=verdict)
         # Clients connecting later see the verdict in the hello.
-        self.telemetry.hello["preflight"] = verdict
+        self.telemetry.update_hello(preflight=verdict)
         if self.mqtt is not None:
-            self.mqtt.hello["preflight"] = verdict
+            self.mqtt.update_hello(preflight=verdict)
         print(f"corral: preflight {detail}", file=out, flush=True)
         return verdict
 
@@ -548,7 +548,8 @@ class Runner:
             "ticks": core.tick, "deadline_misses": self.clock.stats.misses,
             "lateness_p50_us": _finite(p50), "lateness_p99_us": _finite(p99),
             "lateness_max_us": _finite(mx), "max_margin_ratio": core.max_ratio,
-            "trips": list(core.trips), "trip_log": str(core.trip_path),
+            "trips": [s.to_wire(tag=False) for s in core.trips],
+            "trip_log": str(core.trip_path),
             "run_log": str(core.run_path), "socket": str(self.socket_path),
             "mode": core.sup.mode, "latched": core.sup.latched,
             "engagements": len(core.engagements), "clock": self.clock.granted,
@@ -567,5 +568,5 @@ class Runner:
             "link_up": core.link_up,
             "link_kind": core.link_info["kind"], "link_info": core.link_info,
             "run_name": core.run_name,
-            "ended": getattr(core, "end", {}).get("how"),
+            "ended": core.end.how if core.end is not None else None,
         }

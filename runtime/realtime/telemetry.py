@@ -24,9 +24,9 @@ The tick thread hands records over with `publish` (latest wins) and `post`
 (queued, thread-safe); packing and socket writes happen on the event loop.
 
 Records are the typed classes of `runtime.records.kinds` (`Hello`, `Telemetry`,
-`TripSummary`, `Event`, `Reply`). The tick may still hand over plain dicts: they are
-parsed into their class on the event loop (never in the tick thread), a malformed one
-is dropped and counted (`schema_errors`, with the first error kept in `schema_error`).
+`TripSummary`, `Event`, `Reply`), as the tick builds them. A plain map (a tool or test
+posting by hand) is parsed into its class on the event loop, a malformed one dropped
+and counted (`schema_errors`, with the first error kept in `schema_error`).
 Listeners (the MQTT bridge) get the typed record.
 
 What does not live here: the record schemas (`runtime.records.kinds`), the tick that
@@ -132,8 +132,8 @@ class TelemetryServer:
         """Clients disconnected for flooding."""
         self._busy_replies: dict[str, bytes] = {}
         self.hello: dict[str, Any] = as_record(hello, Hello).to_wire()
-        """The hello as a map. The runner still sets keys in it (``status_flags``,
-        ``preflight``); `update_hello` is the typed way. Checked on every connect."""
+        """The hello as a map; set fields with `update_hello` (``status_flags``,
+        ``preflight``). Checked on every connect."""
         self.on_request = on_request
         self.rate_hz = min(50.0, max(1.0, float(rate_hz)))
         self.client_buffer = int(client_buffer)
@@ -447,7 +447,7 @@ class MqttBridge:
         # test rigs publish partial hellos, as an older corral on the broker may).
         self.hello: dict[str, Any] = (hello.to_wire() if isinstance(hello, Hello)
                                       else {"type": "hello", **hello})
-        """The retained hello as a map (the runner still sets keys in it)."""
+        """The retained hello as a map (fields set with `update_hello`)."""
         self.on_request = on_request
         self.rate_hz = float(rate_hz)
         self.hello_refresh_s = float(hello_refresh_s)

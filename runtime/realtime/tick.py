@@ -54,6 +54,7 @@ from runtime.realtime.tick_records import (
 from runtime.realtime.tick_state import TickState
 from runtime.realtime.timing import TickTiming
 from runtime.realtime.trips import TripContext, TripHandler
+from runtime.records.kinds import Event, Hello, PostRecord, RunEnd, Telemetry, TripSummary
 from runtime.records.logs import RunLogWriter, log_paths
 from runtime.records.runinfo import link_identity, run_name
 
@@ -131,7 +132,7 @@ class TickCore:
         """The exception that ended the run through the `internal` trip (None: none)."""
         self.tel_every = 40
         """Telemetry every this many ticks (set by the runner from ``telemetry.rate_hz``)."""
-        self.end: dict[str, Any] = {}
+        self.end: RunEnd | None = None
         """The end record, once `close` wrote it."""
 
     # ------------------------------------------------------------- the tick
@@ -345,16 +346,16 @@ class TickCore:
         r = self.watchdog.by_id
         return {"warning": r["margin_warning"].threshold, "trip": r["margin"].threshold}
 
-    def hello(self) -> dict[str, Any]:
-        """The telemetry hello map (`runtime.realtime.tick_records.hello_record`)."""
+    def hello(self) -> Hello:
+        """The telemetry hello (`runtime.realtime.tick_records.hello_record`)."""
         return hello_record(
             design=self.design, bound=self.bound, levels=self.levels(),
             simulated=self.simulated, tracked=self.tracked, hostcheck=self.settings.hostcheck,
             link_info=self.link_info, run_name=self.run_name,
             status_flags=getattr(self.link.hello, "status_flags", ()) or ())
 
-    def telemetry_record(self) -> dict[str, Any]:
-        """The decimated telemetry map (`runtime.realtime.tick_records.telemetry_record`)."""
+    def telemetry_record(self) -> Telemetry:
+        """The decimated telemetry record (`runtime.realtime.tick_records.telemetry_record`)."""
         return telemetry_record(self.state, self.sup, self.timing,
                                 link_snapshot(self.link, self.est.age),
                                 self.design.step_gain_cap, self.trip_handler.current_trip,
@@ -364,7 +365,7 @@ class TickCore:
         """Where progress lines go (`RecordWriter.console`)."""
         return self.writer.console()
 
-    def _post_ready(self, rec: dict[str, Any]) -> None:
+    def _post_ready(self, rec: PostRecord) -> None:
         self.writer.put_post(rec)
 
     def close(self, how: str = "completed", detail: str = "") -> None:
@@ -415,7 +416,7 @@ class TickCore:
         self.requests.arm_refusal = value
 
     @property
-    def trips(self) -> list[dict[str, Any]]:
+    def trips(self) -> list[TripSummary]:
         return self.trip_handler.trips
 
     @property
@@ -423,7 +424,7 @@ class TickCore:
         return self.control.engagements
 
     @property
-    def recent_events(self) -> list[dict[str, Any]]:
+    def recent_events(self) -> list[Event]:
         return self.events.recent
 
     @property

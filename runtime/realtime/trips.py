@@ -31,6 +31,7 @@ from runtime.realtime.tick_records import (
 )
 from runtime.realtime.tick_state import TickState
 from runtime.realtime.timing import TickTiming
+from runtime.records.kinds import Event, TripSummary
 
 Array = NDArray[np.float64]
 Record = dict[str, Any]
@@ -68,9 +69,9 @@ class TripHandler:
         self.capture, self.writer, self.events, self.timing = capture, writer, events, timing
         self.law, self.est, self.link = law, est, link
         self.rig, self.config_hash = rig, config_hash
-        self.trips: list[Record] = []
+        self.trips: list[TripSummary] = []
         self.trip_id = 0
-        self.current_trip: Record | None = None
+        self.current_trip: TripSummary | None = None
         self.pending: TripContext | None = None
         """This tick's trip, recorded by `finish` after the command is sent."""
 
@@ -107,7 +108,7 @@ class TripHandler:
         d2a = (t_sent - ctx.t_detect) * 1e6
         if not ctx.new:
             for e in ctx.later:
-                self.trips[-1]["later"].append(e["rule"])
+                self.trips[-1].later.append(e["rule"])
             if capture.post_trip is not None:
                 capture.add_post()
             return
@@ -159,7 +160,7 @@ class TripHandler:
                  "threshold": 0.5}
         t_detect = time.monotonic()
         pre: list[list[float]] = []
-        events: list[Record] = []
+        events: list[Event] = []
         snapshot: Record = {}
         with contextlib.suppress(Exception):  # best effort: the state may be what broke
             pre = self.capture.pre_rows_before(st.tick)

@@ -19,10 +19,10 @@ they were always written) and `from_wire(d)` (a dict read from a file or a socke
 - unknown fields are KEPT in `extra` and written back after the known ones, so a file
   from a newer corral survives a read and write by this one.
 
-The tick still builds plain dicts (`runtime.realtime.tick`); the writer, the socket and
-the MQTT bridge accept either and parse a dict here (`parse_log_record`, `as_record`),
-so a record is checked at the boundary. The keyword constructors (``Telemetry(t=...,
-tick=...)``) are for the tick to call directly.
+The tick builds these records directly (`runtime.realtime.tick_records`, keyword
+constructors; `given` leaves out the optional fields it was not given). The writer, the
+socket and the MQTT bridge still parse a plain map (`parse_log_record`, `as_record`)
+where an outside peer or an old file supplies one, so such a record is checked there.
 
 What does not live here: the file framing and the writers (`runtime.records.logwriter`),
 the readers (`runtime.records.logs`), the log headers (plain maps: the config is open).
@@ -238,6 +238,13 @@ class WireRecord:
         known = cls._names()
         extra = {k: v for k, v in d.items() if k not in known and k != "type"}
         return cls(**values, extra=extra, missing=tuple(missing))
+
+    @classmethod
+    def given(cls: type[R], extra: dict[str, Any] | None = None, **values: Any) -> R:
+        """A record of exactly these fields (not checked): the optional ones not given are
+        left out by `to_wire`, as when a file without them is read."""
+        missing = tuple(s[0] for s in cls._schema() if not s[2] and s[0] not in values)
+        return cls(**values, extra=extra or {}, missing=missing)
 
     @classmethod
     def _names(cls) -> frozenset[str]:
@@ -571,14 +578,13 @@ def _parse(d: dict[str, Any], table: dict[str, type[WireRecord]], where: str) ->
 
 
 def as_record(value: R | dict[str, Any], cls: type[R]) -> R:
-    """`value` as a `cls` record: a record passes, a dict (the tick's today) is parsed."""
+    """`value` as a `cls` record: a record passes, a dict (a peer's, a test's) is parsed."""
     if isinstance(value, cls):
         return value
     if isinstance(value, dict):
         return cls.from_wire(value)
     raise RecordError(f"{cls.LABEL}: expected a map or a {cls.__name__}, "
                       f"got {type(value).__name__}")
-
 
 
 __all__ = [

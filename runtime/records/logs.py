@@ -42,7 +42,6 @@ from runtime.records.kinds import (
     RecordError,
     RunEnd,
     TripRecord,
-    parse_log_record,
 )
 from runtime.records.logwriter import (
     DEFAULT_LEVELS,
@@ -190,14 +189,14 @@ def _period(header: dict[str, Any]) -> float:
     return float(p) if isinstance(p, (int, float)) and p > 0 else 0.001
 
 
-def build_capture(header: dict[str, Any], record: dict[str, Any],
+def build_capture(header: dict[str, Any], record: TripRecord,
                   post: list[Any] | None) -> Capture:
     """The capture of one trip: pre rows then post rows, as named columns."""
     fields = [str(f) for f in header.get("capture_fields") or []]
     units_list = list(header.get("capture_units") or [])
     units = {f: (units_list[i] if i < len(units_list) else "") for i, f in enumerate(fields)}
     widths = header.get("capture_widths")
-    pre = [r for r in (record.get("pre") or []) if isinstance(r, (list, tuple))]
+    pre = [r for r in record.pre if isinstance(r, (list, tuple))]
     post_rows = [r for r in (post or []) if isinstance(r, (list, tuple))]
 
     def split(row: Sequence[Any]) -> list[Any] | None:
@@ -220,7 +219,7 @@ def build_capture(header: dict[str, Any], record: dict[str, Any],
     trip_index = max(len(pre_s) - 1, 0)
     tick_col = columns.get("tick")
     if tick_col is not None and tick_col.dtype != object and n:
-        hits = np.flatnonzero(tick_col == record.get("tick", -1))
+        hits = np.flatnonzero(tick_col == record.tick)
         if hits.size:
             trip_index = int(hits[0])
     period = _period(header)
@@ -239,38 +238,19 @@ def build_capture(header: dict[str, Any], record: dict[str, Any],
 
 @dataclass
 class Trip:
-    """One trip as read from a log: the record, its post capture, the run's header.
+    """One trip as read from a log: the typed record (`rec`: first-out, later rules,
+    snapshot, pre rows), its post capture, the run's header, events and end."""
 
-    `rec` is the typed record (`TripRecord`; RecordError at construction when the map
-    does not match it). `record`, `first_out`, `later`, `snapshot`, `events` and
-    `ended` are the same facts as plain maps, kept for `corral trips` and older callers.
-    """
-
-    record: dict[str, Any]
+    rec: TripRecord
     header: dict[str, Any]
     source: Path
     post: list[Any] | None = None
-    events: list[dict[str, Any]] = field(default_factory=list)
+    events: list[Event] = field(default_factory=list)
+    """The run's operator and mode events (the whole log, in the order written)."""
     log_torn: bool = False
-    ended: dict[str, Any] = field(default_factory=dict)
-    """The run's end record (`runtime.records.runinfo.how_ended`; how "cut_short" when missing)."""
+    end: RunEnd = field(default_factory=lambda: RunEnd(how="unknown", found=False))
+    """How the run ended (`runtime.records.runinfo.how_ended`; "cut_short" when missing)."""
     _capture: Capture | None = field(default=None, repr=False)
-    rec: TripRecord = field(init=False, repr=False)
-    """The trip record, typed."""
-
-    def __post_init__(self) -> None:
-        self.rec = TripRecord.from_wire(self.record, where=f"{self.source}: trip record")
-
-    @property
-    def end(self) -> RunEnd:
-        """How the run ended, typed (`ended` as a `RunEnd`)."""
-        return RunEnd.from_wire(self.ended) if self.ended else RunEnd(how="unknown",
-                                                                       found=False)
-
-    @property
-    def event_records(self) -> list[Event]:
-        """The run's operator events, typed."""
-        return [Event.from_wire(e) for e in self.events]
 
     # -- identity and first-out ------------------------------------------
     @property
@@ -283,10 +263,6 @@ class Trip:
         return f"{self.source.name}:{self.id}"
 
     @property
-    def first_out(self) -> dict[str, Any]:
-        return dict(self.record.get("first_out") or {})
-
-    @property
     def rule(self) -> str:
         return self.rec.first_out.rule
 
@@ -297,10 +273,6 @@ class Trip:
     @property
     def threshold(self) -> float | None:
         return self.rec.first_out.threshold
-
-    @property
-    def later(self) -> list[dict[str, Any]]:
-        return list(self.record.get("later") or [])
 
     @property
     def action(self) -> str:
@@ -323,10 +295,6 @@ class Trip:
     @property
     def t_mono(self) -> float | None:
         return self.rec.t_mono
-
-    @property
-    def snapshot(self) -> dict[str, Any]:
-        return dict(self.record.get("snapshot") or {})
 
     # -- the run it belongs to --------------------------------------------
     @property
@@ -361,7 +329,7 @@ class Trip:
     def capture(self) -> Capture:
         """The pre/post capture as columns (built once)."""
         if self._capture is None:
-            self._capture = build_capture(self.header, self.record, self.post)
+            self._capture = build_capture(self.header, self.rec, self.post)
         return self._capture
 
     def modes(self) -> list[str]:
@@ -445,7 +413,7 @@ class Trip:
             "id": self.id, "key": self.key, "file": str(self.source), "rig": self.rig,
             "link_kind": link.get("kind", "sim" if self.header.get("simulated") else None),
             "simulated": link.get("simulated", self.header.get("simulated")),
-            "ended": self.ended.get("how"), "time": self.t_wall,
+            "ended": self.end.how, "time": self.t_wall,
             "time_iso": iso_time(self.t_wall),
             "value_text": say_value(self.rule, self.value, self.threshold, fo.on_delay_s),
             "on_delay_s": fo.on_delay_s,
@@ -476,10 +444,14 @@ class TripLogContents:
     """Why each skipped record did not match its schema."""
 
 
+_TRIP_LOG_KINDS: dict[str, type[TripRecord] | type[PostRecord] | type[Event]] = {
+    "trip": TripRecord, "post": PostRecord, "event": Event}
+
+
 def read_trip_records(path: str | Path) -> TripLogContents:
     """One trip log as typed records (`runtime.records.kinds`); LogReadError when it is
     not a trip log at all. A record that does not match its schema is skipped and its
-    error kept in ``bad`` (the others still read)."""
+    error, naming the file, kept in ``bad`` (the others still read)."""
     from runtime.records.runinfo import how_ended
 
     path = Path(path)
@@ -495,53 +467,43 @@ def read_trip_records(path: str | Path) -> TripLogContents:
     trips: list[Trip] = []
     by_id: dict[int, Trip] = {}
     events: list[Event] = []
-    event_maps: list[dict[str, Any]] = []
     bad: list[str] = []
     odd = 0
     for rec in records:
         if not isinstance(rec, dict):
             odd += 1
             continue
+        cls = _TRIP_LOG_KINDS.get(str(rec.get("type")))
         try:
-            typed = parse_log_record(rec) if rec.get("type") in ("post", "event") else None
-            if rec.get("type") == "trip":
-                trip = Trip(record=rec, header=header, source=path)
-                trips.append(trip)
-                by_id[trip.id] = trip
+            typed = cls.from_wire(rec, where=f"{path}: {cls.LABEL}") if cls else None
         except RecordError as exc:
             bad.append(str(exc))
             continue
-        if isinstance(typed, PostRecord):
+        if isinstance(typed, TripRecord):
+            trip = Trip(rec=typed, header=header, source=path)
+            trips.append(trip)
+            by_id[trip.id] = trip
+        elif isinstance(typed, PostRecord):
             target = by_id.get(typed.trip_id)
             if target is not None:
                 target.post = list(target.post or []) + list(typed.rows)
         elif isinstance(typed, Event):
             events.append(typed)
-            event_maps.append(rec)
     torn = torn or odd > 0
-    ended = how_ended(records, header)
+    end = RunEnd.from_wire(how_ended(records, header))
     for trip in trips:
-        trip.events = event_maps
+        trip.events = events
         trip.log_torn = torn
-        trip.ended = ended
-    return TripLogContents(header=header, trips=trips, events=events,
-                           end=RunEnd.from_wire(ended), torn=torn, bad=bad)
-
-
-def read_trip_log(path: str | Path) -> tuple[dict[str, Any], list[Trip], list[dict[str, Any]],
-                                             bool]:
-    """One trip log: (header, trips with their post captures, operator events as maps,
-    torn). The typed reader is `read_trip_records`; this is its plain-map view."""
-    got = read_trip_records(path)
-    return got.header, got.trips, [e.to_wire() for e in got.events], got.torn
+        trip.end = end
+    return TripLogContents(header=header, trips=trips, events=events, end=end, torn=torn,
+                           bad=bad)
 
 
 def load_trips(paths: Iterable[str | Path]) -> list[Trip]:
     """Every trip in the given logs (files, or folders searched for *.trips), by wall time."""
     trips: list[Trip] = []
     for path in find_logs(paths):
-        _, found, _, _ = read_trip_log(path)
-        trips.extend(found)
+        trips.extend(read_trip_records(path).trips)
     trips.sort(key=lambda tr: (tr.t_wall, str(tr.source), tr.id))
     return trips
 

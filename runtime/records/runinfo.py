@@ -25,6 +25,8 @@ import os
 import time
 from typing import Any
 
+from runtime.records.kinds import RunEnd
+
 #: How a run ended (the ``how`` of the end record), with the words the reader prints.
 END_HOW: dict[str, str] = {
     "completed": "completed (the set duration ran out, no trip)",
@@ -116,14 +118,17 @@ def parse_when(text: str, now: float | None = None) -> float:
 
 
 def end_record(how: str, *, tick: int, trips: int, mode: str, latched: bool,
-               detail: str = "", **extra: Any) -> dict[str, Any]:
-    """The end record (the last record of a run's logs)."""
+               detail: str = "", rig: str = "", device_rig: str | None = None,
+               link: dict[str, Any] | None = None, link_stats: dict[str, Any] | None = None,
+               loop: dict[str, Any] | None = None) -> RunEnd:
+    """The end record (the last record of a run's logs), stamped now."""
     if how not in END_HOW:
         raise ValueError(f"unknown end {how!r}")
     now = time.time()
-    return {"type": "end", "how": how, "how_text": END_HOW[how], "t_wall": now,
-            "time_iso": iso_time(now), "tick": tick, "trips": trips, "mode": mode,
-            "latched": latched, "detail": detail, **extra}
+    return RunEnd(how=how, how_text=END_HOW[how], t_wall=now, time_iso=iso_time(now),
+                  tick=tick, trips=trips, mode=mode, latched=latched, detail=detail,
+                  rig=rig, device_rig=device_rig, link=link or {},
+                  link_stats=link_stats or {}, loop=loop or {}, missing=("found",))
 
 
 def how_ended(records: list[Any], header: dict[str, Any] | None = None) -> dict[str, Any]:

@@ -32,7 +32,8 @@ UNRECORDED_RULES = {
     "internal": "an exception inside the tick is a software fault, not a replayable signal",
 }
 
-#: The loop filters d(ratio)/dt with a 20 Hz first-order low-pass (runtime.realtime.loop.TickCore).
+#: The loop filters d(ratio)/dt with a 20 Hz first-order low-pass
+#: (runtime.realtime.control.AdaptiveControl).
 RATIO_RATE_CUTOFF_HZ = 20.0
 
 
@@ -72,9 +73,10 @@ def check_watchdog(cfg: Config, series: Series, period: float, clamp_margin: flo
                    input_limits: Array) -> WatchdogCheck:
     """Run the runtime's `Watchdog` over recorded (or replayed) ticks.
 
-    Signals are rebuilt from the columns exactly as `runtime.realtime.loop.TickCore`
+    Signals are rebuilt from the columns exactly as `runtime.realtime.tick.TickCore`
     fills them: ratio and clamp only while engaged, d(ratio)/dt through the
-    loop's 20 Hz low-pass, saturation time accumulated while outputs are on.
+    loop's 20 Hz low-pass (`runtime.realtime.control.AdaptiveControl`), saturation
+    time accumulated while outputs are on.
     The rules in `UNRECORDED_RULES` are disabled (no signal in a record).
     """
     from runtime.guard.watchdog import Signals, Watchdog

@@ -327,10 +327,10 @@ def _logged_trip(rec: Recording) -> dict[str, Any] | None:
     path = rec.path.with_suffix(".trips")
     if not path.exists():
         return None
-    from runtime.records.logs import LogReadError, read_trip_log
+    from runtime.records.logs import LogReadError, read_trip_records
 
     try:
-        _, trips, _, _ = read_trip_log(path)
+        trips = read_trip_records(path).trips
     except LogReadError:
         return None
     if not trips:

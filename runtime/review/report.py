@@ -358,7 +358,7 @@ def build_report(run_log: str | Path) -> str:
     stats.update({f"link: {k}": v for k, v in lstats.items()})
     if not lstats and trips:
         stats.update({f"link at the last trip: {k}": v
-                      for k, v in (trips[-1].snapshot.get("link") or {}).items()})
+                      for k, v in (trips[-1].rec.snapshot.get("link") or {}).items()})
     section("statistics", "Link and loop statistics", _kv(stats))
     parts.append("</body></html>")
     return "\n".join(parts)

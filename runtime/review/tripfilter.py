@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from runtime.records.logs import RUNLOG_SUFFIX, LogReadError, Trip, read_run_log, read_trip_log
+from runtime.records.logs import RUNLOG_SUFFIX, LogReadError, Trip, read_run_log, read_trip_records
 from runtime.records.runinfo import END_HOW, LINK_KINDS, iso_time
 
 #: Margin rules: their value is a margin ratio ||e||_P / eps (or its prediction).
@@ -95,7 +95,7 @@ def run_margin(trip_log: Path) -> tuple[float | None, str]:
         except LogReadError:
             pass
     try:
-        _, trips, _, _ = read_trip_log(trip_log)
+        trips = read_trip_records(trip_log).trips
     except LogReadError:
         return None, "none"
     best: float | None = None
@@ -119,9 +119,10 @@ def summarize(logs: list[Path], trips: list[Trip], flt: TripFilter | None = None
     runs: list[dict[str, Any]] = []
     for path in logs:
         try:
-            header, _, _, torn = read_trip_log(path)
+            got = read_trip_records(path)
         except LogReadError:
             continue
+        header, torn = got.header, got.torn
         if not flt.keeps_run(header):
             continue
         started = header.get("started_wall")

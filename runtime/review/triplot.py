@@ -214,7 +214,7 @@ def plot_trip(trip: Trip, path: str | Path, dpi: int = 110) -> Path:
              f"({say_value(trip.rule, trip.value, trip.threshold, fo.on_delay_s)})"
              f" -> {trip.action}")
     sub = f"{when}, tick {trip.tick}, config {trip.config_hash}"
-    if trip.later:
+    if trip.rec.later:
         sub += ", later: " + ", ".join(r.rule for r in trip.rec.later)
     if trip.cut_short:
         sub += "  [log cut short]"

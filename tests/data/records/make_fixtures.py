@@ -31,8 +31,10 @@ def main() -> None:
                                                "log.post_capture_s=0.02"])
         asyncio.run(r.run_ticks(int(round(1.0 / r.design.Ts))))
         core = r.core
-        hello = {"type": "hello", **core.hello()}
-        tel = core.telemetry_record()
+        # (main at 08e2992 built maps: {"type": "hello", **core.hello()} and
+        # core.telemetry_record(); the typed records' `to_wire` gives the same maps.)
+        hello = core.hello().to_wire()
+        tel = core.telemetry_record().to_wire()
         shutil.copy(core.run_path, HERE / "pedestal-fixture.run")
         shutil.copy(core.trip_path, HERE / "pedestal-fixture.trips")
     with open(HERE / "telemetry.msgpack", "wb") as fh:
