@@ -196,9 +196,10 @@ def test_five_rigs_on_one_broker_in_the_fleet_view(mosquitto, tmp_path):  # noqa
             async with MqttSource(mosquitto.host, mosquitto.port, "rig-warn") as one:
                 dash = Dashboard(one)
                 async with dash.run_test(size=(140, 48)) as pilot:
-                    await wait_for(pilot, lambda: dash.latest.get("mode") == "engaged",
+                    await wait_for(pilot, lambda: dash.latest.mode == "engaged",
                                    "rig-warn's dashboard")
-                    assert dash.hello.get("rig") == "rig-warn" and "rig-warn" in dash.title
+                    assert dash.hello.rig == "rig-warn"
+                    assert "rig-warn" in dash.title
 
         asyncio.run(main())
     finally:
