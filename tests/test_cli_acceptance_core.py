@@ -18,7 +18,7 @@ DEMO = "configs/pedestal-sim.toml"
 
 def corral(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess[str]:
     return subprocess.run([sys.executable, "-m", "runtime.cli.main", *args], cwd=cwd,
-                          capture_output=True, text=True, timeout=120)
+                          capture_output=True, text=True, timeout=900)
 
 
 def refused(res: subprocess.CompletedProcess[str], *words: str) -> str:

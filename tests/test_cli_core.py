@@ -127,7 +127,7 @@ def test_python_dash_m_entry_reports_user_errors_in_one_line(tmp_path):
 
     missing = tmp_path / "nothing.toml"
     proc = subprocess.run([sys.executable, "-m", "runtime.cli.main", "design", str(missing)],
-                          cwd=ROOT, capture_output=True, text=True, timeout=120)
+                          cwd=ROOT, capture_output=True, text=True, timeout=900)
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and str(missing) in lines[0]

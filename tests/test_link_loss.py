@@ -29,9 +29,13 @@ from runtime.records.logs import read_trip_records
 
 pytestmark = pytest.mark.timeout(600)
 
-# The stale rule widened: the test is about the link ending, not about whether this
-# loaded VM holds a 500 Hz deadline (bench/bench_loop.py measures that).
-TOLERANT = ["watchdog.stale_periods=50", "watchdog.rules.overrun.enabled=false"]
+# The timing rules widened: the test is about the link ending (a closed pty, a lost broker
+# session: `link_loss` at once, whatever its timeout), not about whether this loaded VM
+# holds a 500 Hz deadline (bench/bench_loop.py measures that). Under two CPU hogs a
+# served device stalled past 100 ms now and then and tripped "device silent" while the
+# test re-armed.
+TOLERANT = ["watchdog.stale_periods=500", "watchdog.link_timeout_s=2",
+            "watchdog.rules.overrun.enabled=false"]
 
 
 def serve(*args: str) -> subprocess.Popen[str]:
@@ -39,7 +43,7 @@ def serve(*args: str) -> subprocess.Popen[str]:
     return serve_rig(*args)[0]
 
 
-def rearm(bg: Background, attempts: int = 5) -> None:
+def rearm(bg: Background, attempts: int = 10) -> None:
     """What an operator does once the link is back: reset the latch, then arm (again, if
     something else trips while it settles: on this shared VM a stalled tick now and then
     trips the saturation or stale rule, which is not what these tests are about)."""

@@ -76,7 +76,7 @@ def test_the_report_opens_in_a_headless_browser(report, tmp_path):
     res = subprocess.run([browser, "--headless", "--no-sandbox", "--disable-gpu",
                           "--virtual-time-budget=5000", "--proxy-server=127.0.0.1:9",
                           "--dump-dom", page.as_uri()],
-                         capture_output=True, text=True, timeout=120)
+                         capture_output=True, text=True, timeout=900)
     assert res.returncode == 0, res.stderr[-2000:]
     m = re.search(r'<pre id="probe">(.*?)</pre>', res.stdout, re.S)
     assert m, "the page's load handler did not run"

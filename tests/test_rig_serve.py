@@ -300,7 +300,7 @@ def test_end_to_end_serve_and_run_close_the_loop(transport, mosquitto, tmp_path)
                             and latest.get("link", {}).get("frames_in", 0) > 3 * rate:
                         break
             run.send_signal(signal.SIGINT)
-            out, err = run.communicate(timeout=120)
+            out, err = run.communicate(timeout=900)
         finally:
             if run.poll() is None:
                 run.kill()

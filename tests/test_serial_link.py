@@ -130,7 +130,11 @@ def test_handshake_samples_and_commands_echo_seq():
                     # PD loop to x = 0.2 (closes a real loop over the pty)
                     u = 40.0 * (0.2 - s.y[0]) - 8.0 * s.y[1]
                     await link.send(Command(s.seq, (u,), FLAG_OUTPUTS_ON))
-                await asyncio.sleep(0.05)
+                # the device thread reads the last commands when the machine lets it: wait
+                # for them (a generous bound, not a deadline)
+                end = time.monotonic() + 60
+                while fake.dev.guard.commands < 140 and time.monotonic() < end:
+                    await asyncio.sleep(0.01)
                 last = fake.dev.last_command
                 assert last is not None and last.seq in seqs
                 assert fake.dev.guard.commands >= 140

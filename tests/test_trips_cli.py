@@ -26,7 +26,7 @@ ENTRY = "import sys; from runtime.cli.main import main; sys.exit(main())"
 
 def run_cli(*argv: str) -> subprocess.CompletedProcess:
     return subprocess.run([sys.executable, "-c", ENTRY, *argv], capture_output=True,
-                          text=True, cwd=ROOT, timeout=120)
+                          text=True, cwd=ROOT, timeout=900)
 
 
 @pytest.fixture
@@ -183,7 +183,7 @@ def test_trips_of_a_real_run_with_a_fault(tmp_path):
     run = subprocess.run(
         [sys.executable, "-c", ENTRY, "run", str(DEMO), "--headless", "--duration", "4",
          "--arm", "--fault", "spike@2", "--json", "--set", f"log.dir={tmp_path}"],
-        capture_output=True, text=True, cwd=ROOT, timeout=120)
+        capture_output=True, text=True, cwd=ROOT, timeout=900)
     assert run.returncode in (0, 1), run.stderr
     summary = json.loads(run.stdout)
     assert summary["trips"], "a spike at 2 s should trip the watchdog"
