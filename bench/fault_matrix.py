@@ -60,8 +60,8 @@ MATRIX: dict[str, tuple[str, tuple[str, ...], str]] = {
     "dropout": ("dropout", ("stale", "link_loss"), "no samples"),
     "nan": ("nan", ("nonfinite",), "readings NaN"),
     "delay": ("delay:ticks=5", ("stale",), "readings 5 periods old"),
-    "malformed": ("malformed", ("internal",), "a sample one reading short (until samples "
-                  "are checked against the hello, the last line of defence catches it)"),
+    "malformed": ("malformed", ("stale",), "a sample one reading short: refused against "
+                  "the rig's channels, as lost"),
     "effectiveness_loss": ("effectiveness_loss:scale=0.3", ("margin", "predicted_crossing"),
                            "the drives keep 30 % of their effectiveness"),
     "disturbance_step": ("disturbance_step:size=3", (),

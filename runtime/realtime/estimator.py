@@ -75,6 +75,8 @@ class Estimator:
         self.age = math.inf
         self.frozen_age = 0.0
         self.received = False
+        self.refused = 0
+        """Samples refused for a reading count other than the rig's channels (held as lost)."""
 
     def restart_link(self) -> None:
         """A new link session (reconnect, device restart, resynchronised stream): the
@@ -97,6 +99,12 @@ class Estimator:
         self.nonfinite = False
         self.jump = 0.0
         self.seq_gap = 0
+        if sample is not None and len(sample.y) != self.channels:
+            # A sample that does not match the rig's channels is refused here, whatever
+            # link brought it (the serial and MQTT links refuse it against the hello
+            # already): it counts as lost, so its data age grows and `stale` judges it.
+            self.refused += 1
+            sample = None
         self.received = sample is not None
         if sample is not None:
             if self.last_seq is not None and sample.seq > self.last_seq + 1:
