@@ -185,8 +185,8 @@ def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...],
 
     linear, bias = _folded_terms(spec)
     for (i, j), ts in linear.items():
-        a = [_lit(spec.A[i, j])] if spec.A[i, j] != 0.0 else []
-        out.append((f"c{i}_{j}{s}", " + ".join(a + [f"p{t}{s}" for t in ts]), False))
+        a_ij = [_lit(spec.A[i, j])] if spec.A[i, j] != 0.0 else []
+        out.append((f"c{i}_{j}{s}", " + ".join(a_ij + [f"p{t}{s}" for t in ts]), False))
     for i, ts in bias.items():
         out.append((f"b{i}{s}", " + ".join(f"p{t}{s}" for t in ts), False))
     for u in fac.values():
