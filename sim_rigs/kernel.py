@@ -179,7 +179,7 @@ def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...],
         out.append((f"p{t}{s}", f"{_lit(term.coef)}{pv}", False))
 
     def need(ts: list[int]) -> str:
-        if all(spec.terms[t].param is not None for t in ts):
+        if _switched_off(spec, ts):
             return " or ".join(f"p{t}{s} != 0.0" for t in ts)
         return "True"
 
@@ -205,6 +205,16 @@ def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...],
             out.append((f"r{u}{s}", f"1.0 / {wv} if {cond} else 0.0", False))
             recip[width] = f"r{u}{s}"
     return out
+
+
+def _switched_off(spec: RigSpec, ts: list[int]) -> bool:
+    """Whether the factor used by terms `ts` is computed only when one of their parameters
+    is non-zero: when they all have parameters and the rig file sets them all to 0 (a term
+    switched off by default, such as stick-slip friction). Otherwise it is computed every
+    stage, with no test: a parameter set to 0 then multiplies it away (the same sum), and a
+    factor in use is not held up by a branch."""
+    return all(spec.terms[t].param is not None for t in ts) and all(
+        spec.params[str(spec.terms[t].param)].value == 0.0 for t in ts)
 
 
 def _folded_terms(spec: RigSpec) -> tuple[dict[tuple[int, int], list[int]], dict[int, list[int]]]:
@@ -343,8 +353,11 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
             base.setdefault(state, (k, a))
     for (_state, _k), a in angles:
         if a not in derived:
+            users = ausers[a] + [t for o, (b, _) in derived.items() if b == a for t in ausers[o]]
             exact_cond[a] = " or ".join([f"nt{a}{{s}}"] + [f"nt{o}{{s}}" for o, (b, _) in
                                                             derived.items() if b == a])
+            if not _switched_off(spec, users):
+                exact_cond[a] = "True"
 
     def multiple(c: str, sn: str, mult: float, co: str, si: str, ind: str) -> None:
         if mult == 2.0:
@@ -389,8 +402,9 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
                 b, mult = derived[a]
                 multiple(f"cz{b}{s}", f"sz{b}{s}", mult, f"cz{a}{s}", f"sz{a}{s}", "    ")
                 continue
-            w(f"    cz{a}{s} = math.cos(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
-            w(f"    sz{a}{s} = math.sin(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
+            gate = "" if exact_cond[a] == "True" else f" if {exact_cond[a].format(s=s)} else 0.0"
+            w(f"    cz{a}{s} = math.cos(z{a}{s}){gate}")
+            w(f"    sz{a}{s} = math.sin(z{a}{s}){gate}")
 
     def deriv(src: str, dst: str) -> None:
         for s in LN:
@@ -398,16 +412,21 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
                 v = f"{src}{state}{s}"
                 expr = {"tanh": f"fast_tanh({v} * r{u}{s})", "abs": f"abs({v})",
                         "gauss": f"math.exp(-(({v} * r{u}{s}) * ({v} * r{u}{s})))"}[kind]
-                w(f"        f{u}{s} = {expr} if need{u}{s} else 0.0")
+                w(f"        f{u}{s} = {expr}" + (f" if need{u}{s} else 0.0"
+                                                    if _switched_off(spec, fusers[u]) else ""))
             for (state, k), a in angles:
                 if a in derived:
                     b, mult = derived[a]
                     multiple(f"co{b}{s}", f"si{b}{s}", mult, f"co{a}{s}", f"si{a}{s}",
                              "        ")
                     continue
+                near = (f"co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
+                        f"z{a}{s}, cz{a}{s}, sz{a}{s})")
+                if exact_cond[a] == "True":
+                    w(f"        {near}")
+                    continue
                 w(f"        if {exact_cond[a].format(s=s)}:")
-                w(f"            co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
-                  f"z{a}{s}, cz{a}{s}, sz{a}{s})")
+                w(f"            {near}")
                 w("        else:")
                 w(f"            co{a}{s} = 0.0")
                 w(f"            si{a}{s} = 0.0")
