@@ -13,9 +13,12 @@ both built-in rigs and on seeded random term tables.
 
 Speed tricks, all exact to rounding: tanh skipped where it rounds to +-1 (`fast_tanh`); sin
 and cos of an angle from their values at the start of the step by angle addition
-(`trig_near`), and of its double or triple by the multiple-angle formulas; a factor computed
-only when a term with a non-zero coefficient needs it (a switched-off stick-slip friction
-costs nothing); one reciprocal per width, so the derivative divides nothing.
+(`trig_near`), and of its double or triple by the multiple-angle formulas; a factor whose
+terms the rig file switches off (stick-slip friction) computed only when one of them is on,
+every other factor with no test (`_switched_off`); one reciprocal per width, so the
+derivative divides nothing; linear and constant terms folded into A's coefficients and the
+row's input term once a step, each row's cheap parts summed before its tanh / exp terms, a
+factor shared by several terms multiplied once (`_row_sum`).
 
 `pack_rig(spec)` codes a rig's shape into flat arrays (the loops read its sizes, `work_width`);
 `pack_params(spec, params)` gives the parameter vector(s) in `spec.params` order;
