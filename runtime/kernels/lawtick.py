@@ -45,11 +45,13 @@ def out_size(n: int, m: int, n_reg: int) -> int:
 
 
 # ------------------------------------------------------------------ law kernel
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def basis_eval(x: Array, ic: Any, fc: Array, sig: Array) -> None:  # pragma: no cover - jit
     """sigma(x) into sig[:N]: the coded terms first, then the radial-basis block
 
     exp(-||scale * (x - c_k)||^2 / (2 w_k^2)) (as `runtime.method.rbf.rbf_evaluate`).
+    Inlined into the law tick: no call a tick, and the state loop of the radial-basis block
+    unrolls where the tick's sizes are constants (`law_tick_rig`).
     """
     n = ic[I_N]
     oc = ic[I_OCODES]
