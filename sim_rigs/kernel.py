@@ -13,9 +13,12 @@ both built-in rigs and on seeded random term tables.
 
 Speed tricks, all exact to rounding: tanh skipped where it rounds to +-1 (`fast_tanh`); sin
 and cos of an angle from their values at the start of the step by angle addition
-(`trig_near`), and of its double or triple by the multiple-angle formulas; a factor computed
-only when a term with a non-zero coefficient needs it (a switched-off stick-slip friction
-costs nothing); one reciprocal per width, so the derivative divides nothing.
+(`trig_near`), and of its double or triple by the multiple-angle formulas; a factor whose
+terms the rig file switches off (stick-slip friction) computed only when one of them is on,
+every other factor with no test (`_switched_off`); one reciprocal per width, so the
+derivative divides nothing; linear and constant terms folded into A's coefficients and the
+row's input term once a step, each row's cheap parts summed before its tanh / exp terms, a
+factor shared by several terms multiplied once (`_row_sum`).
 
 `pack_rig(spec)` codes a rig's shape into flat arrays (the loops read its sizes, `work_width`);
 `pack_params(spec, params)` gives the parameter vector(s) in `spec.params` order;
@@ -179,10 +182,16 @@ def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...],
         out.append((f"p{t}{s}", f"{_lit(term.coef)}{pv}", False))
 
     def need(ts: list[int]) -> str:
-        if all(spec.terms[t].param is not None for t in ts):
+        if _switched_off(spec, ts):
             return " or ".join(f"p{t}{s} != 0.0" for t in ts)
         return "True"
 
+    linear, bias = _folded_terms(spec)
+    for (i, j), ts in linear.items():
+        a_ij = [_lit(spec.A[i, j])] if spec.A[i, j] != 0.0 else []
+        out.append((f"c{i}_{j}{s}", " + ".join(a_ij + [f"p{t}{s}" for t in ts]), False))
+    for i, ts in bias.items():
+        out.append((f"b{i}{s}", " + ".join(f"p{t}{s}" for t in ts), False))
     for u in fac.values():
         out.append((f"need{u}{s}", need(fusers[u]), True))
     for a in ang.values():
@@ -199,6 +208,65 @@ def _plant_constants(spec: RigSpec, s: str, prm: str, fac: dict[tuple[Any, ...],
             out.append((f"r{u}{s}", f"1.0 / {wv} if {cond} else 0.0", False))
             recip[width] = f"r{u}{s}"
     return out
+
+
+def _switched_off(spec: RigSpec, ts: list[int]) -> bool:
+    """Whether the factor used by terms `ts` is computed only when one of their parameters
+    is non-zero: when they all have parameters and the rig file sets them all to 0 (a term
+    switched off by default, such as stick-slip friction). Otherwise it is computed every
+    stage, with no test: a parameter set to 0 then multiplies it away (the same sum), and a
+    factor in use is not held up by a branch."""
+    return all(spec.terms[t].param is not None for t in ts) and all(
+        spec.params[str(spec.terms[t].param)].value == 0.0 for t in ts)
+
+
+def _folded_terms(spec: RigSpec) -> tuple[dict[tuple[int, int], list[int]], dict[int, list[int]]]:
+    """The terms folded into constants of the step: linear ones (one factor, a state j, on
+    row i) by (i, j), added to A[i, j] once a step; constant ones (no factor) by row, added
+    to the row's input term once a step. Terms with a zero coefficient are left out."""
+    linear: dict[tuple[int, int], list[int]] = {}
+    bias: dict[int, list[int]] = {}
+    for t, term in enumerate(spec.terms):
+        if term.coef == 0.0:
+            continue
+        if not term.factors:
+            bias.setdefault(term.row, []).append(t)
+        elif len(term.factors) == 1 and term.factors[0].kind == "x":
+            linear.setdefault((term.row, term.factors[0].state), []).append(t)
+    return linear, bias
+
+
+def _row_sum(cheap: list[str], costly: list[list[str]], slow: set[str]) -> str:
+    """One row of the derivative: the cheap parts (states, the input term, products of
+    states) summed first, then the terms with a library-function factor (``costly``: each
+    its coefficient then its factors), a factor in ``slow`` shared by several of them
+    taken out once (p1 f + p2 g f as (p1 + p2 g) f): the cheap sum does not wait for tanh
+    and exp, and fewer operations wait on them."""
+    rest = [list(c) for c in costly]
+    groups: list[str] = []
+    while True:
+        count: dict[str, int] = {}
+        for c in rest:
+            for f in dict.fromkeys(c[1:]):
+                if f in slow:
+                    count[f] = count.get(f, 0) + 1
+        shared = [f for f, k in count.items() if k > 1]
+        if not shared:
+            break
+        f = max(shared, key=count.__getitem__)
+        taken = [c for c in rest if f in c[1:]]
+        rest = [c for c in rest if f not in c[1:]]
+        inner = []
+        for c in taken:
+            c.remove(f)
+            inner.append(" * ".join(c))
+        groups.append(f"{f} * ({' + '.join(inner)})")
+    parts = [" * ".join(c) for c in rest] + groups
+    if not parts:
+        return " + ".join(cheap) if cheap else "0.0"
+    if not cheap:
+        return " + ".join(parts)
+    return f"({' + '.join(cheap)}) + ({' + '.join(parts)})"
 
 
 def _factor_tables(spec: RigSpec) -> tuple[Any, ...]:
@@ -270,6 +338,9 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
         L = ["def plant_step_lanes(X, U, K, limits, dt, substeps):"]
     w = L.append
     fac, ang, fusers, ausers, term_fac = _factor_tables(spec)
+    linear, bias = _folded_terms(spec)
+    has_q = [any(spec.B[i, j] != 0.0 for j in range(m)) or i in bias
+             or (one and i in spec.drives) for i in range(n)]
     # angles: per state the smallest |k| is computed exactly (cos, sin at the step start,
     # then `trig_near` each stage); k = 2 or 3 times it from that pair by the multiple-angle
     # formulas, at the start and at every stage
@@ -285,8 +356,11 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
             base.setdefault(state, (k, a))
     for (_state, _k), a in angles:
         if a not in derived:
+            users = ausers[a] + [t for o, (b, _) in derived.items() if b == a for t in ausers[o]]
             exact_cond[a] = " or ".join([f"nt{a}{{s}}"] + [f"nt{o}{{s}}" for o, (b, _) in
                                                             derived.items() if b == a])
+            if not _switched_off(spec, users):
+                exact_cond[a] = "True"
 
     def multiple(c: str, sn: str, mult: float, co: str, si: str, ind: str) -> None:
         if mult == 2.0:
@@ -321,15 +395,19 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
             parts = [f"{_lit(spec.B[i, j])} * g{j}{s}" for j in range(m) if spec.B[i, j] != 0.0]
             if one:
                 parts += [f"dist[{j}]" for j in range(m) if spec.drives[j] == i]
-            w(f"    q{i}{s} = {' + '.join(parts) if parts else '0.0'}")
+            if i in bias:
+                parts.append(f"b{i}{s}")
+            if parts:
+                w(f"    q{i}{s} = {' + '.join(parts)}")
         for (state, k), a in angles:
             w(f"    z{a}{s} = {_lit(k)} * x{state}{s}")
             if a in derived:  # multiple angle from the base pair: no library call
                 b, mult = derived[a]
                 multiple(f"cz{b}{s}", f"sz{b}{s}", mult, f"cz{a}{s}", f"sz{a}{s}", "    ")
                 continue
-            w(f"    cz{a}{s} = math.cos(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
-            w(f"    sz{a}{s} = math.sin(z{a}{s}) if {exact_cond[a].format(s=s)} else 0.0")
+            gate = "" if exact_cond[a] == "True" else f" if {exact_cond[a].format(s=s)} else 0.0"
+            w(f"    cz{a}{s} = math.cos(z{a}{s}){gate}")
+            w(f"    sz{a}{s} = math.sin(z{a}{s}){gate}")
 
     def deriv(src: str, dst: str) -> None:
         for s in LN:
@@ -337,31 +415,48 @@ def step_source(spec: RigSpec, lanes: int = 0) -> str:
                 v = f"{src}{state}{s}"
                 expr = {"tanh": f"fast_tanh({v} * r{u}{s})", "abs": f"abs({v})",
                         "gauss": f"math.exp(-(({v} * r{u}{s}) * ({v} * r{u}{s})))"}[kind]
-                w(f"        f{u}{s} = {expr} if need{u}{s} else 0.0")
+                w(f"        f{u}{s} = {expr}" + (f" if need{u}{s} else 0.0"
+                                                    if _switched_off(spec, fusers[u]) else ""))
             for (state, k), a in angles:
                 if a in derived:
                     b, mult = derived[a]
                     multiple(f"co{b}{s}", f"si{b}{s}", mult, f"co{a}{s}", f"si{a}{s}",
                              "        ")
                     continue
+                near = (f"co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
+                        f"z{a}{s}, cz{a}{s}, sz{a}{s})")
+                if exact_cond[a] == "True":
+                    w(f"        {near}")
+                    continue
                 w(f"        if {exact_cond[a].format(s=s)}:")
-                w(f"            co{a}{s}, si{a}{s} = trig_near({_lit(k)} * {src}{state}{s}, "
-                  f"z{a}{s}, cz{a}{s}, sz{a}{s})")
+                w(f"            {near}")
                 w("        else:")
                 w(f"            co{a}{s} = 0.0")
                 w(f"            si{a}{s} = 0.0")
-            rows: list[list[str]] = [[] for _ in range(n)]
+            cheap: list[list[str]] = [[] for _ in range(n)]
+            costly: list[list[list[str]]] = [[] for _ in range(n)]
             for i in range(n):
-                rows[i] += [f"{_lit(spec.A[i, j])} * {src}{j}{s}" for j in range(n)
-                            if spec.A[i, j] != 0.0]
-                rows[i].append(f"q{i}{s}")
+                for j in range(n):
+                    if (i, j) in linear:
+                        cheap[i].append(f"c{i}_{j}{s} * {src}{j}{s}")
+                    elif spec.A[i, j] == 1.0:
+                        cheap[i].append(f"{src}{j}{s}")
+                    elif spec.A[i, j] != 0.0:
+                        cheap[i].append(f"{_lit(spec.A[i, j])} * {src}{j}{s}")
+                if has_q[i]:
+                    cheap[i].append(f"q{i}{s}")
             for t, term in enumerate(spec.terms):
-                if term.coef == 0.0:
-                    continue
+                if term.coef == 0.0 or len(term.factors) == 0 or (
+                        len(term.factors) == 1 and term.factors[0].kind == "x"):
+                    continue  # folded into c{i}_{j} and q{i}
                 fs = [(src + r[1:] if r.startswith("S") else r) + s for r in term_fac[t]]
-                rows[term.row].append(" * ".join([f"p{t}{s}"] + fs))
+                if all(r.startswith("S") for r in term_fac[t]):
+                    cheap[term.row].append(" * ".join([f"p{t}{s}"] + fs))
+                else:
+                    costly[term.row].append([f"p{t}{s}"] + fs)
+            slow = {r + s for refs in term_fac for r in refs if not r.startswith("S")}
             for i in range(n):
-                w(f"        {dst}{i}{s} = {' + '.join(rows[i])}")
+                w(f"        {dst}{i}{s} = {_row_sum(cheap[i], costly[i], slow)}")
 
     w("    h = dt / substeps")
     w("    hh = 0.5 * h")

@@ -117,8 +117,9 @@ RIG_M = 1
 def law_tick_rig(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
                  out: Array) -> None:  # pragma: no cover - jit
     """`law_tick` with the rig's sizes as compile-time constants (`law_tick_sized` with
-    RIG_N, RIG_M), compiled per rig; the dry-run loop and the sweep kernel call it."""
-    law_tick_sized(x, c, eps, ic, fc, st, out, RIG_N, RIG_M)
+    RIG_N, RIG_M and p = RIG_M commands: `runtime.method.design` gives C as many rows as
+    inputs), compiled per rig; the dry-run loop and the sweep kernel call it."""
+    law_tick_sized(x, c, eps, ic, fc, st, out, RIG_N, RIG_M, RIG_M)
 
 
 def dry_run_loop(k0: int, k1: int, cmd: Array, eps_t: Array, dist: Array, lsc: Array,

@@ -45,11 +45,13 @@ def out_size(n: int, m: int, n_reg: int) -> int:
 
 
 # ------------------------------------------------------------------ law kernel
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def basis_eval(x: Array, ic: Any, fc: Array, sig: Array) -> None:  # pragma: no cover - jit
     """sigma(x) into sig[:N]: the coded terms first, then the radial-basis block
 
     exp(-||scale * (x - c_k)||^2 / (2 w_k^2)) (as `runtime.method.rbf.rbf_evaluate`).
+    Inlined into the law tick: no call a tick, and the state loop of the radial-basis block
+    unrolls where the tick's sizes are constants (`law_tick_rig`).
     """
     n = ic[I_N]
     oc = ic[I_OCODES]
@@ -95,19 +97,19 @@ def law_tick(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array,
     capped Euler weight update with the modifiers; u_k from the new weights;
     x_r advanced by the exact zero-order hold.
     """
-    law_tick_sized(x, c, eps, ic, fc, st, out, ic[I_N], ic[I_M])
+    law_tick_sized(x, c, eps, ic, fc, st, out, ic[I_N], ic[I_M], ic[I_P])
 
 
 @numba.njit(cache=True, inline="always")
 def law_tick_sized(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array, out: Array,
-                   n: int, m: int) -> None:  # pragma: no cover - jit
-    """`law_tick` with the plant's n states and m inputs given (they must equal ic[I_N] and
-    ic[I_M]). The one law tick: `law_tick` passes them from ``ic``; `law_tick_rig`, compiled
-    per rig (`runtime.kernels.rigloops`), passes the rig's sizes as compile-time constants,
-    so the compiler unrolls the small loops over states and inputs (the same operations in
-    the same order: the same results to the bit). Inlined into those two small wrappers
-    (not into the loops, whose compile time it would lengthen)."""
-    p = ic[I_P]
+                   n: int, m: int, p: int) -> None:  # pragma: no cover - jit
+    """`law_tick` with the plant's n states, m inputs and p commands given (they must equal
+    ic[I_N], ic[I_M] and ic[I_P]). The one law tick: `law_tick` passes them from ``ic``;
+    `law_tick_rig`, compiled per rig (`runtime.kernels.rigloops`), passes the rig's sizes as
+    compile-time constants (p = m: a design tracks as many outputs as the rig has inputs), so
+    the compiler unrolls the small loops over states, inputs and commands (the same
+    operations in the same order: the same results to the bit). Inlined into those two small
+    wrappers (not into the loops, whose compile time it would lengthen)."""
     nreg = ic[I_NREG]
     oP = ic[I_OP]
     oPB = ic[I_OPB]
@@ -253,19 +255,25 @@ def law_tick_sized(x: Array, c: Array, eps: float, ic: Any, fc: Array, st: Array
                     for i in range(nreg):
                         st[W0 + i * m + j] *= shrink
 
-    # 5. control from the new weights, saturation
-    for j in range(m):
-        a = 0.0
+    # 5. control from the new weights, saturation: two columns a pass over the regressor
+    # (two independent sums, each in the same order as one column alone)
+    for j0 in range(0, m, 2):
+        j1 = j0 + 1 if j0 + 1 < m else j0
+        a0 = 0.0
+        a1 = 0.0
         for i in range(nreg):
-            a += st[W0 + i * m + j] * out[o_sig + i]
-        ur = out[o_un + j] - a
-        out[o_uraw + j] = ur
-        lim = fc[oU + j]
-        if ur > lim:
-            ur = lim
-        elif ur < -lim:
-            ur = -lim
-        out[o_u + j] = ur
+            si = out[o_sig + i]
+            a0 += st[W0 + i * m + j0] * si
+            a1 += st[W0 + i * m + j1] * si
+        for j in range(j0, j1 + 1):
+            ur = out[o_un + j] - (a0 if j == j0 else a1)
+            out[o_uraw + j] = ur
+            lim = fc[oU + j]
+            if ur > lim:
+                ur = lim
+            elif ur < -lim:
+                ur = -lim
+            out[o_u + j] = ur
 
     # 6. reference model by exact zero-order hold
     for j in range(n):
