@@ -244,6 +244,13 @@ def _factor(where: str, v: Any, states: tuple[str, ...], params: dict[str, Param
             if w not in params:
                 raise RigFileError(f"{where}.width", f"names no parameter ({w!r}).",
                                    f"use a number or one of: {', '.join(params)}.")
+            pw = params[w]
+            lowest = min(pw.value, pw.range[0]) if pw.range is not None else pw.value
+            if not lowest > 0:
+                raise RigFileError(f"params.{w}", f"is the width of a {kind} factor "
+                                   f"({where}) but can be {lowest:g}.",
+                                   "give it a positive value and range (a width divides "
+                                   "the state).")
             width = w
         else:
             width = _num(f"{where}.width", w, positive=True)

@@ -321,6 +321,21 @@ def test_a_rig_file_error_names_the_field(tmp_path):
     assert "term[1].factors[0]" in str(exc.value.field) and "pos" in exc.value.fix
 
 
+def test_a_width_parameter_that_can_reach_zero_is_refused(tmp_path):
+    # tanh(x / width): a width drawn as 0 by a sweep would divide by zero in the kernel.
+    bad = MY_RIG.replace('friction = { value = 0.4, unit = "rad/s^2", range = [0.2, 0.6] }',
+                         'friction = { value = 0.4, unit = "rad/s^2", range = [0.2, 0.6] }\n'
+                         'vel_width = { value = 0.05, unit = "rad/s", range = [0.0, 0.1] }')
+    bad = bad.replace('{ kind = "tanh", state = "vel", width = 0.05 }',
+                      '{ kind = "tanh", state = "vel", width = "vel_width" }')
+    assert "vel_width" in bad and 'width = "vel_width"' in bad
+    (tmp_path / "my-turntable.toml").write_text(bad)
+    (tmp_path / "mine.toml").write_text(MY_CONFIG)
+    with pytest.raises(ConfigError) as exc:
+        design_from_config(load_config(tmp_path / "mine.toml"))
+    assert "vel_width" in str(exc.value.field) and "positive" in exc.value.fix
+
+
 def test_plant_truth_and_sensor_keys_of_the_configs_still_override_the_rig_file():
     cfg = load_config(ROOT / "configs" / "pedestal-rbf.toml")
     plant = plant_from_config(cfg, design_from_config(cfg))
