@@ -142,7 +142,12 @@ def test_handshake_samples_and_commands_echo_seq():
                 assert len(link.stats.latencies_us) == 150
                 assert all(v >= 0 for v in link.stats.latencies_us)
                 assert fake.x > 0.02  # the commands moved the plant
-            assert fake.dev.guard.stopped  # close() sent a stop
+            # close() sent a stop: wait for the device thread to read it (a bound, not a
+            # deadline)
+            end = time.monotonic() + 60
+            while not fake.dev.guard.stopped and time.monotonic() < end:
+                await asyncio.sleep(0.01)
+            assert fake.dev.guard.stopped
             assert not link.stats.connected
 
     run(main())
