@@ -265,6 +265,13 @@ async def disconnect_client(client: aiomqtt.Client | None) -> None:
             raise
     except Exception:  # noqa: BLE001 - leaving a dead connection must never raise
         pass
+    # A connection the broker dropped leaves aiomqtt's disconnect future holding its
+    # exception, which its __aexit__ (aiomqtt 2.5) returns early past without reading:
+    # asyncio then logs "Future exception was never retrieved" when the client is
+    # collected. We know the connection is gone (the link said so): read it here.
+    fut = getattr(client, "_disconnected", None)
+    if isinstance(fut, asyncio.Future) and fut.done() and not fut.cancelled():
+        fut.exception()
 
 
 def client_id(role: str, rig: str) -> str:
