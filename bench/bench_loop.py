@@ -27,20 +27,19 @@ from __future__ import annotations
 import argparse
 import asyncio
 import json
-import os
-import select
-import struct
 import subprocess
 import sys
 import tempfile
 import time
-import tty
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from bench import platform_floor  # noqa: E402
 
 
 def main() -> int:
@@ -59,11 +58,7 @@ def main() -> int:
                     help="config override (--link serial; repeatable)")
     ap.add_argument("--floor-seconds", type=float, default=5.0,
                     help="--link serial: seconds of each platform-floor measurement (0: skip)")
-    ap.add_argument("--floor-child", choices=("pty", "sleep"), help=argparse.SUPPRESS)
     args = ap.parse_args()
-    if args.floor_child:
-        print(json.dumps(_floor_child(args.floor_child, args.floor_seconds)))
-        return 0
     if args.link == "serial":
         return bench_serial(args)
     tmp = tempfile.mkdtemp(prefix="corral-bench-")
@@ -129,53 +124,10 @@ def _pct(a: Any) -> str:
             f"p99.9 {np.percentile(a, 99.9):.0f} us, max {a.max():.0f} us")
 
 
-def _floor_child(kind: str, seconds: float) -> dict[str, Any]:
-    """No corral code: a SCHED_FIFO thread sleeping to 1 ms deadlines ("sleep"), or a
-    pseudo-terminal one-way delay with both ends at SCHED_FIFO ("pty"); delays in us."""
-    from runtime.realtime.clock import try_realtime
-
-    if kind == "sleep":
-        try_realtime(40)
-        t0 = time.monotonic()
-        late = []
-        for k in range(1, int(seconds * 1000) + 1):
-            d = t0 + k * 1e-3
-            while (left := d - time.monotonic()) > 0:
-                time.sleep(left)
-            late.append((time.monotonic() - d) * 1e6)
-        return {"delays_us": late}
-    master, slave = os.openpty()
-    tty.setraw(slave)
-    pid = os.fork()
-    if pid == 0:  # the writer: one 32-byte frame per ms carrying its send time
-        try_realtime(40)
-        t0 = time.monotonic()
-        for k in range(1, int(seconds * 1000) + 1):
-            d = t0 + k * 1e-3
-            while (left := d - time.monotonic()) > 0:
-                time.sleep(left)
-            os.write(master, struct.pack("d", time.monotonic()) + bytes(24))
-        os._exit(0)
-    try_realtime(50)
-    delays, buf = [], b""
-    end = time.monotonic() + seconds + 0.5
-    while time.monotonic() < end:
-        r, _, _ = select.select([slave], [], [], 0.1)
-        if r:
-            now = time.monotonic()
-            buf += os.read(slave, 4096)
-            while len(buf) >= 32:
-                delays.append((now - struct.unpack("d", buf[:8])[0]) * 1e6)
-                buf = buf[32:]
-    os.waitpid(pid, 0)
-    return {"delays_us": delays}
-
-
 def _floor(kind: str, seconds: float) -> list[float]:
-    out = subprocess.run([sys.executable, __file__, "--floor-child", kind, "--floor-seconds",
-                          str(seconds)], capture_output=True, text=True, cwd=ROOT,
-                         timeout=seconds + 60)
-    return json.loads(out.stdout)["delays_us"] if out.returncode == 0 else []
+    """A platform floor (`bench.platform_floor`): pty one-way delays or sleeper lateness, us."""
+    fig = platform_floor.run(kind, 1e-3, seconds)
+    return list(fig.get("transit_us" if kind == "pty" else "delays_us", []))
 
 
 def bench_serial(args: argparse.Namespace) -> int:

@@ -16,7 +16,13 @@ Two cases, each R runs x S seconds (default 5 x 60):
 The platform floor (`runtime.realtime.hostcheck.measure`: the runtime's own
 absolute-deadline clock pacing an empty tick at the same period, SCHED_FIFO when
 allowed) is measured in the same run: quiet and with the same hogs as case (a) at the
-start, and with the hogs again right after every run of case (a).
+start, and with the hogs again right after every run of case (a). During every run of
+case (a) a witness (the same clock and empty tick, in this process, at the runtimes'
+priority) runs beside the two runtimes: stalls it sees too are the host's, not the
+runtimes' (`--no-witness` leaves it out). Before every run of case (b) the pty floor
+(`bench.platform_floor`: the same frame rate through a bare pseudo-terminal between two
+SCHED_FIFO processes, no corral code) counts the frames that arrive older than the
+config's stale limit.
 The load average is printed at the start and after every run: figures taken on a
 busy machine are provisional. Figures only; no assertions.
 
@@ -24,6 +30,7 @@ busy machine are provisional. Figures only; no assertions.
     python bench/bench_shared_host.py --runs 2 --seconds 15    # a quick look
     python bench/bench_shared_host.py --set loop.cpu=0 --set-b loop.cpu=1
     python bench/bench_shared_host.py --case shared --json
+    python bench/bench_shared_host.py --case served --served-set watchdog.stale_periods=8
 """
 
 from __future__ import annotations
@@ -35,12 +42,15 @@ import os
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from pathlib import Path
 from typing import Any
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+
+from bench import platform_floor  # noqa: E402
 
 CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
 GOAL_P99_US = 100.0
@@ -110,9 +120,12 @@ def runtime_figures(s: dict[str, Any]) -> dict[str, Any]:
             "clock": s.get("clock"), "host_setup": s.get("host_setup")}
 
 
-def shared_run(args: argparse.Namespace, tmp: Path, i: int) -> list[dict[str, Any]]:
-    """One run of case (a): two runtimes and the hogs; the two runtimes' figures."""
+def shared_run(args: argparse.Namespace, tmp: Path, i: int,
+               period: float) -> tuple[list[dict[str, Any]], dict[str, Any] | None]:
+    """One run of case (a): two runtimes and the hogs; the two runtimes' figures and the
+    witness's (None with --no-witness)."""
     procs: list[subprocess.Popen[Any]] = []
+    witness = None if args.no_witness else Witness(period).start()
     try:
         procs += hogs(args.hogs, args.seconds + START_SLACK_S)
         runs = []
@@ -131,8 +144,10 @@ def shared_run(args: argparse.Namespace, tmp: Path, i: int) -> list[dict[str, An
             except subprocess.TimeoutExpired:
                 text = b""
             out.append(runtime_figures(_summary(text.decode(errors="replace"))))
-        return out
+        return out, (witness.stop() if witness is not None else None)
     finally:
+        if witness is not None:
+            witness.clock.stop()
         stop(procs)
 
 
@@ -168,7 +183,8 @@ def served_run(args: argparse.Namespace, tmp: Path, i: int) -> dict[str, Any]:
         path = serve.stdout.readline().strip() if serve.stdout is not None else ""
         if not path:
             return {"ok": False, "error": "rig serve printed no path"}
-        sets = [f"log.dir={logdir}", "rig.name=served", "loop.hostcheck_s=0", *args.set]
+        sets = [f"log.dir={logdir}", "rig.name=served", "loop.hostcheck_s=0", *args.set,
+                *args.served_set]
         run = subprocess.Popen(
             [*CORRAL, "run", args.config, "--headless", "--json", "--no-preflight", "--link",
              f"serial:{path}", "--duration", str(args.seconds),
@@ -188,6 +204,43 @@ def served_run(args: argparse.Namespace, tmp: Path, i: int) -> dict[str, Any]:
         return fig
     finally:
         stop(procs)
+
+
+class Witness:
+    """The runtime's clock pacing an empty tick in this process, beside case (a)'s runtimes
+    (same period, same real-time priority), until `stop`: the host's share of the stalls."""
+
+    def __init__(self, period: float) -> None:
+        from runtime.realtime.clock import DeadlineClock
+
+        self.clock = DeadlineClock(period)
+        self.done = threading.Event()
+
+    def start(self) -> Witness:
+        self.clock.start(lambda k, deadline: None, self.done.set)
+        return self
+
+    def stop(self) -> dict[str, Any]:
+        self.clock.stop()
+        self.done.wait(10.0)
+        st = self.clock.stats
+        p50, p99, mx = st.percentiles_us()
+        ticks = max(int(st.count), 1)
+        return {"p99_us": p99, "max_us": mx, "misses": int(st.misses), "ticks": int(st.count),
+                "miss_pct": 100.0 * st.misses / ticks, "clock": self.clock.granted}
+
+
+def pty_floor(period: float, seconds: float, stale_limit_s: float) -> dict[str, Any]:
+    """The bare pty path at `period` for `seconds`: frames older than the stale limit."""
+    import numpy as np
+
+    fig = platform_floor.run("pty", period, seconds)
+    age = np.asarray(fig.get("age_us") or [], dtype=float)
+    if age.size == 0:
+        return {"ok": False}
+    return {"ok": True, "frames": int(age.size), "p99_us": float(np.percentile(age, 99)),
+            "max_us": float(age.max()), "over_limit": int((age > stale_limit_s * 1e6).sum()),
+            "stale_limit_ms": stale_limit_s * 1e3}
 
 
 def floor(period: float, seconds: float, n_hogs: int) -> dict[str, Any]:
@@ -232,17 +285,24 @@ def main() -> int:
                     help="override for runtime A of case (a) only, e.g. loop.cpu=0")
     ap.add_argument("--set-b", action="append", default=[], metavar="KEY=VALUE",
                     help="override for runtime B of case (a) only")
+    ap.add_argument("--served-set", action="append", default=[], metavar="KEY=VALUE",
+                    help="override for case (b) only, e.g. watchdog.stale_periods=8")
+    ap.add_argument("--no-witness", action="store_true",
+                    help="case (a) without the witness clock beside the runtimes")
     ap.add_argument("--json", action="store_true", help="print one JSON object at the end")
     args = ap.parse_args()
     if not (1 <= args.runs <= 100 and 1 <= args.seconds <= 3600 and 0 <= args.hogs <= 16
             and 0 < args.floor_seconds <= 600):
         ap.error("--runs in [1, 100], --seconds in [1, 3600], --hogs in [0, 16], "
                  "--floor-seconds in (0, 600]")
-    period = float(load_config(args.config, args.set).number("loop.period"))
+    cfg = load_config(args.config, [*args.set, *args.served_set])
+    period = float(cfg.number("loop.period"))
+    stale_limit_s = (float(cfg.number("watchdog.stale_periods")) + 0.5) * period
     say = (lambda *a, **k: None) if args.json else print
     result: dict[str, Any] = {"config": args.config, "period_s": period, "runs": args.runs,
                               "seconds": args.seconds, "hogs": args.hogs,
-                              "overrides": {"all": args.set, "a": args.set_a, "b": args.set_b},
+                              "overrides": {"all": args.set, "a": args.set_a, "b": args.set_b,
+                                            "served": args.served_set},
                               "cpus": os.cpu_count(), "load_start": load_avg()}
     say(f"corral shared-host bench: {args.config}, period {period * 1e3:g} ms, {args.runs} x "
         f"{args.seconds:g} s, {os.cpu_count()} cores, load {load_avg()} (1/5/15 min) at start")
@@ -261,13 +321,16 @@ def main() -> int:
                 f"timing trip, p99 <= {GOAL_P99_US:g} us, missed <= {GOAL_MISS_PCT:g} %")
             rows = []
             for i in range(args.runs):
-                pair = shared_run(args, tmp, i)
+                pair, wit = shared_run(args, tmp, i, period)
                 # The floor again right after, under the load of the moment (hogs only).
                 fr = floor(period, args.floor_seconds, args.hogs)
-                rows.append({"run": i + 1, "a": pair[0], "b": pair[1], "floor": fr,
-                             "load": load_avg()})
-                say(f"  run {i + 1}: A {_fmt(pair[0])}; B {_fmt(pair[1])}; floor just after: "
-                    f"p99 {fr['p99_us']:.0f} us, max {fr['max_us'] / 1e3:.1f} ms, missed "
+                rows.append({"run": i + 1, "a": pair[0], "b": pair[1], "witness": wit,
+                             "floor": fr, "load": load_avg()})
+                seen = ("" if wit is None else
+                        f"; witness beside them: p99 {wit['p99_us']:.0f} us, max "
+                        f"{wit['max_us'] / 1e3:.1f} ms, missed {wit['miss_pct']:.3f} %")
+                say(f"  run {i + 1}: A {_fmt(pair[0])}; B {_fmt(pair[1])}{seen}; floor just "
+                    f"after: p99 {fr['p99_us']:.0f} us, max {fr['max_us'] / 1e3:.1f} ms, missed "
                     f"{fr['miss_pct']:.3f} %; load {load_avg()}", flush=True)
             result["shared"] = rows
             every = [r[k] for r in rows for k in ("a", "b") if r[k].get("ok")]
@@ -283,18 +346,29 @@ def main() -> int:
                     f"{max(f['miss_pct'] for f in every):.3f} % (floor "
                     f"{max(f['miss_pct'] for f in floors):.3f} %)")
         if args.case in ("both", "served"):
-            say("(b) the served rig over a pty + corral run on it, armed; goal: no stale trip")
+            say(f"(b) the served rig over a pty + corral run on it, armed; goal: no stale trip "
+                f"(stale limit {stale_limit_s * 1e3:g} ms)")
             served = []
             for i in range(args.runs):
+                pf = pty_floor(period, args.seconds, stale_limit_s)
                 f = served_run(args, tmp, i)
                 f["load"] = load_avg()
+                f["pty_floor"] = pf
                 served.append(f)
+                fl_txt = ("pty floor failed" if not pf.get("ok") else
+                          f"pty floor just before ({args.seconds:g} s, no corral code): "
+                          f"{pf['over_limit']} of {pf['frames']} frames older than the stale "
+                          f"limit, age p99 {pf['p99_us']:.0f} us, max {pf['max_us'] / 1e3:.1f} ms")
                 say(f"  run {i + 1}: {f.get('armed', '')}; stale trips "
-                    f"{f.get('stale_trips', '?')}; {_fmt(f)}; load {load_avg()}", flush=True)
+                    f"{f.get('stale_trips', '?')}; {_fmt(f)}; {fl_txt}; load {load_avg()}",
+                    flush=True)
             result["served"] = served
             result["served_stale_trips"] = sum(int(f.get("stale_trips") or 0) for f in served)
+            over = sum(int(f["pty_floor"].get("over_limit") or 0) for f in served)
+            result["pty_floor_over_limit"] = over
             say(f"  stale trips in {args.runs} x {args.seconds:g} s: "
-                f"{result['served_stale_trips']}")
+                f"{result['served_stale_trips']}; the bare pty path delivered {over} frames "
+                f"older than the stale limit in as many seconds")
     result["load_end"] = load_avg()
     say(f"load {load_avg()} (1/5/15 min) at the end")
     if args.json:
