@@ -39,7 +39,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from bench import platform_floor  # noqa: E402
+from runtime.realtime import linkfloor  # noqa: E402
 
 
 def main() -> int:
@@ -125,8 +125,9 @@ def _pct(a: Any) -> str:
 
 
 def _floor(kind: str, seconds: float) -> list[float]:
-    """A platform floor (`bench.platform_floor`): pty one-way delays or sleeper lateness, us."""
-    fig = platform_floor.run(kind, 1e-3, seconds)
+    """A platform floor (`runtime.realtime.linkfloor`): pty one-way delays or sleeper
+    lateness, us."""
+    fig = linkfloor.run(kind, 1e-3, seconds)
     return list(fig.get("transit_us" if kind == "pty" else "delays_us", []))
 
 

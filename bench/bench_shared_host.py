@@ -20,7 +20,7 @@ start, and with the hogs again right after every run of case (a). During every r
 case (a) a witness (the same clock and empty tick, in this process, at the runtimes'
 priority) runs beside the two runtimes: stalls it sees too are the host's, not the
 runtimes' (`--no-witness` leaves it out). Before every run of case (b) the pty floor
-(`bench.platform_floor`: the same frame rate through a bare pseudo-terminal between two
+(`runtime.realtime.linkfloor`: the same frame rate through a bare pseudo-terminal between two
 SCHED_FIFO processes, no corral code) counts the frames that arrive older than the
 config's stale limit.
 The load average is printed at the start and after every run: figures taken on a
@@ -50,7 +50,7 @@ from typing import Any
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from bench import platform_floor  # noqa: E402
+from runtime.realtime import linkfloor  # noqa: E402
 
 CORRAL = [sys.executable, "-c", "import sys; from runtime.cli.main import main; sys.exit(main())"]
 GOAL_P99_US = 100.0
@@ -232,15 +232,7 @@ class Witness:
 
 def pty_floor(period: float, seconds: float, stale_limit_s: float) -> dict[str, Any]:
     """The bare pty path at `period` for `seconds`: frames older than the stale limit."""
-    import numpy as np
-
-    fig = platform_floor.run("pty", period, seconds)
-    age = np.asarray(fig.get("age_us") or [], dtype=float)
-    if age.size == 0:
-        return {"ok": False}
-    return {"ok": True, "frames": int(age.size), "p99_us": float(np.percentile(age, 99)),
-            "max_us": float(age.max()), "over_limit": int((age > stale_limit_s * 1e6).sum()),
-            "stale_limit_ms": stale_limit_s * 1e3}
+    return linkfloor.pty_summary(linkfloor.run("pty", period, seconds), stale_limit_s)
 
 
 def floor(period: float, seconds: float, n_hogs: int) -> dict[str, Any]:
@@ -357,14 +349,15 @@ def main() -> int:
                 served.append(f)
                 fl_txt = ("pty floor failed" if not pf.get("ok") else
                           f"pty floor just before ({args.seconds:g} s, no corral code): "
-                          f"{pf['over_limit']} of {pf['frames']} frames older than the stale "
-                          f"limit, age p99 {pf['p99_us']:.0f} us, max {pf['max_us'] / 1e3:.1f} ms")
+                          f"{pf['over_stale_limit']} of {pf['frames']} frames older than the "
+                          f"stale limit, age p99 {pf['age_p99_us']:.0f} us, max "
+                          f"{pf['age_max_ms']:.1f} ms")
                 say(f"  run {i + 1}: {f.get('armed', '')}; stale trips "
                     f"{f.get('stale_trips', '?')}; {_fmt(f)}; {fl_txt}; load {load_avg()}",
                     flush=True)
             result["served"] = served
             result["served_stale_trips"] = sum(int(f.get("stale_trips") or 0) for f in served)
-            over = sum(int(f["pty_floor"].get("over_limit") or 0) for f in served)
+            over = sum(int(f["pty_floor"].get("over_stale_limit") or 0) for f in served)
             result["pty_floor_over_limit"] = over
             say(f"  stale trips in {args.runs} x {args.seconds:g} s: "
                 f"{result['served_stale_trips']}; the bare pty path delivered {over} frames "

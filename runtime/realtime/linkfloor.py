@@ -1,7 +1,9 @@
-"""The platform's own floor, with no corral code: what this host does to a 1 kHz loop.
+"""The platform's own floor, with no corral loop code: what this host does to a 1 kHz loop.
 
-Two measurements, each in a child process of its own so the caller's priority is not
-touched (``python bench/platform_floor.py KIND --period P --seconds S`` prints JSON):
+Two measurements, each in a child process of its own so the caller's priority and
+threads are not touched (``python -m runtime.realtime.linkfloor KIND --period P
+--seconds S`` prints JSON; `run` starts it and `pty_summary` judges the pty path
+against the stale rule's limit):
 
 - ``sleep``: a SCHED_FIFO thread sleeping to absolute deadlines; its lateness (us).
 - ``pty``: the served rig's path in miniature. A "device" process at SCHED_FIFO 40
@@ -15,7 +17,8 @@ touched (``python bench/platform_floor.py KIND --period P --seconds S`` prints J
   reader waits for that work (measured with ftrace on the development VM, see the
   README "A loop that holds on a shared host").
 
-Used by `bench/bench_loop.py` and `bench/bench_shared_host.py` (one floor, two benches).
+Used by the host check for a serial link (`runtime.realtime.hostcheck`), by
+`bench/bench_loop.py` and by `bench/bench_shared_host.py` (one floor for all three).
 """
 
 from __future__ import annotations
@@ -32,16 +35,17 @@ import tty
 from pathlib import Path
 from typing import Any
 
-ROOT = Path(__file__).resolve().parents[1]
+import numpy as np
+
+from runtime.realtime.clock import try_realtime
+
+ROOT = Path(__file__).resolve().parents[2]
 FRAME = 40
 REPLY = 24
 
 
 def _realtime(priority: int) -> None:
     """SCHED_FIFO for this thread when allowed, not handed on to children (as the runtime)."""
-    sys.path.insert(0, str(ROOT))
-    from runtime.realtime.clock import try_realtime
-
     try_realtime(priority)
 
 
@@ -100,13 +104,29 @@ def pty_floor(period: float, seconds: float) -> dict[str, Any]:
 
 def run(kind: str, period: float, seconds: float) -> dict[str, Any]:
     """One floor measurement in a child process (its figures; empty if it failed)."""
-    out = subprocess.run([sys.executable, __file__, kind, "--period", str(period),
-                          "--seconds", str(seconds)], capture_output=True, text=True,
-                         cwd=ROOT, timeout=seconds + 60)
+    try:
+        out = subprocess.run([sys.executable, "-m", "runtime.realtime.linkfloor", kind,
+                              "--period", str(period), "--seconds", str(seconds)],
+                             capture_output=True, text=True, cwd=ROOT, timeout=seconds + 60)
+    except (OSError, subprocess.TimeoutExpired):
+        return {}
     if out.returncode != 0:
         return {}
     fig: dict[str, Any] = json.loads(out.stdout)
     return fig
+
+
+def pty_summary(fig: dict[str, Any], stale_limit_s: float) -> dict[str, Any]:
+    """The pty path's figures against the stale rule's limit: ``frames``, ``age_p99_us``,
+    ``age_max_ms``, ``over_stale_limit`` (frames that arrived older than the limit) and
+    ``stale_limit_ms``; ``ok`` False when nothing was measured."""
+    age = np.asarray(fig.get("age_us") or [], dtype=float)
+    if age.size == 0:
+        return {"ok": False}
+    return {"ok": True, "frames": int(age.size), "age_p99_us": float(np.percentile(age, 99)),
+            "age_max_ms": float(age.max()) / 1e3,
+            "over_stale_limit": int((age > stale_limit_s * 1e6).sum()),
+            "stale_limit_ms": stale_limit_s * 1e3}
 
 
 def main() -> int:
