@@ -239,7 +239,9 @@ def test_hostcheck_text_report(corral):
     assert "stale rule: trips at a sample 7.00 ms old" in res.stdout  # (3 + 0.5) x 2 ms
     assert "preemption model " in res.stdout and "virtual machine: " in res.stdout
     sim = corral("hostcheck", DEMO, "--seconds", "0.3")
-    assert "link: simulated" in sim.stdout and "stale rule" not in sim.stdout
+    # No stale-rule line for the simulated rig (its advice may still mention the rule when
+    # a stall beyond the budget was seen: what a real rig would meet).
+    assert "link: simulated" in sim.stdout and "stale rule: trips at" not in sim.stdout
 
 
 @pytest.mark.parametrize("args, field", [
