@@ -13,11 +13,20 @@ only keys and types.
 
 from __future__ import annotations
 
+import io
 import math
 
 import pytest
 
-from runtime.realtime.hostcheck import Thresholds, explain_trip, host_facts, measure, verdict
+from runtime.config import load_config
+from runtime.realtime.hostcheck import (
+    Thresholds,
+    explain_trip,
+    host_facts,
+    measure,
+    pre_arm_check,
+    verdict,
+)
 from runtime.realtime.hostkernel import (
     MODELS,
     parse_cmdline_preempt,
@@ -30,7 +39,13 @@ from runtime.realtime.hostkernel import (
     read_kernel,
     steal_pct,
 )
-from runtime.realtime.hostverdict import host_kernel_notes, report_lines, summary_line
+from runtime.realtime.hostverdict import (
+    host_cause_tag,
+    host_kernel_notes,
+    report_lines,
+    summary_line,
+)
+from tests.runtime_helpers import DEMO
 
 # The kernel config fragment of a PREEMPT_DYNAMIC kernel whose boot default is "none"
 # (the shape of `zcat /proc/config.gz | grep PREEMPT` on such a kernel).
@@ -247,3 +262,16 @@ def test_this_machine_is_read_keys_and_types():
     steal = fig["steal_pct"]
     assert steal is None or (isinstance(steal, float) and math.isfinite(steal)
                              and 0.0 <= steal <= 100.0)
+
+
+def test_the_pre_arm_check_prints_the_host_causes_it_found():
+    cfg = load_config(DEMO, ["loop.hostcheck_s=0.2"])
+    out = io.StringIO()
+    res = pre_arm_check(cfg, out, link="serial:/dev/null")
+    assert res is not None and isinstance(res["virtual"], bool)
+    text = out.getvalue()
+    assert f"corral: {summary_line(res)}" in text
+    tag = host_cause_tag(res)  # depends on this machine: printed exactly when there is one
+    assert ("corral:   host: " in text) == bool(tag)
+    if tag:
+        assert tag[2:] in text and "`corral hostcheck CONFIG`" in text

@@ -36,6 +36,7 @@ from runtime.realtime.hostmeasure import (
 )
 from runtime.realtime.hostverdict import (
     Thresholds,
+    host_cause_tag,
     report_lines,
     summary_line,
     thresholds_from_config,
@@ -107,4 +108,8 @@ def pre_arm_check(cfg: Any, out: Any, link: str | None = None) -> dict[str, Any]
     print(f"corral: {summary_line(res)}", file=out, flush=True)
     for a in res["problems"]:
         print(f"corral:   problem: {a}", file=out, flush=True)
+    tag = host_cause_tag(res)
+    if tag:
+        print(f"corral:   host: {tag[2:]}: it can stall the loop for milliseconds whatever "
+              "corral does; `corral hostcheck CONFIG` says what to change", file=out, flush=True)
     return res
