@@ -19,6 +19,7 @@ import math
 import pytest
 
 from runtime.config import load_config
+from runtime.dashboard import panels
 from runtime.realtime.hostcheck import (
     Thresholds,
     explain_trip,
@@ -46,6 +47,7 @@ from runtime.realtime.hostverdict import (
     summary_line,
 )
 from tests.runtime_helpers import DEMO
+from tests.test_dashboard import HELLO
 
 # The kernel config fragment of a PREEMPT_DYNAMIC kernel whose boot default is "none"
 # (the shape of `zcat /proc/config.gz | grep PREEMPT` on such a kernel).
@@ -275,3 +277,12 @@ def test_the_pre_arm_check_prints_the_host_causes_it_found():
     assert ("corral:   host: " in text) == bool(tag)
     if tag:
         assert tag[2:] in text and "`corral hostcheck CONFIG`" in text
+
+
+def test_the_arm_dialog_line_carries_the_host_causes():
+    hc = {"ok": True, "lateness_p99_us": 20.0, "worst_stall_ms": 0.5, "realtime": True,
+          "kernel": NONE_KERNEL, "virtual": True, "steal_pct": 0.3}
+    line = panels.hostcheck_line(dict(HELLO, hostcheck=hc))
+    assert line.endswith("SCHED_FIFO, kernel preempt none, virtual machine (steal 0.3 %)")
+    bare = {**hc, "kernel": {**NONE_KERNEL, "preempt": "rt"}, "virtual": False}
+    assert panels.hostcheck_line(dict(HELLO, hostcheck=bare)).endswith("SCHED_FIFO")
