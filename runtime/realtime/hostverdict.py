@@ -227,19 +227,28 @@ def host_kernel_notes(fig: Mapping[str, Any], link_kind: str | None = None) -> l
             "PREEMPT_RT kernel, as is common practice for real-time Linux")
         if link_kind == "serial":
             notes.append(
-                "on a serial link this is where it shows: every byte of the device's samples "
-                "waits for that flush work, so a sample can arrive late although the loop's "
-                "own clock holds, and the stale rule can trip")
+                "on a serial link this is where it shows: the device's samples reach the loop "
+                "only through that flush work, so a sample can arrive milliseconds late "
+                "although the loop's own clock holds, and the stale rule can trip")
     if fig.get("virtual"):
-        steal = fig.get("steal_pct")
-        steal_text = (f"steal {steal:.1f} % of CPU time during the check"
-                      if isinstance(steal, (int, float)) and math.isfinite(steal)
-                      else "steal not measured")
         notes.append(
             "a virtual machine: the hypervisor can stall all its CPUs at once for "
-            f"milliseconds and nothing in the guest removes that ({steal_text}); for a real "
-            "rig use a dedicated (bare-metal) computer, or pinned, dedicated vCPUs")
+            f"milliseconds and nothing in the guest removes that ({_steal_text(fig)}); for a "
+            "real rig use a dedicated (bare-metal) computer, or pinned, dedicated vCPUs")
     return notes
+
+
+def _steal(res: Mapping[str, Any]) -> float | None:
+    steal = res.get("steal_pct")
+    if isinstance(steal, bool) or not isinstance(steal, (int, float)):
+        return None
+    return float(steal) if math.isfinite(steal) else None
+
+
+def _steal_text(res: Mapping[str, Any]) -> str:
+    steal = _steal(res)
+    return ("steal not measured" if steal is None
+            else f"steal {steal:.1f} % of CPU time during the check")
 
 
 def host_kernel_text(res: Mapping[str, Any]) -> str:
@@ -249,10 +258,7 @@ def host_kernel_text(res: Mapping[str, Any]) -> str:
             f"{kernel.get('preempt', 'unknown')} ({kernel.get('how') or 'source unknown'}); ")
     if not res.get("virtual"):
         return text + "virtual machine: no"
-    steal = res.get("steal_pct")
-    return text + "virtual machine: yes, " + (
-        f"steal {steal:.1f} % of CPU time during the check"
-        if isinstance(steal, (int, float)) and math.isfinite(steal) else "steal not measured")
+    return text + "virtual machine: yes, " + _steal_text(res)
 
 
 def host_cause_tag(res: Mapping[str, Any]) -> str:
@@ -263,10 +269,8 @@ def host_cause_tag(res: Mapping[str, Any]) -> str:
     if model in NOT_PREEMPTIBLE:
         text += f", kernel preempt {model}"
     if res.get("virtual"):
-        steal = res.get("steal_pct")
-        text += ", virtual machine" + (
-            f" (steal {steal:.1f} %)"
-            if isinstance(steal, (int, float)) and math.isfinite(steal) else "")
+        steal = _steal(res)
+        text += ", virtual machine" + ("" if steal is None else f" (steal {steal:.1f} %)")
     return text
 
 
