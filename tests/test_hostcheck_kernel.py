@@ -100,7 +100,7 @@ def test_a_preempt_rt_uname_is_rt_whatever_else_says():
     model, how = preempt_model(uname_v="#1 SMP PREEMPT_RT Thu Jan 1 00:00:00 UTC 2026",
                                cmdline="preempt=none", config=CONFIG_NONE_DYNAMIC)
     assert model == "rt" and "uname" in how
-    assert preempt_model(config=CONFIG_RT)[0] == "rt"  # RT also sets CONFIG_PREEMPT
+    assert preempt_model(config=CONFIG_RT)[0] == "rt"  # recent RT also sets CONFIG_PREEMPT
 
 
 def test_debugfs_wins_over_the_command_line_and_the_config():

@@ -56,8 +56,9 @@ _STAT = Path("/proc/stat")
 
 _BOOT_MODELS = ("none", "voluntary", "full", "lazy")
 
-# The config symbols, strongest first: a PREEMPT_RT kernel also sets CONFIG_PREEMPT
-# (or CONFIG_PREEMPT_LAZY), so RT is looked for before them.
+# The config symbols, strongest first: a recent PREEMPT_RT kernel also sets CONFIG_PREEMPT
+# or CONFIG_PREEMPT_LAZY (RT became an option beside the model choice; from memory of the
+# kernel's Kconfig.preempt), so RT is looked for before them.
 _CONFIG_MODELS = (("CONFIG_PREEMPT_RT", "rt"), ("CONFIG_PREEMPT", "full"),
                   ("CONFIG_PREEMPT_LAZY", "lazy"), ("CONFIG_PREEMPT_VOLUNTARY", "voluntary"),
                   ("CONFIG_PREEMPT_NONE", "none"))
