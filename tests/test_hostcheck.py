@@ -222,6 +222,12 @@ def test_hostcheck_json_keys_and_types(corral, tmp_path):
     assert out["ticks"] > 0 and out["period_s"] == 0.001 and out["seconds"] == 0.5
     assert isinstance(out["advice"], list) and all(isinstance(a, str) for a in out["advice"])
     assert out["cpus"] >= 1
+    # The kernel's preemption model and the hypervisor (`runtime.realtime.hostkernel`;
+    # values depend on the machine, so only their types are checked here).
+    assert set(out["kernel"]) == {"release", "preempt", "how"}
+    assert out["kernel"]["preempt"] in ("rt", "full", "voluntary", "none", "lazy", "unknown")
+    assert isinstance(out["virtual"], bool)
+    assert out["steal_pct"] is None or 0.0 <= out["steal_pct"] <= 100.0
 
 
 def test_hostcheck_text_report(corral):
@@ -231,8 +237,11 @@ def test_hostcheck_text_report(corral):
     assert "period 2.0 ms (500 Hz)" in res.stdout
     assert "link: rig-clocked" in res.stdout
     assert "stale rule: trips at a sample 7.00 ms old" in res.stdout  # (3 + 0.5) x 2 ms
+    assert "preemption model " in res.stdout and "virtual machine: " in res.stdout
     sim = corral("hostcheck", DEMO, "--seconds", "0.3")
-    assert "link: simulated" in sim.stdout and "stale rule" not in sim.stdout
+    # No stale-rule line for the simulated rig (its advice may still mention the rule when
+    # a stall beyond the budget was seen: what a real rig would meet).
+    assert "link: simulated" in sim.stdout and "stale rule: trips at" not in sim.stdout
 
 
 @pytest.mark.parametrize("args, field", [

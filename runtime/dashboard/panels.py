@@ -526,14 +526,17 @@ def device_flags(hello: HelloLike, tel: TelemetryLike) -> list[tuple[str, bool]]
 
 
 def hostcheck_line(hello: HelloLike) -> str:
-    """The host check's verdict from the hello, in one line ('' when none ran)."""
+    """The host check's verdict from the hello, in one line ('' when none ran), with the
+    host causes it found (a non-preemptible kernel, a virtual machine)."""
+    from runtime.realtime.hostverdict import host_cause_tag  # as trip_explanation's import
+
     hc = as_hello(hello).hostcheck  # `corral hostcheck --json`: its own open map
     if not hc:
         return ""
     ok = "OK" if hc.get("ok") else "NOT OK"
     return (f"host check {ok}: lateness p99 {fmt(hc.get('lateness_p99_us'), 3)} us, "
             f"worst stall {fmt(hc.get('worst_stall_ms'), 3)} ms, "
-            + ("SCHED_FIFO" if hc.get("realtime") else "normal priority"))
+            + ("SCHED_FIFO" if hc.get("realtime") else "normal priority") + host_cause_tag(hc))
 
 
 def preflight_line(hello: HelloLike) -> str:

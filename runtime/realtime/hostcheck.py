@@ -4,7 +4,8 @@ Three parts, one module each, all re-exported here:
 
 - `runtime.realtime.hostmeasure`: `measure` (an empty tick paced by the runtime's own
   clock: timer lateness, worst stall, deadline misses) and `host_facts` (real-time
-  rights, memory locking, governor, load, cores);
+  rights, memory locking, governor, load, cores, the kernel's preemption model and
+  whether it is a virtual machine, read by `runtime.realtime.hostkernel`);
 - `runtime.realtime.hostverdict`: `verdict`, a pure function of those figures and the
   configured thresholds (`Thresholds`), ok or not with advice in plain words, and the
   report (`report_lines`, `summary_line`);
@@ -35,6 +36,7 @@ from runtime.realtime.hostmeasure import (
 )
 from runtime.realtime.hostverdict import (
     Thresholds,
+    host_cause_tag,
     report_lines,
     summary_line,
     thresholds_from_config,
@@ -67,12 +69,13 @@ def run_hostcheck(cfg: Any, seconds: float | None = None,
     th = thresholds_from_config(cfg)
     secs = float(seconds if seconds is not None else DEFAULT_SECONDS)
     loop_rt = bool(cfg.flag("loop.realtime"))
-    rig_clocked = str(link or cfg.get("rig.link")).split(":", 1)[0] != "sim"
+    link_kind = str(link or cfg.get("rig.link")).split(":", 1)[0]
+    rig_clocked = link_kind != "sim"
     facts = host_facts()
     fig = measure(th.period_s, secs, spin_us=float(cfg.number("loop.spin_us")),
                   realtime=loop_rt, progress=progress)
     fig.update(facts)
-    v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked)
+    v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked, link_kind=link_kind)
     return {"ok": v["ok"], "period_s": th.period_s, "seconds": secs,
             "link": "rig-clocked" if rig_clocked else "simulated (in-process)",
             "lateness_p50_us": fig["lateness_p50_us"], "lateness_p99_us": fig["lateness_p99_us"],
@@ -82,7 +85,8 @@ def run_hostcheck(cfg: Any, seconds: float | None = None,
             "realtime": fig["realtime"], "clock": fig["clock"],
             "realtime_rights": facts["realtime_rights"], "memlock": facts["memlock"],
             "governor": facts["governor"], "load_1min": facts["load_1min"],
-            "cpus": facts["cpus"],
+            "cpus": facts["cpus"], "kernel": facts["kernel"], "virtual": facts["virtual"],
+            "steal_pct": fig["steal_pct"],
             "thresholds": {"stale_periods": th.stale_periods,
                            "stale_limit_ms": v["stale_limit_ms"],
                            "stall_budget_ms": v["stall_budget_ms"],
@@ -104,4 +108,8 @@ def pre_arm_check(cfg: Any, out: Any, link: str | None = None) -> dict[str, Any]
     print(f"corral: {summary_line(res)}", file=out, flush=True)
     for a in res["problems"]:
         print(f"corral:   problem: {a}", file=out, flush=True)
+    tag = host_cause_tag(res)
+    if tag:
+        print(f"corral:   host: {tag[2:]}: it can stall the loop for milliseconds whatever "
+              "corral does; `corral hostcheck CONFIG` says what to change", file=out, flush=True)
     return res

@@ -6,11 +6,14 @@ host allows.
   when allowed) for a few seconds and returns the timer lateness (p50, p99,
   max), the worst stall (the longest time the pacing thread was held off:
   the larger of the worst lateness and the longest gap between two ticks
-  beyond one period) and the deadline misses.
+  beyond one period), the deadline misses and the hypervisor's steal over
+  those seconds (`runtime.realtime.hostkernel`).
 - `host_facts` reads what the host allows and how busy it is: real-time
   priority rights (a probe thread asks for SCHED_FIFO; RLIMIT_RTPRIO,
   CAP_SYS_NICE, root), memory locking (RLIMIT_MEMLOCK, CAP_IPC_LOCK), the CPU
-  frequency governor, the load average and the cores this process may use.
+  frequency governor, the load average, the cores this process may use, the
+  kernel's preemption model and whether the host is a virtual machine
+  (`runtime.realtime.hostkernel`).
 
 What does not live here: judging the figures (`runtime.realtime.hostverdict`), the whole
 check (`runtime.realtime.hostcheck`).
@@ -28,6 +31,7 @@ from pathlib import Path
 from typing import Any
 
 from runtime.realtime.clock import DeadlineClock
+from runtime.realtime.hostkernel import read_cpu_times, read_kernel, read_virtual, steal_pct
 
 CAP_IPC_LOCK = 14
 CAP_SYS_NICE = 23
@@ -43,7 +47,9 @@ def measure(period: float, seconds: float, spin_us: float = 200.0, realtime: boo
 
     Returns ``ticks``, ``lateness_p50_us``, ``lateness_p99_us``, ``lateness_max_us``,
     ``worst_stall_ms``, ``misses``, ``clock`` (what the clock thread was granted) and
-    ``realtime`` (it ran at SCHED_FIFO). `progress(elapsed_s, seconds)` is called from
+    ``realtime`` (it ran at SCHED_FIFO) and ``steal_pct`` (the share of all CPU time the
+    hypervisor took while the clock ran, %; None where ``/proc/stat`` does not tell).
+    `progress(elapsed_s, seconds)` is called from
     this thread about four times a second while the clock runs.
     """
     clock = DeadlineClock(period, spin_us=spin_us, realtime=realtime)
@@ -63,6 +69,7 @@ def measure(period: float, seconds: float, spin_us: float = 200.0, realtime: boo
         if now >= state["end"]:
             clock.stop()
 
+    cpu_before = read_cpu_times()
     t0 = mono()
     clock.start(tick, done.set)
     try:
@@ -72,6 +79,7 @@ def measure(period: float, seconds: float, spin_us: float = 200.0, realtime: boo
     finally:
         clock.stop()
         clock.join(5.0)
+    cpu_after = read_cpu_times()
     if clock.error is not None:
         raise clock.error
     if progress is not None:
@@ -82,7 +90,8 @@ def measure(period: float, seconds: float, spin_us: float = 200.0, realtime: boo
             "lateness_p50_us": _clean(p50), "lateness_p99_us": _clean(p99),
             "lateness_max_us": _clean(mx), "worst_stall_ms": stall * 1e3,
             "misses": int(clock.stats.misses), "clock": clock.granted,
-            "realtime": "SCHED_FIFO" in clock.granted}
+            "realtime": "SCHED_FIFO" in clock.granted,
+            "steal_pct": steal_pct(cpu_before, cpu_after)}
 
 
 def _clean(v: float) -> float:
@@ -153,7 +162,8 @@ def _rss_bytes() -> int:
 
 
 def host_facts() -> dict[str, Any]:
-    """Real-time rights, memory locking, governor, load and cores of this host."""
+    """Real-time rights, memory locking, governor, load and cores of this host, its kernel
+    (``kernel``: ``release``, ``preempt``, ``how``) and ``virtual`` (a hypervisor's guest)."""
     caps = _capabilities()
     root = os.geteuid() == 0
     rtprio = _limit(resource.RLIMIT_RTPRIO)
@@ -176,4 +186,5 @@ def host_facts() -> dict[str, Any]:
                     "mlockall_possible": ipc_lock or memlock is None or memlock >= 2 * rss},
         "governor": _governors() or None,
         "load_1min": float(load[0]), "cpus": int(cpus), "cpus_online": os.cpu_count() or cpus,
+        "kernel": read_kernel(), "virtual": read_virtual(),
     }

@@ -15,6 +15,11 @@ overrun_window ticks; a stall of d seconds alone costs about d / period
 misses at once. A few seconds of measurement see fewer rare stalls than a
 long run: the verdict asks for headroom (the worst stall within the budget,
 the mean miss rate under half the overrun limit), and an ok is no promise.
+
+Two host causes are named as notes that never decide the verdict by themselves
+(`runtime.realtime.hostkernel`): a kernel that does not preempt kernel code
+(preemption model none or voluntary) and a virtual machine (its hypervisor stalls
+every vCPU at once, the steal share measured during the check).
 """
 
 from __future__ import annotations
@@ -25,6 +30,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from runtime.guard.watchdog import DEFAULTS
+from runtime.realtime.hostkernel import NOT_PREEMPTIBLE
 
 
 @dataclass(frozen=True)
@@ -81,7 +87,7 @@ def _nice_period(seconds: float) -> float:
 
 
 def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
-            rig_clocked: bool = True) -> dict[str, Any]:
+            rig_clocked: bool = True, link_kind: str | None = None) -> dict[str, Any]:
     """Can this host hold the period with these thresholds? A pure function of the figures.
 
     `fig` holds the measured ``lateness_p50_us``, ``lateness_p99_us``,
@@ -89,10 +95,12 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
     measuring clock ran at SCHED_FIFO), ``realtime_rights``
     (``sched_fifo_possible``, ``rlimit_rtprio``, ``cap_sys_nice``, ``root``),
     ``memlock`` (``mlockall_possible``, ``rlimit_bytes``), ``governor`` (cpu -> name),
-    ``load_1min`` and ``cpus``. `loop_realtime` is the config's ``loop.realtime``.
+    ``load_1min``, ``cpus``, ``kernel`` (``preempt``, ``how``: `host_kernel_notes`),
+    ``virtual`` and ``steal_pct``. `loop_realtime` is the config's ``loop.realtime``.
     `rig_clocked` is False for the in-process simulated rig: its samples carry the
     loop's own nominal time, so a host stall does not age them and only the overrun
-    rule judges the host (the stale budget is then a note for a real rig).
+    rule judges the host (the stale budget is then a note for a real rig). `link_kind` is
+    the link spec's scheme (``sim``, ``serial``, ``mqtt``) when known.
 
     Returns ``ok``, ``problems`` (why not, empty when ok), ``advice`` (what to change,
     and notes that do not decide the verdict), ``predicted_misses_per_window``,
@@ -195,11 +203,75 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
                       f"{_lim(mem.get('rlimit_bytes'), 'bytes')}): a page fault can stall the "
                       "tick; raise it (e.g. '@realtime - memlock unlimited' in "
                       "/etc/security/limits.conf)")
+    advice.extend(host_kernel_notes(fig, link_kind))
     if ok and not advice:
         advice.append("nothing to change")
     return {"ok": ok, "problems": problems, "advice": advice,
             "predicted_misses_per_window": predicted, "burst_misses": burst,
             "stall_budget_ms": budget * 1e3, "stale_limit_ms": th.stale_limit_s * 1e3}
+
+
+def host_kernel_notes(fig: Mapping[str, Any], link_kind: str | None = None) -> list[str]:
+    """Notes on the kernel's preemption model and the hypervisor, from ``kernel``
+    (``preempt``, ``how``), ``virtual`` and ``steal_pct`` in `fig` (pure; empty when
+    neither is a cause). They inform; they never decide the verdict."""
+    notes = []
+    kernel = fig.get("kernel") or {}
+    model = kernel.get("preempt")
+    if model in NOT_PREEMPTIBLE:
+        notes.append(
+            f"kernel preemption model '{model}' ({kernel.get('how') or 'source unknown'}): kernel "
+            "code is not preempted, so a real-time loop can wait for kernel work (the tty "
+            "layer's flush work that carries every serial byte, page reclaim) for "
+            "milliseconds; boot with preempt=full (on a PREEMPT_DYNAMIC kernel) or use a "
+            "PREEMPT_RT kernel, as is common practice for real-time Linux")
+        if link_kind == "serial":
+            notes.append(
+                "on a serial link this is where it shows: the device's samples reach the loop "
+                "only through that flush work, so a sample can arrive milliseconds late "
+                "although the loop's own clock holds, and the stale rule can trip")
+    if fig.get("virtual"):
+        notes.append(
+            "a virtual machine: the hypervisor can stall all its CPUs at once for "
+            f"milliseconds and nothing in the guest removes that ({_steal_text(fig)}); for a "
+            "real rig use a dedicated (bare-metal) computer, or pinned, dedicated vCPUs")
+    return notes
+
+
+def _steal(res: Mapping[str, Any]) -> float | None:
+    steal = res.get("steal_pct")
+    if isinstance(steal, bool) or not isinstance(steal, (int, float)):
+        return None
+    return float(steal) if math.isfinite(steal) else None
+
+
+def _steal_text(res: Mapping[str, Any]) -> str:
+    steal = _steal(res)
+    return ("steal not measured" if steal is None
+            else f"steal {steal:.1f} % of CPU time during the check")
+
+
+def host_kernel_text(res: Mapping[str, Any]) -> str:
+    """'6.1.0, preemption model none (how); virtual machine: yes, steal 0.4 % ...'."""
+    kernel = res.get("kernel") or {}
+    text = (f"{kernel.get('release', '?')}, preemption model "
+            f"{kernel.get('preempt', 'unknown')} ({kernel.get('how') or 'source unknown'}); ")
+    if not res.get("virtual"):
+        return text + "virtual machine: no"
+    return text + "virtual machine: yes, " + _steal_text(res)
+
+
+def host_cause_tag(res: Mapping[str, Any]) -> str:
+    """', kernel preempt none, virtual machine (steal 0.4 %)': the host causes of a check's
+    result in a few words ('' when neither applies)."""
+    text = ""
+    model = (res.get("kernel") or {}).get("preempt")
+    if model in NOT_PREEMPTIBLE:
+        text += f", kernel preempt {model}"
+    if res.get("virtual"):
+        steal = _steal(res)
+        text += ", virtual machine" + ("" if steal is None else f" (steal {steal:.1f} %)")
+    return text
 
 
 def _lim(v: Any, unit: str = "") -> str:
@@ -239,6 +311,8 @@ def report_lines(res: Mapping[str, Any], name: str = "") -> list[str]:
                  f"governor {gov_text}, memory locking "
                  + ("possible" if (res.get("memlock") or {}).get("mlockall_possible")
                     else "limited"))
+    if "kernel" in res:
+        lines.append(f"  kernel: {host_kernel_text(res)}")
     for p in res.get("problems") or []:
         lines.append(f"  problem: {p}")
     for a in res.get("advice") or []:
@@ -255,6 +329,7 @@ def summary_line(res: Mapping[str, Any]) -> str:
             f"worst stall {float(res.get('worst_stall_ms') or 0):.2f} ms at period "
             f"{ms_text(float(res.get('period_s') or 0))}, "
             f"{'SCHED_FIFO' if res.get('realtime') else 'normal priority'}")
+    text += host_cause_tag(res)
     if not res.get("ok") and res.get("advice"):
         text += f"; {res['advice'][0]}"
     return text

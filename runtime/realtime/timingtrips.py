@@ -10,7 +10,8 @@ from collections.abc import Mapping
 from typing import Any
 
 from runtime.guard.watchdog import DEFAULTS
-from runtime.realtime.hostverdict import ms_text
+from runtime.realtime.hostkernel import NOT_PREEMPTIBLE
+from runtime.realtime.hostverdict import host_cause_tag, ms_text
 
 TIMING_RULES = ("stale", "overrun", "link_loss", "seq_gap")
 """The rules whose trips `explain_trip` puts into words."""
@@ -95,10 +96,23 @@ def _cause(rule: str, host: Mapping[str, Any] | None, loop: Mapping[str, Any] | 
         bits.append(f"Host check before arming: lateness p99 {p99h:.0f} us, worst stall "
                     f"{stall:.2f} ms, "
                     + ("SCHED_FIFO" if host.get("realtime") else "normal priority")
+                    + host_cause_tag(host)
                     + (", OK." if host.get("ok") else ", NOT OK."))
         budget = (host.get("thresholds") or {}).get("stall_budget_ms")
         host_fine = bool(host.get("ok")) and (budget is None or stall < 0.5 * float(budget))
     figures = "".join(f" {b}" for b in bits)
+    model = ((host or {}).get("kernel") or {}).get("preempt")
+    if rule == "stale" and host_fine and (model in NOT_PREEMPTIBLE or (host or {}).get("virtual")):
+        why = []
+        if model in NOT_PREEMPTIBLE:
+            why.append(f"this kernel does not preempt kernel code (preempt {model}), so the "
+                       "loop can wait for kernel work such as the flush work that carries "
+                       "every serial byte")
+        if (host or {}).get("virtual"):
+            why.append("the hypervisor can stall this virtual machine's CPUs at once")
+        return (f"Likely cause: the host below the loop, or the link or the device: "
+                f"{'; '.join(why)}; the host check found this computer otherwise quiet "
+                f"enough.{figures} `corral hostcheck CONFIG` says what to change.")
     if rule == "stale" and host_fine:
         return (f"Likely cause: the link or the device; the host check found this computer "
                 f"quiet enough.{figures} If it has got busier since, `corral hostcheck CONFIG` "
