@@ -287,3 +287,41 @@ def test_no_host_check_for_the_simulated_rig_or_without_preflight(tmp_path):
     r = Runner(cfg, RunSettings(duration=0.05, echo_trips=False))
     summary = asyncio.run(r.run_ticks(10))
     assert summary["hostcheck"] is None and r.core.hello().hostcheck is None
+
+
+# ----------------------------------------------------------------- the serial path's floor
+def test_the_serial_path_floor_is_summarised_against_the_stale_limit():
+    from runtime.realtime.linkfloor import pty_summary
+
+    # Four frames aged 0.1, 0.2, 4.0 and 3.6 ms against a 3.5 ms limit: two are over it.
+    s = pty_summary({"age_us": [100.0, 200.0, 4000.0, 3600.0]}, 3.5e-3)
+    assert s["ok"] and s["frames"] == 4 and s["over_stale_limit"] == 2
+    assert s["age_max_ms"] == pytest.approx(4.0) and s["stale_limit_ms"] == pytest.approx(3.5)
+    assert pty_summary({}, 3.5e-3) == {"ok": False}
+
+
+def test_a_serial_path_that_delivers_frames_late_is_not_ok_and_says_what_to_change():
+    floor = {"ok": True, "frames": 5000, "age_p99_us": 300.0, "age_max_ms": 5.2,
+             "over_stale_limit": 3, "stale_limit_ms": 3.5}
+    v = verdict({**QUIET, "link_floor": floor}, TH_1KHZ, link_kind="serial")
+    assert v["ok"] is False
+    assert any("3 of 5000 frames" in p and "3.5 ms" in p for p in v["problems"]), v["problems"]
+    # A 5.2 ms old sample at 1 ms needs (sp + 0.5) x 1 ms > 5.2 ms: sp = ceil(5.2 + 0.5) = 6
+    # (the rule then trips at 6.5 ms).
+    assert "watchdog.stale_periods >= 6" in " ".join(v["advice"])
+    held = verdict({**QUIET, "link_floor": {**floor, "over_stale_limit": 0}}, TH_1KHZ,
+                   link_kind="serial")
+    assert held["ok"] is True
+
+
+def test_hostcheck_measures_the_serial_path_for_a_serial_link(corral):
+    res = corral("hostcheck", DEMO, "--seconds", "0.5", "--json", "--link",
+                 "serial:/dev/ttyUSB0")
+    assert res.code in (0, 1), res.stderr
+    lf = json.loads(res.stdout)["link_floor"]
+    # A real pseudo-terminal between two processes at 1 kHz for 0.5 s: about 500 frames
+    # (values depend on the machine: only their kinds and signs are checked).
+    assert lf["ok"] is True and 0 < lf["frames"] <= 500
+    assert lf["age_max_ms"] >= 0 and lf["over_stale_limit"] >= 0
+    assert json.loads(corral("hostcheck", DEMO, "--seconds", "0.3", "--json")
+                      .stdout)["link_floor"] is None

@@ -27,6 +27,7 @@ from collections.abc import Callable
 from typing import Any
 
 from runtime import schema
+from runtime.realtime import linkfloor
 from runtime.realtime.hostmeasure import (
     CAP_IPC_LOCK,
     CAP_SYS_NICE,
@@ -75,6 +76,10 @@ def run_hostcheck(cfg: Any, seconds: float | None = None,
     fig = measure(th.period_s, secs, spin_us=float(cfg.number("loop.spin_us")),
                   realtime=loop_rt, progress=progress)
     fig.update(facts)
+    if link_kind == "serial":
+        # The kernel's tty path the samples take, without corral: as long again.
+        fig["link_floor"] = linkfloor.pty_summary(linkfloor.run("pty", th.period_s, secs),
+                                                  th.stale_limit_s)
     v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked, link_kind=link_kind)
     return {"ok": v["ok"], "period_s": th.period_s, "seconds": secs,
             "link": "rig-clocked" if rig_clocked else "simulated (in-process)",
@@ -86,7 +91,7 @@ def run_hostcheck(cfg: Any, seconds: float | None = None,
             "realtime_rights": facts["realtime_rights"], "memlock": facts["memlock"],
             "governor": facts["governor"], "load_1min": facts["load_1min"],
             "cpus": facts["cpus"], "kernel": facts["kernel"], "virtual": facts["virtual"],
-            "steal_pct": fig["steal_pct"],
+            "steal_pct": fig["steal_pct"], "link_floor": fig.get("link_floor"),
             "thresholds": {"stale_periods": th.stale_periods,
                            "stale_limit_ms": v["stale_limit_ms"],
                            "stall_budget_ms": v["stall_budget_ms"],
@@ -102,8 +107,10 @@ def pre_arm_check(cfg: Any, out: Any, link: str | None = None) -> dict[str, Any]
     secs = float(cfg.number("loop.hostcheck_s"))
     if secs <= 0:
         return None
+    serial = str(link or cfg.get("rig.link")).split(":", 1)[0] == "serial"
     print(f"corral: host check: measuring this computer's timing for {secs:g} s "
-          "(loop.hostcheck_s; 0 skips it)", file=out, flush=True)
+          + ("and its serial path as long again " if serial else "")
+          + "(loop.hostcheck_s; 0 skips it)", file=out, flush=True)
     res = run_hostcheck(cfg, secs, link=link)
     print(f"corral: {summary_line(res)}", file=out, flush=True)
     for a in res["problems"]:

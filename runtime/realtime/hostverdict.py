@@ -144,6 +144,8 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
     if ticks <= 0:
         problems.append("no tick was measured: the clock did not run (give --seconds of at "
                         "least a few periods)")
+    link_age_s = _link_floor_problem(fig, th, problems)
+    stall_bad = stall_bad or link_age_s > 0
     ok = not problems
 
     if not rig_clocked and max(p99_s, stall_s) > budget:
@@ -154,7 +156,7 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
     rights = fig.get("realtime_rights") or {}
     realtime = bool(fig.get("realtime"))
     if not ok:
-        need_s = max(stall_s, p99_s)
+        need_s = max(stall_s, p99_s, link_age_s)
         if stall_bad:
             per = _nice_period(need_s / max(th.stale_periods - 0.5, 0.5))
             sp = math.ceil(need_s / P + 0.5)
@@ -209,6 +211,23 @@ def verdict(fig: Mapping[str, Any], th: Thresholds, loop_realtime: bool = True,
     return {"ok": ok, "problems": problems, "advice": advice,
             "predicted_misses_per_window": predicted, "burst_misses": burst,
             "stall_budget_ms": budget * 1e3, "stale_limit_ms": th.stale_limit_s * 1e3}
+
+
+def _link_floor_problem(fig: Mapping[str, Any], th: Thresholds, problems: list[str]) -> float:
+    """The serial path's floor (``link_floor``, `runtime.realtime.linkfloor.pty_summary`)
+    against the stale limit: a problem when frames arrived older than it. Returns the
+    worst age (s) then, else 0."""
+    lf = fig.get("link_floor") or {}
+    over = int(lf.get("over_stale_limit") or 0) if lf.get("ok") else 0
+    if over <= 0:
+        return 0.0
+    worst_s = float(lf.get("age_max_ms") or 0.0) * 1e-3
+    problems.append(
+        f"this host's serial path (a bare pseudo-terminal between two real-time processes at "
+        f"the period, no corral code) delivered {over} of {lf.get('frames')} frames later "
+        f"than the stale limit {ms_text(th.stale_limit_s)} (worst {ms_text(worst_s)}): the "
+        "stale rule would trip on a healthy device")
+    return worst_s
 
 
 def host_kernel_notes(fig: Mapping[str, Any], link_kind: str | None = None) -> list[str]:
@@ -304,6 +323,12 @@ def report_lines(res: Mapping[str, Any], name: str = "") -> list[str]:
             f"  overrun rule: trips at {th['overrun_misses']:g} misses in "
             f"{th['overrun_window']} ticks; predicted {res['predicted_misses_per_window']:.1f}")
     lines.append(f"  link: {res.get('link', '?')}")
+    lf = res.get("link_floor") or {}
+    if lf.get("ok"):
+        lines.append(
+            f"  serial path (bare pseudo-terminal, no corral code, {lf['frames']} frames): "
+            f"sample age p99 {lf['age_p99_us']:.0f} us, worst {lf['age_max_ms']:.2f} ms; "
+            f"{lf['over_stale_limit']} older than the stale limit {lf['stale_limit_ms']:.2f} ms")
     lines.append(f"  real-time: {res.get('clock') or 'not asked (loop.realtime = false)'}")
     gov = res.get("governor")
     gov_text = (", ".join(sorted(set(gov.values()))) if gov else "not exposed by this kernel")
