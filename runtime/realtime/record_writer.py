@@ -14,8 +14,6 @@ import threading
 from pathlib import Path
 from typing import Any, TextIO
 
-import numpy as np
-
 from runtime.realtime.hostcheck import explain_from_header
 from runtime.realtime.settings import RunSettings
 from runtime.realtime.telemetry import TelemetryServer
@@ -78,11 +76,8 @@ class RecordWriter:
                 return
             kind, rec, summary = item
             try:
-                # The capture rows come as an array (the tick does not pay for lists).
-                if isinstance(rec, TripRecord):
-                    rec.pre = np.asarray(rec.pre).tolist()
-                elif isinstance(rec, PostRecord):
-                    rec.rows = np.asarray(rec.rows).tolist()
+                # The capture rows come as an array and are packed straight from it, in
+                # pieces (`runtime.records.packrows`): no long GIL hold for the tick to wait on.
                 self.trip_log.append(rec)
             except Exception as exc:  # noqa: BLE001 - a full disk must not stop the loop
                 print(f"corral: could not write the trip log: {exc}", file=self.console(),

@@ -29,6 +29,7 @@ import numpy as np
 
 from runtime.guard.watchdog import RULE_IDS
 from runtime.records.kinds import Event, RecordError, WireRecord, parse_log_record
+from runtime.records.packrows import pack_record
 
 TRIPS_FORMAT = "corral-trips"
 RUNLOG_FORMAT = "corral-runlog"
@@ -168,7 +169,8 @@ class TripLog:
             _fsync_dir(self.path.parent)
 
     def _write(self, obj: dict[str, Any]) -> None:
-        blob = self._packer.pack(obj)
+        # In pieces: a capture packed in one call held the GIL for milliseconds.
+        blob = b"".join(pack_record(self._packer, obj))
         with self._lock:
             self._fh.write(blob)
             self._fh.flush()
