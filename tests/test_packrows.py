@@ -14,8 +14,8 @@ import msgpack
 import numpy as np
 import pytest
 
-from runtime.records.logwriter import TripLog, _packer
 from runtime.records.logs import read_trip_records
+from runtime.records.logwriter import TripLog, _packer
 from runtime.records.packrows import BIG_ROWS, pack_float_rows, pack_record
 
 
