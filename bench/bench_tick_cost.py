@@ -109,7 +109,7 @@ def pct(a):
 
 m = np.array(modes)
 out = {{"all": {{"cpu": pct(cpu), "wall": pct(wall)}}}}
-for mode in ("disarmed", "settling", "engaged"):
+for mode in ("idle", "armed", "disarmed", "settling", "engaged"):
     sel = m == mode
     if sel.sum() > 10:
         out[mode] = {{"cpu": pct(cpu[sel]), "wall": pct(wall[sel])}}
@@ -140,7 +140,7 @@ def show(side: str, got: dict) -> None:
     load = os.getloadavg()
     print(f"  {side}  [load {load[0]:.1f} {load[1]:.1f} {load[2]:.1f}]"
           + (f"  trips {got['trips']}" if got["trips"] else ""))
-    for phase in ("all", "disarmed", "settling", "engaged"):
+    for phase in ("all", "idle", "armed", "disarmed", "settling", "engaged"):
         if phase in got:
             print("    " + line(f"{phase:9s} CPU ", got[phase]["cpu"]))
     print("    " + line("all       wall", got["all"]["wall"]))
@@ -179,7 +179,7 @@ def main() -> int:
         return 0
     base_root = extract(a.baseline)
     sides = {"baseline": base_root, "this": ROOT}
-    for side, root in sides.items():  # warm-up: load (or compile) the kernels, not counted
+    for root in sides.values():  # warm-up: load (or compile) the kernels, not counted
         run(root, CHILD.format(ticks=200, idle=50, profile=False, config=config), False)
     if a.profile:
         print("profile of this checkout (not counted):")
