@@ -192,8 +192,7 @@ class TickCore:
         last = self.est.last_seq
         cmd = Command(sample.seq if sample is not None else (last if last is not None
                                                             else st.seq),
-                      (float(u_out[0]), float(u_out[1])) if self.m == 2
-                      else tuple(float(v) for v in u_out), flags)
+                      tuple(u_out.tolist()), flags)
         st.u_prev = u_out
         st.u = u_out
         st.outputs_on = on
