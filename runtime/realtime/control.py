@@ -99,9 +99,9 @@ class AdaptiveControl:
         if ratio > st.max_ratio:
             st.max_ratio = ratio
         W = self.law.W
-        sq = self._sq
-        st.w_norm = math.sqrt(np.multiply(W, W, out=sq).sum())
+        sq, add = self._sq, np.add.reduce  # what `ndarray.sum()` calls, without its wrapper
+        st.w_norm = math.sqrt(add(np.multiply(W, W, out=sq), None))
         dW = np.subtract(W, self.W_prev, out=self._dW)
-        st.w_rate = math.sqrt(np.multiply(dW, dW, out=sq).sum()) / Ts
+        st.w_rate = math.sqrt(add(np.multiply(dW, dW, out=sq), None)) / Ts
         self.W_prev[:] = W
         return u
