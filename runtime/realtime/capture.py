@@ -54,10 +54,8 @@ class Capture:
         self.row_len = sum(self.widths)
         offs = np.cumsum([0] + self.widths)
         self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
-        # Where each rule's judged signal goes in the row (one assignment per tick).
+        # Each rule's judged signal, at the end of the row in this order (`fill`).
         self._sig_rules = list(rules)
-        self._sig_at = np.array([self.slot[f"sig_{r.id}"].start for r in self._sig_rules],
-                                dtype=np.intp)
         self.pre_n = max(1, int(round(pre_s / Ts)))
         self.post_n = int(round(post_s / Ts))
         self.ring = np.zeros((self.pre_n, self.row_len))
