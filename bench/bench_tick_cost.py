@@ -14,7 +14,9 @@ measures the thread's CPU time (``time.thread_time_ns``) and wall time (``perf_c
 of our part: ``core.step`` (requests, estimate, supervisor, law, watchdog, command) plus
 ``core.after_send`` (row, ring, events, telemetry); the simulated rig's own sample and
 integration (``sample_now``, ``apply``) are left out (on a real rig the device does that).
-Prints p50/p90/p99/p99.9/max in microseconds per phase, and with ``--profile`` a cProfile
+Prints p50/p90/p99/p99.9/max in microseconds per phase (and of wall minus CPU time:
+the tick thread not running, preempted by another process or waiting for the GIL that a
+writer thread holds), and with ``--profile`` a cProfile
 top 30 by cumulative and by internal time (profiling slows the tick; its figures are not
 the timing figures).
 
@@ -108,7 +110,7 @@ def pct(a):
             "max": float(a.max()), "n": int(a.size)}}
 
 m = np.array(modes)
-out = {{"all": {{"cpu": pct(cpu), "wall": pct(wall)}}}}
+out = {{"all": {{"cpu": pct(cpu), "wall": pct(wall), "wait": pct(np.maximum(wall - cpu, 0))}}}}
 for mode in ("idle", "armed", "disarmed", "settling", "engaged"):
     sel = m == mode
     if sel.sum() > 10:
@@ -144,6 +146,8 @@ def show(side: str, got: dict) -> None:
         if phase in got:
             print("    " + line(f"{phase:9s} CPU ", got[phase]["cpu"]))
     print("    " + line("all       wall", got["all"]["wall"]))
+    if "wait" in got["all"]:  # wall - CPU: preempted, or waiting for the GIL
+        print("    " + line("all  not running", got["all"]["wait"]))
 
 
 def extract(ref: str) -> Path:
