@@ -6,8 +6,8 @@ Usage: python bench/bench_tick_cost.py [--ticks 12000] [--config configs/pedesta
 Builds the real runtime (`Runner`: the in-process simulated rig, `TickCore` with its parts,
 the record writer threads, the telemetry record at the telemetry rate; no socket is served,
 publishing only offers the newest record as in a live run; the clock's lateness
-statistics get a fixed draw of lateness values, as a paced run records them; ``gc.freeze``
-as `Runner.run`) and calls the tick back to back
+statistics get a fixed draw of lateness values, as a paced run records them; ``gc.freeze`` and
+the interpreter's switch interval as `Runner.run` sets them) and calls the tick back to back
 in a plain thread at normal priority, without the real-time clock: idle for 0.5 s of rig
 time, then arm, settle and engaged under the demo's commands for the rest. Per tick it
 measures the thread's CPU time (``time.thread_time_ns``) and wall time (``perf_counter_ns``)
@@ -58,7 +58,8 @@ asyncio.run(link.open())
 stats = r.clock.stats
 late = np.random.default_rng(3).exponential(20e-6, TICKS)
 gc.collect()
-gc.freeze()  # as `Runner.run` does before the loop starts
+gc.freeze()  # as `Runner.run` does before the loop starts, with its switch interval
+sys.setswitchinterval(r.switch_interval)
 cpu = np.zeros(TICKS, dtype=np.int64)
 wall = np.zeros(TICKS, dtype=np.int64)
 modes = []
