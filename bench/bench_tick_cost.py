@@ -33,6 +33,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import statistics
 import subprocess
 import sys
@@ -42,7 +43,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 CHILD = r"""
-import asyncio, cProfile, gc, io, json, pstats, sys, tempfile, threading, time
+import asyncio, cProfile, gc, io, json, pstats, shutil, sys, tempfile, threading, time
 import numpy as np
 from runtime.config import load_config
 from runtime.realtime.loop import Runner, RunSettings
@@ -97,6 +98,7 @@ th.join()
 asyncio.run(link.close())
 core.close()
 r.lock.release()
+shutil.rmtree(tmp, ignore_errors=True)
 if prof is not None:
     for key in ("cumulative", "tottime"):
         s = io.StringIO()
@@ -183,6 +185,14 @@ def main() -> int:
         show("this", run(ROOT, plain, False))
         return 0
     base_root = extract(a.baseline)
+    try:
+        return compare(a, config, code, plain, base_root)
+    finally:
+        shutil.rmtree(base_root, ignore_errors=True)
+
+
+def compare(a: argparse.Namespace, config: str, code: str, plain: str, base_root: Path) -> int:
+    """The alternating rounds against the extracted baseline; prints rounds and ratios."""
     sides = {"baseline": base_root, "this": ROOT}
     for root in sides.values():  # warm-up: load (or compile) the kernels, not counted
         run(root, CHILD.format(ticks=200, idle=50, profile=False, config=config), False)
