@@ -157,7 +157,9 @@ class Rule:
             if self.active and self.engaged_only:
                 self.active = False
             return False
-        if max(sig.sample_age, sig.frozen_age) > self.fresh_within:
+        # (Rules that judge any estimate have fresh_within = inf: no age can pass it.)
+        if (self.fresh_within != math.inf
+                and max(sig.sample_age, sig.frozen_age) > self.fresh_within):
             return False
         v = self.value(sig)
         self.last_value = v

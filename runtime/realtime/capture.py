@@ -54,10 +54,8 @@ class Capture:
         self.row_len = sum(self.widths)
         offs = np.cumsum([0] + self.widths)
         self.slot = {f: slice(int(offs[i]), int(offs[i + 1])) for i, f in enumerate(self.fields)}
-        # Where each rule's judged signal goes in the row (one assignment per tick).
+        # Each rule's judged signal, at the end of the row in this order (`fill`).
         self._sig_rules = list(rules)
-        self._sig_at = np.array([self.slot[f"sig_{r.id}"].start for r in self._sig_rules],
-                                dtype=np.intp)
         self.pre_n = max(1, int(round(pre_s / Ts)))
         self.post_n = int(round(post_s / Ts))
         self.ring = np.zeros((self.pre_n, self.row_len))
@@ -67,6 +65,7 @@ class Capture:
         """The trip whose post capture is being collected (None: none)."""
         self.post_later: list[dict[str, Any]] = []
         self.row = np.zeros(self.row_len)
+        self._zeros_n = [0.0] * design.rig.n
         self._put = put
 
     def fill(self, st: TickState, mode: str, latched: bool, sample_age: float,
@@ -74,31 +73,22 @@ class Capture:
         """This tick's row (a buffer reused every tick), also kept in the pre-trip ring."""
         k = st.tick
         row = self.row
-        sl = self.slot
-        row[0] = st.t
-        row[1] = k
-        row[2] = MODE_CODE[mode]
-        row[3] = float(latched)
-        row[sl["c"]] = st.c
-        row[sl["x"]] = st.x
+        # One list in field order, then one assignment: a numpy slice assignment per field
+        # cost more than the whole row (`_capture_layout`; a wrong width still raises).
+        x = st.x.tolist()
         # The law's figures whenever it ran this tick, also when the tick ended in a
         # fallback (the tick that tripped the margin rule is in the log with its ratio).
-        engaged = st.law_ran
-        row[sl["xr"]] = st.x - st.e if engaged else st.x
-        row[sl["e"]] = st.e if engaged else 0.0
-        row[sl["s"]] = st.s if engaged else 0.0
-        row[sl["eps"]] = st.eps_now
-        row[sl["ratio"]] = st.ratio if engaged else 0.0
-        row[sl["phi_d"]] = st.phi_d
-        row[sl["eff_rate"]] = st.eff_rate
-        row[sl["step_gain"]] = st.step_gain
-        row[sl["u_cmd"]] = st.u_cmd
-        row[sl["u"]] = st.u
-        row[sl["w_norm"]] = st.w_norm
-        row[sl["sample_age_ms"]] = min(sample_age, 1e6) * 1e3
-        row[sl["lateness_us"]] = lateness * 1e6
-        row[sl["outputs_on"]] = float(st.outputs_on)
-        row[self._sig_at] = [r.last_value for r in self._sig_rules]
+        if st.law_ran:
+            e = st.e.tolist()
+            xr = (st.x - st.e).tolist()
+            s, ratio = st.s, st.ratio
+        else:
+            xr, e, s, ratio = x, self._zeros_n, 0.0, 0.0
+        row[:] = [st.t, k, MODE_CODE[mode], float(latched), *st.c.tolist(), *x, *xr, *e,
+                  s, st.eps_now, ratio, st.phi_d, st.eff_rate, st.step_gain,
+                  *np.asarray(st.u_cmd, dtype=float).tolist(), *st.u.tolist(), st.w_norm,
+                  min(sample_age, 1e6) * 1e3, lateness * 1e6, float(st.outputs_on),
+                  *[r.last_value for r in self._sig_rules]]
         self.ring[k % self.pre_n] = row
         return row
 

@@ -45,6 +45,8 @@ class AdaptiveControl:
         self.engagements: list[dict[str, object]] = []
         """Each engage: tick, x and x_r at that moment (tests and review)."""
         self.W_prev = np.zeros((design.n_regressors, design.rig.m))
+        self._dW = np.zeros_like(self.W_prev)
+        self._sq = np.zeros_like(self.W_prev)
         # d(ratio)/dt through a 20 Hz first-order low-pass (the margin-rate rule's signal).
         self._alpha_rr = math.exp(-2 * math.pi * 20.0 * Ts)
 
@@ -79,13 +81,15 @@ class AdaptiveControl:
         if self.bound_varies:
             st.eps_now = float(self.bound.eps(i * Ts))
         out = self.law.step(x, c, st.eps_now)
-        # The fast law's results are views it overwrites next tick: copy.
+        # The fast law's results are views it overwrites next tick: copy. Per tick the
+        # arithmetic stays on numpy methods (no `np.sum` wrappers) and preallocated buffers:
+        # the same operations in the same order, so the same figures to the bit.
         u: Array = out.u.copy()
         st.e[:] = out.e
         st.s = float(out.s)
         ratio = float(out.ratio)
-        st.ratio_rate = (self._alpha_rr * st.ratio_rate
-                         + (1 - self._alpha_rr) * (ratio - st.ratio) / Ts)
+        a = self._alpha_rr
+        st.ratio_rate = a * st.ratio_rate + (1 - a) * (ratio - st.ratio) / Ts
         st.ratio = ratio
         st.phi_d = float(out.phi_d)
         st.eff_rate = float(out.eff_rate)
@@ -95,8 +99,9 @@ class AdaptiveControl:
         if ratio > st.max_ratio:
             st.max_ratio = ratio
         W = self.law.W
-        st.w_norm = float(np.sqrt(np.sum(W * W)))
-        dW = W - self.W_prev
-        st.w_rate = float(np.sqrt(np.sum(dW * dW))) / Ts
+        sq, add = self._sq, np.add.reduce  # what `ndarray.sum()` calls, without its wrapper
+        st.w_norm = math.sqrt(add(np.multiply(W, W, out=sq), None))
+        dW = np.subtract(W, self.W_prev, out=self._dW)
+        st.w_rate = math.sqrt(add(np.multiply(dW, dW, out=sq), None)) / Ts
         self.W_prev[:] = W
         return u

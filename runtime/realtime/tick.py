@@ -18,6 +18,7 @@ built once from `TickSettings` (and the sections their owners read):
 from __future__ import annotations
 
 import contextlib
+import math
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -101,6 +102,8 @@ class TickCore:
         self.control = AdaptiveControl(d, self.law, self.bound, schedule, ts.engage_slew, st)
         self.sig = Signals()
         self.u_max = np.asarray(rig.input_limits, dtype=float)
+        self._u_lo = -self.u_max
+        self._u_lim = self.u_max.tolist()
         self.timing = TickTiming(Ts)
 
         # records
@@ -166,14 +169,15 @@ class TickCore:
         u, on, law_ran = self._control(x)
 
         # watchdog: every rule, same tick
-        tripped = self._judge(now, u, on, law_ran)
+        finite_u = _finite(u)
+        tripped = self._judge(now, u, on, law_ran, finite_u)
         t_detect = time.monotonic() if tripped else 0.0
         trip: TripContext | None = None
         if tripped and (sup.mode in ("settling", "engaged", "fallback")
                         or (sup.mode == "stopped" and sup.latched)):
             trip = self.trip_handler.on_trips(tripped, u, on)
             u, on = trip.u, trip.on
-        if not np.all(np.isfinite(u)):
+        if not (finite_u if trip is None else _finite(u)):
             u, on = np.zeros(self.m), False
 
         # command
@@ -181,15 +185,16 @@ class TickCore:
         flags = FLAG_OUTPUTS_ON if on else 0
         if sup.mode == "fallback":
             flags |= FLAG_FALLBACK
-        u_out = np.clip(u, -self.u_max, self.u_max) if on else np.zeros(self.m)
+        # np.clip's values (u is finite here) without its Python wrapper's cost.
+        u_out = (np.minimum(np.maximum(u, self._u_lo), self.u_max) if on
+                 else np.zeros(self.m))
         # A tick without a sample echoes the last sample's seq (never a host counter:
         # a number ahead of the device's would make it refuse every later command as old,
         # e.g. after the device restarted its numbering on a reconnect).
         last = self.est.last_seq
         cmd = Command(sample.seq if sample is not None else (last if last is not None
                                                             else st.seq),
-                      (float(u_out[0]), float(u_out[1])) if self.m == 2
-                      else tuple(float(v) for v in u_out), flags)
+                      tuple(u_out.tolist()), flags)
         st.u_prev = u_out
         st.u = u_out
         st.outputs_on = on
@@ -234,7 +239,8 @@ class TickCore:
         self.handover.clear()
         self.control.engage(x)
 
-    def _judge(self, now: float, u: Array, on: bool, law_ran: bool) -> list[Rule]:
+    def _judge(self, now: float, u: Array, on: bool, law_ran: bool,
+               finite_u: bool) -> list[Rule]:
         """Every watchdog rule on this tick's signals; the rules that tripped."""
         st, est, sig = self.state, self.est, self.sig
         sig.t = st.t
@@ -248,16 +254,21 @@ class TickCore:
         sig.seq_gap = est.seq_gap
         sig.connected = st.link_up and bool(getattr(self.link.stats, "connected", True))
         sig.since_sample = now - st.last_sample_t
-        finite = bool(np.all(np.isfinite(u))) and (not law_ran or bool(np.isfinite(st.w_norm)))
+        finite = finite_u and (not law_ran or math.isfinite(st.w_norm))
         sig.nonfinite = est.nonfinite or not finite
         sig.jump = est.jump
+        # The saturation rule's signal: seconds each input has been at its limit (plain
+        # floats: m is small and numpy's per-call cost is the tick's cost).
         if on:
-            sat = np.array([over(abs(float(v)), float(lim))  # the saturation rule's signal
-                            for v, lim in zip(st.u_cmd, self.u_max, strict=True)])
-            st.sat_time = np.where(sat, st.sat_time + self.Ts, 0.0)
+            Ts = self.Ts
+            sat = [t + Ts if over(abs(v), lim) else 0.0
+                   for v, lim, t in zip(np.asarray(st.u_cmd, dtype=float).tolist(),
+                                        self._u_lim, st.sat_time.tolist(), strict=True)]
+            st.sat_time = np.array(sat)
+            sig.sat_time = max(sat)
         else:
             st.sat_time[:] = 0.0
-        sig.sat_time = float(np.max(st.sat_time))
+            sig.sat_time = 0.0
         missed = self.timing.new_misses()
         if missed is not None:
             sig.misses_window = self.watchdog.note_miss(st.tick, missed)
@@ -434,6 +445,12 @@ class TickCore:
     @property
     def run_log(self) -> RunLogWriter:
         return self.writer.run_log
+
+
+def _finite(u: Array) -> bool:
+    """Every value of u finite (`np.isfinite` for the tick's few inputs, without numpy's
+    per-call cost)."""
+    return all(map(math.isfinite, np.asarray(u, dtype=float).tolist()))
 
 
 def _guarded_tick(core: TickCore, link: SimLink, t_nom: float) -> Command:
