@@ -185,24 +185,6 @@ class LatencyStats:
         p50, p99 = np.percentile(self.buf[:n], [50, 99])
         return float(p50 * 1e6), float(p99 * 1e6), float(self.max * 1e6)
 
-    def recent_percentiles_us(self, window: int = 1000) -> tuple[float, float]:
-        """(p50, p99) lateness in microseconds over the last `window` ticks (NaN before any).
-
-        Cheap enough to call from the tick (telemetry at 25 Hz): the whole-run
-        `percentiles_us` partitions every recorded tick, which took 0.3 ms at 20 k
-        ticks and 2.3 ms at 200 k on the development VM, inside the tick.
-        """
-        n = min(self.count, self.buf.size, window)
-        if n <= 0:
-            return float("nan"), float("nan")
-        end = self.count % self.buf.size
-        if end >= n:
-            recent = self.buf[end - n:end]
-        else:
-            recent = np.concatenate((self.buf[self.buf.size - (n - end):], self.buf[:end]))
-        p50, p99 = np.percentile(recent, [50, 99])
-        return float(p50 * 1e6), float(p99 * 1e6)
-
 
 class ArrivalTracker:
     """Lateness and misses of a rig-clocked loop, judged against each sample's expected arrival.
