@@ -173,18 +173,39 @@ def test_example_device_closes_a_loop_with_serial_link_and_fails_safe(bins):
                 assert statuses[-1] & ~STATUS_SATURATED == 0
                 assert link.stats.gaps == 0 and link.stats.crc_errors == 0
                 # Give the plant a velocity, then stop commanding: the device must
-                # switch outputs off by itself within its command timeout.
-                for _ in range(20):
+                # switch outputs off by itself once its command timeout has passed. The
+                # last command (u = 1, after 19 of u = 5) shows in the samples where the
+                # device applied it: dv = u x period. Judged on the device's own clock
+                # from there (a loaded host may deliver the commands late or in a burst).
+                period = 1.0 / 500
+                seen = []
+                for i in range(20):
                     s = await link.receive()
-                    await link.send(Command(s.seq, (5.0,), FLAG_OUTPUTS_ON))
+                    seen.append(s)
+                    await link.send(Command(s.seq, (5.0 if i < 19 else 1.0,), FLAG_OUTPUTS_ON))
                 t_quiet = s.t_device
-                after = []
-                while s.t_device - t_quiet < 0.2:
+
+                def timed_out_run() -> int:
+                    n = 0
+                    for a in reversed(seen):
+                        if not a.status & STATUS_COMMAND_TIMEOUT:
+                            break
+                        n += 1
+                    return n
+
+                while timed_out_run() < 10:  # a bound on the device's clock, not a deadline
                     s = await link.receive()
-                    after.append(s)
-                off = [a for a in after if a.status & STATUS_COMMAND_TIMEOUT]
-                assert off, "device never reported a command timeout"
-                assert off[0].t_device - t_quiet <= 0.05 + 0.02
+                    seen.append(s)
+                    assert s.t_device - t_quiet < 10.0, "device never reported a command timeout"
+                applied = [i + 1 for i, (a, b) in enumerate(zip(seen, seen[1:], strict=False))
+                           if b.y[1] - a.y[1] == pytest.approx(1.0 * period, abs=1e-9)]
+                assert applied, "the last command never showed in the samples"
+                k = applied[0]
+                off = seen[len(seen) - timed_out_run():]
+                t_cmd, timeout = seen[k].t_device, h.command_timeout_s
+                # The first sample past the timeout reports it, and none before it does.
+                assert off[0].t_device - t_cmd > timeout
+                assert all(a.t_device - t_cmd <= timeout for a in seen[k:len(seen) - len(off)])
                 assert all(a.status & STATUS_OUTPUTS_OFF for a in off)
                 # outputs zero: the double integrator coasts at constant velocity
                 assert off[-1].y[1] == pytest.approx(off[0].y[1], abs=1e-12)
