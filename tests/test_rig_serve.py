@@ -195,19 +195,26 @@ def test_link_faults_corrupt_and_drop_are_counted(tmp_path):
 
 
 def test_disconnect_fault_and_serial_reconnect(tmp_path):
-    with InProcess(tmp_path, ["disconnect@0.4:duration=0.5"]) as rig:
+    with InProcess(tmp_path) as rig:
 
         async def main():
             link = SerialLink(rig.path)
             await link.open()
+            s = await asyncio.wait_for(link.receive(), 30)
+            # The unplug is scheduled on the device's clock from the first sample the host
+            # saw (a fixed time raced the host's open on a loaded machine: the pty came
+            # back before the host looked and the loop below never ended).
+            t_down = s.t_device + 0.3
+            rig.device.schedule.faults.append(parse_fault(f"disconnect@{t_down}:duration=0.5"))
             with pytest.raises(LinkClosed):
                 while True:
                     s = await asyncio.wait_for(link.receive(), 5)
+                    assert s.t_device < t_down + 0.5, "the host never saw the unplug"
                     await link.send(Command(s.seq, (0.0, 0.0)))
             # The same path (a symlink to the new pty) comes back; no restart needed.
             await link.reconnect(timeout_s=10)
             s = await link.receive()
-            assert s.t_device >= 0.9 and link.stats.reconnects == 1
+            assert s.t_device >= t_down + 0.5 and link.stats.reconnects == 1
             await link.close()
 
         asyncio.run(main())

@@ -21,8 +21,10 @@ from runtime.records.kinds import Event, PostRecord, RunEnd, TripRecord, TripSum
 from runtime.records.logs import RunLogWriter, TripLog
 
 Record = dict[str, Any]
-_Item = tuple[str, TripRecord | PostRecord | Event | RunEnd, TripSummary | None] | None
-"""(kind, record, the trip's summary for a trip) or None: the end of the run."""
+_Item = (tuple[str, TripRecord | PostRecord | Event | RunEnd, TripSummary | None]
+         | threading.Event | None)
+"""(kind, record, the trip's summary for a trip); an Event to set once everything queued
+before it is written and announced (`drain`); or None: the end of the run."""
 
 
 class RecordWriter:
@@ -69,11 +71,22 @@ class RecordWriter:
         self.run_log.append(row)
 
     # ------------------------------------------------------------- the writer thread
+    def drain(self, timeout: float) -> bool:
+        """Wait until everything queued so far is written and announced (at most `timeout`
+        seconds; False if it was not). The runner calls it before its socket closes, so a
+        trip in the last moments of a run still reaches the clients waiting for it."""
+        done = threading.Event()
+        self._writes.put(done)
+        return done.wait(timeout)
+
     def _write_records(self) -> None:
         while True:
             item = self._writes.get()
             if item is None:
                 return
+            if isinstance(item, threading.Event):
+                item.set()
+                continue
             kind, rec, summary = item
             try:
                 # The capture rows come as an array and are packed straight from it, in

@@ -47,6 +47,9 @@ if TYPE_CHECKING:  # the simulated rig is imported where it is built
 EXIT_INTERNAL_TRIP = 71
 """``corral run`` exit status when the run ended through the `internal` trip (an exception
 inside the tick: outputs off, the record in the trip log). 70 stays an uncaught crash."""
+DRAIN_S = 10.0
+"""At the end of a run, how long the socket waits for the writer thread to write and
+announce what is still queued (a bound for a stuck disk, not a deadline)."""
 
 
 def _preflight_job(cfg: Config, plants: int) -> dict[str, Any]:
@@ -242,6 +245,12 @@ class Runner:
                             await self._host_clocked()
                         else:
                             await self._rig_clocked()
+                        # A trip in the last moments of the run: its record is written and
+                        # announced by the writer thread; let that finish while the socket
+                        # still serves (seen under load: the socket closed first and a
+                        # client waiting for the trip never heard of it).
+                        await asyncio.to_thread(self.core.writer.drain, DRAIN_S)
+                        await asyncio.sleep(0)  # deliver what the writer thread posted
                     finally:
                         tel.cancel()
                         if mqtt is not None:
