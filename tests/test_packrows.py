@@ -53,7 +53,7 @@ def test_list_of_rows_and_list_of_lists() -> None:
 def test_pieces_are_small() -> None:
     """No single piece holds more than PIECE_ROWS rows (the point of packing in pieces)."""
     a = np.zeros((2000, 46))
-    pieces = list(pack_float_rows(a, piece_rows=100))
+    pieces = list(pack_float_rows(_packer(), a, piece_rows=100))
     assert len(pieces) == 1 + 20
     assert max(len(p) for p in pieces) == 100 * (3 + 9 * 46)
 

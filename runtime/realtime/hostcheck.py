@@ -43,6 +43,7 @@ from runtime.realtime.hostverdict import (
     thresholds_from_config,
     verdict,
 )
+from runtime.realtime.links import link_kind
 from runtime.realtime.timingtrips import TIMING_RULES, explain_from_header, explain_trip
 
 __all__ = [
@@ -70,17 +71,17 @@ def run_hostcheck(cfg: Any, seconds: float | None = None,
     th = thresholds_from_config(cfg)
     secs = float(seconds if seconds is not None else DEFAULT_SECONDS)
     loop_rt = bool(cfg.flag("loop.realtime"))
-    link_kind = str(link or cfg.get("rig.link")).split(":", 1)[0]
-    rig_clocked = link_kind != "sim"
+    kind = link_kind(cfg, link)
+    rig_clocked = kind != "sim"
     facts = host_facts()
     fig = measure(th.period_s, secs, spin_us=float(cfg.number("loop.spin_us")),
                   realtime=loop_rt, progress=progress)
     fig.update(facts)
-    if link_kind == "serial":
+    if kind == "serial":
         # The kernel's tty path the samples take, without corral: as long again.
         fig["link_floor"] = linkfloor.pty_summary(linkfloor.run("pty", th.period_s, secs),
                                                   th.stale_limit_s)
-    v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked, link_kind=link_kind)
+    v = verdict(fig, th, loop_realtime=loop_rt, rig_clocked=rig_clocked, link_kind=kind)
     return {"ok": v["ok"], "period_s": th.period_s, "seconds": secs,
             "link": "rig-clocked" if rig_clocked else "simulated (in-process)",
             "lateness_p50_us": fig["lateness_p50_us"], "lateness_p99_us": fig["lateness_p99_us"],
@@ -107,7 +108,7 @@ def pre_arm_check(cfg: Any, out: Any, link: str | None = None) -> dict[str, Any]
     secs = float(cfg.number("loop.hostcheck_s"))
     if secs <= 0:
         return None
-    serial = str(link or cfg.get("rig.link")).split(":", 1)[0] == "serial"
+    serial = link_kind(cfg, link) == "serial"
     print(f"corral: host check: measuring this computer's timing for {secs:g} s "
           + ("and its serial path as long again " if serial else "")
           + "(loop.hostcheck_s; 0 skips it)", file=out, flush=True)

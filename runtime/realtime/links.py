@@ -38,6 +38,12 @@ def command_timeout(cfg: Config) -> float:
     return cfg.number("link.command_timeout")
 
 
+def link_kind(cfg: Any, spec: str | None) -> str:
+    """The run's link scheme (``sim``, ``serial``, ``mqtt``): ``--link SPEC`` or
+    ``rig.link``."""
+    return str(spec or cfg.get("rig.link")).split(":", 1)[0]
+
+
 def make_link(cfg: Config, spec: str | None, design: Design | None = None,
               faults: FaultSchedule | None = None) -> Link:
     """The link a config (``rig.link``) or ``--link SPEC`` names.
@@ -45,7 +51,7 @@ def make_link(cfg: Config, spec: str | None, design: Design | None = None,
     ``sim``: the simulated rig in-process (`sim_rigs.link.SimLink`), stepped
     by the loop. Other transports are added here.
     """
-    kind = (spec or str(cfg.get("rig.link"))).split(":", 1)[0]
+    kind = link_kind(cfg, spec)
     if kind == "sim":
         from runtime.offline.dryrun import plant_from_config
         from sim_rigs.link import SimLink

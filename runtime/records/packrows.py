@@ -30,20 +30,13 @@ BIG_ROWS = 64
 """A list or 2-D array value with more rows than this is packed in pieces."""
 
 
-def _array_header(n: int) -> bytes:
-    """The msgpack array header for `n` items (fixarray, array 16 or array 32)."""
-    if n < 16:
-        return bytes([0x90 | n])
-    if n < 1 << 16:
-        return b"\xdc" + n.to_bytes(2, "big")
-    return b"\xdd" + n.to_bytes(4, "big")
-
-
-def pack_float_rows(a: np.ndarray, piece_rows: int = PIECE_ROWS) -> Iterator[bytes]:
-    """A 2-D float64 array as a msgpack array of arrays of float 64, in pieces."""
+def pack_float_rows(packer: msgpack.Packer, a: np.ndarray,
+                    piece_rows: int = PIECE_ROWS) -> Iterator[bytes]:
+    """A 2-D float64 array as a msgpack array of arrays of float 64, in pieces (the array
+    headers from `packer`, which must reset after each call)."""
     rows, cols = a.shape
-    yield _array_header(rows)
-    head = np.frombuffer(_array_header(cols), dtype=np.uint8)
+    yield packer.pack_array_header(rows)
+    head = np.frombuffer(packer.pack_array_header(cols), dtype=np.uint8)
     width = head.size + 9 * cols
     for start in range(0, rows, piece_rows):
         part = a[start:start + piece_rows]
@@ -75,9 +68,9 @@ def pack_record(packer: msgpack.Packer, record: dict[str, Any]) -> Iterator[byte
         yield packer.pack(key)
         table = _rows_array(value)
         if table is not None:
-            yield from pack_float_rows(table)
+            yield from pack_float_rows(packer, table)
         elif isinstance(value, list) and len(value) > BIG_ROWS:
-            yield _array_header(len(value))
+            yield packer.pack_array_header(len(value))
             for start in range(0, len(value), PIECE_ROWS):
                 yield b"".join(packer.pack(r) for r in value[start:start + PIECE_ROWS])
         else:
